@@ -1,0 +1,415 @@
+"""The "Density map": a grid of pairwise event plots.
+
+Events are never drawn one graphics item each.  Every plot is an image of a
+2-D binning of the events (``BINS`` x ``BINS``): before a fit each bin is
+coloured by its event count (log10), after a fit by the mean fitted log
+density of its events, through a perceptually uniform colour map with a
+colour bar.  Highlighted events (rare or enriched) are drawn as a scatter on
+top, subsampled to at most ``MAX_HIGHLIGHT`` points per plot with a fixed seed
+(the label above the grid always gives the full count).  Highest-density-region
+contours (50 / 90 / 99 %) come from :mod:`core.contours` and are drawn as lines.
+
+Binning here is for display only; every count the analyst reads comes from core.
+Values are events x channels (transformed units, what regions use).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Callable, Sequence
+
+import numpy as np
+import pyqtgraph as pg
+from PySide6.QtCore import QPointF, QRectF, Qt, Signal
+from PySide6.QtWidgets import QVBoxLayout, QWidget
+
+from desktop import style
+
+BINS = 200
+MAX_HIGHLIGHT = 5000
+RANGE_SAMPLE = 100_000
+
+
+def channel_extent(column: np.ndarray, seed: int = 0) -> tuple[float, float]:
+    """Display range of one channel: 0.05-99.95 percentiles (of at most
+    ``RANGE_SAMPLE`` finite values, fixed seed) padded by 4 % on each side."""
+    col = np.asarray(column, dtype=np.float64)
+    col = col[np.isfinite(col)]
+    if col.size == 0:
+        return (0.0, 1.0)
+    if col.size > RANGE_SAMPLE:
+        col = np.random.default_rng(seed).choice(col, RANGE_SAMPLE, replace=False)
+    lo, hi = np.percentile(col, [0.05, 99.95])
+    if not hi > lo:
+        lo, hi = lo - 0.5, hi + 0.5
+    pad = 0.04 * (hi - lo)
+    return (float(lo - pad), float(hi + pad))
+
+
+def bin_index(x: np.ndarray, y: np.ndarray, extent: tuple[float, float, float, float],
+              bins: int = BINS) -> np.ndarray:
+    """Flat bin index (row = y bin, column = x bin) of each event; -1 outside the extent."""
+    x0, x1, y0, y1 = extent
+    with np.errstate(invalid="ignore"):
+        fx = (x - x0) * (bins / (x1 - x0))
+        fy = (y - y0) * (bins / (y1 - y0))
+        inside = (fx >= 0) & (fx < bins) & (fy >= 0) & (fy < bins)
+    idx = np.full(x.shape, -1, dtype=np.int64)
+    idx[inside] = fy[inside].astype(np.int64) * bins + fx[inside].astype(np.int64)
+    return idx
+
+
+@dataclass
+class PairCell:
+    """One plot of the grid: channels ``ix`` (x axis) and ``iy`` (y axis)."""
+
+    ix: int
+    iy: int
+    plot: pg.PlotItem
+    image: pg.ImageItem
+    highlight: pg.ScatterPlotItem
+    extent: tuple[float, float, float, float]
+    index: np.ndarray  # flat bin per event, -1 outside
+    inside: np.ndarray  # events with index >= 0
+    counts: np.ndarray  # (BINS*BINS,) events per bin
+    contours: list = field(default_factory=list)
+    rois: dict = field(default_factory=dict)  # region id -> ROI item
+
+
+class DensityMap(QWidget):
+    """Grid of pair plots with density colouring, highlights, contours and regions.
+
+    Signals:
+      ``roiChanged(region_id, vertices)`` while a region's outline is dragged
+      (vertices: list of (x, y) in the plot's transformed units);
+      ``roiDrawn(kind, x_channel, y_channel, vertices)`` when the analyst has
+      drawn a new rectangle or polygon with a drawing tool.
+    """
+
+    roiChanged = Signal(str, object)
+    roiFinished = Signal(str, object)
+    roiDrawn = Signal(str, str, str, object)
+
+    def __init__(self, parent: QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.view = pg.GraphicsLayoutWidget()
+        self.view.setBackground(style.SLATE)
+        lay = QVBoxLayout(self)
+        lay.setContentsMargins(0, 0, 0, 0)
+        lay.addWidget(self.view)
+        self.cells: list[PairCell] = []
+        self.names: list[str] = []
+        self.values: np.ndarray | None = None
+        self.colour_values: np.ndarray | None = None
+        self.colour_label = "events per bin (log10)"
+        self.highlight_mask: np.ndarray | None = None
+        self.contours_visible = True
+        self.draw_mode: str | None = None  # None, "rectangle", "polygon"
+        self._poly_points: list[tuple[float, float]] = []
+        self._poly_cell: PairCell | None = None
+        self._poly_preview: pg.PlotDataItem | None = None
+        self.colourbar: pg.ColorBarItem | None = None
+        self.title = pg.LabelItem("", color="#c9d1cc", size="10pt")
+        self.view.scene().sigMouseClicked.connect(self._scene_clicked)
+
+    # ------------------------------------------------------------------ data
+    def set_events(self, values: np.ndarray, names: Sequence[str],
+                   pairs: Sequence[tuple[int, int]], labels: Sequence[str] | None = None,
+                   columns: int | None = None) -> None:
+        """Show ``values`` (events x channels) as one plot per (x, y) channel pair."""
+        values = np.asarray(values, dtype=np.float64)
+        self.values = values
+        self.names = list(names)
+        labels = list(labels) if labels else [""] * len(self.names)
+        old_rois = {rid: (self.names_of(c), roi) for c in self.cells for rid, roi in c.rois.items()}
+        self.view.clear()
+        self.cells = []
+        self.colourbar = None
+        n = len(pairs)
+        if columns is None:
+            columns = 1 if n <= 1 else 2 if n <= 4 else 3
+        self.view.addItem(self.title, row=0, col=0, colspan=columns)
+        extents: dict[int, tuple[float, float]] = {}
+        for k, (ix, iy) in enumerate(pairs):
+            for c in (ix, iy):
+                if c not in extents:
+                    extents[c] = channel_extent(values[:, c])
+            ext = extents[ix] + extents[iy]
+            plot = self.view.addPlot(row=1 + k // columns, col=k % columns)
+            plot.setMenuEnabled(False)
+            plot.hideButtons()
+            plot.setLabel("bottom", _axis_label(self.names[ix], labels[ix]))
+            plot.setLabel("left", _axis_label(self.names[iy], labels[iy]))
+            plot.getViewBox().setBackgroundColor("#11161a")
+            img = pg.ImageItem(axisOrder="row-major")
+            img.setRect(QRectF(ext[0], ext[2], ext[1] - ext[0], ext[3] - ext[2]))
+            plot.addItem(img)
+            hl = pg.ScatterPlotItem(size=4, pen=None, brush=pg.mkBrush(style.RARE), pxMode=True)
+            hl.setZValue(5)
+            plot.addItem(hl)
+            plot.setRange(xRange=ext[:2], yRange=ext[2:], padding=0)
+            idx = bin_index(values[:, ix], values[:, iy], ext)
+            inside = idx >= 0
+            counts = np.bincount(idx[inside], minlength=BINS * BINS).astype(np.float64)
+            self.cells.append(PairCell(ix, iy, plot, img, hl, ext, idx, inside, counts))
+        self._columns = columns
+        self._redraw_images()
+        self._redraw_highlight()
+        # ROIs survive a redraw when their pair is still shown
+        for rid, ((xn, yn), roi) in old_rois.items():
+            self.add_roi(rid, roi.kind, xn, yn, roi_vertices(roi), roi.name)
+
+    def names_of(self, cell: PairCell) -> tuple[str, str]:
+        return self.names[cell.ix], self.names[cell.iy]
+
+    def set_colouring(self, per_event: np.ndarray | None, label: str = "") -> None:
+        """Colour bins by the mean of ``per_event`` (e.g. log density, (n_events,));
+        None returns to event counts."""
+        self.colour_values = None if per_event is None else np.asarray(per_event, dtype=np.float64)
+        self.colour_label = label or ("mean log density" if per_event is not None else "events per bin (log10)")
+        self._redraw_images()
+
+    def set_highlight(self, mask: np.ndarray | None) -> None:
+        """Draw the events in ``mask`` (bool, (n_events,)) on top of every plot."""
+        self.highlight_mask = None if mask is None else np.asarray(mask, dtype=bool)
+        self._redraw_highlight()
+
+    def set_title(self, text: str) -> None:
+        self.title.setText(text)
+
+    # -------------------------------------------------------------- drawing
+    def _redraw_images(self) -> None:
+        if not self.cells:
+            return
+        cmap_name = style.DENSITY_COLOURMAP if self.colour_values is not None else style.COUNT_COLOURMAP
+        cmap = pg.colormap.get(cmap_name)
+        lut = cmap.getLookupTable(0.0, 1.0, 256, alpha=True)
+        per_cell = []
+        finite_vals = []
+        for cell in self.cells:
+            counts = cell.counts
+            filled = counts > 0
+            if self.colour_values is None:
+                val = np.where(filled, np.log10(np.maximum(counts, 1.0)), np.nan)
+            else:
+                w = self.colour_values[cell.inside]
+                ok = np.isfinite(w)
+                idx = cell.index[cell.inside][ok]
+                s = np.bincount(idx, weights=w[ok], minlength=BINS * BINS)
+                c = np.bincount(idx, minlength=BINS * BINS)
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    val = np.where(c > 0, s / np.maximum(c, 1), np.nan)
+            per_cell.append(val)
+            finite_vals.append(val[np.isfinite(val)])
+        allv = np.concatenate(finite_vals) if finite_vals else np.zeros(0)
+        if allv.size:
+            lo, hi = np.percentile(allv, [1.0, 99.9]) if self.colour_values is not None else (0.0, float(allv.max()))
+            if not hi > lo:
+                hi = lo + 1.0
+        else:
+            lo, hi = 0.0, 1.0
+        self.levels = (float(lo), float(hi))
+        for cell, val in zip(self.cells, per_cell):
+            rgba = np.zeros((BINS * BINS, 4), dtype=np.uint8)
+            ok = np.isfinite(val)
+            t = np.clip((val[ok] - lo) / (hi - lo), 0.0, 1.0)
+            rgba[ok] = lut[(t * 255).astype(np.int64)]
+            rgba[ok, 3] = 255
+            cell.image.setImage(rgba.reshape(BINS, BINS, 4), autoLevels=False, levels=(0, 255))
+        if self.colourbar is None:
+            self.colourbar = pg.ColorBarItem(values=self.levels, colorMap=cmap, interactive=False,
+                                             width=14, label=self.colour_label, colorMapMenu=False)
+            self.view.addItem(self.colourbar, row=1, col=self._columns,
+                              rowspan=max(1, (len(self.cells) + self._columns - 1) // self._columns))
+        else:
+            self.colourbar.setColorMap(cmap)
+            self.colourbar.setLevels(self.levels)
+            self.colourbar.getAxis("right").setLabel(self.colour_label)
+
+    def _redraw_highlight(self) -> None:
+        mask = self.highlight_mask
+        for cell in self.cells:
+            if mask is None or self.values is None or not mask.any():
+                cell.highlight.setData(x=[], y=[])
+                continue
+            sel = np.flatnonzero(mask & cell.inside)
+            if sel.size > MAX_HIGHLIGHT:
+                sel = np.sort(np.random.default_rng(0).choice(sel, MAX_HIGHLIGHT, replace=False))
+            cell.highlight.setData(x=self.values[sel, cell.ix], y=self.values[sel, cell.iy])
+
+    def highlighted_points(self) -> int:
+        """Number of highlight points currently drawn over all plots (after subsampling)."""
+        return sum(len(c.highlight.data) for c in self.cells)
+
+    # ------------------------------------------------------------- contours
+    def set_contours(self, lines_per_cell: Sequence[Sequence[tuple[int, np.ndarray]]] | None) -> None:
+        """Draw contour lines: for each cell, a list of (level_index, (m, 2) xy array)
+        with level_index 0/1/2 for the 50/90/99 % regions."""
+        for cell in self.cells:
+            for item in cell.contours:
+                cell.plot.removeItem(item)
+            cell.contours = []
+        if not lines_per_cell:
+            return
+        for cell, lines in zip(self.cells, lines_per_cell):
+            for level_index, xy in lines:
+                colour = style.CONTOUR[min(level_index, len(style.CONTOUR) - 1)]
+                item = pg.PlotCurveItem(xy[:, 0], xy[:, 1], pen=pg.mkPen(colour, width=1.2))
+                item.setZValue(4)
+                item.setVisible(self.contours_visible)
+                cell.plot.addItem(item)
+                cell.contours.append(item)
+
+    def show_contours(self, on: bool) -> None:
+        self.contours_visible = bool(on)
+        for cell in self.cells:
+            for item in cell.contours:
+                item.setVisible(self.contours_visible)
+
+    # -------------------------------------------------------------- regions
+    def cell_for(self, x_name: str, y_name: str) -> PairCell | None:
+        for cell in self.cells:
+            if self.names_of(cell) == (x_name, y_name):
+                return cell
+        return None
+
+    def add_roi(self, region_id: str, kind: str, x_name: str, y_name: str,
+                vertices: Sequence[tuple[float, float]], name: str = "") -> bool:
+        """Show a rectangle or polygon region on the plot of (x_name, y_name).
+
+        Returns False when that pair is not on the map (the region still counts)."""
+        cell = self.cell_for(x_name, y_name)
+        if cell is None:
+            return False
+        pen = pg.mkPen(style.REGION, width=1.6)
+        vs = np.asarray(vertices, dtype=np.float64)
+        if kind == "rectangle":
+            x0, y0 = vs.min(axis=0)
+            x1, y1 = vs.max(axis=0)
+            roi = pg.RectROI([x0, y0], [x1 - x0, y1 - y0], pen=pen, removable=False)
+        else:
+            roi = pg.PolyLineROI([tuple(v) for v in vs], closed=True, pen=pen, removable=False)
+        roi.kind = kind
+        roi.name = name
+        roi.setZValue(10)
+        label = pg.TextItem(name, color=style.REGION, anchor=(0, 1))
+        label.setParentItem(roi)
+        roi.label = label
+        cell.plot.addItem(roi)
+        cell.rois[region_id] = roi
+        roi.sigRegionChanged.connect(lambda r=roi, rid=region_id: self.roiChanged.emit(rid, roi_vertices(r)))
+        roi.sigRegionChangeFinished.connect(lambda r=roi, rid=region_id: self.roiFinished.emit(rid, roi_vertices(r)))
+        return True
+
+    def rename_roi(self, region_id: str, name: str) -> None:
+        for cell in self.cells:
+            roi = cell.rois.get(region_id)
+            if roi is not None:
+                roi.name = name
+                roi.label.setText(name)
+
+    def remove_roi(self, region_id: str) -> None:
+        for cell in self.cells:
+            roi = cell.rois.pop(region_id, None)
+            if roi is not None:
+                cell.plot.removeItem(roi)
+
+    def start_drawing(self, kind: str | None) -> None:
+        """Arm a drawing tool: "rectangle" (click a plot to place a box, then drag
+        its handles) or "polygon" (click the corners, double-click to close)."""
+        self._cancel_polygon()
+        self.draw_mode = kind
+
+    def _cell_at(self, scene_pos) -> PairCell | None:
+        for cell in self.cells:
+            if cell.plot.vb.sceneBoundingRect().contains(scene_pos):
+                return cell
+        return None
+
+    def _scene_clicked(self, event) -> None:
+        if self.draw_mode is None or event.button() != Qt.LeftButton:
+            return
+        cell = self._cell_at(event.scenePos())
+        if cell is None:
+            return
+        p = cell.plot.vb.mapSceneToView(event.scenePos())
+        x, y = float(p.x()), float(p.y())
+        xn, yn = self.names_of(cell)
+        if self.draw_mode == "rectangle":
+            (vx0, vx1), (vy0, vy1) = cell.plot.vb.viewRange()
+            w, h = 0.2 * (vx1 - vx0), 0.2 * (vy1 - vy0)
+            verts = [(x - w / 2, y - h / 2), (x + w / 2, y + h / 2)]
+            self.draw_mode = None
+            self.roiDrawn.emit("rectangle", xn, yn, verts)
+            event.accept()
+            return
+        # polygon
+        if self._poly_cell is not None and self._poly_cell is not cell:
+            self._cancel_polygon()
+        self._poly_cell = cell
+        if event.double() and len(self._poly_points) >= 3:
+            verts = list(self._poly_points)
+            self._cancel_polygon()
+            self.draw_mode = None
+            self.roiDrawn.emit("polygon", xn, yn, verts)
+            event.accept()
+            return
+        self._poly_points.append((x, y))
+        if self._poly_preview is None:
+            self._poly_preview = pg.PlotDataItem(pen=pg.mkPen(style.REGION, width=1.2, style=Qt.DashLine),
+                                                 symbol="o", symbolSize=5, symbolBrush=style.REGION)
+            cell.plot.addItem(self._poly_preview)
+        xy = np.asarray(self._poly_points)
+        self._poly_preview.setData(xy[:, 0], xy[:, 1])
+        event.accept()
+
+    def _cancel_polygon(self) -> None:
+        if self._poly_preview is not None and self._poly_cell is not None:
+            self._poly_cell.plot.removeItem(self._poly_preview)
+        self._poly_preview = None
+        self._poly_cell = None
+        self._poly_points = []
+
+
+def roi_vertices(roi) -> list[tuple[float, float]]:
+    """Corners of a ROI in data coordinates: two opposite corners for a rectangle
+    ((x0, y0), (x1, y1)), the vertex list for a polygon."""
+    if getattr(roi, "kind", "") == "rectangle" or isinstance(roi, pg.RectROI):
+        pos, size = roi.pos(), roi.size()
+        x0, y0 = float(pos.x()), float(pos.y())
+        x1, y1 = x0 + float(size.x()), y0 + float(size.y())
+        return [(min(x0, x1), min(y0, y1)), (max(x0, x1), max(y0, y1))]
+    pts = []
+    for h in roi.getHandles():
+        p = roi.mapToParent(h.pos())
+        pts.append((float(p.x()), float(p.y())))
+    return pts
+
+
+def _axis_label(name: str, label: str) -> str:
+    return f"{label} ({name})" if label and label != name else name
+
+
+def contour_lines(grid: np.ndarray, xs: np.ndarray, ys: np.ndarray,
+                  levels: Sequence[float]) -> list[tuple[int, np.ndarray]]:
+    """Lines where ``grid`` (len(xs) x len(ys), value at (xs[i], ys[j])) crosses each level.
+
+    Marching squares from pyqtgraph; returns (level_index, (m, 2) xy) pairs."""
+    grid = np.asarray(grid, dtype=np.float64)
+    xs = np.asarray(xs, dtype=np.float64)
+    ys = np.asarray(ys, dtype=np.float64)
+    dx = (xs[-1] - xs[0]) / max(len(xs) - 1, 1)
+    dy = (ys[-1] - ys[0]) / max(len(ys) - 1, 1)
+    out = []
+    for k, level in enumerate(levels):
+        if not np.isfinite(level):
+            continue
+        for line in pg.isocurve(grid, float(level), connected=True, extendToEdge=True):
+            arr = np.asarray(line, dtype=np.float64)
+            if arr.ndim != 2 or len(arr) < 2:
+                continue
+            # pyqtgraph reports crossings half a cell off: position 0.5 is grid index 0
+            x = xs[0] + (arr[:, 0] - 0.5) * dx
+            y = ys[0] + (arr[:, 1] - 0.5) * dy
+            out.append((k, np.column_stack([x, y])))
+    return out
