@@ -1,0 +1,671 @@
+"""Reading and writing FCS files (Flow Cytometry Standard 2.0, 3.0 and 3.1).
+
+Reading
+-------
+:func:`read_fcs` returns an :class:`EventFile`: the events of the file's first
+data set as a float64 matrix of shape (events x channels), in *scale* units:
+
+* Integer data (``$DATATYPE/I/``) are bit-masked to the bits ``$PnR`` needs
+  (``ceil(log2($PnR))`` bits, FCS 3.1 on ``$PnB``/``$PnR``; some instruments
+  set unused high bits).
+* ``$PnE/f1,f2/`` with ``f1 > 0`` on integer data is log amplification:
+  ``value = f2 * 10 ** (f1 * x / $PnR)`` (FCS 3.1).  Files that write
+  ``f2 = 0`` mean ``f2 = 1`` (common practice).  Floating point data must carry
+  ``$PnE/0,0/`` (FCS 3.1); a float channel that claims log amplification is
+  already in scale units and is kept as stored (a note says so).
+* ``$PnG`` (amplifier gain) applies to linear channels: ``value = x / $PnG``.
+  It is not applied to the time channel (a gain on time makes no physical
+  sense; common practice) nor to log-amplified channels.
+* ``channel_ranges`` are ``$PnR`` carried into the same units as ``data``:
+  ``f2 * 10 ** f1`` for decoded log channels and ``$PnR / $PnG`` for channels
+  divided by their gain.  The raw ``$PnR`` stays in ``keywords``.
+* Non-finite values (NaN, inf) in float files are loaded as they are; the
+  cleaning step (``core.prepare``) sets those events aside with a reason.
+* The TEXT segment is decoded as UTF-8 (FCS 3.1); when it is not valid UTF-8
+  (older files) it is decoded as Latin-1, which maps every byte, and a note
+  says so.
+* Duplicate ``$PnN`` names (forbidden by FCS 3.1, but seen) keep their data:
+  the second and later copies are renamed ``"NAME (2)"``, ``"NAME (3)"``...
+  The original names stay in ``keywords`` and a note lists the renames.
+* Only the first data set of a multi-data-set file is read (a note says so).
+
+The HEADER, TEXT offsets and ``$TOT x $PAR x $PnB`` are checked against the
+file size *before* any event is read, so a damaged header cannot make the
+reader allocate memory the file cannot fill.  Everything broken raises
+:class:`~core.errors.FcsFileError` naming the file and the problem.
+
+Writing
+-------
+:func:`write_fcs` writes FCS 3.1: HEADER, TEXT and DATA (no ANALYSIS), list
+mode, float32 little-endian, through :func:`core.atomic.atomic_write`.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import re
+import warnings
+from dataclasses import dataclass, field
+from typing import Iterable, Mapping, Sequence
+
+import numpy as np
+
+from .atomic import atomic_write
+from .errors import ChannelError, EventDataError, ExportError, FcsFileError
+
+__all__ = ["EventFile", "read_fcs", "write_fcs", "header_offset_fields"]
+
+#: Length of the FCS HEADER: version (6), 4 spaces, six 8-byte offsets (FCS 3.1 section 3.1).
+HEADER_LENGTH = 58
+#: The largest offset an 8-byte HEADER field can hold (FCS 3.1 section 3.1).
+MAX_HEADER_OFFSET = 99_999_999
+
+_SUPPORTED_VERSIONS = ("FCS2.0", "FCS3.0", "FCS3.1", "FCS3.2")
+_BYTE_ORDERS = {"1,2,3,4": "<", "1,2": "<", "4,3,2,1": ">", "2,1": ">"}
+_PARAM_KEY = re.compile(r"^\$P(\d+)([A-Z]+)$", re.IGNORECASE)
+# Keywords the writer computes itself; any copy in `keywords` is ignored.
+_STRUCTURAL_KEYS = frozenset({
+    "$BEGINANALYSIS", "$ENDANALYSIS", "$BEGINDATA", "$ENDDATA", "$BEGINSTEXT",
+    "$ENDSTEXT", "$BYTEORD", "$DATATYPE", "$MODE", "$NEXTDATA", "$PAR", "$TOT",
+})
+# Delimiters the writer may use, in order of preference (any byte 1-126 is allowed by FCS 3.1).
+_DELIMITER_CHOICES = ("/", "|", "\\", "!", "~", "^", "\x0c")
+
+
+@dataclass
+class EventFile:
+    """The events of one FCS data set and its description.
+
+    Attributes
+    ----------
+    path : str
+        The file read.
+    data : ndarray, shape (n_events, n_channels), float64
+        Event values in scale units (see the module notes on $PnE/$PnG).
+    channel_names : list of str
+        ``$PnN`` per channel, made unique (see the module notes).
+    channel_labels : list of str
+        ``$PnS`` per channel, ``""`` where absent.
+    channel_ranges : ndarray, shape (n_channels,), float64
+        ``$PnR`` per channel in the units of ``data``.
+    keywords : dict of str to str
+        Every TEXT keyword as written in the file; keys starting with ``$``
+        are upper-cased (FCS keywords are case-insensitive).
+    version : str
+        ``"FCS2.0"``, ``"FCS3.0"``, ``"FCS3.1"`` (or ``"FCS3.2"``).
+    notes : list of str
+        What the reader did that an analyst may want to know (Latin-1 text,
+        renamed channels, values kept as stored, extra data sets, ...).
+    """
+
+    path: str
+    data: np.ndarray
+    channel_names: list
+    channel_labels: list
+    channel_ranges: np.ndarray
+    keywords: dict
+    version: str
+    notes: list = field(default_factory=list)
+
+    @property
+    def n_events(self) -> int:
+        """Number of events (rows of ``data``)."""
+        return int(self.data.shape[0])
+
+    @property
+    def n_channels(self) -> int:
+        """Number of channels (columns of ``data``)."""
+        return int(self.data.shape[1])
+
+    def channel_index(self, name_or_label: str) -> int:
+        """Column of the channel whose ``$PnN`` name or ``$PnS`` label is ``name_or_label``.
+
+        Exact names win over labels; a case-insensitive match is accepted when
+        it is unique.  Raises :class:`ChannelError` listing the channels.
+        """
+        key = str(name_or_label)
+        if key in self.channel_names:
+            return self.channel_names.index(key)
+        hits = [i for i, lab in enumerate(self.channel_labels) if lab and lab == key]
+        if len(hits) == 1:
+            return hits[0]
+        folded = key.casefold()
+        if not hits:
+            hits = sorted({i for i, n in enumerate(self.channel_names) if n.casefold() == folded}
+                          | {i for i, lab in enumerate(self.channel_labels)
+                             if lab and lab.casefold() == folded})
+            if len(hits) == 1:
+                return hits[0]
+        available = ", ".join(
+            f"{n} ({lab})" if lab and lab != n else n
+            for n, lab in zip(self.channel_names, self.channel_labels))
+        where = os.path.basename(self.path) if self.path else "the event file"
+        if hits:
+            raise ChannelError(f"{where}: '{key}' names {len(hits)} channels "
+                               f"({', '.join(self.channel_names[i] for i in hits)}); "
+                               f"use the channel name. Channels: {available}")
+        raise ChannelError(f"{where}: no channel named '{key}'. Channels: {available}")
+
+
+# --------------------------------------------------------------------------- reading
+
+def _parse_header(path: str, head: bytes, file_size: int) -> dict:
+    """Check the 58-byte HEADER and return version and segment offsets (bytes, inclusive ends)."""
+    if file_size == 0:
+        raise FcsFileError(path, "the file is empty (0 bytes)")
+    if not head.startswith(b"FCS"):
+        raise FcsFileError(path, "this is not an FCS file: it does not start with 'FCS' "
+                                 "and a version number")
+    version = head[:6].decode("ascii", errors="replace")
+    if version not in _SUPPORTED_VERSIONS:
+        raise FcsFileError(path, f"FCS version '{version}' is not supported "
+                                 f"(supported: FCS 2.0, 3.0 and 3.1)")
+    if file_size < HEADER_LENGTH:
+        raise FcsFileError(path, f"the file is only {file_size} bytes long; an FCS "
+                                 f"HEADER alone takes {HEADER_LENGTH} bytes")
+    names = ("text start", "text end", "data start", "data end", "analysis start", "analysis end")
+    offsets = {}
+    for k, name in enumerate(names):
+        raw = head[10 + 8 * k: 18 + 8 * k]
+        text = raw.decode("ascii", errors="replace").strip()
+        if text == "":
+            offsets[name] = 0
+        elif text.isdigit():
+            offsets[name] = int(text)
+        else:
+            raise FcsFileError(path, f"the HEADER is damaged: the {name} offset reads "
+                                     f"{raw!r}, not a number")
+    if offsets["text start"] <= 0 or offsets["text end"] <= offsets["text start"]:
+        raise FcsFileError(path, "the HEADER does not locate the TEXT segment "
+                                 f"(offsets {offsets['text start']}-{offsets['text end']})")
+    # Some writers let the TEXT end where DATA starts; read one byte less (as fcsparser does).
+    if offsets["text end"] == offsets["data start"]:
+        offsets["text end"] -= 1
+    if offsets["text end"] >= file_size:
+        raise FcsFileError(path, f"the file is truncated: the TEXT segment should end at byte "
+                                 f"{offsets['text end']} but the file has only {file_size} bytes")
+    offsets["version"] = version
+    return offsets
+
+
+def _decode_text(path: str, raw: bytes, notes: list) -> tuple[str, str]:
+    """Decode TEXT bytes as UTF-8 (FCS 3.1), else Latin-1; return (text, encoding)."""
+    try:
+        return raw.decode("utf-8"), "utf-8"
+    except UnicodeDecodeError as exc:
+        notes.append(f"The TEXT segment is not valid UTF-8 (byte 0x{raw[exc.start]:02x} at "
+                     f"position {exc.start}); keywords were read as Latin-1.")
+        return raw.decode("latin-1"), "latin-1"
+
+
+def _split_text(path: str, text: str, notes: list) -> dict:
+    """TEXT segment -> keyword dict, using fcsparser's own splitter (delimiter doubling)."""
+    from fcsparser.api import FCSParser
+
+    if len(text) < 2:
+        raise FcsFileError(path, "the TEXT segment is empty")
+    delimiter = text[0]
+    if delimiter.isalnum() or delimiter in "$":
+        raise FcsFileError(path, f"the TEXT segment does not start with a delimiter "
+                                 f"(found {delimiter!r}); the HEADER offsets are probably wrong")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        raw = FCSParser._extract_text_dict(text)
+    for w in caught:
+        notes.append("The TEXT segment does not end with its delimiter; its last keyword "
+                     "may be incomplete." if "delimiter" in str(w.message) else str(w.message))
+    keywords = {}
+    for key, value in raw.items():
+        k = key.strip()
+        if k.startswith("$"):
+            k = k.upper()
+        keywords[k] = value
+    return keywords
+
+
+def _required(path: str, kw: Mapping[str, str], key: str) -> str:
+    if key not in kw:
+        raise FcsFileError(path, f"the TEXT segment lacks the required keyword {key}")
+    return kw[key]
+
+
+def _int_keyword(path: str, kw: Mapping[str, str], key: str) -> int:
+    value = _required(path, kw, key).strip()
+    try:
+        return int(value)
+    except ValueError:
+        try:
+            as_float = float(value)
+        except ValueError:
+            as_float = math.nan
+        if as_float.is_integer():
+            return int(as_float)
+        raise FcsFileError(path, f"keyword {key} should be a whole number but reads '{value}'") \
+            from None
+
+
+def _float_or_none(text: str | None) -> float | None:
+    if text is None:
+        return None
+    try:
+        value = float(text.strip())
+    except ValueError:
+        return None
+    return value if math.isfinite(value) else None
+
+
+def _check_layout(path: str, header: dict, kw: Mapping[str, str], file_size: int) -> dict:
+    """Validate mode, types, byte order and the DATA segment size before any data are read."""
+    mode = kw.get("$MODE", "L").strip().upper()
+    if mode != "L":
+        raise FcsFileError(path, f"$MODE is '{mode}'; only list mode (L) event data can be read")
+    datatype = _required(path, kw, "$DATATYPE").strip().upper()
+    if datatype not in ("I", "F", "D"):
+        raise FcsFileError(path, f"$DATATYPE '{datatype}' is not supported "
+                                 "(integer I, float F and double D are)")
+    byteord = _required(path, kw, "$BYTEORD").strip().replace(" ", "")
+    if byteord not in _BYTE_ORDERS:
+        raise FcsFileError(path, f"$BYTEORD '{byteord}' is not supported "
+                                 "(little-endian 1,2,3,4 and big-endian 4,3,2,1 are)")
+    n_par = _int_keyword(path, kw, "$PAR")
+    n_tot = _int_keyword(path, kw, "$TOT")
+    if n_par <= 0:
+        raise FcsFileError(path, f"$PAR is {n_par}: the file declares no channels")
+    if n_tot < 0:
+        raise FcsFileError(path, f"$TOT is {n_tot}: a negative number of events")
+    _int_keyword(path, kw, "$NEXTDATA")  # fcsparser requires it; check it here with a clear message
+    if "$P0B" in kw:
+        raise FcsFileError(path, "channels are numbered from 0 ($P0B); FCS numbers them from 1")
+    bits = []
+    for n in range(1, n_par + 1):
+        b = _int_keyword(path, kw, f"$P{n}B")
+        if datatype == "F" and b != 32 or datatype == "D" and b != 64:
+            raise FcsFileError(path, f"$P{n}B is {b} bits but $DATATYPE {datatype} needs "
+                                     f"{32 if datatype == 'F' else 64}")
+        if datatype == "I" and (b <= 0 or b % 8 or b > 64):
+            raise FcsFileError(path, f"$P{n}B is {b} bits; only whole bytes (8, 16, 24, 32...) "
+                                     "can be read")
+        if datatype == "I" and _float_or_none(kw.get(f"$P{n}R")) is None:
+            raise FcsFileError(path, f"$P{n}R (channel range) is missing or not a number; "
+                                     "integer data cannot be decoded without it")
+        bits.append(b)
+    row_bytes = sum(bits) // 8
+    # Like fcsparser: HEADER offsets unless 0 (then $BEGINDATA/$ENDDATA, FCS 3.1 section 3.1).
+    start, end = header["data start"], header["data end"]
+    if start == 0:
+        start = _int_keyword(path, kw, "$BEGINDATA") if "$BEGINDATA" in kw else 0
+    if end == 0:
+        end = _int_keyword(path, kw, "$ENDDATA") if "$ENDDATA" in kw else 0
+    needed = n_tot * row_bytes
+    if needed == 0:
+        return {"n_tot": n_tot, "n_par": n_par, "datatype": datatype}
+    if start <= 0 or end < start:
+        raise FcsFileError(path, "neither the HEADER nor $BEGINDATA/$ENDDATA locate the DATA "
+                                 "segment")
+    mb = needed / 1e6
+    if start + needed > file_size:
+        raise FcsFileError(path, f"the file is truncated or its event count is wrong: $TOT and "
+                                 f"$PAR announce {n_tot} events x {n_par} channels ({mb:.3g} MB "
+                                 f"of data from byte {start}) but the file has only "
+                                 f"{file_size} bytes")
+    held = end - start + 1
+    # A DATA segment shorter than $TOT x $PAR needs, or longer by a whole event or more,
+    # means $TOT/$PAR disagree with the data: refuse rather than misalign channels.
+    if held < needed or held - needed >= row_bytes:
+        raise FcsFileError(path, f"$TOT and $PAR disagree with the DATA segment: {n_tot} events "
+                                 f"x {row_bytes} bytes per event need {needed} bytes but the "
+                                 f"DATA segment holds {held} bytes")
+    if end >= file_size:
+        raise FcsFileError(path, f"the file is truncated: the DATA segment should end at byte "
+                                 f"{end} but the file has only {file_size} bytes")
+    return {"n_tot": n_tot, "n_par": n_par, "datatype": datatype}
+
+
+def _read_raw_events(path: str, encoding: str, n_tot: int, n_par: int, notes: list) -> np.ndarray:
+    """Let fcsparser read (and bit-mask) the DATA segment; return float64 (events x channels)."""
+    import fcsparser
+
+    if n_tot == 0:
+        return np.zeros((0, n_par), dtype=np.float64)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            _, frame = fcsparser.parse(path, meta_data_only=False, channel_naming="$PnN",
+                                       reformat_meta=False, dtype=None, encoding=encoding)
+        except MemoryError:
+            raise FcsFileError(path, "not enough memory to hold the events") from None
+        except Exception as exc:  # fcsparser raises bare ValueError/KeyError etc.
+            raise FcsFileError(path, f"the DATA segment cannot be read ({exc})") from exc
+    for w in caught:
+        msg = str(w.message)
+        if "channel names" in msg and "not unique" in msg:
+            continue  # duplicate names are handled (and noted) by read_fcs
+        if "ANALYSIS segment" in msg:
+            notes.append("The file has an ANALYSIS segment; it is not read.")
+        elif "NEXTDATA" in msg or "data sets" in msg:
+            continue
+        else:
+            notes.append(f"fcsparser: {msg}")
+    data = np.ascontiguousarray(frame.to_numpy(dtype=np.float64))
+    if data.shape != (n_tot, n_par):
+        raise FcsFileError(path, f"the DATA segment gave {data.shape[0]} x {data.shape[1]} "
+                                 f"values, not the announced {n_tot} x {n_par}")
+    return data
+
+
+def _unique_names(names: Sequence[str]) -> tuple[list, list]:
+    """Append " (2)", " (3)"... to repeated names; return (names, list of renames)."""
+    taken = set(names)
+    seen: dict = {}
+    out, renames = [], []
+    for name in names:
+        if name not in seen:
+            seen[name] = 1
+            out.append(name)
+            continue
+        k = seen[name]
+        while True:
+            k += 1
+            candidate = f"{name} ({k})"
+            if candidate not in taken:
+                break
+        seen[name] = k
+        taken.add(candidate)
+        out.append(candidate)
+        renames.append((name, candidate))
+    return out, renames
+
+
+def _is_time(name: str, label: str) -> bool:
+    return name.strip().casefold() == "time" or label.strip().casefold() == "time"
+
+
+def _decode_scale(kw: Mapping[str, str], datatype: str, data: np.ndarray,
+                  names: Sequence[str], labels: Sequence[str], notes: list) -> np.ndarray:
+    """Apply $PnE / $PnG in place; return channel ranges in the same units (float64)."""
+    n_par = data.shape[1]
+    ranges = np.full(n_par, np.nan, dtype=np.float64)
+    missing_range = []
+    kept_log = []
+    for j in range(n_par):
+        n = j + 1
+        rng = _float_or_none(kw.get(f"$P{n}R"))
+        if rng is None or rng <= 0:
+            missing_range.append(names[j])
+            rng = None
+        f1 = f2 = 0.0
+        pne = kw.get(f"$P{n}E")
+        if pne is not None:
+            parts = [p.strip() for p in pne.split(",")]
+            vals = [_float_or_none(p) for p in parts]
+            if len(vals) == 2 and None not in vals and vals[0] >= 0:
+                f1, f2 = vals
+            else:
+                notes.append(f"Channel {names[j]}: $P{n}E '{pne}' is not 'decades,offset'; "
+                             "treated as linear.")
+        if f1 > 0:
+            if datatype != "I":
+                kept_log.append(names[j])
+                ranges[j] = rng if rng is not None else np.nan
+                continue
+            if f2 <= 0:
+                f2 = 1.0  # common practice: files writing f2 = 0 mean 1
+            # FCS 3.1: scale value = f2 * 10^(f1 * channel / $PnR)
+            data[:, j] = f2 * np.power(10.0, f1 * data[:, j] / rng)
+            ranges[j] = f2 * 10.0 ** f1
+            continue
+        gain = _float_or_none(kw.get(f"$P{n}G"))
+        if gain is not None and gain > 0 and gain != 1.0 and not _is_time(names[j], labels[j]):
+            data[:, j] /= gain  # FCS 3.1: linear scale value = channel / $PnG
+            ranges[j] = rng / gain if rng is not None else np.nan
+        else:
+            ranges[j] = rng if rng is not None else np.nan
+    if kept_log:
+        notes.append("Channels " + ", ".join(kept_log) + " are floating point with a "
+                     "logarithmic $PnE; FCS 3.1 requires $PnE 0,0 for float data, so the "
+                     "values are kept as stored.")
+    if missing_range:
+        fill = np.nanmax(np.where(np.isfinite(data), data, np.nan), axis=0) \
+            if data.shape[0] else np.ones(n_par)
+        for name in missing_range:
+            j = list(names).index(name)
+            if not np.isfinite(ranges[j]):
+                ranges[j] = fill[j] if np.isfinite(fill[j]) and fill[j] > 0 else 1.0
+        notes.append("Channels " + ", ".join(missing_range) + " have no usable $PnR; their "
+                     "range was set to their largest value.")
+    return ranges
+
+
+def read_fcs(path: str | os.PathLike) -> EventFile:
+    """Read the first data set of an FCS 2.0/3.0/3.1 file.
+
+    Returns an :class:`EventFile` whose ``data`` (events x channels, float64)
+    are in scale units: integer channels bit-masked to ``$PnR``, ``$PnE`` log
+    amplification and ``$PnG`` gain decoded (see the module notes).  The input
+    file is opened read-only and never modified.  Raises
+    :class:`~core.errors.FcsFileError` naming the file and the problem.
+    """
+    path = os.fspath(path)
+    if not os.path.exists(path):
+        raise FcsFileError(path, "no such file")
+    if os.path.isdir(path):
+        raise FcsFileError(path, "this is a folder, not an FCS file")
+    try:
+        file_size = os.path.getsize(path)
+        with open(path, "rb") as handle:
+            head = handle.read(HEADER_LENGTH)
+            header = _parse_header(path, head, file_size)
+            handle.seek(header["text start"])
+            raw_text = handle.read(header["text end"] - header["text start"] + 1)
+    except OSError as exc:
+        raise FcsFileError(path, f"the file cannot be opened ({exc.strerror or exc})") from exc
+
+    notes: list = []
+    text, encoding = _decode_text(path, raw_text, notes)
+    keywords = _split_text(path, text, notes)
+    layout = _check_layout(path, header, keywords, file_size)
+    n_tot, n_par, datatype = layout["n_tot"], layout["n_par"], layout["datatype"]
+    nextdata = _int_keyword(path, keywords, "$NEXTDATA")
+    if nextdata:
+        notes.append("The file holds more than one data set; the first one was read.")
+
+    data = _read_raw_events(path, encoding, n_tot, n_par, notes)
+
+    raw_names = []
+    for n in range(1, n_par + 1):
+        name = keywords.get(f"$P{n}N", "").strip()
+        if not name:
+            name = keywords.get(f"$P{n}S", "").strip() or f"P{n}"
+            notes.append(f"Channel {n} has no $P{n}N name; it is called '{name}'.")
+        raw_names.append(name)
+    labels = [keywords.get(f"$P{n}S", "").strip() for n in range(1, n_par + 1)]
+    names, renames = _unique_names(raw_names)
+    if renames:
+        notes.append("Channel names repeat in the file; renamed " +
+                     ", ".join(f"'{a}' -> '{b}'" for a, b in renames) +
+                     " (original names kept in the keywords).")
+
+    ranges = _decode_scale(keywords, datatype, data, names, labels, notes)
+    bad = ~np.isfinite(data)
+    if bad.any():
+        notes.append(f"{int(bad.any(axis=1).sum())} events hold non-finite values (NaN or "
+                     "inf); they are kept here and set aside by the cleaning step.")
+    return EventFile(path=path, data=data, channel_names=names, channel_labels=labels,
+                     channel_ranges=ranges, keywords=keywords, version=header["version"],
+                     notes=notes)
+
+
+# --------------------------------------------------------------------------- writing
+
+def header_offset_fields(text_start: int, text_end: int, data_start: int, data_end: int,
+                         analysis_start: int = 0, analysis_end: int = 0) -> list:
+    """The six HEADER offsets as FCS 3.1 writes them.
+
+    A segment whose end lies beyond 99,999,999 bytes cannot be written in the
+    8-byte HEADER fields: both its fields become 0 and readers take the true
+    offsets from the TEXT keywords ($BEGINDATA/$ENDDATA, ...), FCS 3.1 section 3.1.
+    """
+    out = []
+    for start, end in ((text_start, text_end), (data_start, data_end),
+                       (analysis_start, analysis_end)):
+        if end > MAX_HEADER_OFFSET or start > MAX_HEADER_OFFSET:
+            out += [0, 0]
+        else:
+            out += [int(start), int(end)]
+    return out
+
+
+def _format_number(x: float) -> str:
+    """Shortest text that reads back as the same float64 (integers without '.0')."""
+    x = float(x)
+    if x.is_integer() and abs(x) < 1e15:
+        return str(int(x))
+    return repr(x)
+
+
+def _choose_delimiter(items: Iterable[str]) -> str:
+    """A delimiter that starts no key or value (so doubling stays unambiguous for every reader)."""
+    items = list(items)
+    for d in _DELIMITER_CHOICES:
+        if not any(s.startswith(d) for s in items):
+            return d
+    raise ExportError("no usable TEXT delimiter: every candidate begins some keyword value")
+
+
+def _text_segment(pairs: Sequence[tuple], delimiter: str) -> bytes:
+    """FCS TEXT: delimiter, then key/value pairs each followed by the delimiter;
+    a delimiter inside a key or value is doubled (FCS 3.1 section 3.2.x)."""
+    esc = delimiter * 2
+    body = delimiter + "".join(f"{k.replace(delimiter, esc)}{delimiter}"
+                               f"{v.replace(delimiter, esc)}{delimiter}" for k, v in pairs)
+    return body.encode("utf-8")
+
+
+def _assemble(pairs: list, data_bytes: bytes) -> bytes:
+    """HEADER + TEXT + DATA with self-consistent offsets (TEXT length depends on them)."""
+    n_bytes = len(data_bytes)
+    delimiter = _choose_delimiter([k for k, _ in pairs] + [v for _, v in pairs])
+    text_start = HEADER_LENGTH
+    offsets = {"$BEGINDATA": 0, "$ENDDATA": 0}
+    for _ in range(10):
+        full = [("$BEGINANALYSIS", "0"), ("$ENDANALYSIS", "0"),
+                ("$BEGINSTEXT", "0"), ("$ENDSTEXT", "0"),
+                ("$BEGINDATA", str(offsets["$BEGINDATA"])),
+                ("$ENDDATA", str(offsets["$ENDDATA"]))] + pairs
+        text = _text_segment(full, delimiter)
+        text_end = text_start + len(text) - 1
+        begin = text_end + 1 if n_bytes else 0
+        end = begin + n_bytes - 1 if n_bytes else 0
+        if (begin, end) == (offsets["$BEGINDATA"], offsets["$ENDDATA"]):
+            break
+        offsets = {"$BEGINDATA": begin, "$ENDDATA": end}
+    else:  # pragma: no cover - the lengths converge in two or three rounds
+        raise ExportError("cannot lay out the FCS segments")
+    if text_end > MAX_HEADER_OFFSET:
+        raise ExportError("the TEXT segment is too large for an FCS HEADER")
+    fields = header_offset_fields(text_start, text_end, begin, end)
+    header = "FCS3.1    " + "".join(f"{v:>8d}" for v in fields)
+    assert len(header) == HEADER_LENGTH
+    return header.encode("ascii") + text + data_bytes
+
+
+def write_fcs(path: str | os.PathLike, data, channel_names: Sequence[str],
+              keywords: Mapping[str, object] | None = None,
+              channel_labels: Sequence[str] | None = None,
+              channel_ranges: Sequence[float] | None = None,
+              overwrite: bool = False) -> str:
+    """Write events to an FCS 3.1 file (list mode, float32, little-endian).
+
+    Parameters
+    ----------
+    path : output file; written atomically, refused if it exists unless ``overwrite``.
+    data : array (n_events, n_channels) of finite values (stored as float32).
+    channel_names : ``$PnN`` per channel: non-empty, unique, without commas (FCS 3.1).
+    keywords : extra TEXT keywords (e.g. ``$SPILLOVER``, ``BOSCAGE_SOURCE``).  Keys
+        the writer sets itself (segment offsets, ``$PAR``, ``$TOT``, ``$DATATYPE``,
+        ``$BYTEORD``, ``$MODE``, ``$NEXTDATA``) and every per-channel ``$Pn...``
+        keyword are ignored: channel keywords come from the arguments.  Empty
+        values are skipped (FCS 3.1 forbids them).
+    channel_labels : ``$PnS`` per channel (written where non-empty).
+    channel_ranges : ``$PnR`` per channel; default: the channel's largest value
+        rounded up to a whole number (at least 1).
+
+    Returns the path written.  Raises :class:`EventDataError` for unusable
+    data, :class:`ChannelError` for bad channel lists and :class:`ExportError`
+    when the file cannot be written (nothing is left behind).
+    """
+    path = os.fspath(path)
+    where = os.path.basename(path)
+    arr = np.asarray(data)
+    if arr.ndim != 2:
+        raise EventDataError(f"{where}: event data must be a 2-D array (events x channels), "
+                             f"got {arr.ndim} dimension(s)")
+    if not np.issubdtype(arr.dtype, np.number) or np.issubdtype(arr.dtype, np.complexfloating):
+        raise EventDataError(f"{where}: event data must be real numbers, got {arr.dtype}")
+    n_events, n_par = arr.shape
+    if n_par == 0:
+        raise EventDataError(f"{where}: there are no channels to write")
+    values = arr.astype("<f4")
+    finite = np.isfinite(values)
+    if not finite.all():
+        bad_cols = [str(channel_names[j]) if j < len(channel_names) else str(j)
+                    for j in np.flatnonzero(~finite.all(axis=0))]
+        raise EventDataError(f"{where}: {int((~finite).any(axis=1).sum())} events hold NaN, inf "
+                             f"or values beyond float32 range (channels {', '.join(bad_cols)}); "
+                             "remove them before export")
+
+    names = [str(n) for n in channel_names]
+    if len(names) != n_par:
+        raise ChannelError(f"{where}: {len(names)} channel names for {n_par} data columns")
+    for n in names:
+        if not n.strip():
+            raise ChannelError(f"{where}: a channel name is empty")
+        if "," in n:
+            raise ChannelError(f"{where}: channel name '{n}' contains a comma, which FCS 3.1 "
+                               "forbids in $PnN")
+    if len(set(names)) != len(names):
+        dup = sorted({n for n in names if names.count(n) > 1})
+        raise ChannelError(f"{where}: channel names repeat ({', '.join(dup)}); FCS 3.1 needs "
+                           "unique $PnN names")
+    labels = [""] * n_par if channel_labels is None else ["" if s is None else str(s)
+                                                          for s in channel_labels]
+    if len(labels) != n_par:
+        raise ChannelError(f"{where}: {len(labels)} channel labels for {n_par} data columns")
+    if channel_ranges is None:
+        top = values.max(axis=0).astype(np.float64) if n_events else np.ones(n_par)
+        ranges = [float(max(1.0, math.ceil(t))) for t in top]
+    else:
+        ranges = [float(r) for r in np.asarray(channel_ranges, dtype=np.float64).ravel()]
+        if len(ranges) != n_par:
+            raise ChannelError(f"{where}: {len(ranges)} channel ranges for {n_par} data columns")
+        if not all(math.isfinite(r) and r > 0 for r in ranges):
+            raise ChannelError(f"{where}: channel ranges must be positive finite numbers")
+
+    pairs = [("$BYTEORD", "1,2,3,4"), ("$DATATYPE", "F"), ("$MODE", "L"),
+             ("$NEXTDATA", "0"), ("$PAR", str(n_par)), ("$TOT", str(n_events))]
+    for j in range(n_par):
+        n = j + 1
+        pairs += [(f"$P{n}N", names[j]), (f"$P{n}B", "32"), (f"$P{n}E", "0,0"),
+                  (f"$P{n}R", _format_number(ranges[j]))]
+        if labels[j].strip():
+            pairs.append((f"$P{n}S", labels[j]))
+    own = {k for k, _ in pairs}
+    for key, value in (keywords or {}).items():
+        key = str(key).strip()
+        value = "" if value is None else str(value)
+        if not key or not value:
+            continue
+        upper = key.upper() if key.startswith("$") else key
+        if upper in _STRUCTURAL_KEYS or upper in own or _PARAM_KEY.match(upper):
+            continue
+        pairs.append((upper, value))
+
+    blob = _assemble(pairs, values.tobytes(order="C"))
+    try:
+        with atomic_write(path, "wb", overwrite=overwrite) as handle:
+            handle.write(blob)
+    except OSError as exc:
+        raise ExportError(f"{path}: writing failed ({exc.strerror or exc}); nothing was "
+                          "written") from exc
+    return path
