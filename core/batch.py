@@ -1,0 +1,590 @@
+"""One recipe over a folder of FCS files: ``boscage batch``.
+
+Command line (the ``boscage`` launcher delegates ``batch`` here without Qt)::
+
+    boscage batch INPUT_DIR --out OUT_DIR [--recipe R.json] [--control FILE]
+                  [--workers N] [--scheduler ADDRESS] [--force]
+
+Every ``*.fcs`` file directly in INPUT_DIR (sorted by name, case-insensitive
+extension) goes through the same recipe -- the given one, or the default recipe
+of the first readable file (:func:`core.recipe.default_recipe`).  For each file
+:func:`core.analysis.analyse` fits the density, flags rare events and evaluates
+the recipe's regions; then, in ``OUT_DIR/<file stem>/``:
+
+* ``<stem> rare.fcs`` -- the rare events, and ``<stem> region <name>.fcs`` per
+  region: the ORIGINAL raw values plus added parameters ``log density``,
+  ``rarity percentile``, ``cleaning flag`` (0 kept, 1 saturated, 2 non-finite;
+  removed events carry log density 0 and rarity -1 since FCS float data should
+  hold no NaN), and with a control ``contrast score``/``enriched``
+  (:func:`core.export.export_events_fcs`, with provenance keywords);
+* ``done.json`` -- the file's summary row, the recipe digest and the input
+  file's size and modification time: a re-run skips files whose marker
+  matches (unless ``--force``); changed inputs or recipes are redone.
+
+``OUT_DIR`` also gets ``summary.csv`` (one row per input file: file, events,
+events_kept, rare_events, rare_percent, ``region:<name>`` counts, enriched
+(with a control), heldout_loglik, seconds, status ``ok``/``error``/``cancelled``,
+message), ``recipe.json`` and a ``README.txt`` with the research-use caution.
+
+A broken file gets status ``error`` and the reason; the others carry on.
+Exit code: 0 when every file succeeded, 1 when any failed, 2 for bad
+arguments, 130 when stopped with Ctrl-C (finished files are kept; the summary
+lists the rest as ``cancelled``).
+
+Parallelism: ``--workers N`` worker processes (``concurrent.futures``,
+"spawn" start method; default: the number of CPU cores, at most the number of
+files).  Each worker limits numba to ``cores // workers`` threads (at least 1)
+so processes x threads do not oversubscribe the machine.  ``--workers 1``
+runs in this process.  ``--scheduler ADDRESS`` runs the same task function on
+an existing Dask distributed cluster (``pip install "boscage[cluster]"``); the
+workers must see the same file paths, since files travel as paths, not arrays.
+"""
+
+from __future__ import annotations
+
+import argparse
+import csv
+import glob
+import io
+import json
+import os
+import sys
+import time
+from dataclasses import dataclass, field
+from typing import Any, Callable, Sequence
+
+from . import RESEARCH_USE_NOTE, SOFTWARE_NAME, __version__
+from .atomic import atomic_write
+from .errors import BoscageError, RecipeError
+from .progress import keep_going
+
+SUMMARY_NAME = "summary.csv"
+DONE_NAME = "done.json"
+BASE_COLUMNS = ["file", "events", "events_kept", "rare_events", "rare_percent"]
+TAIL_COLUMNS = ["heldout_loglik", "seconds", "status", "message"]
+
+
+# ---------------------------------------------------------------------------
+# the task function (top level: runs in spawned processes and on Dask workers)
+# ---------------------------------------------------------------------------
+
+def _safe_name(text: str) -> str:
+    keep = "".join(c if (c.isalnum() or c in " -_.+") else "_" for c in str(text)).strip(" .")
+    return keep or "region"
+
+
+def file_out_dir(out_dir: str, path: str) -> str:
+    """The output folder of one input file: ``OUT_DIR/<file stem>``."""
+    return os.path.join(out_dir, _safe_name(os.path.splitext(os.path.basename(path))[0]))
+
+
+def _source_stamp(path: str) -> dict:
+    st = os.stat(path)
+    return {"size": int(st.st_size), "mtime_ns": int(st.st_mtime_ns)}
+
+
+def _export_columns(an) -> dict:
+    import numpy as np
+
+    kept = an.reason == ""
+    flag = np.where(kept, 0.0, np.where(an.reason == "saturated", 1.0, 2.0))
+    cols = {"log density": np.where(kept, an.log_density, 0.0),
+            "rarity percentile": np.where(kept, an.rarity, -1.0),
+            "cleaning flag": flag}
+    if an.contrast_score is not None:
+        cols["contrast score"] = np.where(np.isfinite(an.contrast_score), an.contrast_score, 0.0)
+        cols["enriched"] = an.enriched.astype(float)
+    return cols
+
+
+def process_file(task: dict) -> dict:
+    """Analyse and export one file; never raises for problems with the file.
+
+    ``task``: ``path``, ``out_dir`` (the batch folder), ``recipe`` (dict),
+    ``digest``, optional ``control`` (path) and ``numba_threads``.  Returns the
+    summary row (dict); problems give ``status`` "error" with the reason.
+    """
+    t0 = time.perf_counter()
+    path = task["path"]
+    row: dict[str, Any] = {"file": os.path.basename(path), "status": "error", "message": ""}
+    try:
+        threads = task.get("numba_threads")
+        if threads:
+            _limit_numba_threads(int(threads))
+        from .analysis import analyse
+        from .export import export_events_fcs
+        from .fcs import read_fcs
+        from .recipe import Recipe
+
+        recipe = Recipe.from_dict(task["recipe"])
+        ef = read_fcs(path)
+        an = analyse(ef, recipe, control=task.get("control"))
+        folder = file_out_dir(task["out_dir"], path)
+        os.makedirs(folder, exist_ok=True)
+        stem = os.path.basename(folder)
+        extra = _export_columns(an)
+        export_events_fcs(os.path.join(folder, f"{stem} rare.fcs"), ef, an.rare, extra, task["digest"],
+                          overwrite=True)
+        for name, mask in an.region_masks.items():
+            export_events_fcs(os.path.join(folder, f"{stem} region {_safe_name(name)}.fcs"), ef, mask, extra,
+                              task["digest"], overwrite=True)
+        row.update({"events": an.n_events, "events_kept": an.n_kept, "rare_events": an.n_rare,
+                    "rare_percent": round(100.0 * an.n_rare / an.n_kept, 4) if an.n_kept else 0.0,
+                    "heldout_loglik": round(an.heldout_loglik, 6)})
+        for name, mask in an.region_masks.items():
+            row[f"region:{name}"] = int(mask.sum())
+        if an.contrast is not None:
+            row["enriched"] = an.contrast.count
+        row["status"] = "ok"
+        row["seconds"] = round(time.perf_counter() - t0, 3)
+        with atomic_write(os.path.join(folder, DONE_NAME), "w", overwrite=True, encoding="utf-8") as fh:
+            json.dump({"row": row, "recipe_digest": task["digest"], "control": task.get("control"),
+                       "source": _source_stamp(path)}, fh, indent=1)
+    except KeyboardInterrupt:
+        raise
+    except BoscageError as exc:
+        row["message"] = str(exc)
+    except MemoryError:
+        row["message"] = f"{row['file']}: not enough memory to analyse this file"
+    except Exception as exc:  # an unexpected failure must not stop the batch
+        row["message"] = f"{row['file']}: unexpected {type(exc).__name__}: {exc}"
+    row.setdefault("seconds", round(time.perf_counter() - t0, 3))
+    return row
+
+
+def _limit_numba_threads(threads: int) -> None:
+    try:
+        import numba
+
+        numba.set_num_threads(max(1, min(int(threads), numba.config.NUMBA_NUM_THREADS)))
+    except Exception:  # numba missing or threading layer refuses: leave the default
+        pass
+
+
+def _init_worker(threads: int) -> None:
+    """Worker start-up: ignore Ctrl-C (the parent stops the batch) and limit numba threads."""
+    import signal
+
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    os.environ["NUMBA_NUM_THREADS"] = str(threads)
+    for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+        os.environ.setdefault(var, str(threads))
+    _limit_numba_threads(threads)
+
+
+# ---------------------------------------------------------------------------
+# the batch
+# ---------------------------------------------------------------------------
+
+@dataclass
+class BatchResult:
+    """Outcome of :func:`run_batch`: one summary row per input file."""
+
+    rows: list
+    out_dir: str
+    summary_path: str
+    recipe: Any
+    n_skipped: int = 0
+    interrupted: bool = False
+    seconds: float = 0.0
+    info: dict = field(default_factory=dict)
+
+    @property
+    def n_ok(self) -> int:
+        return sum(r.get("status") == "ok" for r in self.rows)
+
+    @property
+    def n_failed(self) -> int:
+        return sum(r.get("status") == "error" for r in self.rows)
+
+    @property
+    def exit_code(self) -> int:
+        if self.interrupted:
+            return 130
+        return 0 if self.n_failed == 0 and self.n_ok == len(self.rows) else 1
+
+
+def list_fcs_files(input_dir: str) -> list[str]:
+    """``*.fcs`` files directly in ``input_dir`` (any case of the extension), sorted by name."""
+    files = [p for p in glob.glob(os.path.join(glob.escape(os.fspath(input_dir)), "*"))
+             if os.path.isfile(p) and p.lower().endswith(".fcs")]
+    return sorted(files, key=lambda p: os.path.basename(p).lower())
+
+
+class _NoReadableFile(Exception):
+    def __init__(self, problems: dict):
+        self.problems = problems
+
+
+def _resolve_recipe(recipe: Any, files: Sequence[str]):
+    from .recipe import Recipe, default_recipe, load_recipe
+
+    if recipe is None:
+        from .fcs import read_fcs
+
+        problems = {}
+        for p in files:
+            try:
+                return default_recipe(read_fcs(p)), f"default recipe of {os.path.basename(p)}"
+            except BoscageError as exc:
+                problems[p] = str(exc)
+        raise _NoReadableFile(problems)
+    if isinstance(recipe, (str, os.PathLike)):
+        return load_recipe(recipe), os.fspath(recipe)
+    if isinstance(recipe, dict):
+        return Recipe.from_dict(recipe), "given"
+    return recipe, "given"
+
+
+def _finished_row(out_dir: str, path: str, digest: str, control: str | None) -> dict | None:
+    marker = os.path.join(file_out_dir(out_dir, path), DONE_NAME)
+    try:
+        with open(marker, encoding="utf-8") as fh:
+            done = json.load(fh)
+        if (done.get("recipe_digest") == digest and done.get("control") == control
+                and done.get("source") == _source_stamp(path) and done["row"].get("status") == "ok"):
+            return dict(done["row"])
+    except (OSError, ValueError, KeyError, TypeError, AttributeError):
+        pass
+    return None
+
+
+def _cleanup_partial(out_dir: str) -> None:
+    """Remove temporary files of writes that were killed mid-way (atomic_write's prefix)."""
+    for p in glob.glob(os.path.join(glob.escape(out_dir), "**", ".boscage-*.part"), recursive=True):
+        try:
+            os.unlink(p)
+        except OSError:
+            pass
+
+
+def _summary_columns(rows: list, recipe: Any, control: bool) -> list[str]:
+    regions = [f"region:{r.get('name')}" for r in (getattr(recipe, "regions", None) or [])]
+    extra = [k for row in rows for k in row if k.startswith("region:") and k not in regions]
+    cols = BASE_COLUMNS + regions + sorted(set(extra))
+    if control:
+        cols.append("enriched")
+    return cols + TAIL_COLUMNS
+
+
+def write_summary(path: str, rows: list, columns: list[str]) -> None:
+    """``summary.csv`` (atomic, replaces the previous one)."""
+    buf = io.StringIO()
+    w = csv.DictWriter(buf, fieldnames=columns, extrasaction="ignore", lineterminator="\n")
+    w.writeheader()
+    for row in rows:
+        w.writerow({c: row.get(c, "") for c in columns})
+    with atomic_write(path, "w", overwrite=True, encoding="utf-8") as fh:
+        fh.write(buf.getvalue())
+
+
+def _write_readme(out_dir: str, recipe: Any, digest: str, recipe_source: str, control: str | None) -> None:
+    text = f"""{SOFTWARE_NAME} {__version__} batch output
+
+{RESEARCH_USE_NOTE}
+
+Recipe: recipe.json (digest {digest}; source: {recipe_source})
+Control file: {control or "none"}
+Written: {time.strftime("%Y-%m-%d %H:%M:%S %Z")}
+
+summary.csv     one row per input file: events, events kept after cleaning,
+                rare events and their percentage of kept events, events in
+                each region, enriched events (with a control), held-out
+                log-likelihood of the density fit (nats per event), seconds,
+                status (ok / error / cancelled) and the reason of an error.
+<stem>/         per input file: '<stem> rare.fcs' (the rare events) and
+                '<stem> region <name>.fcs' per region, with the ORIGINAL raw
+                values plus the parameters 'log density', 'rarity percentile'
+                and 'cleaning flag' (0 kept, 1 saturated, 2 non-finite;
+                removed events have log density 0 and rarity -1), and
+                'done.json' (lets a re-run skip the file).
+
+Recipe used:
+{json.dumps(recipe.to_dict(), indent=2, sort_keys=True)}
+"""
+    with atomic_write(os.path.join(out_dir, "README.txt"), "w", overwrite=True, encoding="utf-8") as fh:
+        fh.write(text)
+
+
+def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | None = None,
+              workers: int | None = None, scheduler: str | None = None, force: bool = False,
+              progress: Callable | None = None, numba_threads: int | None = None) -> BatchResult:
+    """Run one recipe over every ``*.fcs`` in ``input_dir``; see the module docstring.
+
+    ``recipe``: a Recipe, a recipe dict, a path to a recipe JSON, or None
+    (default recipe of the first readable file).  ``progress(done, total,
+    row)`` is called after each file (``row`` the file's summary row);
+    returning False stops the batch like Ctrl-C.  ``numba_threads``: numba
+    threads per worker process (default cores // workers, at least 1).
+    """
+    from .recipe import recipe_digest, save_recipe
+
+    t_start = time.perf_counter()
+    input_dir = os.fspath(input_dir)
+    out_dir = os.fspath(out_dir)
+    if not os.path.isdir(input_dir):
+        raise RecipeError(f"{input_dir}: no such folder of FCS files")
+    files = list_fcs_files(input_dir)
+    if control is not None:
+        control = os.path.abspath(os.fspath(control))
+        if not os.path.isfile(control):
+            raise RecipeError(f"{control}: the control file does not exist")
+        files = [p for p in files if os.path.abspath(p) != control]
+    if os.path.abspath(out_dir) == os.path.abspath(input_dir):
+        raise RecipeError(f"{out_dir}: choose an output folder other than the input folder")
+    if not files:
+        raise RecipeError(f"{input_dir}: the folder holds no *.fcs files")
+    os.makedirs(out_dir, exist_ok=True)
+    try:
+        recipe_obj, recipe_source = _resolve_recipe(recipe, files)
+    except _NoReadableFile as exc:  # nothing to build a default recipe from: every file failed
+        rows = [{"file": os.path.basename(p), "status": "error",
+                 "message": exc.problems.get(p, "not read")} for p in files]
+        summary_path = os.path.join(out_dir, SUMMARY_NAME)
+        write_summary(summary_path, rows, BASE_COLUMNS + TAIL_COLUMNS)
+        return BatchResult(rows=rows, out_dir=out_dir, summary_path=summary_path, recipe=None,
+                           seconds=time.perf_counter() - t_start)
+    digest = recipe_digest(recipe_obj)
+    save_recipe(recipe_obj, os.path.join(out_dir, "recipe.json"), overwrite=True)
+    _write_readme(out_dir, recipe_obj, digest, recipe_source, control)
+
+    rows: dict[str, dict] = {}
+    todo: list[str] = []
+    for p in files:
+        done = None if force else _finished_row(out_dir, p, digest, control)
+        if done is not None:
+            rows[p] = done
+        else:
+            todo.append(p)
+    n_skipped = len(files) - len(todo)
+    total = len(files)
+    cores = os.cpu_count() or 1
+    if workers is None:
+        workers = max(1, min(cores, len(todo)))
+    workers = max(1, int(workers))
+    threads = numba_threads or max(1, cores // workers)
+    tasks = [{"path": os.path.abspath(p), "out_dir": os.path.abspath(out_dir), "recipe": recipe_obj.to_dict(),
+              "digest": digest, "control": control,
+              "numba_threads": threads if (workers > 1 or numba_threads) and not scheduler else None}
+             for p in todo]
+    by_path = {t["path"]: p for t, p in zip(tasks, todo)}
+
+    stop = False
+    interrupted = False
+
+    def finished(row: dict, path: str) -> None:
+        nonlocal stop
+        rows[path] = row
+        if not keep_going(progress, len(rows), total, row):
+            stop = True
+
+    for p in files:  # report the skipped ones first
+        if p in rows:
+            keep_going(progress, len([q for q in files[:files.index(p) + 1] if q in rows]), total, rows[p])
+
+    try:
+        if not tasks:
+            pass
+        elif scheduler:
+            _run_dask(tasks, scheduler, lambda row, t: finished(row, by_path[t["path"]]), lambda: stop)
+        elif workers == 1:
+            for t in tasks:
+                if stop:
+                    break
+                finished(process_file(t), by_path[t["path"]])
+        else:
+            _run_processes(tasks, workers, threads, lambda row, t: finished(row, by_path[t["path"]]),
+                           lambda: stop)
+    except KeyboardInterrupt:
+        interrupted = True
+    if stop:
+        interrupted = True
+    if interrupted:
+        _cleanup_partial(out_dir)
+    ordered = []
+    for p in files:
+        ordered.append(rows.get(p) or {"file": os.path.basename(p), "status": "cancelled",
+                                       "message": "stopped before this file finished"})
+    summary_path = os.path.join(out_dir, SUMMARY_NAME)
+    write_summary(summary_path, ordered, _summary_columns(ordered, recipe_obj, control is not None))
+    return BatchResult(rows=ordered, out_dir=out_dir, summary_path=summary_path, recipe=recipe_obj,
+                       n_skipped=n_skipped, interrupted=interrupted, seconds=time.perf_counter() - t_start,
+                       info={"workers": workers, "numba_threads": threads, "scheduler": scheduler})
+
+
+def _run_processes(tasks: list, workers: int, threads: int, on_row: Callable, should_stop: Callable) -> None:
+    import multiprocessing
+    from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+    from concurrent.futures.process import BrokenProcessPool
+
+    ctx = multiprocessing.get_context("spawn")
+    pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init_worker,
+                               initargs=(threads,))
+    futures = {pool.submit(process_file, t): t for t in tasks}
+    pending = set(futures)
+    try:
+        while pending and not should_stop():
+            done, pending = wait(pending, return_when=FIRST_COMPLETED)
+            for fut in done:
+                t = futures[fut]
+                try:
+                    row = fut.result()
+                except BrokenProcessPool:
+                    row = {"file": os.path.basename(t["path"]), "status": "error", "seconds": "",
+                           "message": f"{os.path.basename(t['path'])}: the worker process analysing this "
+                                      "file stopped unexpectedly (out of memory?)"}
+                except Exception as exc:
+                    row = {"file": os.path.basename(t["path"]), "status": "error", "seconds": "",
+                           "message": f"{os.path.basename(t['path'])}: {type(exc).__name__}: {exc}"}
+                on_row(row, t)
+    except KeyboardInterrupt:
+        _stop_pool(pool)
+        raise
+    if pending:
+        _stop_pool(pool)
+    else:
+        pool.shutdown(wait=True)
+
+
+def _stop_pool(pool) -> None:
+    """Cancel queued files and end the worker processes now (their writes are atomic)."""
+    procs = list(getattr(pool, "_processes", {}).values())
+    pool.shutdown(wait=False, cancel_futures=True)
+    for proc in procs:
+        try:
+            proc.terminate()
+        except Exception:
+            pass
+    for proc in procs:
+        try:
+            proc.join(timeout=5)
+        except Exception:
+            pass
+
+
+def _run_dask(tasks: list, scheduler: str, on_row: Callable, should_stop: Callable) -> None:
+    try:
+        from distributed import Client, as_completed
+    except ImportError as exc:
+        raise RecipeError("--scheduler needs Dask distributed, which is not installed; install it with "
+                          "pip install \"boscage[cluster]\"") from exc
+    try:
+        client = Client(scheduler, timeout="20s")
+    except (OSError, TimeoutError) as exc:
+        raise RecipeError(f"cannot reach the Dask scheduler at {scheduler} ({exc})") from exc
+    try:
+        futures = client.map(process_file, tasks, pure=False)
+        task_of = {f.key: t for f, t in zip(futures, tasks)}
+        try:
+            for fut in as_completed(futures):
+                t = task_of[fut.key]
+                try:
+                    row = fut.result()
+                except Exception as exc:
+                    row = {"file": os.path.basename(t["path"]), "status": "error", "seconds": "",
+                           "message": f"{os.path.basename(t['path'])}: the cluster failed on this file "
+                                      f"({type(exc).__name__}: {exc})"}
+                on_row(row, t)
+                if should_stop():
+                    break
+        finally:
+            client.cancel(futures)
+    finally:
+        client.close()
+
+
+# ---------------------------------------------------------------------------
+# terminal progress and the command line
+# ---------------------------------------------------------------------------
+
+def _fmt_seconds(s: float) -> str:
+    s = int(round(s))
+    h, rem = divmod(s, 3600)
+    m, sec = divmod(rem, 60)
+    return f"{h}:{m:02d}:{sec:02d}" if h else f"{m}:{sec:02d}"
+
+
+class TerminalProgress:
+    """A plain-text progress bar with ETA on a stream (stderr); one line per file when not a terminal."""
+
+    def __init__(self, stream=None, width: int = 30):
+        self.stream = stream or sys.stderr
+        self.width = width
+        self.t0 = time.perf_counter()
+        self.failed = 0
+        self.first_step: int | None = None
+        self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
+
+    def __call__(self, step: int, total: int | None, row: Any = None) -> bool:
+        if isinstance(row, dict) and row.get("status") == "error":
+            self.failed += 1
+        total = total or 0
+        elapsed = time.perf_counter() - self.t0
+        if self.first_step is None:
+            self.first_step = step - 1 if row is not None else step
+        new = step - self.first_step
+        eta = "--:--"
+        if total and new > 0 and step < total:
+            eta = _fmt_seconds(elapsed / new * (total - step))
+        elif total and step >= total:
+            eta = "0:00"
+        filled = int(self.width * step / total) if total else 0
+        bar = "#" * filled + "-" * (self.width - filled)
+        name = row.get("file", "") if isinstance(row, dict) else ""
+        status = row.get("status", "") if isinstance(row, dict) else ""
+        text = (f"[{bar}] {step}/{total} files, {self.failed} failed, elapsed {_fmt_seconds(elapsed)}, "
+                f"ETA {eta}  {name} {status}")
+        if self.tty:
+            self.stream.write("\r" + text[:160].ljust(120))
+            if total and step >= total:
+                self.stream.write("\n")
+        else:
+            self.stream.write(text + "\n")
+        self.stream.flush()
+        return True
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="boscage batch",
+        description=f"Run one recipe over every FCS file in a folder. {RESEARCH_USE_NOTE}")
+    p.add_argument("input_dir", metavar="INPUT_DIR", help="folder holding the *.fcs files")
+    p.add_argument("--out", required=True, metavar="OUT_DIR", help="output folder (created if missing)")
+    p.add_argument("--recipe", metavar="R.json", help="recipe file (default: the default recipe of the first file)")
+    p.add_argument("--control", metavar="FILE", help="control FCS file to contrast every file with")
+    p.add_argument("--workers", type=int, metavar="N", help="worker processes (default: CPU cores)")
+    p.add_argument("--scheduler", metavar="ADDRESS", help="address of a Dask distributed scheduler")
+    p.add_argument("--force", action="store_true", help="redo files already finished in an earlier run")
+    return p
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """``boscage batch ...``; returns the exit code (0 ok, 1 a file failed, 2 bad arguments, 130 Ctrl-C)."""
+    parser = build_parser()
+    try:
+        args = parser.parse_args(list(sys.argv[1:] if argv is None else argv))
+    except SystemExit as exc:  # argparse printed the problem already
+        return 0 if exc.code == 0 else 2
+    if args.workers is not None and args.workers < 1:
+        print("boscage batch: --workers must be at least 1", file=sys.stderr)
+        return 2
+    bar = TerminalProgress(sys.stderr)
+    try:
+        result = run_batch(args.input_dir, args.out, recipe=args.recipe, control=args.control,
+                           workers=args.workers, scheduler=args.scheduler, force=args.force, progress=bar)
+    except KeyboardInterrupt:
+        print("\nboscage batch: stopped; finished files are kept", file=sys.stderr)
+        return 130
+    except BoscageError as exc:
+        print(f"boscage batch: {exc}", file=sys.stderr)
+        return 2
+    print(f"\n{result.n_ok} of {len(result.rows)} files ok, {result.n_failed} failed"
+          + (f", {result.n_skipped} finished earlier and skipped" if result.n_skipped else "")
+          + (" (stopped by the user)" if result.interrupted else "")
+          + f"; summary: {result.summary_path}", file=sys.stderr)
+    print(RESEARCH_USE_NOTE, file=sys.stderr)
+    return result.exit_code
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

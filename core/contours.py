@@ -1,0 +1,155 @@
+"""Pairwise density grids and highest-density-region (HDR) contour levels.
+
+For a pair of channels (x, y) the plots show the density of the pair on a grid
+and the contours of the highest-density regions holding 50, 90 and 99 % of the
+probability mass: the region {f >= t_p} with P(f(X, Y) >= t_p) = p.
+
+Where the pairwise density comes from (design decision)
+-------------------------------------------------------
+We fit a separate two-channel :class:`~core.density.AdditiveTreeDensity` to the
+pair's values (the default), rather than marginalising the full d-channel model.
+
+* A 2-D additive tree density is an exact, normalised density of the pair: the
+  grid is its log density evaluated at the cell centres, and the HDR levels
+  are exact for it up to Monte Carlo error, taken as quantiles of its log density
+  over its own draws (``model.sample``; see :mod:`core.rare`).
+* The full model has no closed-form margin: marginalising it needs its sampler
+  (draw many events, keep the two columns) followed by a second density
+  estimate of the pair from those draws -- i.e. the same 2-D fit, but on
+  simulated events that carry the full model's errors, and after a costly
+  sampling step.  Fitting the pair directly is cheaper and at least as
+  accurate, so that is what :func:`pair_density` does; :func:`pair_density_from_model`
+  offers the marginalisation for comparison.  Measured numbers are in
+  ``tests/benchmarks/contrast_benchmark.py --contours``'s output and quoted in
+  the report of the commit that added this module.
+
+Units and shapes
+----------------
+``values_xy``: (n_events, 2) float, transformed channel values (NaN rows are
+ignored).  The grid is ``log_density[ix, iy]`` (natural log, per unit of x per
+unit of y) at ``(x_centres[ix], y_centres[iy])`` -- x first, the order
+pyqtgraph's ImageItem uses by default.  ``levels`` maps each mass (0.5, 0.9,
+0.99) to a *log*-density level in the same units as the grid;
+``density_levels`` gives them as densities.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Mapping, Sequence
+
+import numpy as np
+
+from .errors import EventDataError
+from .rare import mass_levels
+
+DEFAULT_LEVELS = (0.5, 0.9, 0.99)
+DEFAULT_LEVEL_SAMPLES = 100_000
+#: Engine settings for a pair (two channels need few, small trees).
+PAIR_ENGINE: dict = {}
+
+
+@dataclass
+class PairDensity:
+    """Density of one pair of channels on a grid plus HDR levels (see module docstring)."""
+
+    x_edges: np.ndarray      # (grid_size + 1,)
+    y_edges: np.ndarray      # (grid_size + 1,)
+    x_centres: np.ndarray    # (grid_size,)
+    y_centres: np.ndarray    # (grid_size,)
+    log_density: np.ndarray  # (grid_size, grid_size), [ix, iy]
+    levels: dict             # mass -> log-density level
+    model: Any = None
+    n_events: int = 0
+    info: dict = field(default_factory=dict)
+
+    @property
+    def density_levels(self) -> dict:
+        """``levels`` as densities (exp of the log levels)."""
+        return {m: float(np.exp(v)) for m, v in self.levels.items()}
+
+    def share_inside(self, values_xy: np.ndarray) -> dict:
+        """Share of the given events (n x 2) inside each HDR contour, by mass.
+
+        Uses the model's exact log density at the events (not the grid).
+        """
+        xy = _finite_rows(values_xy)
+        ld = np.asarray(self.model.score_samples(xy), dtype=np.float64)
+        return {m: float(np.mean(ld >= v)) for m, v in self.levels.items()}
+
+
+def _finite_rows(values_xy) -> np.ndarray:
+    xy = np.asarray(values_xy, dtype=np.float64)
+    if xy.ndim != 2 or xy.shape[1] != 2:
+        raise EventDataError(f"a density pair needs values of shape (events, 2); got {xy.shape}")
+    return xy[np.all(np.isfinite(xy), axis=1)]
+
+
+def grid_edges(values: np.ndarray, grid_size: int, lo_q: float = 0.001, hi_q: float = 0.999,
+               pad: float = 0.05) -> np.ndarray:
+    """Evenly spaced edges covering the ``lo_q``..``hi_q`` quantiles of ``values`` plus ``pad`` each side."""
+    lo, hi = np.quantile(values, [lo_q, hi_q])
+    if not hi > lo:
+        lo, hi = float(np.min(values)), float(np.max(values))
+    if not hi > lo:
+        lo, hi = lo - 0.5, hi + 0.5
+    span = hi - lo
+    return np.linspace(lo - pad * span, hi + pad * span, int(grid_size) + 1)
+
+
+def fit_pair_model(xy: np.ndarray, engine: Mapping | None = None, random_state: int = 0,
+                   progress=None):
+    """Fit a two-channel AdditiveTreeDensity to ``xy`` (n x 2, finite)."""
+    from .density import AdditiveTreeDensity
+
+    kwargs = dict(PAIR_ENGINE)
+    kwargs.update(engine or {})
+    kwargs.setdefault("random_state", random_state)
+    model = AdditiveTreeDensity(**kwargs)
+    model.fit(xy, progress=progress)
+    return model
+
+
+def pair_density(values_xy: np.ndarray, model: Any = None, grid_size: int = 128,
+                 levels: Sequence[float] = DEFAULT_LEVELS, random_state: int = 0,
+                 engine: Mapping | None = None, n_level_samples: int = DEFAULT_LEVEL_SAMPLES,
+                 x_range: tuple | None = None, y_range: tuple | None = None) -> PairDensity:
+    """Density grid and HDR levels for one pair of channels.
+
+    ``values_xy``: (n_events, 2) transformed values; rows with NaN/inf are ignored.
+    ``model``: a fitted 2-channel density (``score_samples``/``sample``); when
+    None a 2-D AdditiveTreeDensity is fitted to the pair (``engine`` keyword
+    arguments, seeded by ``random_state``).  ``x_range``/``y_range``: (lo, hi)
+    of the grid; default from the data's 0.1-99.9 % quantiles plus 5 % margin.
+    Levels come from ``n_level_samples`` draws of the model (see :mod:`core.rare`).
+    """
+    xy = _finite_rows(values_xy)
+    if xy.shape[0] < 2:
+        raise EventDataError(f"a density pair needs events with finite values; got {xy.shape[0]}")
+    if model is None:
+        model = fit_pair_model(xy, engine=engine, random_state=random_state)
+    grid_size = int(grid_size)
+    x_edges = np.linspace(*x_range, grid_size + 1) if x_range else grid_edges(xy[:, 0], grid_size)
+    y_edges = np.linspace(*y_range, grid_size + 1) if y_range else grid_edges(xy[:, 1], grid_size)
+    xc = 0.5 * (x_edges[:-1] + x_edges[1:])
+    yc = 0.5 * (y_edges[:-1] + y_edges[1:])
+    gx, gy = np.meshgrid(xc, yc, indexing="ij")
+    pts = np.column_stack([gx.ravel(), gy.ravel()])
+    grid = np.asarray(model.score_samples(pts), dtype=np.float64).reshape(grid_size, grid_size)
+    masses = [float(m) for m in levels]
+    lv = mass_levels(model, masses, n_samples=n_level_samples, random_state=random_state)
+    return PairDensity(x_edges=x_edges, y_edges=y_edges, x_centres=xc, y_centres=yc,
+                       log_density=grid, levels={m: float(v) for m, v in zip(masses, lv)},
+                       model=model, n_events=int(xy.shape[0]))
+
+
+def pair_density_from_model(full_model: Any, i: int, j: int, n_samples: int = 50_000,
+                            random_state: int = 0, **kwargs) -> PairDensity:
+    """Marginalise a fitted d-channel model onto channels (i, j) by its sampler.
+
+    Draws ``n_samples`` events from ``full_model``, keeps columns i and j and
+    fits a 2-D density to them (the margin has no closed form).  Kept for
+    comparison with :func:`pair_density`; see the module docstring.
+    """
+    draws = np.asarray(full_model.sample(int(n_samples), random_state=random_state), dtype=np.float64)
+    return pair_density(draws[:, [i, j]], random_state=random_state, **kwargs)
