@@ -606,7 +606,8 @@ def write_fcs(path: str | os.PathLike, data, channel_names: Sequence[str],
     n_events, n_par = arr.shape
     if n_par == 0:
         raise EventDataError(f"{where}: there are no channels to write")
-    values = arr.astype("<f4")
+    with np.errstate(over="ignore", invalid="ignore"):
+        values = arr.astype("<f4")  # beyond float32 range becomes inf, refused below
     finite = np.isfinite(values)
     if not finite.all():
         bad_cols = [str(channel_names[j]) if j < len(channel_names) else str(j)
