@@ -57,6 +57,8 @@ def _get(recipe: Any, key: str, default: Any = None) -> Any:
 
 
 def _engine_kwargs(recipe: Any) -> dict:
+    if hasattr(recipe, "engine_arguments"):
+        return recipe.engine_arguments()
     engine = dict(_get(recipe, "engine", None) or {})
     engine.setdefault("random_state", 0)
     return engine
@@ -78,7 +80,7 @@ def _spillover(event_file: Any, recipe: Any):
                               "or give a CSV matrix")
         return S
     if source == "csv":
-        path = comp.get("csv_path")
+        path = recipe.csv_path_resolved() if hasattr(recipe, "csv_path_resolved") else comp.get("csv_path")
         if not path:
             raise RecipeError("the recipe's compensation source is 'csv' but no csv_path is given")
         return compensation.read_spillover_csv(path)
@@ -292,7 +294,7 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
     region_dicts = _get(recipe, "regions", None) or []
     masks: dict = {}
     if region_dicts:
-        regions = RegionSet.from_dict(region_dicts)
+        regions = recipe.region_set() if hasattr(recipe, "region_set") else RegionSet.from_dict(region_dicts)
         by_channel = {name: values[:, j] for j, name in enumerate(event_file.channel_names)}
         masks = regions.evaluate(by_channel, rarity, n_events=n)
     timing["regions"] = time.perf_counter() - t3

@@ -116,7 +116,7 @@ def process_file(task: dict) -> dict:
         from .fcs import read_fcs
         from .recipe import Recipe
 
-        recipe = Recipe.from_dict(task["recipe"])
+        recipe = Recipe.from_dict(task["recipe"], source=task.get("recipe_source"))
         ef = read_fcs(path)
         an = analyse(ef, recipe, control=task.get("control"))
         folder = file_out_dir(task["out_dir"], path)
@@ -364,7 +364,7 @@ def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | N
     workers = max(1, int(workers))
     threads = numba_threads or max(1, cores // workers)
     tasks = [{"path": os.path.abspath(p), "out_dir": os.path.abspath(out_dir), "recipe": recipe_obj.to_dict(),
-              "digest": digest, "control": control,
+              "recipe_source": getattr(recipe_obj, "source", None), "digest": digest, "control": control,
               "numba_threads": threads if (workers > 1 or numba_threads) and not scheduler else None}
              for p in todo]
     by_path = {t["path"]: p for t, p in zip(tasks, todo)}
