@@ -255,6 +255,14 @@ def _float_or_none(text: str | None) -> float | None:
     return value if math.isfinite(value) else None
 
 
+def _size_text(n_bytes: int) -> str:
+    """Bytes as an analyst reads them: '12 kB', '3.4 MB', '48 GB' (decimal units)."""
+    for unit, scale in (("GB", 1e9), ("MB", 1e6), ("kB", 1e3)):
+        if n_bytes >= scale:
+            return f"{n_bytes / scale:.3g} {unit}"
+    return f"{n_bytes} bytes"
+
+
 def _check_layout(path: str, header: dict, kw: Mapping[str, str], file_size: int) -> dict:
     """Validate mode, types, byte order and the DATA segment size before any data are read."""
     mode = kw.get("$MODE", "L").strip().upper()
@@ -286,8 +294,8 @@ def _check_layout(path: str, header: dict, kw: Mapping[str, str], file_size: int
         if datatype == "I" and (b <= 0 or b % 8 or b > 64):
             raise FcsFileError(path, f"$P{n}B is {b} bits; only whole bytes (8, 16, 24, 32...) "
                                      "can be read")
-        if datatype == "I" and _float_or_none(kw.get(f"$P{n}R")) is None:
-            raise FcsFileError(path, f"$P{n}R (channel range) is missing or not a number; "
+        if datatype == "I" and (_float_or_none(kw.get(f"$P{n}R")) or 0.0) <= 0:
+            raise FcsFileError(path, f"$P{n}R (channel range) is missing or not a positive number; "
                                      "integer data cannot be decoded without it")
         bits.append(b)
     row_bytes = sum(bits) // 8
@@ -303,12 +311,11 @@ def _check_layout(path: str, header: dict, kw: Mapping[str, str], file_size: int
     if start <= 0 or end < start:
         raise FcsFileError(path, "neither the HEADER nor $BEGINDATA/$ENDDATA locate the DATA "
                                  "segment")
-    mb = needed / 1e6
     if start + needed > file_size:
         raise FcsFileError(path, f"the file is truncated or its event count is wrong: $TOT and "
-                                 f"$PAR announce {n_tot} events x {n_par} channels ({mb:.3g} MB "
-                                 f"of data from byte {start}) but the file has only "
-                                 f"{file_size} bytes")
+                                 f"$PAR announce {n_tot} events x {n_par} channels "
+                                 f"({_size_text(needed)} of data from byte {start}) but the file "
+                                 f"has only {file_size} bytes")
     held = end - start + 1
     # A DATA segment shorter than $TOT x $PAR needs, or longer by a whole event or more,
     # means $TOT/$PAR disagree with the data: refuse rather than misalign channels.
