@@ -1,0 +1,212 @@
+"""One recipe over a folder (core/batch.py): summary rows, exit codes, exports, re-runs.
+
+Exported files are read back with fcsparser (reference) and compared with the
+source file's raw values; the summary CSV is read back with pandas.
+"""
+
+import io
+import os
+
+import fcsparser
+import numpy as np
+import pandas as pd
+import pytest
+
+from core import RESEARCH_USE_NOTE
+from core.analysis import analyse
+from core.batch import DONE_NAME, TerminalProgress, file_out_dir, main, run_batch
+from core.fcs import read_fcs, write_fcs
+from core.recipe import Recipe, load_recipe
+
+CHANNELS = ["FSC-A", "SSC-A", "CD3", "CD4", "CD8", "Time"]
+MARKERS = ["CD3", "CD4", "CD8"]
+RANGE = 262144.0
+SMALL_ENGINE = {"n_trees": 30, "marginal_trees": 20, "patience": 5, "random_state": 0}
+
+
+def make_events(n, seed, names=CHANNELS):
+    """Synthetic raw events: two marker populations, a small rare one, 5 saturated events."""
+    rng = np.random.default_rng(seed)
+    fsc = rng.normal(60_000, 8_000, n)
+    ssc = rng.normal(30_000, 6_000, n)
+    pop = rng.random(n) < 0.6
+    cd3 = np.where(pop, rng.lognormal(8.0, 0.3, n), rng.lognormal(5.0, 0.5, n))
+    cd4 = np.where(pop, rng.lognormal(7.0, 0.4, n), rng.lognormal(4.0, 0.6, n))
+    cd8 = rng.lognormal(5.5, 0.5, n)
+    rare = slice(0, max(3, n // 500))
+    cd8[rare] = rng.lognormal(10.5, 0.1, cd8[rare].shape[0])
+    time_ = np.sort(rng.uniform(0, 1000, n))
+    data = np.column_stack([fsc, ssc, cd3, cd4, cd8, time_])
+    data[-5:, 2] = RANGE  # saturated in CD3
+    return np.round(data).astype(np.float64)
+
+
+def write_events(path, n=3000, seed=0, names=CHANNELS):
+    write_fcs(str(path), make_events(n, seed), list(names), channel_ranges=[RANGE] * len(names))
+
+
+def small_recipe(**changes):
+    d = dict(channels=MARKERS, transforms={c: {"kind": "arcsinh", "cofactor": 150.0} for c in MARKERS},
+             engine=dict(SMALL_ENGINE),
+             regions=[{"name": "CD3 high", "kind": "rectangle", "channels": ["CD3", "CD4"],
+                       "x": [3.5, 10.0], "y": [-5.0, 10.0],
+                       "transforms": {"CD3": {"kind": "arcsinh", "cofactor": 150.0},
+                                      "CD4": {"kind": "arcsinh", "cofactor": 150.0}}}])
+    d.update(changes)
+    return Recipe(**d)
+
+
+@pytest.fixture(scope="module")
+def folder(tmp_path_factory):
+    base = tmp_path_factory.mktemp("batch")
+    inp = base / "in"
+    inp.mkdir()
+    write_events(inp / "a good.fcs", seed=1)
+    good = (inp / "a good.fcs").read_bytes()
+    (inp / "b corrupt.fcs").write_bytes(good[: len(good) // 3])        # truncated DATA
+    (inp / "c empty.fcs").write_bytes(b"")
+    write_events(inp / "d other channels.fcs", seed=2,
+                 names=["FSC-A", "SSC-A", "FITC-A", "PE-A", "APC-A", "Time"])
+    (inp / "notes.txt").write_text("not an FCS file; the batch ignores it")
+    recipe_path = base / "recipe.json"
+    from core.recipe import save_recipe
+    save_recipe(small_recipe(), str(recipe_path))
+    return base, inp, recipe_path
+
+
+@pytest.fixture(scope="module")
+def first_run(folder):
+    base, inp, recipe_path = folder
+    out = base / "out"
+    err = io.StringIO()
+    import contextlib
+    with contextlib.redirect_stderr(err):
+        code = main([str(inp), "--out", str(out), "--recipe", str(recipe_path), "--workers", "1"])
+    return out, code, err.getvalue()
+
+
+def test_summary_rows_statuses_and_exit_code(first_run):
+    out, code, err = first_run
+    assert code == 1  # one file failed -> 1
+    summary = pd.read_csv(out / "summary.csv", keep_default_na=False)
+    assert list(summary["file"]) == ["a good.fcs", "b corrupt.fcs", "c empty.fcs", "d other channels.fcs"]
+    by = summary.set_index("file")
+    assert by.loc["a good.fcs", "status"] == "ok"
+    for bad in ["b corrupt.fcs", "c empty.fcs", "d other channels.fcs"]:
+        assert by.loc[bad, "status"] == "error"
+        assert bad in by.loc[bad, "message"]
+    assert "CD3" in by.loc["d other channels.fcs", "message"]  # names the missing channel
+    for col in ["events", "events_kept", "rare_events", "rare_percent", "region:CD3 high",
+                "heldout_loglik", "seconds", "message"]:
+        assert col in summary.columns
+    good = by.loc["a good.fcs"]
+    assert int(good["events"]) == 3000
+    assert int(good["events_kept"]) == 2995  # the 5 saturated events are removed
+    assert int(good["rare_events"]) == round(0.005 * 2995)
+    assert "ETA" in err and "1 of 4 files ok" in err
+
+
+def test_output_folder_has_readme_and_recipe(first_run, folder):
+    out, _, _ = first_run
+    readme = (out / "README.txt").read_text()
+    assert RESEARCH_USE_NOTE in readme and "CD3 high" in readme
+    assert load_recipe(str(out / "recipe.json")).to_dict() == load_recipe(str(folder[2])).to_dict()
+
+
+def test_exports_hold_the_original_raw_values_of_the_selected_events(first_run, folder):
+    out, _, _ = first_run
+    _, inp, recipe_path = folder
+    ef = read_fcs(str(inp / "a good.fcs"))
+    an = analyse(ef, load_recipe(str(recipe_path)))  # same recipe and seed -> same selection
+    sub = file_out_dir(str(out), str(inp / "a good.fcs"))
+    summary = pd.read_csv(out / "summary.csv").set_index("file")
+    assert int(summary.loc["a good.fcs", "rare_events"]) == an.n_rare
+    assert int(summary.loc["a good.fcs", "region:CD3 high"]) == int(an.region_masks["CD3 high"].sum())
+    for name, mask in [("a good rare.fcs", an.rare), ("a good region CD3 high.fcs", an.region_masks["CD3 high"])]:
+        # reference: fcsparser reads our export
+        meta, df = fcsparser.parse(os.path.join(sub, name), reformat_meta=True)
+        got = df[CHANNELS].to_numpy()
+        np.testing.assert_array_equal(got, ef.data[mask].astype(np.float32))
+        np.testing.assert_allclose(df["log density"].to_numpy(),
+                                   np.where(an.reason == "", an.log_density, 0.0)[mask].astype(np.float32))
+        assert meta["BOSCAGE_SOURCE"] == "a good.fcs"
+
+
+def test_rerun_skips_finished_files_and_force_redoes_them(first_run, folder):
+    out, _, _ = first_run
+    _, inp, recipe_path = folder
+    sub = file_out_dir(str(out), str(inp / "a good.fcs"))
+    marker = os.path.join(sub, DONE_NAME)
+    stamp = os.stat(marker).st_mtime_ns
+    res = run_batch(str(inp), str(out), recipe=str(recipe_path), workers=1)
+    assert res.n_skipped == 1 and os.stat(marker).st_mtime_ns == stamp
+    assert res.exit_code == 1 and [r["status"] for r in res.rows] == ["ok", "error", "error", "error"]
+    res = run_batch(str(inp), str(out), recipe=str(recipe_path), workers=1, force=True)
+    assert res.n_skipped == 0 and os.stat(marker).st_mtime_ns != stamp
+    # a changed recipe is not "finished": the file is redone
+    res = run_batch(str(inp), str(out), recipe=small_recipe(rare={"rule": "share", "share": 0.01}), workers=1)
+    assert res.n_skipped == 0 and res.rows[0]["rare_events"] == round(0.01 * 2995)
+
+
+def test_all_good_gives_exit_0_and_bad_arguments_exit_2(tmp_path, capsys):
+    inp = tmp_path / "in"
+    inp.mkdir()
+    write_events(inp / "x.fcs", n=1500, seed=3)
+    from core.recipe import save_recipe
+    save_recipe(small_recipe(regions=[]), str(tmp_path / "r.json"))
+    assert main([str(inp), "--out", str(tmp_path / "o"), "--recipe", str(tmp_path / "r.json"),
+                 "--workers", "1"]) == 0
+    assert main([str(inp)]) == 2                                    # --out missing
+    assert main([str(tmp_path / "nowhere"), "--out", str(tmp_path / "o2")]) == 2
+    assert main([str(inp), "--out", str(tmp_path / "o3"), "--workers", "0"]) == 2
+    assert main([str(inp), "--out", str(tmp_path / "o4"), "--recipe", str(tmp_path / "missing.json")]) == 2
+
+
+def test_stop_keeps_finished_files_and_marks_the_rest(tmp_path):
+    inp = tmp_path / "in"
+    inp.mkdir()
+    for k in range(3):
+        write_events(inp / f"t{k}.fcs", n=1500, seed=10 + k)
+    res = run_batch(str(inp), str(tmp_path / "o"), recipe=small_recipe(regions=[]), workers=1,
+                    progress=lambda step, total, row: False)   # stop after the first file
+    assert res.interrupted and res.exit_code == 130
+    assert [r["status"] for r in res.rows] == ["ok", "cancelled", "cancelled"]
+    assert os.path.exists(os.path.join(file_out_dir(str(tmp_path / "o"), "t0.fcs"), DONE_NAME))
+    assert not any(n.endswith(".part") for _, _, fs in os.walk(tmp_path / "o") for n in fs)
+    # the re-run finishes the rest and skips the first
+    res = run_batch(str(inp), str(tmp_path / "o"), recipe=small_recipe(regions=[]), workers=1)
+    assert res.n_skipped == 1 and res.exit_code == 0
+
+
+def test_default_recipe_from_first_readable_file_and_two_worker_processes(tmp_path):
+    inp = tmp_path / "in"
+    inp.mkdir()
+    (inp / "0 broken.fcs").write_bytes(b"FCS3.1    garbage")
+    write_events(inp / "1.fcs", n=1500, seed=4)
+    write_events(inp / "2.fcs", n=1500, seed=5)
+    res = run_batch(str(inp), str(tmp_path / "o"), workers=2)
+    assert [r["status"] for r in res.rows] == ["error", "ok", "ok"]
+    assert res.info["workers"] == 2 and res.info["numba_threads"] >= 1
+    assert "CD3" in res.recipe.channels and "FSC-A" not in res.recipe.channels
+
+
+def test_dask_scheduler_runs_the_same_task(tmp_path):
+    distributed = pytest.importorskip("distributed")
+    inp = tmp_path / "in"
+    inp.mkdir()
+    write_events(inp / "x.fcs", n=1500, seed=6)
+    with distributed.LocalCluster(n_workers=1, processes=False, dashboard_address=None) as cluster:
+        res = run_batch(str(inp), str(tmp_path / "o"), recipe=small_recipe(), scheduler=cluster.scheduler_address)
+    assert [r["status"] for r in res.rows] == ["ok"]
+    local = run_batch(str(inp), str(tmp_path / "o2"), recipe=small_recipe(), workers=1)
+    assert res.rows[0]["rare_events"] == local.rows[0]["rare_events"]
+    assert res.rows[0]["heldout_loglik"] == local.rows[0]["heldout_loglik"]
+
+
+def test_terminal_progress_prints_counts_and_eta():
+    buf = io.StringIO()
+    bar = TerminalProgress(buf)
+    bar(1, 4, {"file": "a.fcs", "status": "ok"})
+    bar(2, 4, {"file": "b.fcs", "status": "error"})
+    text = buf.getvalue()
+    assert "1/4 files" in text and "2/4 files, 1 failed" in text and "ETA" in text
