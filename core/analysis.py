@@ -140,25 +140,36 @@ def density_input(event_file: Any, recipe: Any):
     Returns ``(prepared, values)``: ``prepared`` a :class:`core.prepare.PreparedEvents`
     over the recipe's density channels (``matrix`` n_kept x d, ``kept``,
     ``reason`` per event) and ``values`` the transformed values of all
-    channels without jitter (for plots and regions).
+    channels without jitter (for plots and regions).  Jitter goes on the raw
+    values, then compensation and transforms (``core.prepare``'s pipeline
+    form).  Saturation is judged on the raw values of the density channels and,
+    when compensating, of the spillover matrix's detectors (they feed the
+    compensated density channels); an event with a non-finite raw value in any
+    channel is removed as "non-finite".
     """
-    from . import prepare as prep
+    from .prepare import prepare_events
 
     cleaning = dict(_get(recipe, "cleaning", None) or {})
-    drop_saturated = bool(cleaning.get("drop_saturated", True))
-    dequant = bool(cleaning.get("dequantise", True))
     seed = _engine_kwargs(recipe)["random_state"]
     idx = density_channel_indices(event_file, recipe)
     names, values = compensated_and_transformed(event_file, recipe)
     raw = np.asarray(event_file.data, dtype=np.float64)
-    if dequant:
-        jittered, _steps = prep.dequantise(raw, random_state=seed)
-        _, dvalues = compensated_and_transformed(event_file, recipe, raw=jittered)
-    else:
-        dvalues = values
-    ranges = np.asarray(event_file.channel_ranges, dtype=np.float64)[idx]
-    prepared = prep.prepare_events(dvalues[:, idx], channel_ranges=ranges, drop_saturated=drop_saturated,
-                                   dequantise=False, random_state=seed, raw_data=raw[:, idx])
+    ranges = np.full(len(names), np.nan)
+    file_ranges = np.asarray(event_file.channel_ranges, dtype=np.float64)
+    judged = set(idx)
+    S = _spillover(event_file, recipe)
+    if S is not None:
+        judged.update(names.index(d) for d in S.detectors if d in names)
+    for j in judged:
+        ranges[j] = file_ranges[j]
+
+    def pipeline(raw_values: np.ndarray) -> np.ndarray:
+        return compensated_and_transformed(event_file, recipe, raw=raw_values)[1][:, idx]
+
+    prepared = prepare_events(None, channel_ranges=ranges,
+                              drop_saturated=bool(cleaning.get("drop_saturated", True)),
+                              dequantise=bool(cleaning.get("dequantise", True)), random_state=seed,
+                              raw_data=raw, pipeline=pipeline)
     return prepared, values
 
 
