@@ -330,16 +330,19 @@ def _check_layout(path: str, header: dict, kw: Mapping[str, str], file_size: int
 
 
 def _read_raw_events(path: str, encoding: str, n_tot: int, n_par: int, notes: list) -> np.ndarray:
-    """Let fcsparser read (and bit-mask) the DATA segment; return float64 (events x channels)."""
-    import fcsparser
+    """Let fcsparser read (and bit-mask) the DATA segment; return float64 (events x channels).
+
+    fcsparser's parser object is used rather than ``fcsparser.parse`` to skip the
+    DataFrame it builds (one copy of the events less).
+    """
+    from fcsparser.api import FCSParser
 
     if n_tot == 0:
         return np.zeros((0, n_par), dtype=np.float64)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
-            _, frame = fcsparser.parse(path, meta_data_only=False, channel_naming="$PnN",
-                                       reformat_meta=False, dtype=None, encoding=encoding)
+            raw = FCSParser(path, read_data=True, channel_naming="$PnN", encoding=encoding).data
         except MemoryError:
             raise FcsFileError(path, "not enough memory to hold the events") from None
         except Exception as exc:  # fcsparser raises bare ValueError/KeyError etc.
@@ -354,7 +357,12 @@ def _read_raw_events(path: str, encoding: str, n_tot: int, n_par: int, notes: li
             continue
         else:
             notes.append(f"fcsparser: {msg}")
-    data = np.ascontiguousarray(frame.to_numpy(dtype=np.float64))
+    if raw.dtype.names:  # channels of mixed widths come as one record per event
+        data = np.empty((raw.shape[0], len(raw.dtype.names)), dtype=np.float64)
+        for j, name in enumerate(raw.dtype.names):
+            data[:, j] = raw[name]
+    else:
+        data = np.array(raw, dtype=np.float64, order="C")
     if data.shape != (n_tot, n_par):
         raise FcsFileError(path, f"the DATA segment gave {data.shape[0]} x {data.shape[1]} "
                                  f"values, not the announced {n_tot} x {n_par}")
@@ -549,9 +557,12 @@ def _text_segment(pairs: Sequence[tuple], delimiter: str) -> bytes:
     return body.encode("utf-8")
 
 
-def _assemble(pairs: list, data_bytes: bytes) -> bytes:
-    """HEADER + TEXT + DATA with self-consistent offsets (TEXT length depends on them)."""
-    n_bytes = len(data_bytes)
+def _assemble(pairs: list, n_bytes: int) -> bytes:
+    """HEADER + TEXT for a DATA segment of ``n_bytes`` bytes that follows them directly.
+
+    The offsets are self-consistent: the TEXT length depends on the digits of
+    $BEGINDATA/$ENDDATA, so the layout is repeated until it no longer changes.
+    """
     delimiter = _choose_delimiter([k for k, _ in pairs] + [v for _, v in pairs])
     text_start = HEADER_LENGTH
     offsets = {"$BEGINDATA": 0, "$ENDDATA": 0}
@@ -574,7 +585,7 @@ def _assemble(pairs: list, data_bytes: bytes) -> bytes:
     fields = header_offset_fields(text_start, text_end, begin, end)
     header = "FCS3.1    " + "".join(f"{v:>8d}" for v in fields)
     assert len(header) == HEADER_LENGTH
-    return header.encode("ascii") + text + data_bytes
+    return header.encode("ascii") + text
 
 
 def write_fcs(path: str | os.PathLike, data, channel_names: Sequence[str],
@@ -669,10 +680,13 @@ def write_fcs(path: str | os.PathLike, data, channel_names: Sequence[str],
             continue
         pairs.append((upper, value))
 
-    blob = _assemble(pairs, values.tobytes(order="C"))
+    values = np.ascontiguousarray(values)
+    prefix = _assemble(pairs, values.nbytes)
     try:
         with atomic_write(path, "wb", overwrite=overwrite) as handle:
-            handle.write(blob)
+            handle.write(prefix)
+            if values.size:
+                handle.write(memoryview(values.reshape(-1)).cast("B"))
     except OSError as exc:
         raise ExportError(f"{path}: writing failed ({exc.strerror or exc}); nothing was "
                           "written") from exc

@@ -16,15 +16,8 @@ import pytest
 import core.fcs as fcs
 from core.errors import ChannelError, EventDataError, ExportError
 from core.fcs import header_offset_fields, read_fcs, write_fcs
+from tests.test_fcs_read import FCS_DATA, READABLE
 
-FCS_DATA = os.path.join(os.path.dirname(fcsparser.__file__), "tests", "data")
-BROKEN = {os.path.join("FlowCytometers", "corrupted", "corrupted.fcs"),
-          os.path.join("FlowCytometers", "cytek-nl-2000", "sample_header.fcs")}
-READABLE = sorted(
-    os.path.relpath(os.path.join(folder, name), FCS_DATA)
-    for folder, _, files in os.walk(FCS_DATA) for name in files
-    if not name.endswith((".txt", ".py", ".pyc", ".md"))
-    and os.path.relpath(os.path.join(folder, name), FCS_DATA) not in BROKEN)
 STRUCTURAL = {"$BEGINANALYSIS", "$ENDANALYSIS", "$BEGINDATA", "$ENDDATA", "$BEGINSTEXT",
               "$ENDSTEXT", "$BYTEORD", "$DATATYPE", "$MODE", "$NEXTDATA", "$PAR", "$TOT"}
 
