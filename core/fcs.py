@@ -397,7 +397,7 @@ def _is_time(name: str, label: str) -> bool:
 
 
 def _decode_scale(kw: Mapping[str, str], datatype: str, data: np.ndarray,
-                  names: Sequence[str], labels: Sequence[str], notes: list) -> np.ndarray:
+                  names: list, labels: list, notes: list) -> np.ndarray:
     """Apply $PnE / $PnG in place; return channel ranges in the same units (float64)."""
     n_par = data.shape[1]
     ranges = np.full(n_par, np.nan, dtype=np.float64)
@@ -441,12 +441,13 @@ def _decode_scale(kw: Mapping[str, str], datatype: str, data: np.ndarray,
                      "logarithmic $PnE; FCS 3.1 requires $PnE 0,0 for float data, so the "
                      "values are kept as stored.")
     if missing_range:
-        fill = np.nanmax(np.where(np.isfinite(data), data, np.nan), axis=0) \
-            if data.shape[0] else np.ones(n_par)
         for name in missing_range:
-            j = list(names).index(name)
-            if not np.isfinite(ranges[j]):
-                ranges[j] = fill[j] if np.isfinite(fill[j]) and fill[j] > 0 else 1.0
+            j = names.index(name)
+            if np.isfinite(ranges[j]):
+                continue
+            column = data[:, j][np.isfinite(data[:, j])]
+            top = float(column.max()) if column.size else 0.0
+            ranges[j] = top if top > 0 else 1.0
         notes.append("Channels " + ", ".join(missing_range) + " have no usable $PnR; their "
                      "range was set to their largest value.")
     return ranges

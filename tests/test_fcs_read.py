@@ -269,3 +269,16 @@ def test_channel_index_by_name_label_and_case(tmp_path):
     with pytest.raises(ChannelError) as info:
         ef.channel_index("CD45")
     assert "CD45" in str(info.value) and "FL1-A" in str(info.value)
+
+
+def test_missing_range_falls_back_to_the_largest_value(tmp_path):
+    # FCS 3.1 requires $PnR; a float file without it stays readable (range = largest value)
+    path = tmp_path / "norange.fcs"
+    data = np.array([[1.0, 5.0], [2.0, 700.5], [3.0, np.float32(-4.0)]])
+    write_fcs(path, data, ["A", "B"], channel_ranges=[1024, 1024])
+    blob = path.read_bytes()
+    path.write_bytes(blob.replace(b"/$P2R/", b"/$P2Q/"))  # same length: offsets stay valid
+    ef = read_fcs(path)
+    assert "$P2R" not in ef.keywords
+    assert ef.channel_ranges.tolist() == [1024.0, 700.5]
+    assert any("no usable $PnR" in n for n in ef.notes)
