@@ -47,7 +47,7 @@ def make_file(path, n=3000, seed=0, spike=0):
 def recipe(**changes):
     d = dict(channels=MARKERS, compensation={"source": "file", "csv_path": None},
              transforms={c: dict(ARCSINH) for c in MARKERS}, engine=dict(SMALL_ENGINE),
-             regions=[{"name": "CD3+", "kind": "rectangle", "channels": ["CD3", "CD4"], "x": [5.0, 10.0],
+             regions=[{"name": "CD3+", "kind": "rectangle", "channels": ["CD3", "CD4"], "x": [3.0, 10.0],
                        "y": [-10.0, 10.0], "transforms": {"CD3": dict(ARCSINH), "CD4": dict(ARCSINH)}},
                       {"name": "scatter", "kind": "interval", "channels": ["FSC-A"], "low": 50_000.0,
                        "high": None, "transforms": {"FSC-A": None}}])
@@ -102,7 +102,7 @@ def test_region_masks_on_transformed_values(analysed):
     comp = raw[:, 2:5] @ np.linalg.inv(S)
     cd3, cd4 = np.arcsinh(comp[:, 0] / 150), np.arcsinh(comp[:, 1] / 150)
     # reference: half-open rectangle bounds low <= x < high (Gating-ML 2.0, from memory)
-    want = (cd3 >= 5.0) & (cd3 < 10.0) & (cd4 >= -10.0) & (cd4 < 10.0)
+    want = (cd3 >= 3.0) & (cd3 < 10.0) & (cd4 >= -10.0) & (cd4 < 10.0)
     np.testing.assert_array_equal(an.region_masks["CD3+"], want)
     np.testing.assert_array_equal(an.region_masks["scatter"], raw[:, 0] >= 50_000)
     assert 0 < want.sum() < 3000
