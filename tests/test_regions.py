@@ -275,3 +275,16 @@ def test_check_transforms():
         rs.check_transforms({"A": ASINH, "B": {"kind": "arcsinh", "cofactor": 5.0}})
     with pytest.raises(RegionError, match="'i'"):
         rs.check_transforms({"A": ASINH, "B": ASINH, "C": LIN})
+
+
+def test_replace_keeps_references_and_refuses_new_cycles():
+    rs = RegionSet.from_dict([rect("a", (0, 1), (0, 1)), {"name": "n", "kind": "not", "operands": ["a"]}])
+    v = {"A": np.array([0.5, 1.5]), "B": np.array([0.5, 0.5])}
+    np.testing.assert_array_equal(rs.evaluate(v)["n"], [False, True])
+    rs.replace(rect("a", (0, 2), (0, 1)))  # e.g. the rectangle was dragged wider
+    np.testing.assert_array_equal(rs.evaluate(v)["n"], [False, False])
+    with pytest.raises(RegionError, match="circle"):
+        rs.replace(rect("a", (0, 2), (0, 1), parent="n"))
+    assert rs["a"].parent is None  # the refused change left the set as it was
+    with pytest.raises(RegionError, match="no region named"):
+        rs.replace(rect("zz", (0, 1), (0, 1)))
