@@ -75,6 +75,16 @@ def random_correlation(k: int, rng: np.random.Generator, strength: float = 0.6) 
     return R
 
 
+def _expect_normal(mean: float, sd: float, func, order: int = 96):
+    """E[func(T)] for T ~ N(mean, sd^2) by Gauss-Hermite quadrature (probabilists' weight).
+
+    ``func`` maps a (order,) array of nodes to an (order, m) array; returns (m,).
+    """
+    nodes, weights = np.polynomial.hermite_e.hermegauss(order)
+    weights = weights / math.sqrt(2.0 * math.pi)
+    return weights @ func(mean + sd * nodes)
+
+
 # Cytometry-like levels per channel: negative, dim, positive, bright (common practice
 # to think of markers this way; the numbers are ours).
 _LEVELS = np.array([0.7, 1.7, 2.8, 3.8])
@@ -225,9 +235,24 @@ class Banana(Component):
         return X
 
     def marginal_cdf(self, j):
-        if j in set(self.bent.tolist()):
-            return None
-        return self.gauss.marginal_cdf(j)
+        """Exact for unbent channels; bent channels by 1-D Gauss-Hermite quadrature over the driver."""
+        bent = self.bent.tolist()
+        if j not in bent:
+            return self.gauss.marginal_cdf(j)
+        i, b = self.driver, float(self.bend[bent.index(j)])
+        mu, cov = self.gauss.mean, self.gauss.cov
+        sd_i = math.sqrt(cov[i, i])
+        beta = cov[j, i] / cov[i, i]
+        sd_c = math.sqrt(cov[j, j] - beta * cov[j, i])
+
+        def cdf(x):
+            x = np.atleast_1d(np.asarray(x, dtype=np.float64))
+
+            def inner(zi):
+                t = (zi - mu[i])[:, None]
+                return special.ndtr((x[None, :] - b * t ** 2 - mu[j] - beta * t) / sd_c)
+            return _expect_normal(mu[i], sd_i, inner)
+        return cdf
 
 
 class Fan(Component):
@@ -276,9 +301,21 @@ class Fan(Component):
         return X
 
     def marginal_cdf(self, j):
+        """Exact for the level channel; others by 1-D Gauss-Hermite quadrature over the level."""
         if j == self.driver:
             return stats.norm(self.level_mean, self.level_sd).cdf
-        return None
+        k = int(np.flatnonzero(self.rest == j)[0])
+
+        def cdf(x):
+            x = np.atleast_1d(np.asarray(x, dtype=np.float64))
+
+            def inner(L):
+                t = (L - self.level_mean)[:, None]
+                mean = self.base[k] + self.slope[k] * t
+                spread = self.spread0[k] * np.exp(self.growth[k] * t)
+                return special.ndtr((x[None, :] - mean) / spread)
+            return _expect_normal(self.level_mean, self.level_sd, inner)
+        return cdf
 
 
 class UniformBox(Component):
