@@ -1,0 +1,436 @@
+"""Compiled hot loops of the additive tree density (numba, float64).
+
+Array conventions (shared with :mod:`core.density.tree`):
+
+* Event matrices are ``(n_events, n_channels)`` C-contiguous float64, in the
+  unit cube for the tree kernels.
+* A *forest* is a flat set of split nodes.  ``roots[t]`` is the index of tree
+  ``t``'s root node (-1 for a tree without splits).  For node ``m``:
+  ``dim[m]`` split dimension, ``cut[m]`` split location, ``lo[m]``/``hi[m]``
+  the node's extent along ``dim[m]``, ``mid[m] = lo + theta (hi - lo)`` the
+  image of the cut, ``sl[m]``/``sr[m]`` the slopes of the two-piece local CDF
+  left/right of the cut and ``lsl``/``lsr`` their natural logs,
+  ``left[m]``/``right[m]`` child node indices (-1 for a leaf).
+
+Every kernel is deterministic: parallel loops only split work over events
+(each event's result is computed by one thread in a fixed order) or sum
+integer counts.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit, prange
+
+#: Events per parallel work block in the per-event kernels.
+BLOCK = 512
+#: Deepest path a tree may have (path buffers are this long).
+MAX_PATH = 64
+#: Below this many (events x cost units) a kernel runs on one thread: thread
+#: start-up costs more than it saves, and a busy machine makes it worse.
+PARALLEL_MIN_WORK = 400_000
+
+
+@njit(cache=True)
+def _forest_forward_rows(start, stop, U, logd, roots, dim, cut, lo, mid, sl, sr, lsl, lsr, left, right):
+    """Apply the tree-CDFs of trees ``roots`` in order to rows start:stop of ``U`` in place.
+
+    U: (n, d) float64 points in the cube, overwritten by their images.
+    logd: (n,) float64, the log-density of each tree at the point it was
+    applied to is added (sum of log slopes along the root-to-leaf path).
+    Each tree: find the path top-down, then apply the moves bottom-up.
+    """
+    n_trees = roots.shape[0]
+    path = np.empty(MAX_PATH, np.int64)
+    side = np.empty(MAX_PATH, np.bool_)
+    if True:
+        for i in range(start, stop):
+            acc = 0.0
+            for t in range(n_trees):
+                node = roots[t]
+                k = 0
+                while node >= 0:
+                    path[k] = node
+                    if U[i, dim[node]] < cut[node]:
+                        side[k] = True
+                        node = left[node]
+                    else:
+                        side[k] = False
+                        node = right[node]
+                    k += 1
+                for q in range(k - 1, -1, -1):
+                    m = path[q]
+                    j = dim[m]
+                    v = U[i, j]
+                    if side[q]:
+                        v = lo[m] + (v - lo[m]) * sl[m]
+                        acc += lsl[m]
+                    else:
+                        v = mid[m] + (v - cut[m]) * sr[m]
+                        acc += lsr[m]
+                    U[i, j] = v
+            logd[i] += acc
+
+
+@njit(cache=True)
+def _forest_inverse_rows(start, stop, U, roots, dim, cut, lo, mid, sl, sr, left, right):
+    """Undo :func:`forest_forward` on rows start:stop in place: trees last to first, each root first."""
+    n_trees = roots.shape[0]
+    if True:
+        for i in range(start, stop):
+            for t in range(n_trees - 1, -1, -1):
+                node = roots[t]
+                while node >= 0:
+                    j = dim[node]
+                    v = U[i, j]
+                    if v < mid[node]:
+                        v = lo[node] + (v - lo[node]) / sl[node]
+                        if v > cut[node]:
+                            v = cut[node]
+                        U[i, j] = v
+                        node = left[node]
+                    else:
+                        v = cut[node] + (v - mid[node]) / sr[node]
+                        if v < cut[node]:
+                            v = cut[node]
+                        U[i, j] = v
+                        node = right[node]
+
+
+@njit(cache=True)
+def _log_sigmoid_pair(z):
+    """log(sigma(z)) + log(sigma(-z)) = log of the logistic density at z, stably."""
+    a = abs(z)
+    return -a - 2.0 * math.log1p(math.exp(-a))
+
+
+@njit(cache=True)
+def _base_forward_rows(start, stop, X, U, logd, loc, scale, log_scale):
+    """Per-channel logistic map R -> (0, 1): u = sigma((x - loc) / scale).
+
+    X: (n, d) values in the units of the data; U: (n, d) output in [0, 1];
+    logd: (n,) the log-Jacobian  sum_j [log sigma'(z_j) - log scale_j]  is added.
+    """
+    n, d = X.shape
+    if True:
+        for i in range(start, stop):
+            acc = 0.0
+            for j in range(d):
+                z = (X[i, j] - loc[j]) / scale[j]
+                if z >= 0.0:
+                    e = math.exp(-z)
+                    U[i, j] = 1.0 / (1.0 + e)
+                else:
+                    e = math.exp(z)
+                    U[i, j] = e / (1.0 + e)
+                acc += _log_sigmoid_pair(z) - log_scale[j]
+            logd[i] += acc
+
+
+@njit(cache=True)
+def _base_inverse_rows(start, stop, U, X, loc, scale):
+    """Inverse of :func:`base_forward`: x = loc + scale * logit(u); u = 0 or 1 give -inf/+inf."""
+    n, d = U.shape
+    if True:
+        for i in range(start, stop):
+            for j in range(d):
+                u = U[i, j]
+                if u <= 0.0:
+                    X[i, j] = -np.inf
+                elif u >= 1.0:
+                    X[i, j] = np.inf
+                else:
+                    X[i, j] = loc[j] + scale[j] * (math.log(u) - math.log1p(-u))
+
+
+@njit(cache=True)
+def _pwl_forward_rows(start, stop, U, logd, offsets, xs, ys, slopes, log_slopes):
+    """Per-channel monotone piecewise-linear maps of [0, 1] onto itself, in place.
+
+    Channel j uses knots ``xs[offsets[j]:offsets[j+1]]`` (increasing, 0 .. 1),
+    values ``ys`` at the knots and the exact slope of each piece
+    (``slopes``/``log_slopes`` are indexed by the piece's left knot).
+    """
+    n, d = U.shape
+    if True:
+        for i in range(start, stop):
+            acc = 0.0
+            for j in range(d):
+                a = offsets[j]
+                b = offsets[j + 1]
+                if b - a < 2:
+                    continue
+                u = U[i, j]
+                # last knot <= u, restricted to a piece index in [a, b-2]
+                k = np.searchsorted(xs[a:b], u, side="right") - 1
+                if k < 0:
+                    k = 0
+                if k > b - a - 2:
+                    k = b - a - 2
+                p = a + k
+                v = ys[p] + (u - xs[p]) * slopes[p]
+                if v < 0.0:
+                    v = 0.0
+                elif v > 1.0:
+                    v = 1.0
+                U[i, j] = v
+                acc += log_slopes[p]
+            logd[i] += acc
+
+
+@njit(cache=True)
+def _pwl_inverse_rows(start, stop, U, offsets, xs, ys, slopes):
+    """Inverse of :func:`pwl_forward` in place."""
+    n, d = U.shape
+    if True:
+        for i in range(start, stop):
+            for j in range(d):
+                a = offsets[j]
+                b = offsets[j + 1]
+                if b - a < 2:
+                    continue
+                v = U[i, j]
+                k = np.searchsorted(ys[a:b], v, side="right") - 1
+                if k < 0:
+                    k = 0
+                if k > b - a - 2:
+                    k = b - a - 2
+                p = a + k
+                u = xs[p] + (v - ys[p]) / slopes[p]
+                if u < xs[p]:
+                    u = xs[p]
+                elif u > xs[p + 1]:
+                    u = xs[p + 1]
+                U[i, j] = u
+
+
+# ---------------------------------------------------------------- fitting
+
+@njit(cache=True)
+def _hist_rows(start, stop, R, node_of, box_lo, box_inv, n_bins, allowed, hist):
+    """Add the events start:stop to hist[node, dim, bin] (equal-width bins of each node's box)."""
+    d = R.shape[1]
+    for i in range(start, stop):
+        k = node_of[i]
+        if k < 0:
+            continue
+        for j in range(d):
+            if not allowed[j]:
+                continue
+            b = int((R[i, j] - box_lo[k, j]) * box_inv[k, j] * n_bins)
+            if b < 0:
+                b = 0
+            elif b >= n_bins:
+                b = n_bins - 1
+            hist[k, j, b] += 1
+
+
+@njit(cache=True, parallel=True)
+def _hist_par(R, node_of, box_lo, box_inv, n_nodes, n_bins, allowed, n_chunks):
+    n, d = R.shape
+    parts = np.zeros((n_chunks, n_nodes, d, n_bins), np.int64)
+    step = (n + n_chunks - 1) // n_chunks
+    for c in prange(n_chunks):
+        _hist_rows(c * step, min(n, (c + 1) * step), R, node_of, box_lo, box_inv, n_bins, allowed,
+                   parts[c])
+    out = np.zeros((n_nodes, d, n_bins), np.int64)
+    for c in range(n_chunks):
+        out += parts[c]
+    return out
+
+
+def level_histogram(R, node_of, box_lo, box_inv, n_nodes, n_bins, allowed):
+    """Counts of events per (node, dimension, equal-width bin of the node's extent).
+
+    R: (n, d) events in the cube; node_of: (n,) node of each event at this
+    level (-1: not in a node being split); box_lo/box_inv: (n_nodes, d) lower
+    bound and 1/width of each node's box; allowed: (d,) bool dimensions to count.
+    Returns (n_nodes, d, n_bins) int64.  Integer sums: order-independent, so
+    serial and parallel runs give identical counts.
+    """
+    n, d = R.shape
+    if n * d < PARALLEL_MIN_WORK:
+        hist = np.zeros((n_nodes, d, n_bins), np.int64)
+        _hist_rows(0, n, R, node_of, box_lo, box_inv, n_bins, allowed, hist)
+        return hist
+    return _hist_par(R, node_of, box_lo, box_inv, n_nodes, n_bins, allowed, 4)
+
+
+@njit(cache=True)
+def best_splits(hist, counts, vol, lr, n_total, min_leaf, allowed):
+    """Best split of each node by the gain in training log-likelihood of the shrunk model.
+
+    The shrunk tree measure puts density (1 - lr) + lr * n_A / (N vol_A) on a
+    leaf A; the gain of splitting A into L, R is
+    n_L log f_L + n_R log f_R - n_A log f_A.
+    Returns (best_dim, best_bin, best_gain, n_left) per node; best_dim = -1 when
+    no split has positive gain with at least ``min_leaf`` events on each side.
+    The split location is after bin ``best_bin`` (cut = lo + (best_bin+1)/B width).
+    """
+    n_nodes, d, n_bins = hist.shape
+    best_dim = np.full(n_nodes, -1, np.int64)
+    best_bin = np.zeros(n_nodes, np.int64)
+    best_gain = np.zeros(n_nodes)
+    n_left = np.zeros(n_nodes, np.int64)
+    for k in range(n_nodes):
+        n_a = counts[k]
+        if n_a < 2 * min_leaf:
+            continue
+        scale = lr / (n_total * vol[k])
+        f_a = (1.0 - lr) + scale * n_a
+        base = n_a * math.log(f_a)
+        g_best = 1e-9
+        for j in range(d):
+            if not allowed[j]:
+                continue
+            cum = 0
+            for b in range(n_bins - 1):
+                cum += hist[k, j, b]
+                n_l = cum
+                n_r = n_a - n_l
+                if n_l < min_leaf:
+                    continue
+                if n_r < min_leaf:
+                    break
+                frac = (b + 1.0) / n_bins
+                f_l = (1.0 - lr) + scale * n_l / frac
+                f_r = (1.0 - lr) + scale * n_r / (1.0 - frac)
+                g = n_l * math.log(f_l) + n_r * math.log(f_r) - base
+                if g > g_best:
+                    g_best = g
+                    best_dim[k] = j
+                    best_bin[k] = b
+                    n_left[k] = n_l
+        best_gain[k] = g_best
+    return best_dim, best_bin, best_gain, n_left
+
+
+@njit(cache=True)
+def route_events(R, node_of, split_dim, split_cut, child_left, child_right):
+    """Move each event to its child at the next level (-1 when the child is a leaf)."""
+    n = R.shape[0]
+    for i in range(n):
+        k = node_of[i]
+        if k < 0:
+            continue
+        j = split_dim[k]
+        if j < 0:
+            node_of[i] = -1
+        elif R[i, j] < split_cut[k]:
+            node_of[i] = child_left[k]
+        else:
+            node_of[i] = child_right[k]
+
+
+# ---------------------------------------------------------------- drivers
+# Each per-event kernel has a serial body (``_*_rows``) and a parallel driver
+# that hands blocks of BLOCK events to threads; results are identical because
+# every event is computed by exactly one thread in the same order.
+
+@njit(cache=True, parallel=True)
+def _forest_forward_par(U, logd, roots, dim, cut, lo, mid, sl, sr, lsl, lsr, left, right):
+    n = U.shape[0]
+    nb = (n + BLOCK - 1) // BLOCK
+    for b in prange(nb):
+        _forest_forward_rows(b * BLOCK, min(n, (b + 1) * BLOCK), U, logd, roots, dim, cut, lo, mid,
+                             sl, sr, lsl, lsr, left, right)
+
+
+@njit(cache=True, parallel=True)
+def _forest_inverse_par(U, roots, dim, cut, lo, mid, sl, sr, left, right):
+    n = U.shape[0]
+    nb = (n + BLOCK - 1) // BLOCK
+    for b in prange(nb):
+        _forest_inverse_rows(b * BLOCK, min(n, (b + 1) * BLOCK), U, roots, dim, cut, lo, mid, sl, sr,
+                             left, right)
+
+
+@njit(cache=True, parallel=True)
+def _base_forward_par(X, U, logd, loc, scale, log_scale):
+    n = X.shape[0]
+    nb = (n + BLOCK - 1) // BLOCK
+    for b in prange(nb):
+        _base_forward_rows(b * BLOCK, min(n, (b + 1) * BLOCK), X, U, logd, loc, scale, log_scale)
+
+
+@njit(cache=True, parallel=True)
+def _base_inverse_par(U, X, loc, scale):
+    n = U.shape[0]
+    nb = (n + BLOCK - 1) // BLOCK
+    for b in prange(nb):
+        _base_inverse_rows(b * BLOCK, min(n, (b + 1) * BLOCK), U, X, loc, scale)
+
+
+@njit(cache=True, parallel=True)
+def _pwl_forward_par(U, logd, offsets, xs, ys, slopes, log_slopes):
+    n = U.shape[0]
+    nb = (n + BLOCK - 1) // BLOCK
+    for b in prange(nb):
+        _pwl_forward_rows(b * BLOCK, min(n, (b + 1) * BLOCK), U, logd, offsets, xs, ys, slopes,
+                          log_slopes)
+
+
+@njit(cache=True, parallel=True)
+def _pwl_inverse_par(U, offsets, xs, ys, slopes):
+    n = U.shape[0]
+    nb = (n + BLOCK - 1) // BLOCK
+    for b in prange(nb):
+        _pwl_inverse_rows(b * BLOCK, min(n, (b + 1) * BLOCK), U, offsets, xs, ys, slopes)
+
+
+def _parallel(n_events, cost):
+    return n_events * cost >= PARALLEL_MIN_WORK
+
+
+def forest_forward(U, logd, roots, dim, cut, lo, mid, sl, sr, lsl, lsr, left, right):
+    """Apply trees ``roots`` in order to U (n, d) in place; add their log densities to logd (n,)."""
+    args = (U, logd, roots, dim, cut, lo, mid, sl, sr, lsl, lsr, left, right)
+    if _parallel(U.shape[0], 4 * roots.shape[0]):
+        _forest_forward_par(*args)
+    else:
+        _forest_forward_rows(0, U.shape[0], *args)
+
+
+def forest_inverse(U, roots, dim, cut, lo, mid, sl, sr, left, right):
+    """Undo :func:`forest_forward` in place (trees last to first, each root first)."""
+    args = (U, roots, dim, cut, lo, mid, sl, sr, left, right)
+    if _parallel(U.shape[0], 4 * roots.shape[0]):
+        _forest_inverse_par(*args)
+    else:
+        _forest_inverse_rows(0, U.shape[0], *args)
+
+
+def base_forward(X, U, logd, loc, scale, log_scale):
+    """Per-channel logistic map into (0, 1); see :func:`_base_forward_rows`."""
+    args = (X, U, logd, loc, scale, log_scale)
+    if _parallel(X.shape[0], 8 * X.shape[1]):
+        _base_forward_par(*args)
+    else:
+        _base_forward_rows(0, X.shape[0], *args)
+
+
+def base_inverse(U, X, loc, scale):
+    """Inverse of :func:`base_forward`."""
+    if _parallel(U.shape[0], 8 * U.shape[1]):
+        _base_inverse_par(U, X, loc, scale)
+    else:
+        _base_inverse_rows(0, U.shape[0], U, X, loc, scale)
+
+
+def pwl_forward(U, logd, offsets, xs, ys, slopes, log_slopes):
+    """Per-channel monotone piecewise-linear maps in place; see :func:`_pwl_forward_rows`."""
+    args = (U, logd, offsets, xs, ys, slopes, log_slopes)
+    if _parallel(U.shape[0], 8 * U.shape[1]):
+        _pwl_forward_par(*args)
+    else:
+        _pwl_forward_rows(0, U.shape[0], *args)
+
+
+def pwl_inverse(U, offsets, xs, ys, slopes):
+    """Inverse of :func:`pwl_forward` in place."""
+    if _parallel(U.shape[0], 8 * U.shape[1]):
+        _pwl_inverse_par(U, offsets, xs, ys, slopes)
+    else:
+        _pwl_inverse_rows(0, U.shape[0], U, offsets, xs, ys, slopes)

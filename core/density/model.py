@@ -1,0 +1,434 @@
+"""AdditiveTreeDensity: a density estimate for events x channels learned by
+unsupervised tree boosting.
+
+The model is a chain of exactly invertible maps from R^d onto the unit cube
+[0, 1]^d; the density of an event is the product of the Jacobians of the
+maps (the "zero" model at the end of the chain is uniform on the cube):
+
+1. **Map into the cube** (per channel, full support): robust
+   standardisation ``z = (x - median) / scale`` with ``scale`` = IQR / (2 ln 3)
+   (so a standard logistic has the data's inter-quartile range), then the
+   logistic CDF ``u = 1 / (1 + exp(-z))``.  Its log-Jacobian
+   ``log sigma'(z) - log scale`` is exact and finite for every finite x, so
+   events outside the training range get a finite tail density that decays
+   like ``exp(-|x - median| / scale)`` beyond the data (never -inf, never a
+   crash).  The logistic (rather than normal) CDF is chosen because its tails
+   keep the map invertible to ~1e-12 relative error out to 25 robust scales,
+   where a normal CDF rounds to 0 or 1 beyond about 8.
+2. **Marginals first**: per channel, a boosted sequence of one-dimensional
+   tree measures fitted to the mapped values, stopped early on the
+   held-out share.  Their composition (a monotone piecewise-linear map of
+   [0, 1] onto itself, i.e. the CDF of a one-dimensional tree measure) is
+   stored as knots with the exact slope of each piece.
+3. **Dependence**: boosted tree measures on the whole cube (forward-stagewise,
+   shrinkage toward uniform, early stopping on held-out log-likelihood with
+   patience, keeping the best prefix).
+
+    log f(x) = log|J_cube(x)| + log m'(u) + sum_k log g_k(r_{k-1})
+
+No integration anywhere; sampling runs the chain backwards from a uniform draw.
+
+Units: log densities are natural logs per unit volume of the input X
+(i.e. in the units of the transformed channels the caller passes).
+
+Constant channels (max == min in the fitted events) are documented fallback:
+the channel is modelled as a logistic of scale 1e-3 * max(1, |value|) centred
+on the value, independent of the others (no trees split on it), so the
+model stays a valid density.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+
+from ..errors import EventDataError
+from ..progress import keep_going
+from . import kernels
+from .tree import Forest, fit_tree
+
+#: Events per chunk when scoring/transforming (bounded memory).
+CHUNK = 1 << 16
+MIN_EVENTS = 50
+_LOGISTIC_IQR = 2.0 * math.log(3.0)
+
+
+def _check_matrix(X, what: str, n_features: int | None = None, min_events: int = 0) -> np.ndarray:
+    """Return X as a 2-D array (no copy when possible) after shape checks."""
+    X = np.asarray(X)
+    if X.ndim == 1 and n_features == 1:
+        X = X[:, None]
+    if X.ndim != 2:
+        raise EventDataError(f"{what}: expected a 2-D array of events x channels, got shape {X.shape}")
+    if not np.issubdtype(X.dtype, np.number) or np.iscomplexobj(X):
+        raise EventDataError(f"{what}: event values must be real numbers, got dtype {X.dtype}")
+    if n_features is not None and X.shape[1] != n_features:
+        raise EventDataError(
+            f"{what}: the model was fitted on {n_features} channels but the events have "
+            f"{X.shape[1]}; pass the same channels in the same order")
+    if X.shape[0] < min_events:
+        raise EventDataError(
+            f"{what}: {X.shape[0]} events is too few to fit a density; at least {min_events} are needed")
+    return X
+
+
+def _nonfinite_error(X: np.ndarray, what: str) -> EventDataError:
+    bad = ~np.isfinite(X)
+    rows = int(bad.any(axis=1).sum())
+    cols = np.flatnonzero(bad.any(axis=0)).tolist()
+    return EventDataError(
+        f"{what}: {rows} event(s) have missing or infinite values (NaN/inf) in column(s) "
+        f"{cols} (0-based); remove or clean them first (core.prepare.prepare_events does this)")
+
+
+def _chunk(X: np.ndarray, a: int, b: int, what: str) -> np.ndarray:
+    """Rows a:b of X as a fresh C-contiguous float64 array (never a view of X)."""
+    C = np.array(X[a:b], dtype=np.float64, order="C", copy=True)
+    if not np.isfinite(C).all():
+        raise _nonfinite_error(X, what)
+    return C
+
+
+class AdditiveTreeDensity:
+    """Density of events x channels by unsupervised tree boosting (see module docstring).
+
+    Parameters
+    ----------
+    n_trees : int
+        Most dependence trees to fit (early stopping usually ends sooner).
+    learning_rate : float
+        Shrinkage toward uniform of each dependence tree, in (0, 1).
+    max_depth : int
+        Most splits on a root-to-leaf path of a dependence tree.
+    n_bins : int
+        Equal-width candidate cuts per node and dimension.
+    min_leaf : int
+        Fewest training events on each side of a split.
+    validation_fraction : float
+        Share of the events held out for early stopping.
+    patience : int
+        Trees without held-out improvement before stopping.
+    max_fit_events : int
+        Above this many events the fit uses a seeded random subsample.
+    marginal_trees, marginal_learning_rate, marginal_depth :
+        The same roles for the one-channel trees of the marginal stage
+        (``marginal_trees=0`` skips the stage).
+    random_state : int or None
+        Seed for subsampling and the held-out split; equal seeds give
+        bit-identical models.
+    """
+
+    def __init__(self, n_trees: int = 400, learning_rate: float = 0.1, max_depth: int = 5,
+                 n_bins: int = 32, min_leaf: int = 20, validation_fraction: float = 0.2,
+                 patience: int = 20, max_fit_events: int = 200_000, marginal_trees: int = 100,
+                 marginal_learning_rate: float = 0.2, marginal_depth: int = 6,
+                 random_state: int | None = None):
+        self.n_trees = n_trees
+        self.learning_rate = learning_rate
+        self.max_depth = max_depth
+        self.n_bins = n_bins
+        self.min_leaf = min_leaf
+        self.validation_fraction = validation_fraction
+        self.patience = patience
+        self.max_fit_events = max_fit_events
+        self.marginal_trees = marginal_trees
+        self.marginal_learning_rate = marginal_learning_rate
+        self.marginal_depth = marginal_depth
+        self.random_state = random_state
+
+    # ------------------------------------------------------------ params
+    _PARAMS = ("n_trees", "learning_rate", "max_depth", "n_bins", "min_leaf", "validation_fraction",
+               "patience", "max_fit_events", "marginal_trees", "marginal_learning_rate",
+               "marginal_depth", "random_state")
+
+    def get_params(self, deep: bool = True) -> dict[str, Any]:
+        return {k: getattr(self, k) for k in self._PARAMS}
+
+    def set_params(self, **params) -> "AdditiveTreeDensity":
+        for k, v in params.items():
+            if k not in self._PARAMS:
+                raise ValueError(f"unknown parameter {k!r}")
+            setattr(self, k, v)
+        return self
+
+    def __repr__(self) -> str:
+        return f"AdditiveTreeDensity(n_trees={self.n_trees}, learning_rate={self.learning_rate}, max_depth={self.max_depth})"
+
+    def _validate_params(self) -> None:
+        if not 0.0 < float(self.learning_rate) < 1.0:
+            raise ValueError("learning_rate must be in (0, 1)")
+        if not 0.0 < float(self.marginal_learning_rate) < 1.0:
+            raise ValueError("marginal_learning_rate must be in (0, 1)")
+        if not 1 <= int(self.max_depth) <= kernels.MAX_PATH // 2:
+            raise ValueError(f"max_depth must be between 1 and {kernels.MAX_PATH // 2}")
+        if not 1 <= int(self.marginal_depth) <= kernels.MAX_PATH // 2:
+            raise ValueError(f"marginal_depth must be between 1 and {kernels.MAX_PATH // 2}")
+        if int(self.n_bins) < 2:
+            raise ValueError("n_bins must be at least 2")
+        if int(self.min_leaf) < 1:
+            raise ValueError("min_leaf must be at least 1")
+        if not 0.0 < float(self.validation_fraction) < 0.9:
+            raise ValueError("validation_fraction must be in (0, 0.9)")
+        if int(self.n_trees) < 0 or int(self.marginal_trees) < 0 or int(self.patience) < 1:
+            raise ValueError("n_trees and marginal_trees must be >= 0 and patience >= 1")
+
+    # ------------------------------------------------------------ fitting
+    def fit(self, X, progress=None) -> "AdditiveTreeDensity":
+        """Fit to events X (n_events, n_channels); returns self.
+
+        ``progress(step, total, heldout_loglik)`` is called after the
+        marginal stage (step 0) and after each dependence tree; returning
+        False stops cleanly keeping the trees so far (the model is usable).
+        """
+        self._validate_params()
+        X = _check_matrix(X, "fit", min_events=MIN_EVENTS)
+        rng = np.random.default_rng(self.random_state)
+        n_all = X.shape[0]
+        if n_all > int(self.max_fit_events):
+            idx = np.sort(rng.choice(n_all, int(self.max_fit_events), replace=False))
+            X = X[idx]
+        X = np.ascontiguousarray(X, dtype=np.float64)
+        if not np.isfinite(X).all():
+            raise _nonfinite_error(X, "fit")
+        n, d = X.shape
+        self.n_features_in_ = d
+        self.n_events_fitted_ = n
+        self.bounds_ = np.vstack([X.min(axis=0), X.max(axis=0)])
+
+        # 1. map into the cube
+        q25, med, q75 = np.percentile(X, [25.0, 50.0, 75.0], axis=0)
+        scale = (q75 - q25) / _LOGISTIC_IQR
+        std = X.std(axis=0) * math.sqrt(3.0) / math.pi
+        scale = np.where(scale > 0, scale, std)
+        frozen = self.bounds_[1] <= self.bounds_[0]
+        scale = np.where(frozen, 1e-3 * np.maximum(1.0, np.abs(med)), scale)
+        # std can be >0 yet tiny relative to the values; keep scale meaningful
+        scale = np.maximum(scale, 1e-12 * np.maximum(1.0, np.abs(med)))
+        self._loc = med.astype(np.float64)
+        self._scale = scale.astype(np.float64)
+        self._frozen = frozen
+
+        perm = rng.permutation(n)
+        n_val = max(1, int(round(float(self.validation_fraction) * n)))
+        va, tr = np.sort(perm[:n_val]), np.sort(perm[n_val:])
+        U_tr = np.empty((tr.size, d))
+        U_va = np.empty((va.size, d))
+        ld_tr = np.zeros(tr.size)
+        ld_va = np.zeros(va.size)
+        kernels.base_forward(X[tr], U_tr, ld_tr, self._loc, self._scale, np.log(self._scale))
+        kernels.base_forward(X[va], U_va, ld_va, self._loc, self._scale, np.log(self._scale))
+
+        # 2. marginals first
+        self._fit_marginals(U_tr, U_va, ld_va)
+
+        # 3. dependence trees
+        self._forest = Forest()
+        self.learning_curve_ = np.array([ld_va.mean()])
+        self.heldout_loglik_ = float(ld_va.mean())
+        self.n_trees_ = 0
+        self.stopped_by_ = "n_trees"
+        total = int(self.n_trees)
+        if not keep_going(progress, 0, total, self.heldout_loglik_):
+            self.stopped_by_ = "cancelled"
+            return self
+        allowed = ~frozen
+        if allowed.sum() < 2:
+            total = 0  # one free channel: the marginal stage is the whole model
+        lr = float(self.learning_rate)
+        forest = Forest()
+        curve = [float(ld_va.mean())]
+        best_k, best_ll = 0, curve[0]
+        scratch = np.zeros(tr.size)
+        for k in range(1, total + 1):
+            tree = fit_tree(U_tr, lr, int(self.max_depth), int(self.n_bins), int(self.min_leaf), allowed)
+            if tree.n_nodes == 0:
+                self.stopped_by_ = "no split"
+                break
+            tree.forward(U_tr, scratch)
+            tree.forward(U_va, ld_va)
+            forest.append(tree)
+            ll = float(ld_va.mean())
+            curve.append(ll)
+            if ll > best_ll:
+                best_k, best_ll = k, ll
+            cancelled = not keep_going(progress, k, total, ll)
+            if cancelled:
+                self.stopped_by_ = "cancelled"
+                break
+            if k - best_k >= int(self.patience):
+                self.stopped_by_ = "early stopping"
+                break
+        if self.stopped_by_ == "cancelled":
+            best_k = len(curve) - 1  # keep everything fitted so far
+        self._forest = forest.prefix(best_k)
+        self.n_trees_ = best_k
+        self.learning_curve_ = np.array(curve)
+        self.heldout_loglik_ = float(curve[best_k])
+        return self
+
+    def _fit_marginals(self, U_tr: np.ndarray, U_va: np.ndarray, ld_va: np.ndarray) -> None:
+        """Boost one-channel trees per channel; compose each channel's trees into a
+        monotone piecewise-linear map; apply it to U_tr/U_va in place (adding to ld_va)."""
+        d = U_tr.shape[1]
+        xs_all, ys_all, sl_all, lsl_all = [], [], [], []
+        offsets = [0]
+        self.n_marginal_trees_ = np.zeros(d, np.int64)
+        lr = float(self.marginal_learning_rate)
+        for j in range(d):
+            if self._frozen[j] or int(self.marginal_trees) == 0:
+                xs = np.array([0.0, 1.0])
+                ys = xs.copy()
+                sl = np.ones(2)
+            else:
+                col_tr = U_tr[:, j:j + 1].copy()
+                col_va = U_va[:, j:j + 1].copy()
+                ld = np.zeros(col_va.shape[0])
+                scratch = np.zeros(col_tr.shape[0])
+                forest = Forest()
+                best_k, best_ll = 0, 0.0
+                for k in range(1, int(self.marginal_trees) + 1):
+                    tree = fit_tree(col_tr, lr, int(self.marginal_depth), int(self.n_bins),
+                                    int(self.min_leaf))
+                    if tree.n_nodes == 0:
+                        break
+                    tree.forward(col_tr, scratch)
+                    tree.forward(col_va, ld)
+                    forest.append(tree)
+                    ll = float(ld.mean())
+                    if ll > best_ll:
+                        best_k, best_ll = k, ll
+                    if k - best_k >= int(self.patience):
+                        break
+                forest = forest.prefix(best_k)
+                self.n_marginal_trees_[j] = best_k
+                xs, ys, sl = compose_1d(forest)
+            offsets.append(offsets[-1] + xs.size)
+            xs_all.append(xs)
+            ys_all.append(ys)
+            sl_all.append(sl)
+        self._set_marginals(np.array(offsets, np.int64), np.concatenate(xs_all),
+                            np.concatenate(ys_all), np.concatenate(sl_all))
+        kernels.pwl_forward(U_tr, np.zeros(U_tr.shape[0]), self._m_off, self._m_xs, self._m_ys,
+                            self._m_sl, self._m_lsl)
+        kernels.pwl_forward(U_va, ld_va, self._m_off, self._m_xs, self._m_ys, self._m_sl, self._m_lsl)
+
+    def _set_marginals(self, offsets, xs, ys, slopes) -> None:
+        self._m_off = offsets
+        self._m_xs = xs
+        self._m_ys = ys
+        self._m_sl = slopes
+        self._m_lsl = np.log(slopes)
+
+    # ------------------------------------------------------------ using
+    def _check_fitted(self) -> None:
+        if not hasattr(self, "_forest"):
+            raise EventDataError("the density model is not fitted yet; call fit(events) first")
+
+    def _forward_chunk(self, C: np.ndarray):
+        m, d = C.shape
+        U = np.empty((m, d))
+        logd = np.zeros(m)
+        kernels.base_forward(C, U, logd, self._loc, self._scale, np.log(self._scale))
+        kernels.pwl_forward(U, logd, self._m_off, self._m_xs, self._m_ys, self._m_sl, self._m_lsl)
+        self._forest.forward(U, logd)
+        return U, logd
+
+    def score_samples(self, X) -> np.ndarray:
+        """Natural-log density of each event (n_events,), per unit volume of X's units.
+
+        Streams X in chunks of 65,536 events (memory bounded by the chunk)."""
+        self._check_fitted()
+        X = _check_matrix(X, "score", self.n_features_in_)
+        out = np.empty(X.shape[0])
+        for a in range(0, X.shape[0], CHUNK):
+            b = min(X.shape[0], a + CHUNK)
+            _, out[a:b] = self._forward_chunk(_chunk(X, a, b, "score"))
+        return out
+
+    def score(self, X) -> float:
+        """Mean log density of the events X (nats per event)."""
+        return float(np.mean(self.score_samples(X)))
+
+    def transform(self, X) -> np.ndarray:
+        """The full map into the unit cube (base, marginals, all trees): (n, d) in [0, 1]."""
+        self._check_fitted()
+        X = _check_matrix(X, "transform", self.n_features_in_)
+        out = np.empty(X.shape, dtype=np.float64)
+        for a in range(0, X.shape[0], CHUNK):
+            b = min(X.shape[0], a + CHUNK)
+            out[a:b], _ = self._forward_chunk(_chunk(X, a, b, "transform"))
+        return out
+
+    def inverse_transform(self, U) -> np.ndarray:
+        """Inverse of :meth:`transform`: points of [0, 1]^d back to event space (n, d)."""
+        self._check_fitted()
+        U = _check_matrix(U, "inverse_transform", self.n_features_in_)
+        out = np.empty(U.shape, dtype=np.float64)
+        for a in range(0, U.shape[0], CHUNK):
+            b = min(U.shape[0], a + CHUNK)
+            C = _chunk(U, a, b, "inverse_transform")
+            if (C < 0).any() or (C > 1).any():
+                raise EventDataError("inverse_transform: values must lie in the unit cube [0, 1]")
+            self._forest.inverse(C)
+            kernels.pwl_inverse(C, self._m_off, self._m_xs, self._m_ys, self._m_sl)
+            kernels.base_inverse(C, out[a:b], self._loc, self._scale)
+        return out
+
+    def sample(self, n: int, random_state=None) -> np.ndarray:
+        """Draw ``n`` events (n, d) from the fitted density (exact: inverse map of uniforms)."""
+        self._check_fitted()
+        rng = np.random.default_rng(random_state)
+        U = rng.random((int(n), self.n_features_in_))
+        tiny = 2.0 ** -53
+        np.clip(U, tiny, 1.0 - tiny, out=U)
+        return self.inverse_transform(U)
+
+    # ------------------------------------------------------------ files
+    def save(self, path) -> None:
+        """Write the fitted model to one ``.npz`` file (see :mod:`core.density.storage`)."""
+        from .storage import save_model
+        self._check_fitted()
+        save_model(self, path)
+
+    @classmethod
+    def load(cls, path) -> "AdditiveTreeDensity":
+        """Read a model written by :meth:`save`; raises ModelFileError for a bad file."""
+        from .storage import load_model
+        return load_model(cls, path)
+
+
+def compose_1d(forest: Forest):
+    """Compose a sequence of one-dimensional tree-CDFs on [0, 1] into one
+    monotone piecewise-linear map.
+
+    Returns knots ``xs`` (increasing, 0 .. 1), the map's values ``ys`` at the
+    knots and the exact slope of each piece (last entry unused, set to 1):
+    the slope is evaluated at the piece's midpoint as the product of the
+    trees' local slopes, so log densities are exact, not differences of
+    rounded values.
+    """
+    if forest.n_trees == 0 or forest.n_nodes == 0:
+        return np.array([0.0, 1.0]), np.array([0.0, 1.0]), np.ones(2)
+    knots = [np.array([0.0, 1.0])]
+    for t in range(forest.n_trees):
+        r = forest.roots[t]
+        if r < 0:
+            continue
+        stop = forest.roots[t + 1:]
+        stop = stop[stop >= 0]
+        end = int(stop.min()) if stop.size else forest.n_nodes
+        cuts = forest.cut[r:end].reshape(-1, 1).copy()
+        forest.prefix(t).inverse(cuts)
+        knots.append(cuts[:, 0])
+    xs = np.unique(np.clip(np.concatenate(knots), 0.0, 1.0))
+    mids = np.ascontiguousarray(((xs[:-1] + xs[1:]) / 2).reshape(-1, 1))
+    lmid = np.zeros(mids.shape[0])
+    forest.forward(mids, lmid)
+    ys = np.ascontiguousarray(xs.reshape(-1, 1)).copy()
+    forest.forward(ys, np.zeros(xs.size))
+    ys = np.maximum.accumulate(np.clip(ys[:, 0], 0.0, 1.0))
+    ys[0], ys[-1] = 0.0, 1.0
+    slopes = np.append(np.exp(lmid), 1.0)
+    return xs, ys, slopes

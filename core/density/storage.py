@@ -1,0 +1,171 @@
+"""Saving and loading an AdditiveTreeDensity as one ``.npz`` file.
+
+The file holds plain numeric arrays plus ``metadata``: a JSON string with
+the format name, the format version, the software version, the
+hyper-parameters, the fitted scalars and the research-use note.  It is read
+with ``allow_pickle=False``; every array is checked (shapes, index ranges,
+tree structure, probabilities in (0, 1), monotone knots) before use so a
+damaged or hand-edited file raises :class:`ModelFileError` naming the file
+instead of crashing the compiled kernels.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import zipfile
+
+import numpy as np
+
+from .. import RESEARCH_USE_NOTE, __version__
+from ..atomic import atomic_write
+from ..errors import ModelFileError
+from . import kernels
+from .tree import Forest
+
+FORMAT_NAME = "boscage-additive-tree-density"
+FORMAT_VERSION = 1
+
+_ARRAYS = ("loc", "scale", "frozen", "bounds", "m_off", "m_xs", "m_ys", "m_sl", "n_marginal_trees",
+           "roots", "dim", "cut", "lo", "hi", "theta", "left", "right", "learning_curve")
+
+
+def save_model(model, path) -> None:
+    """Write ``model`` to ``path`` (.npz) atomically, replacing an existing file."""
+    f = model._forest
+    meta = {
+        "format": FORMAT_NAME,
+        "format_version": FORMAT_VERSION,
+        "software_version": __version__,
+        "note": RESEARCH_USE_NOTE,
+        "params": model.get_params(),
+        "n_features_in": int(model.n_features_in_),
+        "n_trees": int(model.n_trees_),
+        "heldout_loglik": float(model.heldout_loglik_),
+        "n_events_fitted": int(getattr(model, "n_events_fitted_", 0)),
+        "stopped_by": getattr(model, "stopped_by_", ""),
+    }
+    arrays = dict(loc=model._loc, scale=model._scale, frozen=model._frozen, bounds=model.bounds_,
+                  m_off=model._m_off, m_xs=model._m_xs, m_ys=model._m_ys, m_sl=model._m_sl,
+                  n_marginal_trees=model.n_marginal_trees_, roots=f.roots, dim=f.dim, cut=f.cut,
+                  lo=f.lo, hi=f.hi, theta=f.theta, left=f.left, right=f.right,
+                  learning_curve=model.learning_curve_)
+    with atomic_write(path, "wb", overwrite=True) as handle:
+        np.savez(handle, metadata=np.array(json.dumps(meta)), **arrays)
+
+
+def _fail(path, problem: str) -> ModelFileError:
+    return ModelFileError(f"{os.path.basename(os.fspath(path))}: {problem} (file: {os.fspath(path)})")
+
+
+def load_model(cls, path):
+    """Read a model file written by :func:`save_model`."""
+    if not os.path.isfile(path):
+        raise _fail(path, "no such density model file")
+    try:
+        with np.load(path, allow_pickle=False) as z:
+            files = set(z.files)
+            if "metadata" not in files:
+                raise _fail(path, "not a density model file (no metadata)")
+            meta = json.loads(str(z["metadata"][()]))
+            if not isinstance(meta, dict) or meta.get("format") != FORMAT_NAME:
+                raise _fail(path, "not a density model file of this program")
+            version = meta.get("format_version")
+            if not isinstance(version, int) or version > FORMAT_VERSION:
+                raise _fail(path, f"written in model format version {version}, newer than this "
+                                  f"program reads ({FORMAT_VERSION}); update the program")
+            missing = [k for k in _ARRAYS if k not in files]
+            if missing:
+                raise _fail(path, f"damaged density model file: missing {', '.join(missing)}")
+            a = {k: z[k] for k in _ARRAYS}
+    except ModelFileError:
+        raise
+    except (OSError, ValueError, zipfile.BadZipFile, EOFError, KeyError, json.JSONDecodeError,
+            UnicodeDecodeError) as exc:
+        raise _fail(path, f"damaged or unreadable density model file ({exc})") from exc
+    try:
+        model = _build(cls, meta, a)
+    except (ValueError, TypeError, KeyError, IndexError) as exc:
+        raise _fail(path, f"damaged density model file ({exc})") from exc
+    return model
+
+
+def _arr(a, key, dtype, shape=None):
+    v = np.asarray(a[key])
+    if v.dtype.kind not in "biuf":
+        raise ValueError(f"{key} is not numeric")
+    v = np.ascontiguousarray(v, dtype=dtype)
+    if shape is not None and v.shape != shape:
+        raise ValueError(f"{key} has shape {v.shape}, expected {shape}")
+    return v
+
+
+def _build(cls, meta, a):
+    d = int(meta["n_features_in"])
+    if d < 1:
+        raise ValueError("no channels")
+    params = dict(meta["params"])
+    model = cls(**{k: v for k, v in params.items() if k in cls._PARAMS})
+    loc = _arr(a, "loc", np.float64, (d,))
+    scale = _arr(a, "scale", np.float64, (d,))
+    frozen = _arr(a, "frozen", np.bool_, (d,))
+    bounds = _arr(a, "bounds", np.float64, (2, d))
+    if not (np.isfinite(loc).all() and np.isfinite(scale).all() and (scale > 0).all()):
+        raise ValueError("invalid channel location/scale")
+    m_off = _arr(a, "m_off", np.int64, (d + 1,))
+    m_xs = _arr(a, "m_xs", np.float64)
+    m_ys = _arr(a, "m_ys", np.float64, m_xs.shape)
+    m_sl = _arr(a, "m_sl", np.float64, m_xs.shape)
+    if m_off[0] != 0 or m_off[-1] != m_xs.size or (np.diff(m_off) < 2).any():
+        raise ValueError("inconsistent marginal map offsets")
+    for j in range(d):
+        xs, ys = m_xs[m_off[j]:m_off[j + 1]], m_ys[m_off[j]:m_off[j + 1]]
+        if xs[0] != 0 or xs[-1] != 1 or ys[0] != 0 or ys[-1] != 1 or (np.diff(xs) <= 0).any() \
+                or (np.diff(ys) < 0).any():
+            raise ValueError(f"marginal map of channel {j} is not a monotone map of [0, 1]")
+    if not (np.isfinite(m_sl).all() and (m_sl > 0).all()):
+        raise ValueError("marginal slopes must be positive")
+    roots = _arr(a, "roots", np.int64)
+    dim = _arr(a, "dim", np.int64)
+    m = dim.size
+    cut = _arr(a, "cut", np.float64, (m,))
+    lo = _arr(a, "lo", np.float64, (m,))
+    hi = _arr(a, "hi", np.float64, (m,))
+    theta = _arr(a, "theta", np.float64, (m,))
+    left = _arr(a, "left", np.int64, (m,))
+    right = _arr(a, "right", np.int64, (m,))
+    if ((dim < 0) | (dim >= d)).any():
+        raise ValueError("split dimension out of range")
+    if not ((lo >= 0) & (lo < cut) & (cut < hi) & (hi <= 1)).all():
+        raise ValueError("split locations outside their node")
+    if not ((theta > 0) & (theta < 1)).all():
+        raise ValueError("split probabilities must lie strictly between 0 and 1")
+    idx = np.arange(m)
+    for child in (left, right):
+        if ((child != -1) & ((child <= idx) | (child >= m))).any():
+            raise ValueError("tree structure is broken (child index)")
+    if ((roots < -1) | (roots >= m)).any():
+        raise ValueError("tree root index out of range")
+    # each node has exactly one parent or is a root: guarantees finite paths
+    refs = np.concatenate([left[left >= 0], right[right >= 0], roots[roots >= 0]])
+    if refs.size != m or np.unique(refs).size != m:
+        raise ValueError("tree structure is broken (nodes shared or orphaned)")
+    forest = Forest(roots, dim, cut, lo, hi, theta, left, right)
+    if forest.max_depth() > kernels.MAX_PATH:
+        raise ValueError("a tree is deeper than this program supports")
+    curve = _arr(a, "learning_curve", np.float64)
+    n_trees = int(meta["n_trees"])
+    if n_trees != roots.size:
+        raise ValueError("tree count does not match the metadata")
+    model._loc, model._scale, model._frozen = loc, scale, frozen
+    model.bounds_ = bounds
+    model._set_marginals(m_off, m_xs, m_ys, m_sl)
+    model.n_marginal_trees_ = _arr(a, "n_marginal_trees", np.int64, (d,))
+    model._forest = forest
+    model.n_features_in_ = d
+    model.n_trees_ = n_trees
+    model.learning_curve_ = curve
+    model.heldout_loglik_ = float(meta["heldout_loglik"])
+    model.n_events_fitted_ = int(meta.get("n_events_fitted", 0))
+    model.stopped_by_ = str(meta.get("stopped_by", ""))
+    return model

@@ -1,0 +1,220 @@
+"""Tree measures on the unit cube: greedy maximum-likelihood fit with shrinkage,
+and a flat container (:class:`Forest`) for a sequence of them.
+
+A tree measure is a recursive binary partition of the cube [0, 1]^d in which
+the split of node A (dimension j, location c) carries theta, the probability
+of the left child given A.  Fitting (:func:`fit_tree`) grows the partition
+level by level on equal-width candidate cuts of each node's extent, choosing
+per node the cut with the largest gain in training log-likelihood of the
+*shrunk* measure
+
+    P(A) = (1 - lr) vol(A) + lr n_A / N,
+
+i.e. the mixture (1 - lr) uniform + lr (piecewise-constant maximum likelihood
+fit on the same partition).  That mixture is again a tree measure on the same
+partition with theta = P(left) / P(node) in (0, 1) for lr < 1, so every local
+CDF slope is positive and finite.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import kernels
+
+
+@dataclass
+class Forest:
+    """A sequence of tree measures stored as flat node arrays (see :mod:`kernels`).
+
+    ``roots`` (n_trees,) int64; node arrays ``dim`` int64, ``cut``, ``lo``,
+    ``hi``, ``theta`` float64, ``left``/``right`` int64 (absolute indices, -1
+    for a leaf).  Derived arrays (mid, slopes, log slopes) are rebuilt by
+    :meth:`finish`.
+    """
+
+    roots: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    dim: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    cut: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    lo: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    hi: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    theta: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    left: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    right: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+
+    def __post_init__(self):
+        self.finish()
+
+    @property
+    def n_trees(self) -> int:
+        return int(self.roots.shape[0])
+
+    @property
+    def n_nodes(self) -> int:
+        return int(self.dim.shape[0])
+
+    def finish(self) -> None:
+        """Recompute the derived arrays used by the kernels."""
+        width = self.hi - self.lo
+        self.mid = self.lo + self.theta * width
+        with np.errstate(divide="ignore", invalid="ignore"):
+            self.sl = self.theta * width / (self.cut - self.lo)
+            self.sr = (1.0 - self.theta) * width / (self.hi - self.cut)
+        self.lsl = np.log(self.sl)
+        self.lsr = np.log(self.sr)
+
+    def append(self, tree: "Forest") -> None:
+        """Append the trees of ``tree`` (node indices shifted)."""
+        shift = self.n_nodes
+        roots = np.where(tree.roots >= 0, tree.roots + shift, -1)
+        self.roots = np.concatenate([self.roots, roots])
+        self.dim = np.concatenate([self.dim, tree.dim])
+        self.cut = np.concatenate([self.cut, tree.cut])
+        self.lo = np.concatenate([self.lo, tree.lo])
+        self.hi = np.concatenate([self.hi, tree.hi])
+        self.theta = np.concatenate([self.theta, tree.theta])
+        self.left = np.concatenate([self.left, np.where(tree.left >= 0, tree.left + shift, -1)])
+        self.right = np.concatenate([self.right, np.where(tree.right >= 0, tree.right + shift, -1)])
+        self.finish()
+
+    def prefix(self, n_trees: int) -> "Forest":
+        """The first ``n_trees`` trees (nodes of later trees dropped)."""
+        n_trees = int(n_trees)
+        if n_trees >= self.n_trees:
+            keep = self.n_nodes
+        else:
+            later = self.roots[n_trees:]
+            later = later[later >= 0]
+            keep = int(later.min()) if later.size else self.n_nodes
+        return Forest(self.roots[:n_trees].copy(), self.dim[:keep].copy(), self.cut[:keep].copy(),
+                      self.lo[:keep].copy(), self.hi[:keep].copy(), self.theta[:keep].copy(),
+                      self.left[:keep].copy(), self.right[:keep].copy())
+
+    def with_dim(self, j: int) -> "Forest":
+        """A copy whose splits all act on dimension ``j`` (for one-channel trees)."""
+        out = Forest(self.roots.copy(), np.full_like(self.dim, j), self.cut.copy(), self.lo.copy(),
+                     self.hi.copy(), self.theta.copy(), self.left.copy(), self.right.copy())
+        return out
+
+    def forward(self, U: np.ndarray, logd: np.ndarray) -> None:
+        """Apply all trees to U (n, d) in place, adding log densities to logd (n,)."""
+        if self.n_trees:
+            kernels.forest_forward(U, logd, self.roots, self.dim, self.cut, self.lo, self.mid,
+                                   self.sl, self.sr, self.lsl, self.lsr, self.left, self.right)
+
+    def inverse(self, U: np.ndarray) -> None:
+        """Undo :meth:`forward` in place."""
+        if self.n_trees:
+            kernels.forest_inverse(U, self.roots, self.dim, self.cut, self.lo, self.mid,
+                                   self.sl, self.sr, self.left, self.right)
+
+    def max_depth(self) -> int:
+        """Depth of the deepest path (number of split nodes on it)."""
+        depth = np.zeros(self.n_nodes, np.int64)
+        best = 0
+        for m in range(self.n_nodes):  # parents precede children
+            if depth[m] == 0:
+                depth[m] = 1
+            for c in (self.left[m], self.right[m]):
+                if c >= 0:
+                    depth[c] = depth[m] + 1
+            best = max(best, int(depth[m]))
+        return best
+
+
+def fit_tree(R: np.ndarray, learning_rate: float, max_depth: int, n_bins: int, min_leaf: int,
+             allowed: np.ndarray | None = None) -> Forest:
+    """Fit one shrunk tree measure to events R (n, d) in the unit cube.
+
+    Growth is level by level up to ``max_depth`` splits on any path; a node
+    is split at the equal-width candidate (``n_bins`` bins of its extent on
+    each allowed dimension) with the largest positive gain leaving at least
+    ``min_leaf`` events on each side.  Returns a one-tree :class:`Forest`
+    (possibly without splits).
+    """
+    n, d = R.shape
+    lr = float(learning_rate)
+    if allowed is None:
+        allowed = np.ones(d, np.bool_)
+    node_of = np.zeros(n, np.int64)
+    # per active node at the current level
+    box_lo = np.zeros((1, d))
+    box_hi = np.ones((1, d))
+    counts = np.array([n], np.int64)
+    parent_link = [(-1, False)]             # (global parent id, is_left) per active node
+
+    dims, cuts, los, his, thetas, lefts, rights = [], [], [], [], [], [], []
+
+    def p_mix(cnt, vol):
+        return (1.0 - lr) * vol + lr * cnt / n
+
+    for _level in range(int(max_depth)):
+        n_nodes = box_lo.shape[0]
+        if n_nodes == 0:
+            break
+        width = box_hi - box_lo
+        vol = np.prod(width, axis=1)
+        hist = kernels.level_histogram(R, node_of, box_lo, 1.0 / width, n_nodes, int(n_bins),
+                                       allowed)
+        bdim, bbin, _gain, nleft = kernels.best_splits(hist, counts, vol, lr, float(n), int(min_leaf),
+                                                       allowed)
+        split_cut = np.zeros(n_nodes)
+        child_l = np.full(n_nodes, -1, np.int64)
+        child_r = np.full(n_nodes, -1, np.int64)
+        new_lo, new_hi, new_counts, new_links = [], [], [], []
+        for k in range(n_nodes):
+            j = int(bdim[k])
+            if j < 0:
+                continue
+            a, b = box_lo[k, j], box_hi[k, j]
+            c = a + (bbin[k] + 1.0) / n_bins * (b - a)
+            split_cut[k] = c
+            gid = len(dims)
+            pa, is_left = parent_link[k]
+            if pa >= 0:
+                if is_left:
+                    lefts[pa] = gid
+                else:
+                    rights[pa] = gid
+            nl = int(nleft[k])
+            nr = int(counts[k]) - nl
+            frac = (c - a) / (b - a)
+            pl = p_mix(nl, vol[k] * frac)
+            pr = p_mix(nr, vol[k] * (1.0 - frac))
+            dims.append(j)
+            cuts.append(c)
+            los.append(a)
+            his.append(b)
+            thetas.append(pl / (pl + pr))
+            lefts.append(-1)
+            rights.append(-1)
+            for cnt, is_l in ((nl, True), (nr, False)):
+                if cnt >= 2 * min_leaf:
+                    lo_c = box_lo[k].copy()
+                    hi_c = box_hi[k].copy()
+                    if is_l:
+                        hi_c[j] = c
+                        child_l[k] = len(new_lo)
+                    else:
+                        lo_c[j] = c
+                        child_r[k] = len(new_lo)
+                    new_lo.append(lo_c)
+                    new_hi.append(hi_c)
+                    new_counts.append(cnt)
+                    new_links.append((gid, is_l))
+        if not new_lo or _level == max_depth - 1:
+            break
+        kernels.route_events(R, node_of, bdim, split_cut, child_l, child_r)
+        box_lo = np.array(new_lo)
+        box_hi = np.array(new_hi)
+        counts = np.array(new_counts, np.int64)
+        parent_link = new_links
+
+    if not dims:
+        return Forest(roots=np.array([-1], np.int64))
+    return Forest(roots=np.array([0], np.int64), dim=np.array(dims, np.int64),
+                  cut=np.array(cuts), lo=np.array(los), hi=np.array(his),
+                  theta=np.array(thetas), left=np.array(lefts, np.int64),
+                  right=np.array(rights, np.int64))
