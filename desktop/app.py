@@ -140,6 +140,12 @@ def run_screenshot(out_path: str, paths: list[str], size=(1400, 900), timeout_s:
     if not outcome.get("ok", False):
         print(f"boscage: the fit did not finish: {win.last_fit_problem or 'timed out'}", file=sys.stderr)
         return 1
+    if win.fit_running():  # contours are drawn after the fit
+        loop2 = QEventLoop()
+        win.contoursEnded.connect(lambda _ok: loop2.quit())
+        QTimer.singleShot(int(timeout_s * 1000), loop2.quit)
+        if win.fit_running():
+            loop2.exec()
     app.processEvents()
     win.resize(*size)
     app.processEvents()

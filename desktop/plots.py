@@ -141,9 +141,12 @@ class DensityMap(QWidget):
             plot.setLabel("bottom", _axis_label(self.names[ix], labels[ix]))
             plot.setLabel("left", _axis_label(self.names[iy], labels[iy]))
             plot.getViewBox().setBackgroundColor("#11161a")
-            img = pg.ImageItem(axisOrder="row-major")
+            img = pg.ImageItem(np.zeros((BINS, BINS, 4), dtype=np.uint8), axisOrder="row-major")
+            # setRect needs the image's size, so it comes after the first image
             img.setRect(QRectF(ext[0], ext[2], ext[1] - ext[0], ext[3] - ext[2]))
             plot.addItem(img)
+            for ax in ("bottom", "left"):
+                plot.getAxis(ax).enableAutoSIPrefix(False)
             hl = pg.ScatterPlotItem(size=4, pen=None, brush=pg.mkBrush(style.RARE), pxMode=True)
             hl.setZValue(5)
             plot.addItem(hl)
@@ -218,13 +221,14 @@ class DensityMap(QWidget):
             cell.image.setImage(rgba.reshape(BINS, BINS, 4), autoLevels=False, levels=(0, 255))
         if self.colourbar is None:
             self.colourbar = pg.ColorBarItem(values=self.levels, colorMap=cmap, interactive=False,
-                                             width=14, label=self.colour_label, colorMapMenu=False)
+                                             width=14, colorMapMenu=False)
+            self.colourbar.axis.setLabel(self.colour_label)
             self.view.addItem(self.colourbar, row=1, col=self._columns,
                               rowspan=max(1, (len(self.cells) + self._columns - 1) // self._columns))
         else:
             self.colourbar.setColorMap(cmap)
             self.colourbar.setLevels(self.levels)
-            self.colourbar.getAxis("right").setLabel(self.colour_label)
+            self.colourbar.axis.setLabel(self.colour_label)
 
     def _redraw_highlight(self) -> None:
         mask = self.highlight_mask

@@ -39,7 +39,7 @@ QPushButton {{ background: {MOSS}; color: white; border: none; border-radius: 4p
 QPushButton:hover {{ background: #4d7f60; }}
 QPushButton:disabled {{ background: #a9b5ad; color: #eef0ee; }}
 QPushButton[flat="true"] {{ background: transparent; color: {MOSS}; }}
-QListWidget, QTableWidget, QTableView, QTreeWidget, QPlainTextEdit, QLineEdit, QSpinBox, QDoubleSpinBox, QComboBox {{
+QListWidget, QTableWidget, QTableView, QTreeWidget, QPlainTextEdit, QLineEdit {{
     background: white; border: 1px solid {PAPER_DARK}; border-radius: 3px; selection-background-color: {MOSS}; selection-color: white; }}
 QHeaderView::section {{ background: {PAPER_DARK}; border: none; padding: 3px 6px; color: {INK}; }}
 QTabWidget::pane {{ border: 1px solid {PAPER_DARK}; background: {PAPER}; }}

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 import pyqtgraph as pg
-from PySide6.QtCore import Signal
+from PySide6.QtCore import Qt, Signal
 from PySide6.QtWidgets import (QDoubleSpinBox, QFormLayout, QHBoxLayout, QLabel, QProgressBar,
                                QPushButton, QSpinBox, QVBoxLayout, QWidget)
 
@@ -36,7 +36,7 @@ class FitPanel(QWidget):
         form = QFormLayout()
         self.n_trees = QSpinBox()
         self.n_trees.setRange(1, 5000)
-        self.n_trees.setValue(200)
+        self.n_trees.setValue(400)
         self.n_trees.setToolTip("Largest number of trees. Fitting stops earlier when the "
                                 "held-out events stop gaining likelihood (early stopping).")
         self.learning_rate = QDoubleSpinBox()
@@ -46,21 +46,20 @@ class FitPanel(QWidget):
         self.learning_rate.setValue(0.1)
         self.learning_rate.setToolTip("Shrinkage of each tree toward the uniform: smaller learns "
                                       "more slowly but usually generalises better.")
-        self.max_leaves = QSpinBox()
-        self.max_leaves.setRange(2, 512)
-        self.max_leaves.setValue(32)
-        self.max_leaves.setToolTip("Size of each tree (number of leaves). Larger trees capture "
-                                   "finer structure in one step.")
+        self.max_depth = QSpinBox()
+        self.max_depth.setRange(1, 12)
+        self.max_depth.setValue(5)
+        self.max_depth.setToolTip("Depth of each tree (at most 2^depth leaves). Deeper trees capture "
+                                  "finer structure in one step.")
         self.max_events = QSpinBox()
-        self.max_events.setRange(0, 10_000_000)
+        self.max_events.setRange(1000, 10_000_000)
         self.max_events.setSingleStep(10_000)
-        self.max_events.setSpecialValueText("all events")
-        self.max_events.setValue(0)
+        self.max_events.setValue(200_000)
         self.max_events.setToolTip("Fit on at most this many events (a fixed-seed random subsample); "
-                                   "every event is still scored. 0 = all events.")
+                                   "every event is still scored.")
         form.addRow("Trees (most)", self.n_trees)
         form.addRow("Learning rate", self.learning_rate)
-        form.addRow("Leaves per tree", self.max_leaves)
+        form.addRow("Tree depth", self.max_depth)
         form.addRow("Fit on", self.max_events)
         lay.addLayout(form)
 
@@ -80,6 +79,8 @@ class FitPanel(QWidget):
         self.status = QLabel("Not fitted")
         self.status.setObjectName("Note")
         self.status.setWordWrap(True)
+        self.status.setMinimumHeight(48)
+        self.status.setAlignment(Qt.AlignTop | Qt.AlignLeft)
         lay.addWidget(self.status)
 
         self.curve_plot = pg.PlotWidget(background=style.PAPER)
@@ -94,8 +95,7 @@ class FitPanel(QWidget):
         self.curve_plot.setToolTip("Mean log-likelihood of held-out events (nats per event) after each "
                                    "tree: it rises while the fit improves and flattens when it is done.")
         self.curve = self.curve_plot.plot([], [], pen=pg.mkPen(style.MOSS, width=2))
-        lay.addWidget(self.curve_plot)
-        lay.addStretch(1)
+        lay.addWidget(self.curve_plot, 1)
         self._xs: list[int] = []
         self._ys: list[float] = []
         self.fit_button.clicked.connect(self.fitRequested)
@@ -104,15 +104,17 @@ class FitPanel(QWidget):
     def engine_settings(self) -> dict:
         """The engine keyword arguments chosen here."""
         return {"n_trees": int(self.n_trees.value()), "learning_rate": float(self.learning_rate.value()),
-                "max_leaves": int(self.max_leaves.value())}
+                "max_depth": int(self.max_depth.value()), "max_fit_events": int(self.max_events.value())}
 
     def set_engine_settings(self, engine: dict) -> None:
         if "n_trees" in engine:
             self.n_trees.setValue(int(engine["n_trees"]))
         if "learning_rate" in engine:
             self.learning_rate.setValue(float(engine["learning_rate"]))
-        if "max_leaves" in engine:
-            self.max_leaves.setValue(int(engine["max_leaves"]))
+        if "max_depth" in engine:
+            self.max_depth.setValue(int(engine["max_depth"]))
+        if "max_fit_events" in engine:
+            self.max_events.setValue(int(engine["max_fit_events"]))
 
     # -- progress -------------------------------------------------------------
     def started(self) -> None:

@@ -1,0 +1,310 @@
+"""Dialogs: export selected events, run a recipe over a folder."""
+
+from __future__ import annotations
+
+import csv
+import os
+
+import numpy as np
+from PySide6.QtCore import Qt, QUrl, Signal
+from PySide6.QtGui import QDesktopServices
+from PySide6.QtWidgets import (QComboBox, QDialog, QDialogButtonBox, QFileDialog, QFormLayout, QHBoxLayout,
+                               QHeaderView, QLabel, QLineEdit, QProgressBar, QPushButton, QSpinBox,
+                               QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget, QCheckBox)
+
+from core import RESEARCH_USE_NOTE
+from core.errors import ExportError
+
+from desktop.app import guarded, show_error
+from desktop.workers import Job
+
+
+def _path_row(parent: QWidget, edit: QLineEdit, choose) -> QWidget:
+    w = QWidget(parent)
+    lay = QHBoxLayout(w)
+    lay.setContentsMargins(0, 0, 0, 0)
+    lay.addWidget(edit, 1)
+    b = QPushButton("Choose...")
+    b.setProperty("flat", True)
+    b.clicked.connect(choose)
+    lay.addWidget(b)
+    return w
+
+
+def analysis_columns(analysis) -> dict:
+    """Per-event columns an export carries after a fit (log density, rarity,
+    cleaning flag, contrast), as the batch writes them."""
+    from core import batch
+
+    fn = getattr(batch, "export_columns", None) or getattr(batch, "_export_columns")
+    return fn(analysis)
+
+
+class ExportDialog(QDialog):
+    """Choose which events (all, rare, enriched, a region) and where to write them."""
+
+    def __init__(self, parent, tube, selected_regions=()) -> None:
+        super().__init__(parent)
+        self.setWindowTitle("Export events")
+        self.tube = tube
+        lay = QVBoxLayout(self)
+        form = QFormLayout()
+        self.which = QComboBox()
+        self.which.addItem(f"All events ({tube.n_events:,})", ("all", None))
+        if tube.rare_mask is not None:
+            self.which.addItem(f"Rare events ({int(tube.rare_mask.sum()):,})", ("rare", None))
+        a = tube.analysis
+        if a is not None and a.enriched is not None:
+            self.which.addItem(f"Enriched events ({int(a.enriched.sum()):,})", ("enriched", None))
+        for s in tube.stats:
+            self.which.addItem(f"Region {s.name} ({s.count:,})", ("region", s.name))
+        if selected_regions:
+            i = self.which.findData(("region", selected_regions[0]))
+            if i >= 0:
+                self.which.setCurrentIndex(i)
+        self.which.setToolTip("Which events to write")
+        self.format = QComboBox()
+        self.format.addItem("FCS 3.1 (instrument values + added columns)", "fcs")
+        self.format.addItem("CSV (transformed values + added columns)", "csv")
+        self.format.setToolTip("FCS keeps the recorded (uncompensated) values and the file's spillover "
+                               "keyword; CSV holds the values as plotted")
+        stem = os.path.splitext(tube.path)[0]
+        self.path = QLineEdit(f"{stem}-selected.fcs")
+        form.addRow("Events", self.which)
+        form.addRow("Format", self.format)
+        form.addRow("File", _path_row(self, self.path, self._choose))
+        lay.addLayout(form)
+        note = QLabel(RESEARCH_USE_NOTE)
+        note.setObjectName("Note")
+        note.setWordWrap(True)
+        lay.addWidget(note)
+        buttons = QDialogButtonBox(QDialogButtonBox.Save | QDialogButtonBox.Cancel)
+        buttons.accepted.connect(self.export)
+        buttons.rejected.connect(self.reject)
+        lay.addWidget(buttons)
+        self.format.currentIndexChanged.connect(self._format_changed)
+        self.written: str | None = None
+
+    def _format_changed(self) -> None:
+        stem, _ = os.path.splitext(self.path.text())
+        self.path.setText(stem + (".fcs" if self.format.currentData() == "fcs" else ".csv"))
+
+    def _choose(self) -> None:
+        ext = self.format.currentData()
+        path, _ = QFileDialog.getSaveFileName(self, "Export events", self.path.text(),
+                                              "FCS files (*.fcs)" if ext == "fcs" else "CSV files (*.csv)")
+        if path:
+            self.path.setText(path)
+            self._overwrite = True
+
+    def mask(self):
+        kind, name = self.which.currentData()
+        t = self.tube
+        if kind == "all":
+            return np.ones(t.n_events, dtype=bool)
+        if kind == "rare":
+            return t.rare_mask
+        if kind == "enriched":
+            return t.analysis.enriched
+        return t.masks[name]
+
+    @guarded("export")
+    def export(self) -> None:
+        from core.export import export_events_csv, export_events_fcs
+        from core.recipe import recipe_digest
+
+        path = self.path.text().strip()
+        if not path:
+            raise ExportError("choose a file to write")
+        t = self.tube
+        mask = self.mask()
+        extra = {} if t.analysis is None else dict(analysis_columns(t.analysis))
+        for name, m in t.masks.items():
+            extra[f"region {name}"] = np.asarray(m, dtype=float)
+        overwrite = getattr(self, "_overwrite", False)
+        if self.format.currentData() == "fcs":
+            digest = recipe_digest(t.recipe_with_regions())
+            self.written = export_events_fcs(path, t.event_file, mask, extra, digest, overwrite=overwrite,
+                                             missing_value=0.0)
+        else:
+            self.written = export_events_csv(path, t.names, t.values, mask, extra, overwrite=overwrite,
+                                             source_paths=[t.path])
+        parent = self.parent()
+        if parent is not None and hasattr(parent, "statusBar"):
+            parent.statusBar().showMessage(f"Wrote {int(np.count_nonzero(mask)):,} events to {self.written}", 8000)
+        self.accept()
+
+
+class BatchDialog(QDialog):
+    """Run the current recipe over every FCS file of a folder, with progress and a summary."""
+
+    ended = Signal(bool)
+
+    def __init__(self, parent, recipe) -> None:
+        super().__init__(parent)
+        self.setWindowTitle("Run a recipe over a folder")
+        self.resize(760, 520)
+        self.recipe = recipe
+        self.job: Job | None = None
+        self.result = None
+        lay = QVBoxLayout(self)
+        form = QFormLayout()
+        self.input = QLineEdit()
+        self.output = QLineEdit()
+        self.control = QLineEdit()
+        self.control.setPlaceholderText("optional: contrast every file with this control tube")
+        self.workers = QSpinBox()
+        self.workers.setRange(1, max(1, os.cpu_count() or 1))
+        self.workers.setValue(1)
+        self.workers.setToolTip("Files analysed at the same time (one process each)")
+        self.force = QCheckBox("Redo files already finished in the output folder")
+        form.addRow("FCS folder", _path_row(self, self.input, self._choose_input))
+        form.addRow("Output folder", _path_row(self, self.output, self._choose_output))
+        form.addRow("Control tube", _path_row(self, self.control, self._choose_control))
+        form.addRow("Parallel files", self.workers)
+        form.addRow("", self.force)
+        lay.addLayout(form)
+        self.recipe_label = QLabel("Recipe: the current tube's recipe (channels, scales, compensation, "
+                                   "engine, rarity and regions)" if recipe is not None else
+                                   "Recipe: the default recipe of the folder's first file")
+        self.recipe_label.setObjectName("Note")
+        self.recipe_label.setWordWrap(True)
+        lay.addWidget(self.recipe_label)
+        self.progress = QProgressBar()
+        lay.addWidget(self.progress)
+        self.status = QLabel("")
+        self.status.setWordWrap(True)
+        lay.addWidget(self.status)
+        self.table = QTableWidget(0, 0)
+        self.table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeToContents)
+        self.table.verticalHeader().setVisible(False)
+        lay.addWidget(self.table, 1)
+        row = QHBoxLayout()
+        self.run_button = QPushButton("Run")
+        self.stop_button = QPushButton("Stop")
+        self.stop_button.setEnabled(False)
+        self.open_csv = QPushButton("Open summary CSV")
+        self.open_csv.setEnabled(False)
+        self.close_button = QPushButton("Close")
+        for b in (self.run_button, self.stop_button, self.open_csv):
+            row.addWidget(b)
+        row.addStretch(1)
+        row.addWidget(self.close_button)
+        lay.addLayout(row)
+        note = QLabel(RESEARCH_USE_NOTE)
+        note.setObjectName("Note")
+        lay.addWidget(note)
+        self.run_button.clicked.connect(self.run)
+        self.stop_button.clicked.connect(self.stop)
+        self.open_csv.clicked.connect(self.open_summary)
+        self.close_button.clicked.connect(self.close)
+
+    def _choose_input(self) -> None:
+        d = QFileDialog.getExistingDirectory(self, "Folder of FCS files", self.input.text())
+        if d:
+            self.input.setText(d)
+            if not self.output.text():
+                self.output.setText(os.path.join(os.path.dirname(d), os.path.basename(d) + "-boscage"))
+
+    def _choose_output(self) -> None:
+        d = QFileDialog.getExistingDirectory(self, "Output folder", self.output.text())
+        if d:
+            self.output.setText(d)
+
+    def _choose_control(self) -> None:
+        p, _ = QFileDialog.getOpenFileName(self, "Control tube", self.input.text(), "FCS files (*.fcs *.FCS)")
+        if p:
+            self.control.setText(p)
+
+    @guarded("batch")
+    def run(self) -> None:
+        from core.batch import run_batch
+        from core.errors import RecipeError
+
+        src, out = self.input.text().strip(), self.output.text().strip()
+        if not src or not out:
+            raise RecipeError("choose the folder of FCS files and an output folder")
+        control = self.control.text().strip() or None
+        recipe = self.recipe
+        workers = int(self.workers.value())
+        force = self.force.isChecked()
+
+        def work(progress):
+            return run_batch(src, out, recipe=recipe, control=control, workers=workers, force=force,
+                             progress=progress)
+
+        self.job = Job(work, "batch", self)
+        self.job.progressed.connect(self._progress)
+        self.job.finished.connect(self._done)
+        self.job.cancelled.connect(lambda: self._stopped("Stopped."))
+        self.job.failed.connect(self._failed)
+        self.run_button.setEnabled(False)
+        self.stop_button.setEnabled(True)
+        self.progress.setRange(0, 0)
+        self.status.setText("Running...")
+        self.job.start()
+
+    def stop(self) -> None:
+        if self.job is not None:
+            self.job.cancel()
+            self.status.setText("Stopping after the files in progress...")
+
+    def _progress(self, done, total, row) -> None:
+        if total:
+            self.progress.setRange(0, int(total))
+            self.progress.setValue(int(done))
+        if isinstance(row, dict):
+            self.status.setText(f"{done} of {total}: {row.get('file', '')} — {row.get('status', '')}")
+
+    def _done(self, result) -> None:
+        self.result = result
+        self.run_button.setEnabled(True)
+        self.stop_button.setEnabled(False)
+        self.progress.setRange(0, 1)
+        self.progress.setValue(1)
+        ok = sum(1 for r in result.rows if r.get("status") == "ok")
+        self.status.setText(f"{ok} of {len(result.rows)} files analysed in {result.seconds:.1f} s"
+                            + (" (stopped early)" if result.interrupted else "")
+                            + f". Summary: {result.summary_path}")
+        self.show_summary(result.summary_path)
+        self.open_csv.setEnabled(True)
+        self.job = None
+        self.ended.emit(True)
+
+    def _stopped(self, text: str) -> None:
+        self.run_button.setEnabled(True)
+        self.stop_button.setEnabled(False)
+        self.progress.setRange(0, 1)
+        self.status.setText(text)
+        self.job = None
+        self.ended.emit(False)
+
+    def _failed(self, exc, tb) -> None:
+        self._stopped(f"The batch failed: {exc}")
+        show_error(self, "batch", exc, tb)
+
+    def show_summary(self, path: str) -> None:
+        """Fill the table from the summary CSV the batch wrote."""
+        with open(path, newline="", encoding="utf-8") as handle:
+            rows = [r for r in csv.reader(handle) if r and not r[0].startswith("#")]
+        if not rows:
+            return
+        header, body = rows[0], rows[1:]
+        self.table.setColumnCount(len(header))
+        self.table.setHorizontalHeaderLabels(header)
+        self.table.setRowCount(len(body))
+        for i, r in enumerate(body):
+            for j, text in enumerate(r):
+                item = QTableWidgetItem(text)
+                item.setFlags(Qt.ItemIsSelectable | Qt.ItemIsEnabled)
+                self.table.setItem(i, j, item)
+
+    def open_summary(self) -> None:
+        if self.result is not None:
+            QDesktopServices.openUrl(QUrl.fromLocalFile(self.result.summary_path))
+
+    def closeEvent(self, event) -> None:
+        if self.job is not None:
+            self.job.cancel()
+            self.job.wait(30000)
+        event.accept()

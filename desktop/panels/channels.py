@@ -1,0 +1,258 @@
+"""The "Channels" panel: which channels the density uses, each channel's scale
+(transform and parameters) and a live histogram of the transformed values.
+
+Transforms are built by :func:`core.transforms.make_transform` from a spec dict;
+this panel only edits specs and shows their effect.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pyqtgraph as pg
+from PySide6.QtCore import Qt, QTimer, Signal
+from PySide6.QtWidgets import (QAbstractItemView, QComboBox, QDoubleSpinBox, QFormLayout, QHBoxLayout,
+                               QHeaderView, QLabel, QPushButton, QTableWidget, QTableWidgetItem,
+                               QVBoxLayout, QWidget)
+
+from desktop import style
+
+#: Editable parameters of each transform kind: (key, label, tooltip, low, high, default).
+PARAMETERS = {
+    "linear": [("scale", "Scale", "Multiply the values by this factor.", -1e9, 1e9, 1.0),
+               ("offset", "Offset", "Add this after scaling (in scaled units).", -1e9, 1e9, 0.0)],
+    "log": [("floor", "Floor", "Values below the floor are raised to it before the logarithm "
+             "(instrument units; common practice: 1).", 1e-9, 1e9, 1.0)],
+    "arcsinh": [("cofactor", "Cofactor", "arcsinh(x / cofactor): linear near zero, logarithmic far from it. "
+                 "Common practice: about 150 for fluorescence detectors, 5 for mass channels.",
+                 1e-6, 1e9, 150.0)],
+    "logicle": [("T", "Top (T)", "Largest data value of the display (usually the channel range).", 1.0, 1e12, 262144.0),
+                ("W", "Linear width (W)", "Width of the near-linear region around zero, in decades.", 0.0, 10.0, 0.5),
+                ("M", "Decades (M)", "Number of decades the display covers.", 1.0, 10.0, 4.5),
+                ("A", "Extra negative (A)", "Additional decades of negative values shown.", 0.0, 10.0, 0.0)],
+}
+KIND_LABELS = {"linear": "linear", "log": "log", "arcsinh": "arcsinh", "logicle": "logicle"}
+
+
+class ChannelsPanel(QWidget):
+    """Channels table (use in fit, name, label, scale) plus an editor for one channel.
+
+    ``changed`` is emitted (debounced) after the analyst changes a scale or the
+    set of fitted channels; read :meth:`specs` and :meth:`fit_channels`.
+    """
+
+    changed = Signal()
+    pairsRequested = Signal()
+
+    def __init__(self, parent: QWidget | None = None) -> None:
+        super().__init__(parent)
+        self._names: list[str] = []
+        self._labels: list[str] = []
+        self._specs: dict[str, dict] = {}
+        self._values = None  # callable channel -> compensated values (n_events,)
+        self.ranges: dict[str, float] = {}  # channel -> $PnR, the logicle default top
+        self._filling = False
+        lay = QVBoxLayout(self)
+        head = QLabel("Channels and scales")
+        head.setObjectName("Heading")
+        lay.addWidget(head)
+        self.table = QTableWidget(0, 4)
+        self.table.setHorizontalHeaderLabels(["Fit", "Channel", "Label", "Scale"])
+        self.table.verticalHeader().setVisible(False)
+        self.table.setSelectionBehavior(QAbstractItemView.SelectRows)
+        self.table.setSelectionMode(QAbstractItemView.SingleSelection)
+        self.table.setEditTriggers(QAbstractItemView.NoEditTriggers)
+        self.table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeToContents)
+        self.table.horizontalHeader().setStretchLastSection(True)
+        self.table.setToolTip("Tick the channels the density is fitted on. Scatter and time "
+                              "channels are usually left out (common practice).")
+        lay.addWidget(self.table, 2)
+
+        editor = QWidget()
+        ed = QVBoxLayout(editor)
+        ed.setContentsMargins(0, 0, 0, 0)
+        self.editing = QLabel("")
+        self.editing.setObjectName("Note")
+        ed.addWidget(self.editing)
+        self.kind = QComboBox()
+        for k, text in KIND_LABELS.items():
+            self.kind.addItem(text, k)
+        self.kind.setToolTip("How the channel's values are displayed and fitted: linear for scatter, "
+                             "arcsinh or logicle for fluorescence (they show negative compensated values).")
+        self.form = QFormLayout()
+        self.form.addRow("Scale", self.kind)
+        self._param_boxes: dict[str, QDoubleSpinBox] = {}
+        ed.addLayout(self.form)
+        row = QHBoxLayout()
+        self.pairs_button = QPushButton("Plot pairs...")
+        self.pairs_button.setToolTip("Choose which channel pairs the density map shows")
+        row.addWidget(self.pairs_button)
+        row.addStretch(1)
+        ed.addLayout(row)
+        lay.addWidget(editor)
+
+        self.hist = pg.PlotWidget(background=style.PAPER)
+        self.hist.setMinimumHeight(130)
+        self.hist.setMenuEnabled(False)
+        self.hist.hideButtons()
+        self.hist.setLabel("left", "events")
+        for ax in ("bottom", "left"):
+            self.hist.getAxis(ax).setTextPen(style.INK_SOFT)
+            self.hist.getAxis(ax).setPen(style.INK_SOFT)
+        self.hist_curve = self.hist.plot([0, 1], [0], stepMode="center", fillLevel=0,
+                                         brush=pg.mkBrush(style.MOSS_LIGHT), pen=pg.mkPen(style.MOSS))
+        self.hist.setToolTip("Histogram of the channel on the chosen scale (updates as you edit)")
+        lay.addWidget(self.hist, 1)
+
+        self._debounce = QTimer(self)
+        self._debounce.setSingleShot(True)
+        self._debounce.setInterval(250)
+        self._debounce.timeout.connect(self.changed)
+        self.table.itemChanged.connect(self._item_changed)
+        self.table.itemSelectionChanged.connect(self._row_chosen)
+        self.kind.currentIndexChanged.connect(self._kind_changed)
+        self.pairs_button.clicked.connect(self.pairsRequested)
+
+    # -- content ------------------------------------------------------------
+    def show_channels(self, names, labels, specs: dict, fit_channels, values) -> None:
+        """Fill from a file's channels, the recipe's specs and fitted channels.
+
+        ``values(channel) -> ndarray`` gives compensated (untransformed) values."""
+        self._filling = True
+        try:
+            self._names = list(names)
+            self._labels = list(labels)
+            self._specs = {k: dict(v) for k, v in specs.items() if v is not None}
+            self._values = values
+            fit = set(fit_channels)
+            self.table.setRowCount(len(self._names))
+            for row, name in enumerate(self._names):
+                check = QTableWidgetItem()
+                check.setFlags(Qt.ItemIsUserCheckable | Qt.ItemIsEnabled | Qt.ItemIsSelectable)
+                check.setCheckState(Qt.Checked if name in fit else Qt.Unchecked)
+                self.table.setItem(row, 0, check)
+                self.table.setItem(row, 1, QTableWidgetItem(name))
+                self.table.setItem(row, 2, QTableWidgetItem(self._labels[row] if row < len(self._labels) else ""))
+                self.table.setItem(row, 3, QTableWidgetItem(describe(self._specs.get(name))))
+        finally:
+            self._filling = False
+        if self._names:
+            self.table.selectRow(0)
+
+    def specs(self) -> dict[str, dict]:
+        return {k: dict(v) for k, v in self._specs.items()}
+
+    def fit_channels(self) -> list[str]:
+        return [self._names[r] for r in range(self.table.rowCount())
+                if self.table.item(r, 0) is not None and self.table.item(r, 0).checkState() == Qt.Checked]
+
+    def current_channel(self) -> str | None:
+        rows = {i.row() for i in self.table.selectedIndexes()}
+        return self._names[min(rows)] if rows else None
+
+    # -- editing ----------------------------------------------------------
+    def _item_changed(self, item) -> None:
+        if not self._filling and item.column() == 0:
+            self._debounce.start()
+
+    def _row_chosen(self) -> None:
+        name = self.current_channel()
+        if name is None:
+            return
+        spec = self._specs.get(name) or {"kind": "linear", "scale": 1.0, "offset": 0.0}
+        self.editing.setText(f"Scale of {name}")
+        self.kind.blockSignals(True)
+        self.kind.setCurrentIndex(max(0, self.kind.findData(spec.get("kind", "linear"))))
+        self.kind.blockSignals(False)
+        self._build_params(spec)
+        self._preview()
+
+    def _build_params(self, spec: dict) -> None:
+        while self.form.rowCount() > 1:
+            self.form.removeRow(1)
+        self._param_boxes = {}
+        for key, label, tip, lo, hi, default in PARAMETERS.get(spec.get("kind", "linear"), []):
+            box = QDoubleSpinBox()
+            box.setDecimals(4)
+            box.setRange(lo, hi)
+            box.setValue(float(spec.get(key, default)))
+            box.setToolTip(tip)
+            box.setKeyboardTracking(False)
+            box.valueChanged.connect(self._param_changed)
+            self.form.addRow(label, box)
+            self._param_boxes[key] = box
+
+    def _kind_changed(self) -> None:
+        name = self.current_channel()
+        if name is None:
+            return
+        kind = self.kind.currentData()
+        spec = {"kind": kind}
+        for key, _l, _t, _lo, _hi, default in PARAMETERS[kind]:
+            spec[key] = default
+        if kind == "logicle":
+            row = self._names.index(name)
+            spec["T"] = float(self._range_of(row) or spec["T"])
+        self._specs[name] = spec
+        self._build_params(spec)
+        self._spec_edited(name)
+
+    def _range_of(self, row: int):
+        return self.ranges.get(self._names[row])
+
+    def _param_changed(self) -> None:
+        name = self.current_channel()
+        if name is None:
+            return
+        spec = {"kind": self.kind.currentData()}
+        for key, box in self._param_boxes.items():
+            spec[key] = float(box.value())
+        self._specs[name] = spec
+        self._spec_edited(name)
+
+    def set_spec(self, name: str, spec: dict) -> None:
+        """Set one channel's scale (as if edited)."""
+        self._specs[name] = dict(spec)
+        if self.current_channel() == name:
+            self._row_chosen()
+        self._spec_edited(name)
+
+    def _spec_edited(self, name: str) -> None:
+        row = self._names.index(name)
+        self._filling = True
+        self.table.item(row, 3).setText(describe(self._specs.get(name)))
+        self._filling = False
+        self._preview()
+        self._debounce.start()
+
+    def _preview(self) -> None:
+        name = self.current_channel()
+        if name is None or self._values is None:
+            return
+        from core.transforms import make_transform
+
+        raw = np.asarray(self._values(name), dtype=np.float64)
+        spec = self._specs.get(name)
+        try:
+            shown = make_transform(spec).forward(raw) if spec else raw
+        except Exception as exc:  # noqa: BLE001 - show the problem in place of the preview
+            self.editing.setText(f"Scale of {name}: {exc}")
+            return
+        shown = shown[np.isfinite(shown)]
+        if shown.size == 0:
+            self.hist_curve.setData([0, 1], [0])
+            return
+        lo, hi = np.percentile(shown, [0.05, 99.95])
+        if not hi > lo:
+            lo, hi = lo - 0.5, hi + 0.5
+        counts, edges = np.histogram(shown, bins=120, range=(lo, hi))
+        self.hist_curve.setData(edges, counts)
+        self.hist.setLabel("bottom", f"{name} ({describe(spec)})")
+
+
+def describe(spec: dict | None) -> str:
+    """Short text of a transform spec, e.g. ``arcsinh (cofactor 150)``."""
+    if not spec:
+        return "linear"
+    kind = spec.get("kind", "?")
+    params = [f"{k} {spec[k]:g}" for k, *_ in PARAMETERS.get(kind, []) if isinstance(spec.get(k), (int, float))]
+    return f"{kind} ({', '.join(params)})" if params else kind
