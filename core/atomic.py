@@ -40,11 +40,19 @@ def atomic_write(path: str | os.PathLike, mode: str = "wb", overwrite: bool = Fa
             os.fsync(handle.fileno())
         if not overwrite and os.path.exists(path):
             raise ExportError(f"{path}: a file of that name appeared while writing; nothing was replaced")
+        # mkstemp creates owner-only files; give the result the usual permissions.
+        os.chmod(tmp, 0o666 & ~_current_umask())
         os.replace(tmp, path)
     except BaseException:
         with contextlib.suppress(OSError):
             os.unlink(tmp)
         raise
+
+
+def _current_umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 def unique_path(path: str | os.PathLike) -> str:
