@@ -24,10 +24,18 @@ share of held-out control events that passed, and the expected number of
 control-like events among the enriched ones (alpha_observed x n_test), so the
 excess over the control is visible.
 
-Caveat: the test model is fitted to all test events and scores the same
-events; early stopping on a held-out share limits how much it favours them, so
-the false-pass rate on the test file's control-like events can be a little
-above the nominal alpha.  The benchmark measures precision on our scenario.
+Cross-fitting (default, ``cross_fit=True``): a density fitted to the test
+events scores those same events higher than new events of the same kind
+(in-sample optimism), which would let control-like test events pass far more
+often than alpha (measured: 0.3 % instead of 0.1 % on a 3-channel normal
+background, precision 0.61 instead of >= 0.8 on a 0.5 % spike).  So the test
+events are split in two seeded halves; f_test fitted on one half scores the
+other, and the held-out control events are split the same way and scored by
+the same two models.  Test events and held-out control events are then scored
+alike -- by models that did not see them -- and alpha holds for both.  The
+cost is two fits on half the test events instead of one on all of them.
+With ``cross_fit=False`` a single f_test (``test_model``, e.g. the file's own
+fitted model) scores everything: faster, but optimistic as described.
 
 Shapes: ``test_values`` (n_test, d), ``control_values`` (n_control, d) float,
 the values the density sees (transformed, cleaned).  Rows with NaN are scored
@@ -63,7 +71,7 @@ class ContrastResult:
     control_pass_share: float  # share of held-out control events above the threshold
     n_control_heldout: int
     expected_false: float      # control_pass_share x n_scored test events
-    test_model: Any = None
+    test_model: Any = None     # fitted test density, or [model of half 1, model of half 2] when cross-fitted
     control_model: Any = None
     info: dict = field(default_factory=dict)
 
@@ -112,12 +120,14 @@ def threshold_for_alpha(heldout_scores: np.ndarray, alpha: float) -> float:
 def contrast(test_values: np.ndarray, control_values: np.ndarray, alpha: float = DEFAULT_ALPHA,
              heldout_fraction: float = DEFAULT_HELDOUT_FRACTION, engine: Mapping | None = None,
              random_state: int = 0, progress=None, test_model: Any = None,
-             model_factory: Callable | None = None, confidence_level: float = 0.95) -> ContrastResult:
+             model_factory: Callable | None = None, confidence_level: float = 0.95,
+             cross_fit: bool = True) -> ContrastResult:
     """Score test events by log f_test - log f_control and flag the enriched ones.
 
-    ``test_model``: an already fitted density of the test events (reused when
-    given).  ``model_factory(X, progress) -> fitted model``: how densities are
-    fitted (default: AdditiveTreeDensity with ``engine`` keywords, seeded by
+    ``cross_fit``: score test events by test models fitted on the other half
+    of the test events (see the module docstring).  ``test_model``: an already
+    fitted density of all test events, used only when ``cross_fit`` is False.
+    ``model_factory(X, progress) -> fitted model``: how densities are fitted (default: AdditiveTreeDensity with ``engine`` keywords, seeded by
     ``random_state``).  ``progress(step, total, info)`` is passed to the fits;
     returning False raises :class:`Cancelled`.
     """
@@ -139,22 +149,44 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray, alpha: float =
             stopped.append(True)
         return go
 
-    if test_model is None:
-        test_model = fit(T[t_ok], progress=relay)
+    Tk = T[t_ok]
+    fit_idx, out_idx = split_heldout(C.shape[0], heldout_fraction, random_state)
+    held = C[out_idx]
+    rng = np.random.default_rng([random_state, 1])
+    if cross_fit:
+        fold_t = rng.random(Tk.shape[0]) < 0.5
+        fold_h = rng.random(held.shape[0]) < 0.5
+        if min(fold_t.sum(), (~fold_t).sum()) < 50:
+            raise EventDataError(f"cross-fitting needs at least 100 test events; got {Tk.shape[0]}")
+        models = []
+        for half in (fold_t, ~fold_t):
+            models.append(fit(Tk[half], progress=relay))
+            if stopped:
+                raise Cancelled("contrast with the control was cancelled while fitting the test events")
+        test_model = models
+    elif test_model is None:
+        test_model = fit(Tk, progress=relay)
         if stopped:
             raise Cancelled("contrast with the control was cancelled while fitting the test events")
-    fit_idx, out_idx = split_heldout(C.shape[0], heldout_fraction, random_state)
     control_model = fit(C[fit_idx], progress=relay)
     if stopped:
         raise Cancelled("contrast with the control was cancelled while fitting the control events")
 
-    held = C[out_idx]
-    held_scores = np.asarray(test_model.score_samples(held), dtype=np.float64) - \
+    def log_test(X, fold):
+        if not cross_fit:
+            return np.asarray(test_model.score_samples(X), dtype=np.float64)
+        out = np.empty(X.shape[0])
+        # events of the first half are scored by the model of the second half, and vice versa
+        out[fold] = test_model[1].score_samples(X[fold])
+        out[~fold] = test_model[0].score_samples(X[~fold])
+        return out
+
+    held_scores = log_test(held, fold_h if cross_fit else None) - \
         np.asarray(control_model.score_samples(held), dtype=np.float64)
     thr = threshold_for_alpha(held_scores, alpha)
     score = np.full(T.shape[0], np.nan)
-    score[t_ok] = np.asarray(test_model.score_samples(T[t_ok]), dtype=np.float64) - \
-        np.asarray(control_model.score_samples(T[t_ok]), dtype=np.float64)
+    score[t_ok] = log_test(Tk, fold_t if cross_fit else None) - \
+        np.asarray(control_model.score_samples(Tk), dtype=np.float64)
     with np.errstate(invalid="ignore"):
         enriched = score > thr
     n = int(t_ok.sum())
