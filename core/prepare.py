@@ -127,7 +127,7 @@ def detect_step(values, max_unique_fraction: float = MAX_UNIQUE_FRACTION) -> flo
     v = v[np.isfinite(v)]
     if v.size < 3:
         return 0.0
-    u = np.unique(v)
+    u, counts = np.unique(v, return_counts=True)
     if u.size < 2 or u.size > max_unique_fraction * v.size:
         return 0.0
     gaps = np.diff(u)
@@ -152,7 +152,6 @@ def detect_step(values, max_unique_fraction: float = MAX_UNIQUE_FRACTION) -> flo
     # refine over the whole range: fit u = anchor + s k on the distinct values that lie on the grid.
     # A relative error e in s shifts values k steps away by e k steps, so the first round uses
     # values near the anchor only, and later rounds tighten the tolerance.
-    u, counts = np.unique(v, return_counts=True)
     # anchor: the most frequent value away from the ends (clipped events pile up on the
     # extremes, which need not lie on the grid)
     inner = slice(1, -1) if u.size > 2 else slice(None)

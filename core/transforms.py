@@ -360,9 +360,12 @@ _SPEC_KEYS = {
 }
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Transform:
-    """A channel transform: ``forward(x)``, ``inverse(y)``, a JSON-able ``spec`` and a short ``label``."""
+    """A channel transform: ``forward(x)``, ``inverse(y)``, a JSON-able ``spec`` and a short ``label``.
+
+    Two transforms are equal when their specs are equal.
+    """
 
     spec: dict
     label: str
@@ -382,6 +385,12 @@ class Transform:
         return self._inverse(y)
 
     __call__ = forward
+
+    def __eq__(self, other) -> bool:
+        return isinstance(other, Transform) and self.spec == other.spec
+
+    def __hash__(self) -> int:
+        return hash(tuple(sorted((k, str(v)) for k, v in self.spec.items())))
 
 
 def _g(v: float) -> str:

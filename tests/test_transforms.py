@@ -245,3 +245,10 @@ def test_logicle_reflects_negative_values_about_x1(T, W, M, A):
     x = np.logspace(-2, 6, 30)
     x1 = (W + A) / (M + A)
     np.testing.assert_allclose(logicle(-x, T, W, M, A), 2 * x1 - logicle(x, T, W, M, A), rtol=0, atol=1e-14)
+
+
+def test_transforms_compare_by_spec():
+    a = make_transform({"kind": "logicle", "T": 262144, "W": 0.5, "M": 4.5, "A": 0})
+    b = make_transform({"kind": "logicle", "T": 262144.0, "W": 0.5})
+    assert a == b and hash(a) == hash(b)
+    assert a != make_transform({"kind": "logicle", "T": 262144.0, "W": 0.6})
