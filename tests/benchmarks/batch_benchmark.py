@@ -1,0 +1,90 @@
+"""Batch throughput on the sample scenario: files per minute with 1 and 2 workers.
+
+    python tests/benchmarks/batch_benchmark.py [--folder sample_events] [--repeat 1]
+                                               [--n-trees N] [--markdown OUT.md]
+
+Runs ``core.batch.run_batch`` over the folder (default recipe of the first
+file, every file redone) in three set-ups:
+
+* 1 worker (in this process), numba limited to 1 thread;
+* 1 worker (in this process), numba with every core;
+* 2 worker processes, numba limited to cores // 2 threads each.
+
+and prints files per minute and the speed-up over the first set-up (target
+for 2 workers: >= 1.7 x on 2 cores).  The machine may be shared: run it when it
+is quiet, or compare set-ups measured in the same run only.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import shutil
+import sys
+import tempfile
+import time
+
+HERE = os.path.dirname(os.path.abspath(__file__))
+ROOT = os.path.dirname(os.path.dirname(HERE))
+sys.path.insert(0, ROOT)
+
+from core.batch import list_fcs_files, run_batch  # noqa: E402
+from core.fcs import read_fcs  # noqa: E402
+from core.recipe import default_recipe  # noqa: E402
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--folder", default=os.path.join(ROOT, "sample_events"))
+    ap.add_argument("--repeat", type=int, default=1)
+    ap.add_argument("--n-trees", type=int, default=None, help="engine n_trees (default: engine default)")
+    ap.add_argument("--markdown")
+    args = ap.parse_args(argv)
+
+    files = list_fcs_files(args.folder)
+    recipe = default_recipe(read_fcs(files[0]))
+    if args.n_trees:
+        recipe.engine = dict(recipe.engine, n_trees=args.n_trees)
+    cores = os.cpu_count() or 1
+    setups = [("1 worker, 1 numba thread", 1, 1), (f"1 worker, {cores} numba threads", 1, cores),
+              (f"2 workers, {max(1, cores // 2)} numba thread(s) each", 2, max(1, cores // 2))]
+    tmp = tempfile.mkdtemp(prefix="boscage-batch-bench-")
+    # warm the numba cache so the first set-up does not pay compilation
+    run_batch(args.folder, os.path.join(tmp, "warm"), recipe=recipe, workers=1, force=True)
+    rows = []
+    try:
+        for label, workers, threads in setups:
+            best = None
+            for r in range(args.repeat):
+                out = os.path.join(tmp, f"w{workers}t{threads}r{r}")
+                t0 = time.perf_counter()
+                res = run_batch(args.folder, out, recipe=recipe, workers=workers, numba_threads=threads, force=True)
+                sec = time.perf_counter() - t0
+                assert res.n_ok == len(files), [row.get("message") for row in res.rows]
+                best = sec if best is None else min(best, sec)
+            rows.append([label, len(files), f"{best:.1f}", f"{60 * len(files) / best:.2f}"])
+            print(rows[-1], file=sys.stderr, flush=True)
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+        from core.batch import _limit_numba_threads
+        _limit_numba_threads(cores)
+    base = float(rows[0][2])
+    for row in rows:
+        row.append(f"{base / float(row[2]):.2f} x")
+    header = ["set-up", "files", "seconds", "files/min", "speed-up vs 1x1"]
+    widths = [max(len(h), *(len(str(r[i])) for r in rows)) for i, h in enumerate(header)]
+    print(f"\nBatch over {args.folder} ({len(files)} files; {cores} cores; engine "
+          f"{recipe.engine}; best of {args.repeat})")
+    print("  ".join(h.ljust(w) for h, w in zip(header, widths)))
+    for row in rows:
+        print("  ".join(str(v).ljust(w) for v, w in zip(row, widths)))
+    if args.markdown:
+        with open(args.markdown, "w", encoding="utf-8") as fh:
+            fh.write("| " + " | ".join(header) + " |\n|" + "---|" * len(header) + "\n")
+            for row in rows:
+                fh.write("| " + " | ".join(map(str, row)) + " |\n")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
