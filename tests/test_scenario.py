@@ -118,3 +118,23 @@ def test_committed_sample_files_match_the_generator():
         assert os.path.exists(path), path
         ef = read_fcs(path)
         np.testing.assert_array_equal(ef.data, generate_tube(spec, DEFAULT_SEED).data)
+
+
+def test_committed_files_read_by_fcsparser():
+    # reference: fcsparser.parse, an FCS reader outside the project
+    import warnings
+
+    import fcsparser
+
+    if not os.path.isdir(REPO_SAMPLES):
+        pytest.skip("sample_events/ not generated in this checkout")
+    spec = TUBES[1]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        meta, data = fcsparser.parse(os.path.join(REPO_SAMPLES, spec.file_stem + ".fcs"),
+                                     reformat_meta=True, channel_naming="$PnN")
+    assert meta["__header__"]["FCS format"] == b"FCS3.1"
+    assert list(data.columns) == CHANNEL_NAMES
+    np.testing.assert_array_equal(data.values.astype(np.float64), generate_tube(spec).data)
+    S = spillover_from_keywords(meta)
+    np.testing.assert_array_equal(S.matrix, spillover_matrix().matrix)
