@@ -275,23 +275,67 @@ def logicle(x, T: float, W: float, M: float = DEFAULT_M, A: float = 0.0) -> np.n
     return out
 
 
-def _solve_biex(v: np.ndarray, k: _LogicleConstants, max_iter: int = 100) -> np.ndarray:
-    """z >= 0 with p expm1(b z) - q expm1(-d z) = v, for v >= 0 (vectorised).
+#: Points of the table that gives the solver its starting values.
+_TABLE_SIZE = 8193
+#: The table covers logicle values up to x1 + this (beyond it the start is the log bound).
+_TABLE_REACH = 1.6
 
-    Bracket: log1p(max(v - q, 0)/p)/b <= z <= log1p(v/p)/b (the second term lies in
-    [0, q)).  Halley steps, replaced by bisection when they leave the bracket.
+
+@lru_cache(maxsize=64)
+def _start_table(k: _LogicleConstants) -> tuple[np.ndarray, float, float]:
+    """(z_table, ds, scale): z at evenly spaced s = asinh(B(x1 + z)/scale), s = i ds.
+
+    asinh of the value is nearly linear in z both in the linear region near
+    zero and in the logarithmic region, so linear interpolation in an even s
+    grid (a direct index, no search) gives a start within about 1e-8 of the root.
+    """
+    scale = k.p * k.b + k.q * k.d          # slope of B at x1
+    z_fine = np.linspace(0.0, _TABLE_REACH, 16 * _TABLE_SIZE)
+    s_fine = np.arcsinh(_biex_positive(z_fine, k) / scale)
+    s_grid = np.linspace(0.0, s_fine[-1], _TABLE_SIZE)
+    z_table = np.interp(s_grid, s_fine, z_fine)
+    return z_table, float(s_grid[1] - s_grid[0]), scale
+
+
+def _solve_biex(v: np.ndarray, k: _LogicleConstants, max_iter: int = 100) -> np.ndarray:
+    """z >= 0 with p expm1(b z) - q expm1(-d z) = v, for finite v >= 0 (vectorised).
+
+    Start from a table (:func:`_start_table`), take two Halley steps on the
+    whole array, and hand the few values that have not converged to the
+    bracketed solver (:func:`_halley_loop`): the bracket
+    log1p(max(v - q, 0)/p)/b <= z <= log1p(v/p)/b (the q term lies in [0, q)),
+    Halley steps replaced by bisection when they leave it.
     """
     p, q, b, d = k.p, k.q, k.b, k.d
-    lo = np.log1p(np.maximum(v - q, 0.0) / p) / b
-    hi = np.log1p(v / p) / b
-    # start: the tangent at zero for small values, the bracket's top for large ones
-    z = np.minimum(v / (p * b + q * d), hi)
-    z = np.maximum(z, lo)
-    active = np.flatnonzero(v > 0)
-    z[v == 0] = 0.0
     eps = np.finfo(float).eps
+    z_table, ds, scale = _start_table(k)
     with np.errstate(over="ignore", invalid="ignore"):
-        return _halley_loop(z, v, lo, hi, active, k, max_iter, eps)
+        t = np.arcsinh(v / scale) / ds
+        i = np.minimum(t.astype(np.intp), z_table.size - 2)
+        frac = t - i
+        z = z_table[i] + frac * (z_table[i + 1] - z_table[i])
+        beyond = frac > 1.0
+        z[beyond] = np.log1p(v[beyond] / p) / b
+        step = np.zeros_like(z)
+        for _ in range(2):
+            em1b = np.expm1(b * z)
+            em1d = np.expm1(-d * z)
+            h = p * em1b - q * em1d - v
+            h1 = p * b * (em1b + 1.0) + q * d * (em1d + 1.0)
+            h2 = p * b * b * (em1b + 1.0) - q * d * d * (em1d + 1.0)
+            newton = h / h1
+            step = newton / (1.0 - 0.5 * newton * (h2 / h1))
+            z = np.maximum(z - step, 0.0)
+        bad = ~(np.abs(step) <= 4 * eps * z) & (v > 0)
+        bad |= ~np.isfinite(z)
+        if bad.any():
+            vb = v[bad]
+            lo = np.log1p(np.maximum(vb - q, 0.0) / p) / b
+            hi = np.log1p(vb / p) / b
+            zb = np.clip(np.where(np.isfinite(z[bad]), z[bad], hi), lo, hi)
+            z[bad] = _halley_loop(zb, vb, lo, hi, np.arange(vb.size), k, max_iter, eps)
+    z[v == 0] = 0.0
+    return z
 
 
 def _halley_loop(z, v, lo, hi, active, k, max_iter, eps):
