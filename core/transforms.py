@@ -20,9 +20,11 @@ channel's events), each with its inverse:
   (``logicle(-x) = 2 x1 - logicle(x)``), as the logicle method defines the
   scale.  Written around x1 as ``p expm1(b z) - q expm1(-d z)`` with
   ``z = y - x1``, ``p = a e^(b x1)``, ``q = c e^(-d x1)``, the function has no
-  cancellation near zero, and the root is found by Halley's method kept
-  inside a bracket (bisection when a step leaves it): relative accuracy about
-  1e-15 in y.  The inverse is the closed form.
+  cancellation near zero.  The root starts from a cached table (even grid in
+  asinh of the value), takes two Halley steps on the whole array, and any
+  value not yet converged goes to Halley's method kept inside a bracket
+  (bisection when a step leaves it): relative residual about 1e-15.  The
+  inverse is the closed form.
 
 Transforms used by recipes are :class:`Transform` objects built from a
 JSON-able spec by :func:`make_transform`:

@@ -252,3 +252,15 @@ def test_transforms_compare_by_spec():
     b = make_transform({"kind": "logicle", "T": 262144.0, "W": 0.5})
     assert a == b and hash(a) == hash(b)
     assert a != make_transform({"kind": "logicle", "T": 262144.0, "W": 0.6})
+
+
+@pytest.mark.parametrize("T,W,M,A", PARAMS)
+def test_logicle_extreme_values_round_trip(T, W, M, A):
+    # far beyond the top of scale and far below one unit (the solver's table and
+    # its bracketed fallback); reference: the closed-form Gating-ML 2.0 biexponential
+    x = np.concatenate([np.logspace(0, 300, 301), -np.logspace(0, 300, 301)])
+    y = logicle(x, T, W, M, A)
+    assert np.all(np.isfinite(y))
+    np.testing.assert_allclose(logicle_inverse(y, T, W, M, A), x, rtol=1e-9)
+    tiny = np.logspace(-300, -1, 50)
+    assert np.all(np.diff(logicle(tiny, T, W, M, A)) >= 0)
