@@ -186,8 +186,10 @@ def read_spillover_csv(path: str | os.PathLike) -> SpilloverMatrix:
     optionally starting with its detector name (then the header's first cell
     may be empty).  Comma, semicolon and tab delimiters are accepted.  When
     row names are given they must be the header's names; rows are reordered to
-    the header's order.  Raises :class:`CompensationError` naming the file for
-    an empty, non-square or non-numeric table.
+    the header's order.  A table whose diagonal is all 100 is taken as
+    percentages and divided by 100 (common practice in some exports).
+    Raises :class:`CompensationError` naming the file for an empty,
+    non-square or non-numeric table.
     """
     path = os.fspath(path)
     name = os.path.basename(path)
@@ -245,6 +247,8 @@ def read_spillover_csv(path: str | os.PathLike) -> SpilloverMatrix:
                 f"({', '.join(detectors)}) (file: {path})")
         order = [row_names.index(d) for d in detectors]
         m = m[order]
+    if np.allclose(np.diag(m), 100.0):
+        m = m / 100.0   # written in percent (diagonal 100): common practice in some exports
     return SpilloverMatrix(detectors, m, source=path)
 
 

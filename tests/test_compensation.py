@@ -199,3 +199,11 @@ def test_csv_errors_name_the_file(tmp_path):
     text.write_text("A,B\n1,0\n0,one\n")
     with pytest.raises(CompensationError, match="text.csv.*'one'.*not a number"):
         read_spillover_csv(text)
+
+
+def test_csv_in_percent(tmp_path):
+    # spillover written in percent, diagonal 100 (common practice in some exports)
+    p = tmp_path / "percent.csv"
+    p.write_text("A,B\n100,12.5\n3,100\n")
+    S = read_spillover_csv(p)
+    np.testing.assert_allclose(S.matrix, [[1.0, 0.125], [0.03, 1.0]], rtol=1e-15)
