@@ -202,8 +202,23 @@ def dequantise(raw, random_state=0, steps=None, max_unique_fraction: float = MAX
     return out, steps
 
 
+#: A pile of at least this many events at a channel's largest value, within
+#: PILE_FRACTION of its range, counts as saturation (see saturation_mask).
+PILE_MIN_EVENTS = 3
+PILE_FRACTION = 0.95
+
+
 def saturation_mask(raw, channel_ranges) -> np.ndarray:
-    """(n_events, n_channels) bool: raw value >= the channel's range ($PnR).
+    """(n_events, n_channels) bool: events at or beyond the top of a channel.
+
+    A value is saturated when it is >= the channel's range ($PnR, in the
+    units of ``raw``), or when it equals the channel's largest finite value,
+    that value lies within the top 5 % of the range and at least
+    ``PILE_MIN_EVENTS`` events share it.  The second rule catches detectors
+    that clip at their top channel value, which for integer files is
+    $PnR - 1 (FCS 3.1 numbers channel values 0 .. $PnR-1) and for decoded
+    log or gain-scaled channels is slightly below the decoded range (common
+    practice: saturated events pile up at the largest value).
 
     Channels whose range is missing, zero, negative or non-finite are never
     flagged.  Non-finite values are not flagged (they are "non-finite").
@@ -213,8 +228,19 @@ def saturation_mask(raw, channel_ranges) -> np.ndarray:
     if r.size != x.shape[1]:
         raise EventDataError(f"{r.size} channel ranges were given for {x.shape[1]} channels")
     usable = np.isfinite(r) & (r > 0)
+    finite = np.isfinite(x)
     with np.errstate(invalid="ignore"):
-        sat = (x >= np.where(usable, r, np.inf)) & np.isfinite(x)
+        sat = (x >= np.where(usable, r, np.inf)) & finite
+    for j in np.flatnonzero(usable):
+        col = x[:, j]
+        below = finite[:, j] & ~sat[:, j]
+        if not below.any():
+            continue
+        top = col[below].max()
+        if top >= PILE_FRACTION * r[j]:
+            at_top = below & (col == top)
+            if at_top.sum() >= PILE_MIN_EVENTS:
+                sat[:, j] |= at_top
     return sat
 
 

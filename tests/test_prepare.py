@@ -155,3 +155,22 @@ def test_shape_errors():
         prepare_events(np.zeros(5))
     with pytest.raises(EventDataError, match="2 channel ranges"):
         prepare_events(np.zeros((5, 3)), [1.0, 2.0])
+
+
+def test_pile_at_the_top_channel_counts_as_saturated():
+    # FCS 3.1: integer channel values run 0 .. $PnR-1, so a clipping detector
+    # piles its saturated events at $PnR-1, not at $PnR (common practice).
+    rng = np.random.default_rng(12)
+    n = 2000
+    raw = np.round(rng.uniform(0, 900, size=(n, 2)))
+    ranges = np.array([1024.0, 1024.0])
+    raw[:6, 0] = 1023.0                       # a pile at the top channel value
+    raw[6, 1] = 1023.0                        # one lone high event: kept
+    out = prepare_events(raw, ranges, dequantise=False)
+    assert set(np.flatnonzero(out.reason == REASON_SATURATED)) == set(range(6))
+    assert list(out.saturated_per_channel) == [6, 0]
+    # a pile well below the top of the range is a population, not saturation
+    raw2 = raw.copy()
+    raw2[:6, 0] = 800.0
+    raw2[raw2[:, 0] > 800, 0] = 700.0
+    assert prepare_events(raw2, ranges, dequantise=False).saturated_per_channel[0] == 0
