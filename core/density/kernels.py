@@ -6,11 +6,13 @@ Array conventions (shared with :mod:`core.density.tree`):
   unit cube for the tree kernels.
 * A *forest* is a flat set of split nodes.  ``roots[t]`` is the index of tree
   ``t``'s root node (-1 for a tree without splits).  For node ``m``:
-  ``dim[m]`` split dimension, ``cut[m]`` split location, ``lo[m]``/``hi[m]``
-  the node's extent along ``dim[m]``, ``mid[m] = lo + theta (hi - lo)`` the
-  image of the cut, ``sl[m]``/``sr[m]`` the slopes of the two-piece local CDF
-  left/right of the cut and ``lsl``/``lsr`` their natural logs,
-  ``left[m]``/``right[m]`` child node indices (-1 for a leaf).
+  ``dim[m]`` split dimension, ``cut[m]`` split location,
+  ``mid[m] = lo + theta (hi - lo)`` the image of the cut, where [lo, hi] is
+  the node's extent along ``dim[m]``.  Per side (``code = 2 m + side``,
+  side 0 left of the cut): ``child[code]`` (-1 for a leaf) and the local CDF
+  piece ``v -> base + (v - anchor) * slope`` with ``lslope = log(slope)``
+  (left: base = anchor = lo, slope = theta (hi-lo)/(cut-lo); right:
+  base = mid, anchor = cut, slope = (1-theta)(hi-lo)/(hi-cut)).
 
 Every kernel is deterministic: parallel loops only split work over events
 (each event's result is computed by one thread in a fixed order) or sum
@@ -34,69 +36,66 @@ PARALLEL_MIN_WORK = 400_000
 
 
 @njit(cache=True)
-def _forest_forward_rows(start, stop, U, logd, roots, dim, cut, lo, mid, sl, sr, lsl, lsr, left, right):
+def _forest_forward_rows(start, stop, U, logd, roots, dim, cut, child, base, anchor, slope, lslope):
     """Apply the tree-CDFs of trees ``roots`` in order to rows start:stop of ``U`` in place.
 
     U: (n, d) float64 points in the cube, overwritten by their images.
     logd: (n,) float64, the log-density of each tree at the point it was
     applied to is added (sum of log slopes along the root-to-leaf path).
     Each tree: find the path top-down, then apply the moves bottom-up.
+    Side arrays are indexed by ``code = 2 * node + side`` (side 0 left of
+    the cut, 1 right): on that side the node maps v to
+    ``base + (v - anchor) * slope``.  Trees are the outer loop so a block of
+    events gives the processor independent work to overlap.
     """
     n_trees = roots.shape[0]
     path = np.empty(MAX_PATH, np.int64)
-    side = np.empty(MAX_PATH, np.bool_)
-    if True:
+    for t in range(n_trees):
+        root = roots[t]
+        if root < 0:
+            continue
         for i in range(start, stop):
+            node = root
+            k = 0
+            while node >= 0:
+                code = 2 * node + (1 if U[i, dim[node]] >= cut[node] else 0)
+                path[k] = code
+                k += 1
+                node = child[code]
             acc = 0.0
-            for t in range(n_trees):
-                node = roots[t]
-                k = 0
-                while node >= 0:
-                    path[k] = node
-                    if U[i, dim[node]] < cut[node]:
-                        side[k] = True
-                        node = left[node]
-                    else:
-                        side[k] = False
-                        node = right[node]
-                    k += 1
-                for q in range(k - 1, -1, -1):
-                    m = path[q]
-                    j = dim[m]
-                    v = U[i, j]
-                    if side[q]:
-                        v = lo[m] + (v - lo[m]) * sl[m]
-                        acc += lsl[m]
-                    else:
-                        v = mid[m] + (v - cut[m]) * sr[m]
-                        acc += lsr[m]
-                    U[i, j] = v
+            for q in range(k - 1, -1, -1):
+                code = path[q]
+                j = dim[code >> 1]
+                U[i, j] = base[code] + (U[i, j] - anchor[code]) * slope[code]
+                acc += lslope[code]
             logd[i] += acc
 
 
 @njit(cache=True)
-def _forest_inverse_rows(start, stop, U, roots, dim, cut, lo, mid, sl, sr, left, right):
-    """Undo :func:`forest_forward` on rows start:stop in place: trees last to first, each root first."""
+def _forest_inverse_rows(start, stop, U, roots, dim, mid, child, base, anchor, slope):
+    """Undo :func:`forest_forward` on rows start:stop in place: trees last to first,
+    each root first (the root's inverse move decides which child the point came from)."""
     n_trees = roots.shape[0]
-    if True:
+    for t in range(n_trees - 1, -1, -1):
+        root = roots[t]
+        if root < 0:
+            continue
         for i in range(start, stop):
-            for t in range(n_trees - 1, -1, -1):
-                node = roots[t]
-                while node >= 0:
-                    j = dim[node]
-                    v = U[i, j]
-                    if v < mid[node]:
-                        v = lo[node] + (v - lo[node]) / sl[node]
-                        if v > cut[node]:
-                            v = cut[node]
-                        U[i, j] = v
-                        node = left[node]
-                    else:
-                        v = cut[node] + (v - mid[node]) / sr[node]
-                        if v < cut[node]:
-                            v = cut[node]
-                        U[i, j] = v
-                        node = right[node]
+            node = root
+            while node >= 0:
+                j = dim[node]
+                v = U[i, j]
+                right = v >= mid[node]
+                code = 2 * node + (1 if right else 0)
+                w = anchor[code] + (v - base[code]) / slope[code]
+                c = anchor[2 * node + 1]  # the cut
+                if right:
+                    if w < c:
+                        w = c
+                elif w > c:
+                    w = c
+                U[i, j] = w
+                node = child[code]
 
 
 @njit(cache=True)
@@ -330,21 +329,21 @@ def route_events(R, node_of, split_dim, split_cut, child_left, child_right):
 # every event is computed by exactly one thread in the same order.
 
 @njit(cache=True, parallel=True)
-def _forest_forward_par(U, logd, roots, dim, cut, lo, mid, sl, sr, lsl, lsr, left, right):
+def _forest_forward_par(U, logd, roots, dim, cut, child, base, anchor, slope, lslope):
     n = U.shape[0]
     nb = (n + BLOCK - 1) // BLOCK
     for b in prange(nb):
-        _forest_forward_rows(b * BLOCK, min(n, (b + 1) * BLOCK), U, logd, roots, dim, cut, lo, mid,
-                             sl, sr, lsl, lsr, left, right)
+        _forest_forward_rows(b * BLOCK, min(n, (b + 1) * BLOCK), U, logd, roots, dim, cut, child,
+                             base, anchor, slope, lslope)
 
 
 @njit(cache=True, parallel=True)
-def _forest_inverse_par(U, roots, dim, cut, lo, mid, sl, sr, left, right):
+def _forest_inverse_par(U, roots, dim, mid, child, base, anchor, slope):
     n = U.shape[0]
     nb = (n + BLOCK - 1) // BLOCK
     for b in prange(nb):
-        _forest_inverse_rows(b * BLOCK, min(n, (b + 1) * BLOCK), U, roots, dim, cut, lo, mid, sl, sr,
-                             left, right)
+        _forest_inverse_rows(b * BLOCK, min(n, (b + 1) * BLOCK), U, roots, dim, mid, child, base,
+                             anchor, slope)
 
 
 @njit(cache=True, parallel=True)
@@ -384,18 +383,18 @@ def _parallel(n_events, cost):
     return n_events * cost >= PARALLEL_MIN_WORK
 
 
-def forest_forward(U, logd, roots, dim, cut, lo, mid, sl, sr, lsl, lsr, left, right):
+def forest_forward(U, logd, roots, dim, cut, child, base, anchor, slope, lslope):
     """Apply trees ``roots`` in order to U (n, d) in place; add their log densities to logd (n,)."""
-    args = (U, logd, roots, dim, cut, lo, mid, sl, sr, lsl, lsr, left, right)
+    args = (U, logd, roots, dim, cut, child, base, anchor, slope, lslope)
     if _parallel(U.shape[0], 4 * roots.shape[0]):
         _forest_forward_par(*args)
     else:
         _forest_forward_rows(0, U.shape[0], *args)
 
 
-def forest_inverse(U, roots, dim, cut, lo, mid, sl, sr, left, right):
+def forest_inverse(U, roots, dim, mid, child, base, anchor, slope):
     """Undo :func:`forest_forward` in place (trees last to first, each root first)."""
-    args = (U, roots, dim, cut, lo, mid, sl, sr, left, right)
+    args = (U, roots, dim, mid, child, base, anchor, slope)
     if _parallel(U.shape[0], 4 * roots.shape[0]):
         _forest_inverse_par(*args)
     else:

@@ -59,11 +59,21 @@ class Forest:
         """Recompute the derived arrays used by the kernels."""
         width = self.hi - self.lo
         self.mid = self.lo + self.theta * width
+        m = self.dim.shape[0]
+        self.child = np.empty(2 * m, np.int64)
+        self.child[0::2] = self.left
+        self.child[1::2] = self.right
+        self.base = np.empty(2 * m)
+        self.base[0::2] = self.lo
+        self.base[1::2] = self.mid
+        self.anchor = np.empty(2 * m)
+        self.anchor[0::2] = self.lo
+        self.anchor[1::2] = self.cut
+        self.slope = np.empty(2 * m)
         with np.errstate(divide="ignore", invalid="ignore"):
-            self.sl = self.theta * width / (self.cut - self.lo)
-            self.sr = (1.0 - self.theta) * width / (self.hi - self.cut)
-        self.lsl = np.log(self.sl)
-        self.lsr = np.log(self.sr)
+            self.slope[0::2] = self.theta * width / (self.cut - self.lo)
+            self.slope[1::2] = (1.0 - self.theta) * width / (self.hi - self.cut)
+        self.lslope = np.log(self.slope)
 
     def append(self, tree: "Forest") -> None:
         """Append the trees of ``tree`` (node indices shifted)."""
@@ -101,14 +111,14 @@ class Forest:
     def forward(self, U: np.ndarray, logd: np.ndarray) -> None:
         """Apply all trees to U (n, d) in place, adding log densities to logd (n,)."""
         if self.n_trees:
-            kernels.forest_forward(U, logd, self.roots, self.dim, self.cut, self.lo, self.mid,
-                                   self.sl, self.sr, self.lsl, self.lsr, self.left, self.right)
+            kernels.forest_forward(U, logd, self.roots, self.dim, self.cut, self.child, self.base,
+                                   self.anchor, self.slope, self.lslope)
 
     def inverse(self, U: np.ndarray) -> None:
         """Undo :meth:`forward` in place."""
         if self.n_trees:
-            kernels.forest_inverse(U, self.roots, self.dim, self.cut, self.lo, self.mid,
-                                   self.sl, self.sr, self.left, self.right)
+            kernels.forest_inverse(U, self.roots, self.dim, self.mid, self.child, self.base,
+                                   self.anchor, self.slope)
 
     def max_depth(self) -> int:
         """Depth of the deepest path (number of split nodes on it)."""
