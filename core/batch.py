@@ -378,9 +378,13 @@ def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | N
         if not keep_going(progress, len(rows), total, row):
             stop = True
 
+    if not keep_going(progress, 0, total, None):  # shows the bar before the first file finishes
+        stop = True
+    step = 0
     for p in files:  # report the skipped ones first
         if p in rows:
-            keep_going(progress, len([q for q in files[:files.index(p) + 1] if q in rows]), total, rows[p])
+            step += 1
+            keep_going(progress, step, total, dict(rows[p], skipped=True))
 
     try:
         if not tasks:
@@ -505,35 +509,41 @@ def _fmt_seconds(s: float) -> str:
 
 
 class TerminalProgress:
-    """A plain-text progress bar with ETA on a stream (stderr); one line per file when not a terminal."""
+    """A plain-text progress bar with ETA on a stream (stderr); one line per file when not a terminal.
+
+    Files finished in an earlier run (rows marked ``skipped``) do not count
+    towards the speed the ETA is computed from.
+    """
 
     def __init__(self, stream=None, width: int = 30):
         self.stream = stream or sys.stderr
         self.width = width
         self.t0 = time.perf_counter()
+        self.t_base = self.t0      # when the files that count for the ETA started
+        self.base_step = 0         # files done before that (skipped ones)
         self.failed = 0
-        self.first_step: int | None = None
         self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
 
     def __call__(self, step: int, total: int | None, row: Any = None) -> bool:
-        if isinstance(row, dict) and row.get("status") == "error":
+        skipped = isinstance(row, dict) and bool(row.get("skipped"))
+        now = time.perf_counter()
+        if row is None or skipped:
+            self.base_step, self.t_base = step, now
+        elif row.get("status") == "error":
             self.failed += 1
         total = total or 0
-        elapsed = time.perf_counter() - self.t0
-        if self.first_step is None:
-            self.first_step = step - 1 if row is not None else step
-        new = step - self.first_step
+        new = step - self.base_step
         eta = "--:--"
-        if total and new > 0 and step < total:
-            eta = _fmt_seconds(elapsed / new * (total - step))
-        elif total and step >= total:
+        if total and step >= total:
             eta = "0:00"
+        elif total and new > 0:
+            eta = _fmt_seconds((now - self.t_base) / new * (total - step))
         filled = int(self.width * step / total) if total else 0
         bar = "#" * filled + "-" * (self.width - filled)
         name = row.get("file", "") if isinstance(row, dict) else ""
-        status = row.get("status", "") if isinstance(row, dict) else ""
-        text = (f"[{bar}] {step}/{total} files, {self.failed} failed, elapsed {_fmt_seconds(elapsed)}, "
-                f"ETA {eta}  {name} {status}")
+        status = ("done earlier" if skipped else row.get("status", "")) if isinstance(row, dict) else ""
+        text = (f"[{bar}] {step}/{total} files, {self.failed} failed, elapsed {_fmt_seconds(now - self.t0)}, "
+                f"ETA {eta}  {name} {status}").rstrip()
         if self.tty:
             self.stream.write("\r" + text[:160].ljust(120))
             if total and step >= total:

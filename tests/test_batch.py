@@ -168,7 +168,7 @@ def test_stop_keeps_finished_files_and_marks_the_rest(tmp_path):
     for k in range(3):
         write_events(inp / f"t{k}.fcs", n=1500, seed=10 + k)
     res = run_batch(str(inp), str(tmp_path / "o"), recipe=small_recipe(regions=[]), workers=1,
-                    progress=lambda step, total, row: False)   # stop after the first file
+                    progress=lambda step, total, row: step < 1)   # stop after the first file
     assert res.interrupted and res.exit_code == 130
     assert [r["status"] for r in res.rows] == ["ok", "cancelled", "cancelled"]
     assert os.path.exists(os.path.join(file_out_dir(str(tmp_path / "o"), "t0.fcs"), DONE_NAME))
