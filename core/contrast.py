@@ -121,7 +121,7 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray, alpha: float =
              heldout_fraction: float = DEFAULT_HELDOUT_FRACTION, engine: Mapping | None = None,
              random_state: int = 0, progress=None, test_model: Any = None,
              model_factory: Callable | None = None, confidence_level: float = 0.95,
-             cross_fit: bool = True) -> ContrastResult:
+             cross_fit: int | bool = True) -> ContrastResult:
     """Score test events by log f_test - log f_control and flag the enriched ones.
 
     ``cross_fit``: score test events by test models fitted on the other half
@@ -153,39 +153,45 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray, alpha: float =
     fit_idx, out_idx = split_heldout(C.shape[0], heldout_fraction, random_state)
     held = C[out_idx]
     rng = np.random.default_rng([random_state, 1])
-    if cross_fit:
-        fold_t = rng.random(Tk.shape[0]) < 0.5
-        fold_h = rng.random(held.shape[0]) < 0.5
-        if min(fold_t.sum(), (~fold_t).sum()) < 50:
-            raise EventDataError(f"cross-fitting needs at least 100 test events; got {Tk.shape[0]}")
+    folds = 2 if cross_fit is True else int(cross_fit or 0)
+    if folds >= 2:
+        fold_t = rng.integers(folds, size=Tk.shape[0])
+        fold_h = rng.integers(folds, size=held.shape[0])
+        if Tk.shape[0] < 50 * folds:
+            raise EventDataError(f"cross-fitting in {folds} parts needs at least {50 * folds} test events; "
+                                 f"got {Tk.shape[0]}")
         models = []
-        for half in (fold_t, ~fold_t):
-            models.append(fit(Tk[half], progress=relay))
+        for k in range(folds):
+            models.append(fit(Tk[fold_t != k], progress=relay))
             if stopped:
                 raise Cancelled("contrast with the control was cancelled while fitting the test events")
         test_model = models
-    elif test_model is None:
-        test_model = fit(Tk, progress=relay)
-        if stopped:
-            raise Cancelled("contrast with the control was cancelled while fitting the test events")
+    else:
+        fold_t = fold_h = None
+        if test_model is None:
+            test_model = fit(Tk, progress=relay)
+            if stopped:
+                raise Cancelled("contrast with the control was cancelled while fitting the test events")
     control_model = fit(C[fit_idx], progress=relay)
     if stopped:
         raise Cancelled("contrast with the control was cancelled while fitting the control events")
 
     def log_test(X, fold):
-        if not cross_fit:
+        if fold is None:
             return np.asarray(test_model.score_samples(X), dtype=np.float64)
         out = np.empty(X.shape[0])
-        # events of the first half are scored by the model of the second half, and vice versa
-        out[fold] = test_model[1].score_samples(X[fold])
-        out[~fold] = test_model[0].score_samples(X[~fold])
+        # events of part k are scored by the model fitted without part k
+        for k, model in enumerate(test_model):
+            sel = fold == k
+            if sel.any():
+                out[sel] = model.score_samples(X[sel])
         return out
 
-    held_scores = log_test(held, fold_h if cross_fit else None) - \
+    held_scores = log_test(held, fold_h) - \
         np.asarray(control_model.score_samples(held), dtype=np.float64)
     thr = threshold_for_alpha(held_scores, alpha)
     score = np.full(T.shape[0], np.nan)
-    score[t_ok] = log_test(Tk, fold_t if cross_fit else None) - \
+    score[t_ok] = log_test(Tk, fold_t) - \
         np.asarray(control_model.score_samples(Tk), dtype=np.float64)
     with np.errstate(invalid="ignore"):
         enriched = score > thr
