@@ -205,6 +205,94 @@ def _pwl_inverse_rows(start, stop, U, offsets, xs, ys, slopes):
                 U[i, j] = u
 
 
+# ---------------------------------------------------------------- rotations
+
+_SQRT1_2 = 0.7071067811865476
+_INV_SQRT_2PI = 0.3989422804014327
+#: probit input is kept in [U_EPS, 1 - U_EPS] (|z| <= 8.2); beyond that the
+#: normal CDF itself rounds to 0 or 1 in float64.
+U_EPS = 1e-16
+
+
+@njit(cache=True)
+def ndtr(z):
+    """Standard normal CDF (via erfc, accurate in the lower tail)."""
+    return 0.5 * math.erfc(-z * _SQRT1_2)
+
+
+@njit(cache=True)
+def ndtri(p):
+    """Inverse of the standard normal CDF for p in (0, 1).
+
+    Start: Abramowitz & Stegun 26.2.23 rational approximation (|error| < 4.5e-4,
+    coefficients from memory); then two Halley steps on Q(z) = 0.5 erfc(z / sqrt 2)
+    = q, each of which cubes the error, to full double precision."""
+    if p < 0.5:
+        q = p
+    else:
+        q = 1.0 - p
+    t = math.sqrt(-2.0 * math.log(q))
+    z = t - (2.515517 + t * (0.802853 + t * 0.010328)) / (1.0 + t * (1.432788 + t * (0.189269 + t * 0.001308)))
+    for _ in range(2):
+        e = 0.5 * math.erfc(z * _SQRT1_2) - q
+        w = e / (_INV_SQRT_2PI * math.exp(-0.5 * z * z))
+        z = z + w / (1.0 - 0.5 * w * z)
+    if p < 0.5:
+        return -z
+    return z
+
+
+@njit(cache=True)
+def _rotate_rows(start, stop, U, Q):
+    """u -> Phi(Q Phi^-1(u)) for rows start:stop in place (Q orthogonal, d x d).
+
+    The Jacobian determinant is exactly 1: prod phi(z') / prod phi(z) with
+    |z'| = |z| (an orthogonal map preserves the standard normal density)."""
+    d = U.shape[1]
+    z = np.empty(d)
+    for i in range(start, stop):
+        for j in range(d):
+            u = U[i, j]
+            if u < U_EPS:
+                u = U_EPS
+            elif u > 1.0 - U_EPS:
+                u = 1.0 - U_EPS
+            z[j] = ndtri(u)
+        for a in range(d):
+            acc = 0.0
+            for b in range(d):
+                acc += Q[a, b] * z[b]
+            U[i, a] = ndtr(acc)
+
+
+@njit(cache=True, parallel=True)
+def _rotate_par(U, Q):
+    n = U.shape[0]
+    nb = (n + BLOCK - 1) // BLOCK
+    for b in prange(nb):
+        _rotate_rows(b * BLOCK, min(n, (b + 1) * BLOCK), U, Q)
+
+
+def rotate(U, Q):
+    """Apply u -> Phi(Q Phi^-1(u)) to U (n, d) in place (inverse: pass Q.T)."""
+    if _parallel(U.shape[0], 30 * U.shape[1]):
+        _rotate_par(U, Q)
+    else:
+        _rotate_rows(0, U.shape[0], U, Q)
+
+
+@njit(cache=True, parallel=True)
+def probit_matrix(U):
+    """Phi^-1 of every entry (clipped to [U_EPS, 1 - U_EPS]); returns a new (n, d) array."""
+    n, d = U.shape
+    Z = np.empty((n, d))
+    for i in prange(n):
+        for j in range(d):
+            u = min(max(U[i, j], U_EPS), 1.0 - U_EPS)
+            Z[i, j] = ndtri(u)
+    return Z
+
+
 # ---------------------------------------------------------------- fitting
 
 @njit(cache=True)

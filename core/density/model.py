@@ -23,8 +23,14 @@ maps (the "zero" model at the end of the chain is uniform on the cube):
 3. **Dependence**: boosted tree measures on the whole cube (forward-stagewise,
    shrinkage toward uniform, early stopping on held-out log-likelihood with
    patience, keeping the best prefix).
+4. **Layers** (optional, ``n_layers``): an orthogonal rotation in
+   Gaussianised coordinates, ``u -> Phi(Q Phi^-1(u))`` with Q the principal
+   axes of the current events' probits, then steps 2 and 3 again.  Its
+   Jacobian determinant is exactly 1 (an orthogonal map preserves the
+   standard normal density), so the log density stays exact; probits are
+   taken of u clipped to [1e-16, 1 - 1e-16].
 
-    log f(x) = log|J_cube(x)| + log m'(u) + sum_k log g_k(r_{k-1})
+    log f(x) = log|J_cube(x)| + sum_layers [log m'(u) + sum_k log g_k(r_{k-1})]
 
 No integration anywhere; sampling runs the chain backwards from a uniform draw.
 
@@ -115,6 +121,15 @@ class AdditiveTreeDensity:
     marginal_trees, marginal_learning_rate, marginal_depth :
         The same roles for the one-channel trees of the marginal stage
         (``marginal_trees=0`` skips the stage).
+    n_layers : int
+        Most layers; layer 2, 3, ... first rotates the cube coordinates to the
+        principal axes of the current events in Gaussianised coordinates, then
+        fits marginals and a block of trees again.
+    layer_trees : int
+        Most trees per layer.
+    layer_tol : float
+        A layer that improves the held-out mean log-likelihood by less than
+        this (nats) is dropped and fitting ends.
     random_state : int or None
         Seed for subsampling and the held-out split; equal seeds give
         bit-identical models.
@@ -124,6 +139,7 @@ class AdditiveTreeDensity:
                  n_bins: int = 32, min_leaf: int = 20, validation_fraction: float = 0.2,
                  patience: int = 20, max_fit_events: int = 200_000, marginal_trees: int = 100,
                  marginal_learning_rate: float = 0.2, marginal_depth: int = 6,
+                 n_layers: int = 3, layer_trees: int = 150, layer_tol: float = 0.01,
                  random_state: int | None = None):
         self.n_trees = n_trees
         self.learning_rate = learning_rate
@@ -136,12 +152,15 @@ class AdditiveTreeDensity:
         self.marginal_trees = marginal_trees
         self.marginal_learning_rate = marginal_learning_rate
         self.marginal_depth = marginal_depth
+        self.n_layers = n_layers
+        self.layer_trees = layer_trees
+        self.layer_tol = layer_tol
         self.random_state = random_state
 
     # ------------------------------------------------------------ params
     _PARAMS = ("n_trees", "learning_rate", "max_depth", "n_bins", "min_leaf", "validation_fraction",
                "patience", "max_fit_events", "marginal_trees", "marginal_learning_rate",
-               "marginal_depth", "random_state")
+               "marginal_depth", "n_layers", "layer_trees", "layer_tol", "random_state")
 
     def get_params(self, deep: bool = True) -> dict[str, Any]:
         return {k: getattr(self, k) for k in self._PARAMS}
@@ -220,61 +239,105 @@ class AdditiveTreeDensity:
         kernels.base_forward(X[tr], U_tr, ld_tr, self._loc, self._scale, np.log(self._scale))
         kernels.base_forward(X[va], U_va, ld_va, self._loc, self._scale, np.log(self._scale))
 
-        # 2. marginals first
-        self._fit_marginals(U_tr, U_va, ld_va)
-
-        # 3. dependence trees
-        self._forest = Forest()
-        self.learning_curve_ = np.array([ld_va.mean()])
-        self.heldout_loglik_ = float(ld_va.mean())
+        # 2. layers: [rotation] -> marginals -> block of dependence trees
+        self._layers = []
         self.n_trees_ = 0
         self.stopped_by_ = "n_trees"
         total = int(self.n_trees)
-        if not keep_going(progress, 0, total, self.heldout_loglik_):
-            self.stopped_by_ = "cancelled"
-            return self
         allowed = ~frozen
         if allowed.sum() < 2:
-            total = 0  # one free channel: the marginal stage is the whole model
-        lr = float(self.learning_rate)
-        forest = Forest()
-        curve = [float(ld_va.mean())]
-        best_k, best_ll = 0, curve[0]
+            total = 0  # at most one free channel: the marginal stage is the whole model
+        curve = []
         scratch = np.zeros(tr.size)
-        for k in range(1, total + 1):
-            tree = fit_tree(U_tr, lr, int(self.max_depth), int(self.n_bins), int(self.min_leaf), allowed)
-            if tree.n_nodes == 0:
-                self.stopped_by_ = "no split"
-                break
-            tree.forward(U_tr, scratch)
-            tree.forward(U_va, ld_va)
-            forest.append(tree)
-            ll = float(ld_va.mean())
-            curve.append(ll)
-            if ll > best_ll:
-                best_k, best_ll = k, ll
-            cancelled = not keep_going(progress, k, total, ll)
-            if cancelled:
+        lr = float(self.learning_rate)
+        done = 0
+        n_layers = max(1, int(self.n_layers)) if total else 1
+        for layer in range(n_layers):
+            start_ll = float(ld_va.mean()) if layer else -np.inf
+            Q = None
+            if layer > 0:
+                Q = self._rotation(U_tr, allowed, rng)
+                kernels.rotate(U_tr, Q)
+                kernels.rotate(U_va, Q)
+            pwl = self._fit_marginals(U_tr, U_va, ld_va)
+            curve.append(float(ld_va.mean()))
+            forest = Forest()
+            self._layers.append((Q, pwl, forest))
+            if not keep_going(progress, done, total, curve[-1]):
                 self.stopped_by_ = "cancelled"
                 break
-            if k - best_k >= int(self.patience):
-                self.stopped_by_ = "early stopping"
+            best_k, best_ll = 0, curve[-1]
+            best_state = pre_state = None
+            for k in range(1, min(total - done, int(self.layer_trees)) + 1):
+                tree = fit_tree(U_tr, lr, int(self.max_depth), int(self.n_bins), int(self.min_leaf),
+                                allowed)
+                if tree.n_nodes == 0:
+                    self.stopped_by_ = "no split"
+                    break
+                if best_state is None:
+                    pre_state = (U_tr.copy(), U_va.copy(), ld_va.copy())
+                tree.forward(U_tr, scratch)
+                tree.forward(U_va, ld_va)
+                forest.append(tree)
+                ll = float(ld_va.mean())
+                curve.append(ll)
+                if ll > best_ll:
+                    best_k, best_ll = k, ll
+                    best_state = None
+                elif best_state is None:
+                    best_state = pre_state  # the state at the best prefix
+                pre_state = None
+                if not keep_going(progress, done + k, total, ll):
+                    self.stopped_by_ = "cancelled"
+                    break
+                if k - best_k >= int(self.patience):
+                    self.stopped_by_ = "early stopping"
+                    break
+            if self.stopped_by_ == "cancelled":
+                done += forest.n_trees
                 break
-        if self.stopped_by_ == "cancelled":
-            best_k = len(curve) - 1  # keep everything fitted so far
-        self._forest = forest.prefix(best_k)
-        self.n_trees_ = best_k
+            if forest.n_trees > best_k:
+                # roll back to the best prefix (state saved when it was passed)
+                U_tr, U_va, ld_va = best_state
+                forest = forest.prefix(best_k)
+                self._layers[-1] = (Q, pwl, forest)
+                curve.append(best_ll)
+            done += best_k
+            gain = best_ll - start_ll
+            if layer > 0 and gain < float(self.layer_tol):
+                self._layers.pop()  # a layer that does not pay for its scoring time
+                curve.append(start_ll)
+                break
+            if done >= total or self.stopped_by_ == "no split":
+                break
+        self.n_trees_ = sum(f.n_trees for _, _, f in self._layers)
         self.learning_curve_ = np.array(curve)
-        self.heldout_loglik_ = float(curve[best_k])
+        self.heldout_loglik_ = float(curve[-1])
         return self
 
-    def _fit_marginals(self, U_tr: np.ndarray, U_va: np.ndarray, ld_va: np.ndarray) -> None:
+    def _rotation(self, U: np.ndarray, allowed: np.ndarray, rng) -> np.ndarray:
+        """Orthogonal d x d matrix: principal axes of the events in Gaussianised
+        coordinates (probit of each cube coordinate), acting on the free channels."""
+        d = U.shape[1]
+        Z = kernels.probit_matrix(U)[:, allowed]
+        C = np.cov(Z, rowvar=False)
+        _, vecs = np.linalg.eigh(C)
+        vecs = vecs[:, ::-1]
+        # fix signs so the result does not depend on the eigen-solver's choice
+        vecs = vecs * np.where(vecs[np.abs(vecs).argmax(axis=0), np.arange(vecs.shape[1])] < 0, -1.0, 1.0)
+        Q = np.eye(d)
+        idx = np.flatnonzero(allowed)
+        Q[np.ix_(idx, idx)] = vecs.T
+        return Q
+
+    def _fit_marginals(self, U_tr: np.ndarray, U_va: np.ndarray, ld_va: np.ndarray):
         """Boost one-channel trees per channel; compose each channel's trees into a
-        monotone piecewise-linear map; apply it to U_tr/U_va in place (adding to ld_va)."""
+        monotone piecewise-linear map; apply it to U_tr/U_va in place (adding to ld_va).
+        Returns the map as (offsets, xs, ys, slopes, log_slopes)."""
         d = U_tr.shape[1]
-        xs_all, ys_all, sl_all, lsl_all = [], [], [], []
+        xs_all, ys_all, sl_all = [], [], []
         offsets = [0]
-        self.n_marginal_trees_ = np.zeros(d, np.int64)
+        counts = np.zeros(d, np.int64)
         lr = float(self.marginal_learning_rate)
         for j in range(d):
             if self._frozen[j] or int(self.marginal_trees) == 0:
@@ -302,28 +365,23 @@ class AdditiveTreeDensity:
                     if k - best_k >= int(self.patience):
                         break
                 forest = forest.prefix(best_k)
-                self.n_marginal_trees_[j] = best_k
+                counts[j] = best_k
                 xs, ys, sl = compose_1d(forest)
             offsets.append(offsets[-1] + xs.size)
             xs_all.append(xs)
             ys_all.append(ys)
             sl_all.append(sl)
-        self._set_marginals(np.array(offsets, np.int64), np.concatenate(xs_all),
-                            np.concatenate(ys_all), np.concatenate(sl_all))
-        kernels.pwl_forward(U_tr, np.zeros(U_tr.shape[0]), self._m_off, self._m_xs, self._m_ys,
-                            self._m_sl, self._m_lsl)
-        kernels.pwl_forward(U_va, ld_va, self._m_off, self._m_xs, self._m_ys, self._m_sl, self._m_lsl)
-
-    def _set_marginals(self, offsets, xs, ys, slopes) -> None:
-        self._m_off = offsets
-        self._m_xs = xs
-        self._m_ys = ys
-        self._m_sl = slopes
-        self._m_lsl = np.log(slopes)
+        sl = np.concatenate(sl_all)
+        pwl = (np.array(offsets, np.int64), np.concatenate(xs_all), np.concatenate(ys_all), sl, np.log(sl))
+        self.n_marginal_trees_ = counts if not hasattr(self, "_layers") or not self._layers \
+            else self.n_marginal_trees_
+        kernels.pwl_forward(U_tr, np.zeros(U_tr.shape[0]), *pwl)
+        kernels.pwl_forward(U_va, ld_va, *pwl)
+        return pwl
 
     # ------------------------------------------------------------ using
     def _check_fitted(self) -> None:
-        if not hasattr(self, "_forest"):
+        if not hasattr(self, "_layers"):
             raise EventDataError("the density model is not fitted yet; call fit(events) first")
 
     def _forward_chunk(self, C: np.ndarray):
@@ -331,8 +389,11 @@ class AdditiveTreeDensity:
         U = np.empty((m, d))
         logd = np.zeros(m)
         kernels.base_forward(C, U, logd, self._loc, self._scale, np.log(self._scale))
-        kernels.pwl_forward(U, logd, self._m_off, self._m_xs, self._m_ys, self._m_sl, self._m_lsl)
-        self._forest.forward(U, logd)
+        for Q, pwl, forest in self._layers:
+            if Q is not None:
+                kernels.rotate(U, Q)
+            kernels.pwl_forward(U, logd, *pwl)
+            forest.forward(U, logd)
         return U, logd
 
     def score_samples(self, X) -> np.ndarray:
@@ -371,8 +432,11 @@ class AdditiveTreeDensity:
             C = _chunk(U, a, b, "inverse_transform")
             if (C < 0).any() or (C > 1).any():
                 raise EventDataError("inverse_transform: values must lie in the unit cube [0, 1]")
-            self._forest.inverse(C)
-            kernels.pwl_inverse(C, self._m_off, self._m_xs, self._m_ys, self._m_sl)
+            for Q, pwl, forest in reversed(self._layers):
+                forest.inverse(C)
+                kernels.pwl_inverse(C, *pwl[:4])
+                if Q is not None:
+                    kernels.rotate(C, np.ascontiguousarray(Q.T))
             kernels.base_inverse(C, out[a:b], self._loc, self._scale)
         return out
 

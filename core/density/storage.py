@@ -26,30 +26,53 @@ from .tree import Forest
 FORMAT_NAME = "boscage-additive-tree-density"
 FORMAT_VERSION = 1
 
-_ARRAYS = ("loc", "scale", "frozen", "bounds", "m_off", "m_xs", "m_ys", "m_sl", "n_marginal_trees",
-           "roots", "dim", "cut", "lo", "hi", "theta", "left", "right", "learning_curve")
+_ARRAYS = ("loc", "scale", "frozen", "bounds", "rot", "has_rot", "m_off", "m_xs", "m_ys", "m_sl",
+           "n_marginal_trees", "layer_trees", "roots", "dim", "cut", "lo", "hi", "theta", "left",
+           "right", "learning_curve")
 
 
 def save_model(model, path) -> None:
     """Write ``model`` to ``path`` (.npz) atomically, replacing an existing file."""
-    f = model._forest
+    d = int(model.n_features_in_)
+    layers = model._layers
+    L = len(layers)
+    rot = np.zeros((L, d, d))
+    has_rot = np.zeros(L, np.bool_)
+    m_off = np.zeros((L, d + 1), np.int64)
+    xs, ys, sl = [], [], []
+    forest = Forest()
+    layer_trees = [0]
+    base = 0
+    for i, (Q, pwl, f) in enumerate(layers):
+        rot[i] = np.eye(d) if Q is None else Q
+        has_rot[i] = Q is not None
+        m_off[i] = pwl[0] + base
+        base += pwl[1].size
+        xs.append(pwl[1])
+        ys.append(pwl[2])
+        sl.append(pwl[3])
+        forest.append(f)
+        layer_trees.append(forest.n_trees)
     meta = {
         "format": FORMAT_NAME,
         "format_version": FORMAT_VERSION,
         "software_version": __version__,
         "note": RESEARCH_USE_NOTE,
         "params": model.get_params(),
-        "n_features_in": int(model.n_features_in_),
+        "n_features_in": d,
+        "n_layers": L,
         "n_trees": int(model.n_trees_),
         "heldout_loglik": float(model.heldout_loglik_),
         "n_events_fitted": int(getattr(model, "n_events_fitted_", 0)),
         "stopped_by": getattr(model, "stopped_by_", ""),
     }
+    f = forest
     arrays = dict(loc=model._loc, scale=model._scale, frozen=model._frozen, bounds=model.bounds_,
-                  m_off=model._m_off, m_xs=model._m_xs, m_ys=model._m_ys, m_sl=model._m_sl,
-                  n_marginal_trees=model.n_marginal_trees_, roots=f.roots, dim=f.dim, cut=f.cut,
-                  lo=f.lo, hi=f.hi, theta=f.theta, left=f.left, right=f.right,
-                  learning_curve=model.learning_curve_)
+                  rot=rot, has_rot=has_rot, m_off=m_off, m_xs=np.concatenate(xs),
+                  m_ys=np.concatenate(ys), m_sl=np.concatenate(sl),
+                  n_marginal_trees=model.n_marginal_trees_, layer_trees=np.array(layer_trees, np.int64),
+                  roots=f.roots, dim=f.dim, cut=f.cut, lo=f.lo, hi=f.hi, theta=f.theta, left=f.left,
+                  right=f.right, learning_curve=model.learning_curve_)
     with atomic_write(path, "wb", overwrite=True) as handle:
         np.savez(handle, metadata=np.array(json.dumps(meta)), **arrays)
 
@@ -112,17 +135,27 @@ def _build(cls, meta, a):
     bounds = _arr(a, "bounds", np.float64, (2, d))
     if not (np.isfinite(loc).all() and np.isfinite(scale).all() and (scale > 0).all()):
         raise ValueError("invalid channel location/scale")
-    m_off = _arr(a, "m_off", np.int64, (d + 1,))
+    L = int(meta["n_layers"])
+    if L < 1:
+        raise ValueError("no layers")
+    rot = _arr(a, "rot", np.float64, (L, d, d))
+    has_rot = _arr(a, "has_rot", np.bool_, (L,))
+    for i in range(L):
+        if not np.allclose(rot[i] @ rot[i].T, np.eye(d), rtol=0, atol=1e-9):
+            raise ValueError(f"rotation of layer {i + 1} is not orthogonal")
+    m_off = _arr(a, "m_off", np.int64, (L, d + 1))
     m_xs = _arr(a, "m_xs", np.float64)
     m_ys = _arr(a, "m_ys", np.float64, m_xs.shape)
     m_sl = _arr(a, "m_sl", np.float64, m_xs.shape)
-    if m_off[0] != 0 or m_off[-1] != m_xs.size or (np.diff(m_off) < 2).any():
+    flat = np.append(m_off[:, :-1].ravel(), m_off[-1, -1])
+    if flat[0] != 0 or flat[-1] != m_xs.size or (np.diff(flat) < 2).any() \
+            or (m_off[1:, 0] != m_off[:-1, -1]).any():
         raise ValueError("inconsistent marginal map offsets")
-    for j in range(d):
-        xs, ys = m_xs[m_off[j]:m_off[j + 1]], m_ys[m_off[j]:m_off[j + 1]]
+    for p in range(flat.size - 1):
+        xs, ys = m_xs[flat[p]:flat[p + 1]], m_ys[flat[p]:flat[p + 1]]
         if xs[0] != 0 or xs[-1] != 1 or ys[0] != 0 or ys[-1] != 1 or (np.diff(xs) <= 0).any() \
                 or (np.diff(ys) < 0).any():
-            raise ValueError(f"marginal map of channel {j} is not a monotone map of [0, 1]")
+            raise ValueError("a marginal map is not a monotone map of [0, 1]")
     if not (np.isfinite(m_sl).all() and (m_sl > 0).all()):
         raise ValueError("marginal slopes must be positive")
     roots = _arr(a, "roots", np.int64)
@@ -159,9 +192,17 @@ def _build(cls, meta, a):
         raise ValueError("tree count does not match the metadata")
     model._loc, model._scale, model._frozen = loc, scale, frozen
     model.bounds_ = bounds
-    model._set_marginals(m_off, m_xs, m_ys, m_sl)
+    layer_trees = _arr(a, "layer_trees", np.int64, (L + 1,))
+    if layer_trees[0] != 0 or layer_trees[-1] != roots.size or (np.diff(layer_trees) < 0).any():
+        raise ValueError("inconsistent layer tree counts")
+    m_lsl = np.log(m_sl)
+    layers = []
+    for i in range(L):
+        pwl = (np.ascontiguousarray(m_off[i]), m_xs, m_ys, m_sl, m_lsl)
+        Q = np.ascontiguousarray(rot[i]) if has_rot[i] else None
+        layers.append((Q, pwl, forest.slice_trees(int(layer_trees[i]), int(layer_trees[i + 1]))))
+    model._layers = layers
     model.n_marginal_trees_ = _arr(a, "n_marginal_trees", np.int64, (d,))
-    model._forest = forest
     model.n_features_in_ = d
     model.n_trees_ = n_trees
     model.learning_curve_ = curve

@@ -102,6 +102,21 @@ class Forest:
                       self.lo[:keep].copy(), self.hi[:keep].copy(), self.theta[:keep].copy(),
                       self.left[:keep].copy(), self.right[:keep].copy())
 
+    def slice_trees(self, t0: int, t1: int) -> "Forest":
+        """Trees t0 .. t1-1 as a new forest (node indices shifted to start at 0)."""
+        roots = self.roots[t0:t1]
+        used = roots[roots >= 0]
+        if used.size == 0:
+            return Forest(roots=np.full(roots.shape, -1, np.int64))
+        a = int(used.min())
+        later = self.roots[t1:]
+        later = later[later >= 0]
+        b = int(later.min()) if later.size else self.n_nodes
+        shift = lambda v: np.where(v >= 0, v - a, -1)  # noqa: E731
+        return Forest(shift(roots), self.dim[a:b].copy(), self.cut[a:b].copy(), self.lo[a:b].copy(),
+                      self.hi[a:b].copy(), self.theta[a:b].copy(), shift(self.left[a:b]),
+                      shift(self.right[a:b]))
+
     def with_dim(self, j: int) -> "Forest":
         """A copy whose splits all act on dimension ``j`` (for one-channel trees)."""
         out = Forest(self.roots.copy(), np.full_like(self.dim, j), self.cut.copy(), self.lo.copy(),
