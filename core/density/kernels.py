@@ -112,36 +112,34 @@ def _base_forward_rows(start, stop, X, U, logd, loc, scale, log_scale):
     X: (n, d) values in the units of the data; U: (n, d) output in [0, 1];
     logd: (n,) the log-Jacobian  sum_j [log sigma'(z_j) - log scale_j]  is added.
     """
-    n, d = X.shape
-    if True:
-        for i in range(start, stop):
-            acc = 0.0
-            for j in range(d):
-                z = (X[i, j] - loc[j]) / scale[j]
-                if z >= 0.0:
-                    e = math.exp(-z)
-                    U[i, j] = 1.0 / (1.0 + e)
-                else:
-                    e = math.exp(z)
-                    U[i, j] = e / (1.0 + e)
-                acc += _log_sigmoid_pair(z) - log_scale[j]
-            logd[i] += acc
+    d = X.shape[1]
+    for i in range(start, stop):
+        acc = 0.0
+        for j in range(d):
+            z = (X[i, j] - loc[j]) / scale[j]
+            if z >= 0.0:
+                e = math.exp(-z)
+                U[i, j] = 1.0 / (1.0 + e)
+            else:
+                e = math.exp(z)
+                U[i, j] = e / (1.0 + e)
+            acc += _log_sigmoid_pair(z) - log_scale[j]
+        logd[i] += acc
 
 
 @njit(cache=True)
 def _base_inverse_rows(start, stop, U, X, loc, scale):
     """Inverse of :func:`base_forward`: x = loc + scale * logit(u); u = 0 or 1 give -inf/+inf."""
-    n, d = U.shape
-    if True:
-        for i in range(start, stop):
-            for j in range(d):
-                u = U[i, j]
-                if u <= 0.0:
-                    X[i, j] = -np.inf
-                elif u >= 1.0:
-                    X[i, j] = np.inf
-                else:
-                    X[i, j] = loc[j] + scale[j] * (math.log(u) - math.log1p(-u))
+    d = U.shape[1]
+    for i in range(start, stop):
+        for j in range(d):
+            u = U[i, j]
+            if u <= 0.0:
+                X[i, j] = -np.inf
+            elif u >= 1.0:
+                X[i, j] = np.inf
+            else:
+                X[i, j] = loc[j] + scale[j] * (math.log(u) - math.log1p(-u))
 
 
 @njit(cache=True)
@@ -152,57 +150,55 @@ def _pwl_forward_rows(start, stop, U, logd, offsets, xs, ys, slopes, log_slopes)
     values ``ys`` at the knots and the exact slope of each piece
     (``slopes``/``log_slopes`` are indexed by the piece's left knot).
     """
-    n, d = U.shape
-    if True:
-        for i in range(start, stop):
-            acc = 0.0
-            for j in range(d):
-                a = offsets[j]
-                b = offsets[j + 1]
-                if b - a < 2:
-                    continue
-                u = U[i, j]
-                # last knot <= u, restricted to a piece index in [a, b-2]
-                k = np.searchsorted(xs[a:b], u, side="right") - 1
-                if k < 0:
-                    k = 0
-                if k > b - a - 2:
-                    k = b - a - 2
-                p = a + k
-                v = ys[p] + (u - xs[p]) * slopes[p]
-                if v < 0.0:
-                    v = 0.0
-                elif v > 1.0:
-                    v = 1.0
-                U[i, j] = v
-                acc += log_slopes[p]
-            logd[i] += acc
+    d = U.shape[1]
+    for i in range(start, stop):
+        acc = 0.0
+        for j in range(d):
+            a = offsets[j]
+            b = offsets[j + 1]
+            if b - a < 2:
+                continue
+            u = U[i, j]
+            # last knot <= u, restricted to a piece index in [a, b-2]
+            k = np.searchsorted(xs[a:b], u, side="right") - 1
+            if k < 0:
+                k = 0
+            if k > b - a - 2:
+                k = b - a - 2
+            p = a + k
+            v = ys[p] + (u - xs[p]) * slopes[p]
+            if v < 0.0:
+                v = 0.0
+            elif v > 1.0:
+                v = 1.0
+            U[i, j] = v
+            acc += log_slopes[p]
+        logd[i] += acc
 
 
 @njit(cache=True)
 def _pwl_inverse_rows(start, stop, U, offsets, xs, ys, slopes):
     """Inverse of :func:`pwl_forward` in place."""
-    n, d = U.shape
-    if True:
-        for i in range(start, stop):
-            for j in range(d):
-                a = offsets[j]
-                b = offsets[j + 1]
-                if b - a < 2:
-                    continue
-                v = U[i, j]
-                k = np.searchsorted(ys[a:b], v, side="right") - 1
-                if k < 0:
-                    k = 0
-                if k > b - a - 2:
-                    k = b - a - 2
-                p = a + k
-                u = xs[p] + (v - ys[p]) / slopes[p]
-                if u < xs[p]:
-                    u = xs[p]
-                elif u > xs[p + 1]:
-                    u = xs[p + 1]
-                U[i, j] = u
+    d = U.shape[1]
+    for i in range(start, stop):
+        for j in range(d):
+            a = offsets[j]
+            b = offsets[j + 1]
+            if b - a < 2:
+                continue
+            v = U[i, j]
+            k = np.searchsorted(ys[a:b], v, side="right") - 1
+            if k < 0:
+                k = 0
+            if k > b - a - 2:
+                k = b - a - 2
+            p = a + k
+            u = xs[p] + (v - ys[p]) / slopes[p]
+            if u < xs[p]:
+                u = xs[p]
+            elif u > xs[p + 1]:
+                u = xs[p + 1]
+            U[i, j] = u
 
 
 # ---------------------------------------------------------------- rotations
