@@ -17,6 +17,9 @@ the recipe's regions; then, in ``OUT_DIR/<file stem>/``:
   removed events carry log density 0 and rarity -1 since FCS float data should
   hold no NaN), and with a control ``contrast score``/``enriched``
   (:func:`core.export.export_events_fcs`, with provenance keywords);
+  with ``--control`` every file is contrasted with the control
+  (:mod:`core.contrast`; each file's task fits its own control density, so
+  a batch with a control costs about four fits per file);
 * ``done.json`` -- the file's summary row, the recipe digest and the input
   file's size and modification time: a re-run skips files whose marker
   matches (unless ``--force``); changed inputs or recipes are redone.

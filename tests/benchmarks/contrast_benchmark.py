@@ -1,7 +1,7 @@
 """Contrast with a control on our sample scenario; optionally, pairwise contour accuracy.
 
     python tests/benchmarks/contrast_benchmark.py [--folder sample_events] [--tubes B,C,D]
-                                                  [--folds 2] [--contours] [--markdown OUT.md]
+                                                  [--folds 3] [--contours] [--markdown OUT.md]
 
 Contrast table: each treated tube of the scenario against ``tube_A_control``
 with the default recipe of the control tube; the truth (``truth/<stem>.npz``,
@@ -150,7 +150,7 @@ def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--folder", default=os.path.join(ROOT, "sample_events"))
     ap.add_argument("--tubes", default="B,C,D")
-    ap.add_argument("--folds", default="2", help="cross-fitting parts to compare, e.g. 0,2,4 (0 = off)")
+    ap.add_argument("--folds", default="3", help="cross-fitting parts to compare, e.g. 0,2,4 (0 = off)")
     ap.add_argument("--contours", action="store_true", help="also the pairwise contour table")
     ap.add_argument("--no-contrast", action="store_true")
     ap.add_argument("--markdown", help="also write the tables as markdown here")
