@@ -103,3 +103,32 @@ def test_rare_by_mass_flags_the_nominal_share_of_fresh_events(model4):
     ci = stats.binomtest(res.count, fresh.shape[0]).proportion_ci(confidence_level=0.999)
     assert ci.low - 0.002 <= 1 - mass <= ci.high + 0.002, (res.count, ci)
     assert res.rule == {"rule": "mass", "mass": mass}
+
+
+@pytest.fixture(scope="module")
+def fitted_normal():
+    from core.density import AdditiveTreeDensity
+
+    cov = np.array([[1.0, 0.6, 0.0, 0.2], [0.6, 2.0, 0.3, 0.0], [0.0, 0.3, 0.5, 0.1], [0.2, 0.0, 0.1, 1.5]])
+    truth = NormalModel(np.array([1.0, -2.0, 0.5, 3.0]), cov)
+    fitted = AdditiveTreeDensity(random_state=0).fit(truth.sample(20_000, random_state=21))
+    return fitted, truth.sample(40_000, random_state=22)
+
+
+@pytest.mark.parametrize("mass", [
+    0.5, 0.9,
+    # measured with the engine of 2026-12-01 (n = 20,000, 4-D normal): the fitted
+    # tails are heavier than the truth, so the model's own 99 % region is too
+    # wide and only 0.55 % of new events fall outside it (the training events'
+    # 1 % quantile would flag 1.15 %).  XPASS once the engine's tails are right.
+    pytest.param(0.99, marks=pytest.mark.xfail(reason="engine tails heavier than the truth", strict=False)),
+])
+def test_mass_rule_with_the_fitted_engine_flags_the_nominal_share_of_new_events(fitted_normal, mass):
+    fitted, fresh = fitted_normal
+    res = rare_by_mass(fitted.score_samples(fresh), fitted, mass, n_samples=100_000, random_state=23)
+    # the level comes from the model's own draws, so new events from the same
+    # distribution fall outside the mass region about (1 - mass) of the time
+    # (reference: scipy.stats.binomtest interval, widened by 10 % of 1 - mass for the fit)
+    ci = stats.binomtest(res.count, fresh.shape[0]).proportion_ci(confidence_level=0.999)
+    slack = 0.1 * (1 - mass)
+    assert ci.low - slack <= 1 - mass <= ci.high + slack, res.count / fresh.shape[0]
