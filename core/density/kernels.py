@@ -292,8 +292,10 @@ def probit_matrix(U):
 # ---------------------------------------------------------------- fitting
 
 @njit(cache=True)
-def _hist_rows(start, stop, R, node_of, box_lo, box_inv, n_bins, allowed, hist):
-    """Add the events start:stop to hist[node, dim, bin] (equal-width bins of each node's box)."""
+def _hist_rows(start, stop, R, node_of, box_lo, box_inv, n_bins, allowed, shift, hist):
+    """Add the events start:stop to hist[node, dim, bin]: equal-width bins of each
+    node's box, the grid shifted by ``shift[node]`` of a bin (n_bins + 1 bins;
+    the first and last are partial when the shift is not 0)."""
     d = R.shape[1]
     for i in range(start, stop):
         k = node_of[i]
@@ -302,57 +304,74 @@ def _hist_rows(start, stop, R, node_of, box_lo, box_inv, n_bins, allowed, hist):
         for j in range(d):
             if not allowed[j]:
                 continue
-            b = int((R[i, j] - box_lo[k, j]) * box_inv[k, j] * n_bins)
+            b = int((R[i, j] - box_lo[k, j]) * box_inv[k, j] * n_bins + shift[k])
             if b < 0:
                 b = 0
-            elif b >= n_bins:
-                b = n_bins - 1
+            elif b > n_bins:
+                b = n_bins
             hist[k, j, b] += 1
 
 
 @njit(cache=True, parallel=True)
-def _hist_par(R, node_of, box_lo, box_inv, n_nodes, n_bins, allowed, n_chunks):
+def _hist_par(R, node_of, box_lo, box_inv, n_nodes, n_bins, allowed, shift, n_chunks):
     n, d = R.shape
-    parts = np.zeros((n_chunks, n_nodes, d, n_bins), np.int64)
+    parts = np.zeros((n_chunks, n_nodes, d, n_bins + 1), np.int64)
     step = (n + n_chunks - 1) // n_chunks
     for c in prange(n_chunks):
         _hist_rows(c * step, min(n, (c + 1) * step), R, node_of, box_lo, box_inv, n_bins, allowed,
-                   parts[c])
-    out = np.zeros((n_nodes, d, n_bins), np.int64)
+                   shift, parts[c])
+    out = np.zeros((n_nodes, d, n_bins + 1), np.int64)
     for c in range(n_chunks):
         out += parts[c]
     return out
 
 
-def level_histogram(R, node_of, box_lo, box_inv, n_nodes, n_bins, allowed):
+def level_histogram(R, node_of, box_lo, box_inv, n_nodes, n_bins, allowed, shift):
     """Counts of events per (node, dimension, equal-width bin of the node's extent).
 
     R: (n, d) events in the cube; node_of: (n,) node of each event at this
     level (-1: not in a node being split); box_lo/box_inv: (n_nodes, d) lower
     bound and 1/width of each node's box; allowed: (d,) bool dimensions to count.
-    Returns (n_nodes, d, n_bins) int64.  Integer sums: order-independent, so
+    shift: (n_nodes,) offset of each node's bin grid in [0, 1) bins.
+    Returns (n_nodes, d, n_bins + 1) int64.  Integer sums: order-independent, so
     serial and parallel runs give identical counts.
     """
     n, d = R.shape
     if n * d < PARALLEL_MIN_WORK:
-        hist = np.zeros((n_nodes, d, n_bins), np.int64)
-        _hist_rows(0, n, R, node_of, box_lo, box_inv, n_bins, allowed, hist)
+        hist = np.zeros((n_nodes, d, n_bins + 1), np.int64)
+        _hist_rows(0, n, R, node_of, box_lo, box_inv, n_bins, allowed, shift, hist)
         return hist
-    return _hist_par(R, node_of, box_lo, box_inv, n_nodes, n_bins, allowed, 4)
+    return _hist_par(R, node_of, box_lo, box_inv, n_nodes, n_bins, allowed, shift, 4)
 
 
 @njit(cache=True)
-def best_splits(hist, counts, vol, lr, n_total, min_leaf, allowed):
+def node_theta(n_l, n_a, frac, lr, alpha):
+    """Per-node shrunk probability of the left child: the conditional estimate
+    with ``alpha`` pseudo-events spread uniformly, (n_L + alpha frac) / (n_A + alpha),
+    mixed with the uniform frac at rate ``lr``.  Lies strictly in (0, 1) for
+    lr < 1 or alpha > 0 when 0 < frac < 1: well-populated nodes learn
+    nearly fully, sparse ones stay near uniform (scale-dependent shrinkage)."""
+    return (1.0 - lr) * frac + lr * (n_l + alpha * frac) / (n_a + alpha)
+
+
+@njit(cache=True)
+def best_splits(hist, counts, vol, lr, n_total, min_leaf, allowed, alpha, shift):
     """Best split of each node by the gain in training log-likelihood of the shrunk model.
 
     The shrunk tree measure puts density (1 - lr) + lr * n_A / (N vol_A) on a
     leaf A; the gain of splitting A into L, R is
     n_L log f_L + n_R log f_R - n_A log f_A.
+    With ``alpha >= 0`` the shrinkage is per node instead (see
+    :func:`node_theta`) and the gain is the node's own term of the
+    log-likelihood, n_L log(theta / frac) + n_R log((1 - theta) / (1 - frac)).
     Returns (best_dim, best_bin, best_gain, n_left) per node; best_dim = -1 when
     no split has positive gain with at least ``min_leaf`` events on each side.
-    The split location is after bin ``best_bin`` (cut = lo + (best_bin+1)/B width).
+    hist has n_bins + 1 bins of a grid shifted by ``shift[node]`` (see
+    :func:`level_histogram`); the split location is after bin ``best_bin``:
+    cut = lo + (best_bin + 1 - shift) / n_bins * width.
     """
-    n_nodes, d, n_bins = hist.shape
+    n_nodes, d, n_b1 = hist.shape
+    n_bins = n_b1 - 1
     best_dim = np.full(n_nodes, -1, np.int64)
     best_bin = np.zeros(n_nodes, np.int64)
     best_gain = np.zeros(n_nodes)
@@ -369,7 +388,8 @@ def best_splits(hist, counts, vol, lr, n_total, min_leaf, allowed):
             if not allowed[j]:
                 continue
             cum = 0
-            for b in range(n_bins - 1):
+            n_cand = n_bins if shift[k] > 0.0 else n_bins - 1
+            for b in range(n_cand):
                 cum += hist[k, j, b]
                 n_l = cum
                 n_r = n_a - n_l
@@ -377,10 +397,14 @@ def best_splits(hist, counts, vol, lr, n_total, min_leaf, allowed):
                     continue
                 if n_r < min_leaf:
                     break
-                frac = (b + 1.0) / n_bins
-                f_l = (1.0 - lr) + scale * n_l / frac
-                f_r = (1.0 - lr) + scale * n_r / (1.0 - frac)
-                g = n_l * math.log(f_l) + n_r * math.log(f_r) - base
+                frac = (b + 1.0 - shift[k]) / n_bins
+                if alpha >= 0.0:
+                    th = node_theta(n_l, n_a, frac, lr, alpha)
+                    g = n_l * math.log(th / frac) + n_r * math.log((1.0 - th) / (1.0 - frac))
+                else:
+                    f_l = (1.0 - lr) + scale * n_l / frac
+                    f_r = (1.0 - lr) + scale * n_r / (1.0 - frac)
+                    g = n_l * math.log(f_l) + n_r * math.log(f_r) - base
                 if g > g_best:
                     g_best = g
                     best_dim[k] = j

@@ -106,6 +106,13 @@ class AdditiveTreeDensity:
         Most dependence trees to fit (early stopping usually ends sooner).
     learning_rate : float
         Shrinkage toward uniform of each dependence tree, in (0, 1).
+    alpha : float
+        Scale-dependent shrinkage: each split's left probability is
+        ``(1 - lr) frac + lr (n_L + alpha frac) / (n_A + alpha)`` (frac: the
+        left child's share of the node's extent), so nodes with many events
+        learn nearly fully and sparse ones stay near uniform.  A negative
+        value selects global shrinkage instead: the tree measure
+        ``(1 - lr) uniform + lr (maximum likelihood tree)``.
     max_depth : int
         Most splits on a root-to-leaf path of a dependence tree.
     n_bins : int
@@ -127,6 +134,11 @@ class AdditiveTreeDensity:
         fits marginals and a block of trees again.
     layer_trees : int
         Most trees per layer.
+    rotation : "pca" or "random"
+        How later layers choose their rotation.
+    jitter : bool
+        Shift each node's grid of candidate cuts by a random fraction of a
+        bin (seeded by ``random_state``).
     layer_tol : float
         A layer that improves the held-out mean log-likelihood by less than
         this (nats) is dropped and fitting ends.
@@ -135,11 +147,12 @@ class AdditiveTreeDensity:
         bit-identical models.
     """
 
-    def __init__(self, n_trees: int = 400, learning_rate: float = 0.1, max_depth: int = 5,
-                 n_bins: int = 32, min_leaf: int = 20, validation_fraction: float = 0.2,
+    def __init__(self, n_trees: int = 400, learning_rate: float = 0.9, max_depth: int = 14,
+                 n_bins: int = 64, min_leaf: int = 5, validation_fraction: float = 0.2,
                  patience: int = 20, max_fit_events: int = 200_000, marginal_trees: int = 100,
                  marginal_learning_rate: float = 0.2, marginal_depth: int = 6,
                  n_layers: int = 3, layer_trees: int = 150, layer_tol: float = 0.01,
+                 alpha: float = 200.0, rotation: str = "pca", jitter: bool = False,
                  random_state: int | None = None):
         self.n_trees = n_trees
         self.learning_rate = learning_rate
@@ -154,13 +167,16 @@ class AdditiveTreeDensity:
         self.marginal_depth = marginal_depth
         self.n_layers = n_layers
         self.layer_trees = layer_trees
+        self.alpha = alpha
+        self.rotation = rotation
+        self.jitter = jitter
         self.layer_tol = layer_tol
         self.random_state = random_state
 
     # ------------------------------------------------------------ params
     _PARAMS = ("n_trees", "learning_rate", "max_depth", "n_bins", "min_leaf", "validation_fraction",
                "patience", "max_fit_events", "marginal_trees", "marginal_learning_rate",
-               "marginal_depth", "n_layers", "layer_trees", "layer_tol", "random_state")
+               "marginal_depth", "n_layers", "layer_trees", "layer_tol", "alpha", "rotation", "jitter", "random_state")
 
     def get_params(self, deep: bool = True) -> dict[str, Any]:
         return {k: getattr(self, k) for k in self._PARAMS}
@@ -190,6 +206,10 @@ class AdditiveTreeDensity:
             raise ValueError("min_leaf must be at least 1")
         if not 0.0 < float(self.validation_fraction) < 0.9:
             raise ValueError("validation_fraction must be in (0, 0.9)")
+        if self.rotation not in ("pca", "random"):
+            raise ValueError("rotation must be 'pca' or 'random'")
+        if not np.isfinite(float(self.alpha)):
+            raise ValueError("alpha must be a finite number")
         if int(self.n_trees) < 0 or int(self.marginal_trees) < 0 or int(self.patience) < 1:
             raise ValueError("n_trees and marginal_trees must be >= 0 and patience >= 1")
 
@@ -270,7 +290,7 @@ class AdditiveTreeDensity:
             best_state = pre_state = None
             for k in range(1, min(total - done, int(self.layer_trees)) + 1):
                 tree = fit_tree(U_tr, lr, int(self.max_depth), int(self.n_bins), int(self.min_leaf),
-                                allowed)
+                                allowed, float(self.alpha), rng if self.jitter else None)
                 if tree.n_nodes == 0:
                     self.stopped_by_ = "no split"
                     break
@@ -319,10 +339,15 @@ class AdditiveTreeDensity:
         """Orthogonal d x d matrix: principal axes of the events in Gaussianised
         coordinates (probit of each cube coordinate), acting on the free channels."""
         d = U.shape[1]
-        Z = kernels.probit_matrix(U)[:, allowed]
-        C = np.cov(Z, rowvar=False)
-        _, vecs = np.linalg.eigh(C)
-        vecs = vecs[:, ::-1]
+        if self.rotation == "random":
+            k = int(allowed.sum())
+            vecs, r = np.linalg.qr(rng.normal(size=(k, k)))
+            vecs = vecs * np.sign(np.diag(r))
+        else:
+            Z = kernels.probit_matrix(U)[:, allowed]
+            C = np.cov(Z, rowvar=False)
+            _, vecs = np.linalg.eigh(C)
+            vecs = vecs[:, ::-1]
         # fix signs so the result does not depend on the eigen-solver's choice
         vecs = vecs * np.where(vecs[np.abs(vecs).argmax(axis=0), np.arange(vecs.shape[1])] < 0, -1.0, 1.0)
         Q = np.eye(d)

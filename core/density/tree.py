@@ -150,14 +150,18 @@ class Forest:
 
 
 def fit_tree(R: np.ndarray, learning_rate: float, max_depth: int, n_bins: int, min_leaf: int,
-             allowed: np.ndarray | None = None) -> Forest:
+             allowed: np.ndarray | None = None, alpha: float = -1.0, rng=None) -> Forest:
     """Fit one shrunk tree measure to events R (n, d) in the unit cube.
 
     Growth is level by level up to ``max_depth`` splits on any path; a node
     is split at the equal-width candidate (``n_bins`` bins of its extent on
     each allowed dimension) with the largest positive gain leaving at least
     ``min_leaf`` events on each side.  Returns a one-tree :class:`Forest`
-    (possibly without splits).
+    (possibly without splits).  ``alpha >= 0`` switches from the global
+    mixture shrinkage to per-node shrinkage (:func:`kernels.node_theta`).
+    With a numpy Generator ``rng`` each node's grid of candidate cuts is
+    shifted by a random fraction of a bin, so successive trees cut at
+    different places (the composition is smoother than any one tree).
     """
     n, d = R.shape
     lr = float(learning_rate)
@@ -181,10 +185,11 @@ def fit_tree(R: np.ndarray, learning_rate: float, max_depth: int, n_bins: int, m
             break
         width = box_hi - box_lo
         vol = np.prod(width, axis=1)
+        shift = rng.random(n_nodes) if rng is not None else np.zeros(n_nodes)
         hist = kernels.level_histogram(R, node_of, box_lo, 1.0 / width, n_nodes, int(n_bins),
-                                       allowed)
+                                       allowed, shift)
         bdim, bbin, _gain, nleft = kernels.best_splits(hist, counts, vol, lr, float(n), int(min_leaf),
-                                                       allowed)
+                                                       allowed, float(alpha), shift)
         split_cut = np.zeros(n_nodes)
         child_l = np.full(n_nodes, -1, np.int64)
         child_r = np.full(n_nodes, -1, np.int64)
@@ -194,7 +199,9 @@ def fit_tree(R: np.ndarray, learning_rate: float, max_depth: int, n_bins: int, m
             if j < 0:
                 continue
             a, b = box_lo[k, j], box_hi[k, j]
-            c = a + (bbin[k] + 1.0) / n_bins * (b - a)
+            c = a + (bbin[k] + 1.0 - shift[k]) / n_bins * (b - a)
+            if not a < c < b:
+                continue  # rounding at a tiny node: leave it a leaf
             split_cut[k] = c
             gid = len(dims)
             pa, is_left = parent_link[k]
@@ -206,8 +213,12 @@ def fit_tree(R: np.ndarray, learning_rate: float, max_depth: int, n_bins: int, m
             nl = int(nleft[k])
             nr = int(counts[k]) - nl
             frac = (c - a) / (b - a)
-            pl = p_mix(nl, vol[k] * frac)
-            pr = p_mix(nr, vol[k] * (1.0 - frac))
+            if alpha >= 0:
+                pl = kernels.node_theta(nl, nl + nr, frac, lr, float(alpha))
+                pr = 1.0 - pl
+            else:
+                pl = p_mix(nl, vol[k] * frac)
+                pr = p_mix(nr, vol[k] * (1.0 - frac))
             dims.append(j)
             cuts.append(c)
             los.append(a)
