@@ -20,8 +20,8 @@ pair's values (the default), rather than marginalising the full d-channel model.
   does that, for comparison.
 
 Measured (``python tests/benchmarks/contrast_benchmark.py --no-contrast
---contours``; control tube of the sample scenario, 10 channels, 14,700
-training and 14,700 held-out events; engine of 2026-12-01): held-out events
+--contours``; control tube of the sample scenario, 10 channels, 15,000
+training and 15,000 held-out events; engine of 2026-12-01): held-out events
 inside the 50 / 90 / 99 % contours minus nominal, in points --
 
 =============  ====================  ====================
