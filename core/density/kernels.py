@@ -355,7 +355,7 @@ def node_theta(n_l, n_a, frac, lr, alpha):
 
 
 @njit(cache=True)
-def best_splits(hist, counts, vol, lr, n_total, min_leaf, allowed, alpha, shift):
+def best_splits(hist, counts, vol, lr, n_total, min_leaf, allowed, alpha, shift, min_gain):
     """Best split of each node by the gain in training log-likelihood of the shrunk model.
 
     The shrunk tree measure puts density (1 - lr) + lr * n_A / (N vol_A) on a
@@ -365,7 +365,8 @@ def best_splits(hist, counts, vol, lr, n_total, min_leaf, allowed, alpha, shift)
     :func:`node_theta`) and the gain is the node's own term of the
     log-likelihood, n_L log(theta / frac) + n_R log((1 - theta) / (1 - frac)).
     Returns (best_dim, best_bin, best_gain, n_left) per node; best_dim = -1 when
-    no split has positive gain with at least ``min_leaf`` events on each side.
+    no split gains more than ``min_gain`` nats (and at least 1e-9) with at
+    least ``min_leaf`` events on each side.
     hist has n_bins + 1 bins of a grid shifted by ``shift[node]`` (see
     :func:`level_histogram`); the split location is after bin ``best_bin``:
     cut = lo + (best_bin + 1 - shift) / n_bins * width.
@@ -383,7 +384,7 @@ def best_splits(hist, counts, vol, lr, n_total, min_leaf, allowed, alpha, shift)
         scale = lr / (n_total * vol[k])
         f_a = (1.0 - lr) + scale * n_a
         base = n_a * math.log(f_a)
-        g_best = 1e-9
+        g_best = max(min_gain, 1e-9)
         for j in range(d):
             if not allowed[j]:
                 continue
@@ -541,3 +542,142 @@ def pwl_inverse(U, offsets, xs, ys, slopes):
         _pwl_inverse_par(U, offsets, xs, ys, slopes)
     else:
         _pwl_inverse_rows(0, U.shape[0], U, offsets, xs, ys, slopes)
+
+
+# ---------------------------------------------------------------- two-level lookahead
+# After the marginal stage every single split of the root has almost no gain
+# (each channel is already uniform): the dependence only shows once a second
+# split conditions on the first.  Near the root, splits are therefore chosen
+# by the gain of the split plus the best split of each of its two children.
+
+@njit(cache=True)
+def pair_histogram(R, node_of, k, box_lo, box_inv, n_bins, allowed):
+    """Joint counts H[j1, j2, b1, b2] of node ``k``'s events on equal-width bins
+    of the node's box (n_bins per dimension), for allowed j1, j2."""
+    n, d = R.shape
+    H = np.zeros((d, d, n_bins, n_bins), np.int64)
+    bins = np.zeros(d, np.int64)
+    for i in range(n):
+        if node_of[i] != k:
+            continue
+        for j in range(d):
+            b = int((R[i, j] - box_lo[j]) * box_inv[j] * n_bins)
+            if b < 0:
+                b = 0
+            elif b >= n_bins:
+                b = n_bins - 1
+            bins[j] = b
+        for j1 in range(d):
+            if not allowed[j1]:
+                continue
+            for j2 in range(d):
+                if allowed[j2]:
+                    H[j1, j2, bins[j1], bins[j2]] += 1
+    return H
+
+
+@njit(cache=True)
+def _split_term(n_l, n_a, frac, lr, alpha):
+    th = node_theta(n_l, n_a, frac, lr, alpha)
+    g = 0.0
+    if n_l > 0:
+        g += n_l * math.log(th / frac)
+    if n_a - n_l > 0:
+        g += (n_a - n_l) * math.log((1.0 - th) / (1.0 - frac))
+    return g
+
+
+@njit(cache=True)
+def _best_child_gain(counts, lo_bin, hi_bin, lr, alpha, min_leaf):
+    """Best split gain of a child whose events along one dimension are counts[lo_bin:hi_bin]
+    (the child's extent is exactly those bins)."""
+    n_a = 0
+    for b in range(lo_bin, hi_bin):
+        n_a += counts[b]
+    if n_a < 2 * min_leaf:
+        return 0.0
+    width = hi_bin - lo_bin
+    best = 0.0
+    cum = 0
+    for b in range(lo_bin, hi_bin - 1):
+        cum += counts[b]
+        if cum < min_leaf:
+            continue
+        if n_a - cum < min_leaf:
+            break
+        g = _split_term(cum, n_a, (b + 1.0 - lo_bin) / width, lr, alpha)
+        if g > best:
+            best = g
+    return best
+
+
+@njit(cache=True)
+def lookahead_split(H, lr, alpha, min_leaf, allowed):
+    """Split of a node maximising its own gain plus the best gain of each child.
+
+    H: pair histogram of the node (see :func:`pair_histogram`).  Returns
+    (dim, bin, n_left, score); the cut is after ``bin``; dim = -1 if none.
+    """
+    d = H.shape[0]
+    B = H.shape[2]
+    best_score = 1e-9
+    best_j, best_b, best_nl = -1, 0, 0
+    marg = np.zeros(B, np.int64)
+    row = np.zeros(B, np.int64)
+    tot = np.zeros(B, np.int64)
+    rest = np.zeros(B, np.int64)
+    for j1 in range(d):
+        if not allowed[j1]:
+            continue
+        for b in range(B):
+            s = 0
+            for c in range(B):
+                s += H[j1, j1, b, c]
+            marg[b] = s
+        n_a = 0
+        for b in range(B):
+            n_a += marg[b]
+        if n_a < 2 * min_leaf:
+            continue
+        child_l = np.zeros(B)
+        child_r = np.zeros(B)
+        for j2 in range(d):
+            if not allowed[j2]:
+                continue
+            if j2 == j1:
+                for b1 in range(B - 1):
+                    gl = _best_child_gain(marg, 0, b1 + 1, lr, alpha, min_leaf)
+                    gr = _best_child_gain(marg, b1 + 1, B, lr, alpha, min_leaf)
+                    if gl > child_l[b1]:
+                        child_l[b1] = gl
+                    if gr > child_r[b1]:
+                        child_r[b1] = gr
+                continue
+            for c in range(B):
+                row[c] = 0
+                s = 0
+                for b in range(B):
+                    s += H[j1, j2, b, c]
+                tot[c] = s
+            for b1 in range(B - 1):
+                for c in range(B):
+                    row[c] += H[j1, j2, b1, c]
+                    rest[c] = tot[c] - row[c]
+                gl = _best_child_gain(row, 0, B, lr, alpha, min_leaf)
+                gr = _best_child_gain(rest, 0, B, lr, alpha, min_leaf)
+                if gl > child_l[b1]:
+                    child_l[b1] = gl
+                if gr > child_r[b1]:
+                    child_r[b1] = gr
+        cum = 0
+        for b1 in range(B - 1):
+            cum += marg[b1]
+            if cum < min_leaf:
+                continue
+            if n_a - cum < min_leaf:
+                break
+            score = _split_term(cum, n_a, (b1 + 1.0) / B, lr, alpha) + child_l[b1] + child_r[b1]
+            if score > best_score:
+                best_score = score
+                best_j, best_b, best_nl = j1, b1, cum
+    return best_j, best_b, best_nl, best_score

@@ -136,6 +136,12 @@ class AdditiveTreeDensity:
         Most trees per layer.
     rotation : "pca" or "random"
         How later layers choose their rotation.
+    min_gain : float
+        Least training log-likelihood gain (nats, summed over the node's
+        events) for a dependence split.
+    lookahead : int
+        Levels (from the root) whose splits are chosen by two-level
+        lookahead: the split's gain plus the best gain of each child.
     jitter : bool
         Shift each node's grid of candidate cuts by a random fraction of a
         bin (seeded by ``random_state``).
@@ -153,6 +159,7 @@ class AdditiveTreeDensity:
                  marginal_learning_rate: float = 0.2, marginal_depth: int = 6,
                  n_layers: int = 3, layer_trees: int = 150, layer_tol: float = 0.01,
                  alpha: float = 200.0, rotation: str = "pca", jitter: bool = False,
+                 min_gain: float = 0.0, lookahead: int = 2,
                  random_state: int | None = None):
         self.n_trees = n_trees
         self.learning_rate = learning_rate
@@ -170,13 +177,15 @@ class AdditiveTreeDensity:
         self.alpha = alpha
         self.rotation = rotation
         self.jitter = jitter
+        self.min_gain = min_gain
+        self.lookahead = lookahead
         self.layer_tol = layer_tol
         self.random_state = random_state
 
     # ------------------------------------------------------------ params
     _PARAMS = ("n_trees", "learning_rate", "max_depth", "n_bins", "min_leaf", "validation_fraction",
                "patience", "max_fit_events", "marginal_trees", "marginal_learning_rate",
-               "marginal_depth", "n_layers", "layer_trees", "layer_tol", "alpha", "rotation", "jitter", "random_state")
+               "marginal_depth", "n_layers", "layer_trees", "layer_tol", "alpha", "rotation", "jitter", "min_gain", "lookahead", "random_state")
 
     def get_params(self, deep: bool = True) -> dict[str, Any]:
         return {k: getattr(self, k) for k in self._PARAMS}
@@ -290,7 +299,8 @@ class AdditiveTreeDensity:
             best_state = pre_state = None
             for k in range(1, min(total - done, int(self.layer_trees)) + 1):
                 tree = fit_tree(U_tr, lr, int(self.max_depth), int(self.n_bins), int(self.min_leaf),
-                                allowed, float(self.alpha), rng if self.jitter else None)
+                                allowed, float(self.alpha), rng if self.jitter else None,
+                                float(self.min_gain), int(self.lookahead))
                 if tree.n_nodes == 0:
                     self.stopped_by_ = "no split"
                     break

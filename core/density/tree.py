@@ -150,7 +150,8 @@ class Forest:
 
 
 def fit_tree(R: np.ndarray, learning_rate: float, max_depth: int, n_bins: int, min_leaf: int,
-             allowed: np.ndarray | None = None, alpha: float = -1.0, rng=None) -> Forest:
+             allowed: np.ndarray | None = None, alpha: float = -1.0, rng=None,
+             min_gain: float = 0.0, lookahead: int = 0, lookahead_bins: int = 32) -> Forest:
     """Fit one shrunk tree measure to events R (n, d) in the unit cube.
 
     Growth is level by level up to ``max_depth`` splits on any path; a node
@@ -162,6 +163,9 @@ def fit_tree(R: np.ndarray, learning_rate: float, max_depth: int, n_bins: int, m
     With a numpy Generator ``rng`` each node's grid of candidate cuts is
     shifted by a random fraction of a bin, so successive trees cut at
     different places (the composition is smoother than any one tree).
+    Nodes in the first ``lookahead`` levels (per-node shrinkage only) are
+    split by two-level lookahead on a ``lookahead_bins`` grid
+    (:func:`kernels.lookahead_split`).
     """
     n, d = R.shape
     lr = float(learning_rate)
@@ -189,7 +193,18 @@ def fit_tree(R: np.ndarray, learning_rate: float, max_depth: int, n_bins: int, m
         hist = kernels.level_histogram(R, node_of, box_lo, 1.0 / width, n_nodes, int(n_bins),
                                        allowed, shift)
         bdim, bbin, _gain, nleft = kernels.best_splits(hist, counts, vol, lr, float(n), int(min_leaf),
-                                                       allowed, float(alpha), shift)
+                                                       allowed, float(alpha), shift, float(min_gain))
+        cut_frac = (bbin + 1.0 - shift) / n_bins
+        if _level < lookahead and alpha >= 0:
+            inv = 1.0 / width
+            for k in range(n_nodes):
+                if counts[k] < 2 * min_leaf:
+                    continue
+                H = kernels.pair_histogram(R, node_of, k, box_lo[k], inv[k], int(lookahead_bins), allowed)
+                j, b, nl, _score = kernels.lookahead_split(H, lr, float(alpha), int(min_leaf), allowed)
+                if j >= 0:
+                    bdim[k], nleft[k] = j, nl
+                    cut_frac[k] = (b + 1.0) / lookahead_bins
         split_cut = np.zeros(n_nodes)
         child_l = np.full(n_nodes, -1, np.int64)
         child_r = np.full(n_nodes, -1, np.int64)
@@ -199,7 +214,7 @@ def fit_tree(R: np.ndarray, learning_rate: float, max_depth: int, n_bins: int, m
             if j < 0:
                 continue
             a, b = box_lo[k, j], box_hi[k, j]
-            c = a + (bbin[k] + 1.0 - shift[k]) / n_bins * (b - a)
+            c = a + cut_frac[k] * (b - a)
             if not a < c < b:
                 continue  # rounding at a tiny node: leave it a leaf
             split_cut[k] = c
