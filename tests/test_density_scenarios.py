@@ -3,8 +3,9 @@
 Checks: each log density integrates to 1 (exact grid in 2-D, Monte Carlo
 importance sampling in 4-12 channels), agrees with scipy.stats where the
 piece is a plain scipy distribution, and agrees with the sampler (1-D
-marginals by Kolmogorov-Smirnov against exact CDFs, and the identity
-E_p[q(X)/p(X)] = 1 for a normalised q).
+marginals by Kolmogorov-Smirnov against exact or quadrature CDFs, and 2-D
+histograms by chi-square against bin probabilities integrated from the
+density).
 """
 
 from __future__ import annotations
