@@ -427,7 +427,10 @@ def _run_processes(tasks: list, workers: int, threads: int, on_row: Callable, sh
     ctx = multiprocessing.get_context("spawn")
     pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init_worker,
                                initargs=(threads,))
-    futures = {pool.submit(process_file, t): t for t in tasks}
+    # largest files first: with a few files of unequal size this shortens the batch
+    # (the last file to start is a small one)
+    order = sorted(tasks, key=lambda t: -_file_size(t["path"]))
+    futures = {pool.submit(process_file, t): t for t in order}
     pending = set(futures)
     try:
         while pending and not should_stop():
@@ -451,6 +454,13 @@ def _run_processes(tasks: list, workers: int, threads: int, on_row: Callable, sh
         _stop_pool(pool)
     else:
         pool.shutdown(wait=True)
+
+
+def _file_size(path: str) -> int:
+    try:
+        return os.path.getsize(path)
+    except OSError:
+        return 0
 
 
 def _stop_pool(pool) -> None:
