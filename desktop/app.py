@@ -110,11 +110,13 @@ def run_gui(paths: list[str]) -> int:
     return int(app.exec())
 
 
-def run_screenshot(out_path: str, paths: list[str], size=(1400, 900), timeout_s: float = 600.0) -> int:
+def run_screenshot(out_path: str, paths: list[str], size=(1400, 900), timeout_s: float = 600.0,
+                   engine: dict | None = None) -> int:
     """Open ``paths``, fit with the default recipe, save the window as a PNG, exit.
 
     Works without a display (the offscreen platform is chosen when none is set).
     Returns 0 on success, 1 when opening or fitting failed (the message is printed).
+    ``engine`` overrides density engine settings (tests use few trees).
     """
     if not os.environ.get("DISPLAY") and not os.environ.get("WAYLAND_DISPLAY"):
         os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
@@ -130,6 +132,8 @@ def run_screenshot(out_path: str, paths: list[str], size=(1400, 900), timeout_s:
     except Exception as exc:  # noqa: BLE001
         print(f"boscage: {error_text(exc)}", file=sys.stderr)
         return 1
+    if engine:
+        win.fit_panel.set_engine_settings(engine)
     loop = QEventLoop()
     outcome = {}
     win.fitEnded.connect(lambda ok: (outcome.setdefault("ok", ok), loop.quit()))

@@ -50,16 +50,16 @@ class ExportDialog(QDialog):
         lay = QVBoxLayout(self)
         form = QFormLayout()
         self.which = QComboBox()
-        self.which.addItem(f"All events ({tube.n_events:,})", ("all", None))
+        self.which.addItem(f"All events ({tube.n_events:,})", "all")
         if tube.rare_mask is not None:
-            self.which.addItem(f"Rare events ({int(tube.rare_mask.sum()):,})", ("rare", None))
+            self.which.addItem(f"Rare events ({int(tube.rare_mask.sum()):,})", "rare")
         a = tube.analysis
         if a is not None and a.enriched is not None:
-            self.which.addItem(f"Enriched events ({int(a.enriched.sum()):,})", ("enriched", None))
+            self.which.addItem(f"Enriched events ({int(a.enriched.sum()):,})", "enriched")
         for s in tube.stats:
-            self.which.addItem(f"Region {s.name} ({s.count:,})", ("region", s.name))
+            self.which.addItem(f"Region {s.name} ({s.count:,})", "region:" + s.name)
         if selected_regions:
-            i = self.which.findData(("region", selected_regions[0]))
+            i = self.which.findData("region:" + selected_regions[0])
             if i >= 0:
                 self.which.setCurrentIndex(i)
         self.which.setToolTip("Which events to write")
@@ -98,7 +98,7 @@ class ExportDialog(QDialog):
             self._overwrite = True
 
     def mask(self):
-        kind, name = self.which.currentData()
+        kind, _, name = str(self.which.currentData()).partition(":")
         t = self.tube
         if kind == "all":
             return np.ones(t.n_events, dtype=bool)

@@ -1,0 +1,336 @@
+"""GUI tests of the desktop application (pytest-qt, offscreen).
+
+Each check names its outside reference: fcsparser for files read back,
+numpy / scipy for counts computed independently of the project, the
+definitions in core's contracts where the task says "equals core's".
+"""
+
+from __future__ import annotations
+
+import csv
+import os
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+pytest.importorskip("pytestqt")
+
+from PySide6.QtWidgets import QMessageBox  # noqa: E402
+
+from core.fcs import write_fcs  # noqa: E402
+
+CHANNELS = ["FSC-A", "SSC-A", "FL1-A", "FL2-A"]
+SPILL = np.array([[1.0, 0.12], [0.04, 1.0]])
+FEW_TREES = {"n_trees": 4, "max_depth": 3, "max_fit_events": 3000}
+
+
+def make_fcs(path, n=3000, seed=0):
+    """A small FCS 3.1 file: two scatter channels, two fluorescence channels with
+    spillover (FCS 3.1 $SPILLOVER), a small bright population."""
+    rng = np.random.default_rng(seed)
+    true = np.column_stack([rng.normal(60000, 9000, n), rng.normal(30000, 5000, n),
+                            rng.lognormal(6, 0.6, n), rng.lognormal(7, 0.5, n)])
+    k = n // 40
+    true[:k, 2] = rng.normal(20000, 2000, k)
+    obs = true.copy()
+    obs[:, 2:] = true[:, 2:] @ SPILL
+    spill = "2,FL1-A,FL2-A," + ",".join(f"{v:g}" for v in SPILL.ravel())
+    write_fcs(path, obs, CHANNELS, keywords={"$SPILLOVER": spill},
+              channel_labels=["", "", "CD3", "CD4"], channel_ranges=[262144] * 4)
+    return str(path)
+
+
+@pytest.fixture
+def messages(monkeypatch):
+    """Record message boxes instead of blocking on them."""
+    seen = []
+
+    def critical(parent, title, text, *a, **k):
+        seen.append((title, text))
+        return QMessageBox.Ok
+
+    monkeypatch.setattr(QMessageBox, "critical", staticmethod(critical))
+    # closing with unsaved regions asks first; the tests answer "discard" unless they say otherwise
+    monkeypatch.setattr(QMessageBox, "question", staticmethod(lambda *a, **k: QMessageBox.Discard))
+    return seen
+
+
+@pytest.fixture
+def window(qtbot, tmp_path, monkeypatch, messages):
+    monkeypatch.setenv("BOSCAGE_SETTINGS", str(tmp_path / "settings.ini"))
+    from desktop.app import make_app
+    from desktop.settings import Settings
+
+    make_app()
+    s = Settings()
+    s.set_value("view/contours", False)  # contours get their own test
+    s.sync()
+    from desktop.main_window import MainWindow
+
+    win = MainWindow()
+    qtbot.addWidget(win)
+    win.resize(1200, 800)
+    win.show()
+    win.fit_panel.set_engine_settings(FEW_TREES)
+    yield win
+    win.discard_changes = True
+    if win.job is not None:
+        win.job.cancel()
+        win.job.wait(20000)
+
+
+def fit(qtbot, win, timeout=120_000):
+    with qtbot.waitSignal(win.fitEnded, timeout=timeout) as blocker:
+        win.start_fit()
+    assert blocker.args == [True], win.last_fit_problem
+    qtbot.waitUntil(lambda: not win.fit_running(), timeout=timeout)
+
+
+def test_open_fit_rarity_regions_export(qtbot, window, tmp_path, messages):
+    import fcsparser
+
+    from core.rare import rare_by_share
+
+    path = make_fcs(tmp_path / "tube.fcs")
+    window.open_paths([path])
+    tube = window.current
+    assert tube is not None and tube.n_events == 3000
+    # before fitting the map shows event counts: every in-range event is in a bin
+    # (reference: numpy.histogram2d over the same extent counts the same events)
+    cell = window.density_map.cells[0]
+    x, y = tube.values[:, cell.ix], tube.values[:, cell.iy]
+    h, _, _ = np.histogram2d(x, y, bins=200, range=[cell.extent[:2], cell.extent[2:]])
+    assert cell.counts.sum() == pytest.approx(h.sum(), abs=2)  # edges are half-open here
+
+    fit(qtbot, window)
+    a = tube.analysis
+    assert a is not None and np.isfinite(a.log_density[a.kept]).all()
+
+    # the rarity control: count equals core's, and is the definition of "lowest share"
+    window.rarity_bar.set_share(0.02)
+    n_kept = int(a.kept.sum())
+    expected = rare_by_share(a.log_density, 0.02).count
+    assert window.rare_count() == expected == round(0.02 * n_kept)
+    rare = tube.rare_mask
+    # reference: numpy ordering -- every rare event is no denser than every other kept event
+    assert a.log_density[rare].max() <= a.log_density[a.kept & ~rare].min()
+    assert f"{expected:,} rare events" in window.rarity_bar.count.text()
+    window.rarity_bar.slider.setValue(window.rarity_bar.slider.value() + 100)  # drag the slider
+    assert window.rare_count() == rare_by_share(a.log_density, window.rarity_bar.share()).count
+    assert window.rare_count() > expected
+
+    # a rectangle region: count against numpy with half-open bounds
+    # (reference: Gating-ML 2.0 rectangle gates include the low bound, exclude the high one -- from memory)
+    j1, j2 = tube.names.index("FL1-A"), tube.names.index("FL2-A")
+    v1, v2 = tube.values[:, j1], tube.values[:, j2]
+    lo1, hi1 = np.percentile(v1, [20, 80])
+    lo2, hi2 = np.percentile(v2, [10, 70])
+    spec = tube.recipe.transforms
+    window.add_region({"name": "middle", "kind": "rectangle", "channels": ["FL1-A", "FL2-A"],
+                       "x": [lo1, hi1], "y": [lo2, hi2],
+                       "transforms": {"FL1-A": spec["FL1-A"], "FL2-A": spec["FL2-A"]}})
+    ref = int(np.count_nonzero((v1 >= lo1) & (v1 < hi1) & (v2 >= lo2) & (v2 < hi2)))
+    assert window.region_count("middle") == ref
+    assert window.selections.count_text("middle") == f"{ref:,}"
+
+    # move its outline as a drag would: the count follows (reference: numpy again)
+    roi = window.density_map.cell_for("FL1-A", "FL2-A").rois["middle"]
+    shift = 0.1 * (hi1 - lo1)
+    roi.setPos([lo1 + shift, lo2])
+    qtbot.waitUntil(lambda: window.current.regions["middle"].x[0] == pytest.approx(lo1 + shift), timeout=2000)
+    r = window.current.regions["middle"]
+    ref2 = int(np.count_nonzero((v1 >= r.x[0]) & (v1 < r.x[1]) & (v2 >= r.y[0]) & (v2 < r.y[1])))
+    assert window.region_count("middle") == ref2
+
+    # a triangle: reference scipy.spatial.Delaunay (a point is inside a convex polygon
+    # when it falls in a simplex of the polygon's triangulation)
+    from scipy.spatial import Delaunay
+
+    tri = np.array([[lo1, lo2], [hi1, lo2], [0.5 * (lo1 + hi1), hi2]])
+    window.add_region({"name": "tri", "kind": "polygon", "channels": ["FL1-A", "FL2-A"],
+                       "vertices": tri.tolist(), "transforms": {"FL1-A": spec["FL1-A"], "FL2-A": spec["FL2-A"]}})
+    inside = Delaunay(tri).find_simplex(np.column_stack([v1, v2])) >= 0
+    assert abs(window.region_count("tri") - int(inside.sum())) <= 2  # boundary points may differ
+    # combine: "not tri" is the complement (reference: numpy logical not)
+    window.combine_regions("not", ["tri"])
+    assert window.region_count("not tri") == tube.n_events - window.region_count("tri")
+
+    # export the rectangle's events to FCS and read them back with fcsparser (reference)
+    from desktop.dialogs import ExportDialog
+
+    dlg = ExportDialog(window, tube, ["middle"])
+    out = tmp_path / "middle.fcs"
+    dlg.path.setText(str(out))
+    dlg.export()
+    assert not messages, messages
+    meta, df = fcsparser.parse(str(out), reformat_meta=True, channel_naming="$PnN")
+    mask = tube.masks["middle"]
+    assert len(df) == int(mask.sum()) == window.region_count("middle")
+    raw = tube.event_file.data[mask]
+    for j, name in enumerate(CHANNELS):
+        np.testing.assert_allclose(df[name].to_numpy(), raw[:, j].astype(np.float32), rtol=1e-6)
+    assert "log density" in df.columns
+
+    # and the rare events to CSV (reference: the csv module)
+    dlg = ExportDialog(window, tube)
+    dlg.which.setCurrentIndex(dlg.which.findData("rare"))
+    dlg.format.setCurrentIndex(dlg.format.findData("csv"))
+    out_csv = tmp_path / "rare.csv"
+    dlg.path.setText(str(out_csv))
+    dlg.export()
+    with open(out_csv, newline="") as handle:
+        rows = [r for r in csv.reader(handle) if r and not r[0].startswith("#")]
+    assert len(rows) - 1 == window.rare_count()
+
+
+def test_cancel_keeps_previous_state(qtbot, window, tmp_path):
+    window.open_paths([make_fcs(tmp_path / "t.fcs")])
+    window.fit_panel.set_engine_settings({"n_trees": 2000, "max_depth": 3})
+    with qtbot.waitSignal(window.fitEnded, timeout=120_000) as blocker:
+        window.start_fit()
+        qtbot.waitUntil(lambda: window.fit_panel.progress.maximum() > 0 or not window.fit_running(), timeout=60_000)
+        window.cancel_job()
+    assert blocker.args == [False]
+    assert window.current.analysis is None  # no half-fitted model is shown
+    assert not window.fit_running() and window.act_fit.isEnabled()
+    assert "Cancelled" in window.fit_panel.status.text()
+
+
+def test_broken_file_shows_message_and_app_carries_on(qtbot, window, tmp_path, messages):
+    bad = tmp_path / "broken.fcs"
+    bad.write_bytes(b"FCS3.1    not really an FCS file" + b"\0" * 40)
+    good = make_fcs(tmp_path / "good.fcs", n=500)
+    opened = window.open_paths([str(bad), good])
+    assert opened == [os.path.abspath(good)]
+    assert len(messages) == 1 and "broken.fcs" in messages[0][1]
+    assert window.current is not None and window.current.path == os.path.abspath(good)
+
+
+def test_slot_errors_become_message_boxes(qtbot, window, messages):
+    window.start_fit()  # no tube open: a user error, not a crash
+    assert messages and "open a tube first" in messages[-1][1]
+
+
+def test_scale_and_compensation_edits_recompute_values(qtbot, window, tmp_path):
+    from core.compensation import read_spillover_csv
+
+    path = make_fcs(tmp_path / "t.fcs", n=800)
+    window.open_paths([path])
+    tube = window.current
+    raw = tube.event_file.data
+    # default recipe compensates with the file's matrix; check against numpy.linalg.solve (reference)
+    comp = raw[:, 2:] @ np.linalg.inv(SPILL)
+    # arcsinh with cofactor c is arcsinh(x / c) (common practice; reference numpy.arcsinh)
+    window.channels_panel.table.selectRow(2)
+    window.channels_panel.set_spec("FL1-A", {"kind": "arcsinh", "cofactor": 5.0})
+    qtbot.waitUntil(lambda: tube.recipe.transforms["FL1-A"]["kind"] == "arcsinh", timeout=3000)
+    np.testing.assert_allclose(tube.values[:, 2], np.arcsinh(comp[:, 0] / 5.0), rtol=1e-9, atol=1e-12)
+    # edit one spillover value, apply: the matrix is saved as CSV and used
+    window.comp_panel.set_value(0, 1, 0.2)
+    window.comp_panel.apply_button.click()
+    assert tube.recipe.compensation["source"] == "csv"
+    S = read_spillover_csv(tube.recipe.compensation["csv_path"])
+    edited = SPILL.copy()
+    edited[0, 1] = 0.2
+    np.testing.assert_allclose(S.matrix, edited)
+    comp2 = raw[:, 2:] @ np.linalg.inv(edited)
+    np.testing.assert_allclose(tube.values[:, 2], np.arcsinh(comp2[:, 0] / 5.0), rtol=1e-9, atol=1e-12)
+
+
+def test_recipe_round_trip_and_recent_files(qtbot, window, tmp_path, monkeypatch):
+    import json
+
+    from desktop.settings import Settings
+
+    path = make_fcs(tmp_path / "t.fcs", n=600)
+    window.open_paths([path])
+    tube = window.current
+    spec = tube.recipe.transforms
+    window.add_region({"name": "box", "kind": "rectangle", "channels": ["FSC-A", "SSC-A"],
+                       "x": [0.1, 0.3], "y": [0.05, 0.2],
+                       "transforms": {"FSC-A": spec["FSC-A"], "SSC-A": spec["SSC-A"]}})
+    saved = window.save_recipe_dialog(str(tmp_path / "r.json"))
+    with open(saved) as handle:  # reference: the json module reads what we wrote
+        stored = json.load(handle)
+    assert [r["name"] for r in stored["regions"]] == ["box"]
+    assert not tube.dirty
+    window.delete_regions(["box"])
+    assert len(tube.regions) == 0
+    window.load_recipe_dialog(saved)
+    assert tube.regions.names == ["box"]
+    # recent files persist in the settings file between launches
+    assert os.path.abspath(path) in Settings().recent_paths()
+
+
+def test_close_with_unsaved_regions_asks(qtbot, window, tmp_path, monkeypatch):
+    window.open_paths([make_fcs(tmp_path / "t.fcs", n=400)])
+    spec = window.current.recipe.transforms
+    window.add_region({"name": "box", "kind": "rectangle", "channels": ["FSC-A", "SSC-A"],
+                       "x": [0.1, 0.3], "y": [0.05, 0.2],
+                       "transforms": {"FSC-A": spec["FSC-A"], "SSC-A": spec["SSC-A"]}})
+    asked = []
+    monkeypatch.setattr(QMessageBox, "question",
+                        staticmethod(lambda *a, **k: asked.append(a) or QMessageBox.Cancel))
+    assert window.close() is False and window.isVisible()
+    monkeypatch.setattr(QMessageBox, "question", staticmethod(lambda *a, **k: QMessageBox.Discard))
+    assert window.close() is True
+    assert len(asked) == 1
+
+
+def test_batch_dialog_runs_and_shows_summary(qtbot, window, tmp_path):
+    from desktop.dialogs import BatchDialog
+
+    folder = tmp_path / "tubes"
+    folder.mkdir()
+    make_fcs(folder / "a.fcs", n=600, seed=1)
+    make_fcs(folder / "b.fcs", n=600, seed=2)
+    window.open_paths([str(folder / "a.fcs")])
+    recipe = window._current_recipe(window.current)
+    dlg = BatchDialog(window, recipe)
+    qtbot.addWidget(dlg)
+    dlg.input.setText(str(folder))
+    dlg.output.setText(str(tmp_path / "out"))
+    with qtbot.waitSignal(dlg.ended, timeout=180_000) as blocker:
+        dlg.run()
+    assert blocker.args == [True]
+    assert dlg.table.rowCount() == 2
+    header = [dlg.table.horizontalHeaderItem(j).text() for j in range(dlg.table.columnCount())]
+    status = [dlg.table.item(i, header.index("status")).text() for i in range(2)]
+    assert status == ["ok", "ok"]
+    # reference: the csv module reads the summary the table shows
+    with open(dlg.result.summary_path, newline="") as handle:
+        rows = [r for r in csv.reader(handle) if r and not r[0].startswith("#")]
+    assert len(rows) == 3 and rows[0] == header
+    dlg.close()
+
+
+def test_screenshot_is_not_blank(qtbot, tmp_path, monkeypatch, messages):
+    from PySide6.QtGui import QImage
+
+    from desktop.app import run_screenshot
+
+    monkeypatch.setenv("BOSCAGE_SETTINGS", str(tmp_path / "settings.ini"))
+    path = make_fcs(tmp_path / "t.fcs", n=1500)
+    out = tmp_path / "shot.png"
+    assert run_screenshot(str(out), [path], engine=FEW_TREES) == 0
+    img = QImage(str(out))
+    assert (img.width(), img.height()) == (1400, 900)
+    img = img.convertToFormat(QImage.Format_RGB888)
+    arr = np.frombuffer(img.constBits(), dtype=np.uint8, count=img.sizeInBytes())
+    arr = arr.reshape(img.height(), img.bytesPerLine())[:, : img.width() * 3].reshape(img.height(), img.width(), 3)
+    assert arr.std() > 20  # a blank or single-colour picture has (almost) no variance
+    # the density map area holds many distinct colours (the colour map at work)
+    centre = arr[150:800, 300:900].reshape(-1, 3)
+    assert len(np.unique(centre, axis=0)) > 50
+
+
+def test_batch_command_does_not_import_qt(tmp_path):
+    code = ("import sys\nfrom desktop.launcher import main\n"
+            "try:\n    main(['batch', '--help'])\nexcept SystemExit:\n    pass\n"
+            "print('QT' if any(m.startswith('PySide6') for m in sys.modules) else 'NOQT')\n")
+    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120,
+                         cwd=os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+    assert res.stdout.strip().endswith("NOQT"), res.stdout + res.stderr
+    assert "usage" in res.stdout.lower()
