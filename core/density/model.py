@@ -125,7 +125,7 @@ class AdditiveTreeDensity:
         Trees without held-out improvement before stopping.
     max_fit_events : int
         Above this many events the fit uses a seeded random subsample.
-    marginal_trees, marginal_learning_rate, marginal_depth :
+    marginal_trees, marginal_learning_rate, marginal_depth, marginal_alpha :
         The same roles for the one-channel trees of the marginal stage
         (``marginal_trees=0`` skips the stage).
     n_layers : int
@@ -153,13 +153,13 @@ class AdditiveTreeDensity:
         bit-identical models.
     """
 
-    def __init__(self, n_trees: int = 400, learning_rate: float = 0.9, max_depth: int = 14,
+    def __init__(self, n_trees: int = 400, learning_rate: float = 0.9, max_depth: int = 20,
                  n_bins: int = 64, min_leaf: int = 5, validation_fraction: float = 0.2,
                  patience: int = 20, max_fit_events: int = 200_000, marginal_trees: int = 100,
                  marginal_learning_rate: float = 0.2, marginal_depth: int = 6,
                  n_layers: int = 3, layer_trees: int = 150, layer_tol: float = 0.01,
-                 alpha: float = 200.0, rotation: str = "pca", jitter: bool = False,
-                 min_gain: float = 0.0, lookahead: int = 2,
+                 alpha: float = 1000.0, rotation: str = "pca", jitter: bool = False,
+                 min_gain: float = 0.0, lookahead: int = 3, marginal_alpha: float = -1.0,
                  random_state: int | None = None):
         self.n_trees = n_trees
         self.learning_rate = learning_rate
@@ -179,13 +179,14 @@ class AdditiveTreeDensity:
         self.jitter = jitter
         self.min_gain = min_gain
         self.lookahead = lookahead
+        self.marginal_alpha = marginal_alpha
         self.layer_tol = layer_tol
         self.random_state = random_state
 
     # ------------------------------------------------------------ params
     _PARAMS = ("n_trees", "learning_rate", "max_depth", "n_bins", "min_leaf", "validation_fraction",
                "patience", "max_fit_events", "marginal_trees", "marginal_learning_rate",
-               "marginal_depth", "n_layers", "layer_trees", "layer_tol", "alpha", "rotation", "jitter", "min_gain", "lookahead", "random_state")
+               "marginal_depth", "n_layers", "layer_trees", "layer_tol", "alpha", "rotation", "jitter", "min_gain", "lookahead", "marginal_alpha", "random_state")
 
     def get_params(self, deep: bool = True) -> dict[str, Any]:
         return {k: getattr(self, k) for k in self._PARAMS}
@@ -388,7 +389,7 @@ class AdditiveTreeDensity:
                 best_k, best_ll = 0, 0.0
                 for k in range(1, int(self.marginal_trees) + 1):
                     tree = fit_tree(col_tr, lr, int(self.marginal_depth), int(self.n_bins),
-                                    int(self.min_leaf))
+                                    int(self.min_leaf), None, float(self.marginal_alpha))
                     if tree.n_nodes == 0:
                         break
                     tree.forward(col_tr, scratch)
