@@ -7,6 +7,8 @@ application carries on: slots are wrapped with :func:`guarded`, and a global
 
 from __future__ import annotations
 
+import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
+
 import functools
 import os
 import sys

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
+
 import csv
 import os
 

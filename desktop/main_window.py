@@ -8,6 +8,8 @@ in the status bar.
 
 from __future__ import annotations
 
+import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
+
 import copy
 import glob
 import os
@@ -467,10 +469,12 @@ class MainWindow(QMainWindow):
 
     def _draw_map(self, tube: Tube) -> None:
         dm = self.density_map
-        dm.set_events(tube.values, tube.names, tube.pairs, tube.event_file.channel_labels)
+        a = tube.analysis
+        dm.set_events(tube.values, tube.names, tube.pairs, tube.event_file.channel_labels,
+                      colour_values=None if a is None else a.log_density,
+                      colour_label="" if a is None else "mean log density (nats)")
         for region in tube.regions:
             self._show_roi(region)
-        self._recolour(tube)
         self._update_highlight()
         self._draw_contours(tube)
         self._refresh_regions(full=True)

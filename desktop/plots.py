@@ -15,6 +15,8 @@ Values are events x channels (transformed units, what regions use).
 
 from __future__ import annotations
 
+import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
+
 from dataclasses import dataclass, field
 from typing import Callable, Sequence
 
@@ -27,7 +29,7 @@ from desktop import style
 
 BINS = 200
 MAX_HIGHLIGHT = 5000
-RANGE_SAMPLE = 100_000
+RANGE_SAMPLE = 50_000
 
 
 def channel_extent(column: np.ndarray, seed: int = 0) -> tuple[float, float]:
@@ -109,58 +111,77 @@ class DensityMap(QWidget):
         self._poly_cell: PairCell | None = None
         self._poly_preview: pg.PlotDataItem | None = None
         self.colourbar: pg.ColorBarItem | None = None
+        self._plots: list = []  # (PlotItem, ImageItem, ScatterPlotItem) reused between redraws
         self.title = pg.LabelItem("", color="#c9d1cc", size="10pt")
         self.view.scene().sigMouseClicked.connect(self._scene_clicked)
 
     # ------------------------------------------------------------------ data
     def set_events(self, values: np.ndarray, names: Sequence[str],
                    pairs: Sequence[tuple[int, int]], labels: Sequence[str] | None = None,
-                   columns: int | None = None) -> None:
-        """Show ``values`` (events x channels) as one plot per (x, y) channel pair."""
+                   columns: int | None = None, colour_values: np.ndarray | None = None,
+                   colour_label: str = "") -> None:
+        """Show ``values`` (events x channels) as one plot per (x, y) channel pair,
+        bins coloured by ``colour_values`` (see :meth:`set_colouring`).
+
+        Regions and contours are cleared (the caller shows the ones that apply).
+        Plot items are reused when the grid keeps its shape (creating them is
+        the slow part of a redraw)."""
         values = np.asarray(values, dtype=np.float64)
         self.values = values
         self.names = list(names)
         labels = list(labels) if labels else [""] * len(self.names)
-        old_rois = {rid: (self.names_of(c), roi) for c in self.cells for rid, roi in c.rois.items()}
-        self.view.clear()
-        self.cells = []
-        self.colourbar = None
+        self._cancel_polygon()
+        for cell in self.cells:
+            for roi in cell.rois.values():
+                cell.plot.removeItem(roi)
+            for item in cell.contours:
+                cell.plot.removeItem(item)
         n = len(pairs)
         if columns is None:
             columns = 1 if n <= 1 else 2 if n <= 4 else 3
-        self.view.addItem(self.title, row=0, col=0, colspan=columns)
+        if len(self._plots) != n or getattr(self, "_columns", None) != columns:
+            self._build_grid(n, columns)
+        self.cells = []
         extents: dict[int, tuple[float, float]] = {}
         for k, (ix, iy) in enumerate(pairs):
             for c in (ix, iy):
                 if c not in extents:
                     extents[c] = channel_extent(values[:, c])
             ext = extents[ix] + extents[iy]
-            plot = self.view.addPlot(row=1 + k // columns, col=k % columns)
-            plot.setMenuEnabled(False)
-            plot.hideButtons()
+            plot, img, hl = self._plots[k]
             plot.setLabel("bottom", _axis_label(self.names[ix], labels[ix]))
             plot.setLabel("left", _axis_label(self.names[iy], labels[iy]))
-            plot.getViewBox().setBackgroundColor("#11161a")
-            img = pg.ImageItem(np.zeros((BINS, BINS, 4), dtype=np.uint8), axisOrder="row-major")
-            # setRect needs the image's size, so it comes after the first image
             img.setRect(QRectF(ext[0], ext[2], ext[1] - ext[0], ext[3] - ext[2]))
-            plot.addItem(img)
-            for ax in ("bottom", "left"):
-                plot.getAxis(ax).enableAutoSIPrefix(False)
-            hl = pg.ScatterPlotItem(size=4, pen=None, brush=pg.mkBrush(style.RARE), pxMode=True)
-            hl.setZValue(5)
-            plot.addItem(hl)
             plot.setRange(xRange=ext[:2], yRange=ext[2:], padding=0)
             idx = bin_index(values[:, ix], values[:, iy], ext)
             inside = idx >= 0
             counts = np.bincount(idx[inside], minlength=BINS * BINS).astype(np.float64)
             self.cells.append(PairCell(ix, iy, plot, img, hl, ext, idx, inside, counts))
-        self._columns = columns
+        self.colour_values = None if colour_values is None else np.asarray(colour_values, dtype=np.float64)
+        self.colour_label = colour_label or ("mean log density" if colour_values is not None
+                                             else "events per bin (log10)")
         self._redraw_images()
         self._redraw_highlight()
-        # ROIs survive a redraw when their pair is still shown
-        for rid, ((xn, yn), roi) in old_rois.items():
-            self.add_roi(rid, roi.kind, xn, yn, roi_vertices(roi), roi.name)
+
+    def _build_grid(self, n: int, columns: int) -> None:
+        self.view.clear()
+        self.colourbar = None
+        self._plots = []
+        self._columns = columns
+        self.view.addItem(self.title, row=0, col=0, colspan=columns)
+        for k in range(n):
+            plot = self.view.addPlot(row=1 + k // columns, col=k % columns)
+            plot.setMenuEnabled(False)
+            plot.hideButtons()
+            plot.getViewBox().setBackgroundColor("#11161a")
+            for ax in ("bottom", "left"):
+                plot.getAxis(ax).enableAutoSIPrefix(False)
+            img = pg.ImageItem(np.zeros((BINS, BINS, 4), dtype=np.uint8), axisOrder="row-major")
+            plot.addItem(img)
+            hl = pg.ScatterPlotItem(size=4, pen=None, brush=pg.mkBrush(style.RARE), pxMode=True)
+            hl.setZValue(5)
+            plot.addItem(hl)
+            self._plots.append((plot, img, hl))
 
     def names_of(self, cell: PairCell) -> tuple[str, str]:
         return self.names[cell.ix], self.names[cell.iy]

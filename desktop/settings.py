@@ -7,6 +7,8 @@ instead of the platform's usual store (tests do this).
 
 from __future__ import annotations
 
+import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
+
 import os
 
 from PySide6.QtCore import QSettings

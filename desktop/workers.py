@@ -10,6 +10,8 @@ asks core to stop cleanly.  Exactly one of ``finished(result)``,
 
 from __future__ import annotations
 
+import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
+
 import threading
 import traceback
 from typing import Any, Callable

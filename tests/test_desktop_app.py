@@ -334,3 +334,15 @@ def test_batch_command_does_not_import_qt(tmp_path):
                          cwd=os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
     assert res.stdout.strip().endswith("NOQT"), res.stdout + res.stderr
     assert "usage" in res.stdout.lower()
+
+
+def test_many_qt_calls_do_not_abort_the_interpreter():
+    # PySide6 6.12.0 on CPython 3.11 drops a reference to None / True on every
+    # void Qt call and every emit (measured with sys.getrefcount, the CPython
+    # reference); desktop.qtfix must keep a long session alive.
+    code = ("import desktop.qtfix\nfrom PySide6.QtCore import QObject, Signal\n"
+            "class P(QObject):\n    s = Signal(object)\n"
+            "p = P()\nfor i in range(50000):\n    p.setObjectName('x'); p.s.emit(None)\nprint('ALIVE')\n")
+    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120,
+                         cwd=os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+    assert res.returncode == 0 and "ALIVE" in res.stdout, res.stderr[-2000:]

@@ -7,6 +7,8 @@ this panel only edits specs and shows their effect.
 
 from __future__ import annotations
 
+import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
+
 import numpy as np
 import pyqtgraph as pg
 from PySide6.QtCore import Qt, QTimer, Signal

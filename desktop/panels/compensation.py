@@ -8,6 +8,8 @@ source: the file's keyword, a CSV file, or none).
 
 from __future__ import annotations
 
+import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
+
 import csv
 import os
 

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
+
 import numpy as np
 import pyqtgraph as pg
 from PySide6.QtCore import Qt, Signal

@@ -7,6 +7,8 @@ selected regions with and / or, or take the complement (not) of one.
 
 from __future__ import annotations
 
+import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
+
 import math
 
 from PySide6.QtCore import Qt, Signal
