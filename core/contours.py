@@ -21,21 +21,23 @@ pair's values (the default), rather than marginalising the full d-channel model.
 
 Measured (``python tests/benchmarks/contrast_benchmark.py --no-contrast
 --contours``; control tube of the sample scenario, 10 channels, 15,000
-training and 15,000 held-out events; engine of 2026-12-01): held-out events
-inside the 50 / 90 / 99 % contours minus nominal, in points --
+training and 15,000 held-out events; engine of 2026-12-01 evening, pair fits
+with :data:`PAIR_ENGINE`): held-out events inside the 50 / 90 / 99 % contours
+minus nominal, in points --
 
 =============  ====================  ====================
 pair           2-D fit of the pair   full model's sampler
 =============  ====================  ====================
-FL1-A x FL2-A  -0.13 +0.16 +0.37     +1.21 -0.58 +0.49
-FL2-A x FL4-A  -2.44 +0.43 +0.37     -1.78 -0.19 +0.30
-FL3-A x FL4-A  -0.06 +0.22 +0.35     -1.25 -1.90 +0.25
+FL1-A x FL2-A  -0.13 +0.16 +0.37     +0.93 +0.23 +0.45
+FL2-A x FL4-A  -2.44 +0.43 +0.37     -0.51 +1.24 +0.17
+FL3-A x FL4-A  -0.06 +0.22 +0.35     -1.17 +0.60 +0.21
 =============  ====================  ====================
 
-mean absolute error 0.50 points for the 2-D fit vs 0.88 for the sampler,
-3-4.5 s vs 2.6-3 s per pair (the sampler also needs the full model, 7.8 s).
-So :func:`pair_density` fits the pair (default), which also works before or
-without a full fit.
+mean absolute error 0.50 points for the 2-D fit vs 0.61 for the sampler
+(0.88 with the engine of that afternoon); 3.4-9.4 s vs 2.3-9.6 s per pair on
+a loaded machine, and the sampler also needs the full 10-channel model
+(115 s to fit here).  So :func:`pair_density` fits the pair (default), which
+also works before or without a full fit.
 
 Units and shapes
 ----------------
