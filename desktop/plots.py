@@ -22,13 +22,14 @@ from typing import Callable, Sequence
 
 import numpy as np
 import pyqtgraph as pg
-from PySide6.QtCore import QPointF, QRectF, Qt, Signal
+from PySide6.QtCore import QRectF, Qt, Signal
+from PySide6.QtGui import QColor, QPainter, QPen, QPolygonF
 from PySide6.QtWidgets import QVBoxLayout, QWidget
 
 from desktop import style
 
 BINS = 200
-MAX_HIGHLIGHT = 5000
+MAX_HIGHLIGHT = 20000
 RANGE_SAMPLE = 50_000
 
 
@@ -61,6 +62,47 @@ def bin_index(x: np.ndarray, y: np.ndarray, extent: tuple[float, float, float, f
     return idx
 
 
+class DotsItem(pg.GraphicsObject):
+    """Many same-coloured dots drawn in one QPainter call (a square cosmetic pen
+    on a QPolygonF): far cheaper than per-point scatter symbols."""
+
+    def __init__(self, colour: str, size: float = 4.0) -> None:
+        super().__init__()
+        pen = QPen(QColor(colour))
+        pen.setWidthF(size)
+        pen.setCosmetic(True)
+        pen.setCapStyle(Qt.SquareCap)
+        self._pen = pen
+        self._poly = QPolygonF()
+        self._rect = QRectF()
+        self.n = 0
+
+    def setData(self, x, y) -> None:
+        x = np.ascontiguousarray(x, dtype=np.float64)
+        y = np.ascontiguousarray(y, dtype=np.float64)
+        self.prepareGeometryChange()
+        self.n = int(x.size)
+        if self.n:
+            self._poly = pg.functions.arrayToQPolygonF(x, y)
+            x0, x1, y0, y1 = x.min(), x.max(), y.min(), y.max()
+            px, py = 0.01 * (x1 - x0) + 1e-9, 0.01 * (y1 - y0) + 1e-9
+            self._rect = QRectF(x0 - px, y0 - py, (x1 - x0) + 2 * px, (y1 - y0) + 2 * py)
+        else:
+            self._poly = QPolygonF()
+            self._rect = QRectF()
+        self.update()
+
+    def boundingRect(self) -> QRectF:
+        return self._rect
+
+    def paint(self, painter, *args) -> None:
+        if self.n:
+            # square, unsmoothed dots: an order of magnitude faster than round antialiased ones
+            painter.setRenderHint(QPainter.Antialiasing, False)
+            painter.setPen(self._pen)
+            painter.drawPoints(self._poly)
+
+
 @dataclass
 class PairCell:
     """One plot of the grid: channels ``ix`` (x axis) and ``iy`` (y axis)."""
@@ -69,7 +111,7 @@ class PairCell:
     iy: int
     plot: pg.PlotItem
     image: pg.ImageItem
-    highlight: pg.ScatterPlotItem
+    highlight: DotsItem
     extent: tuple[float, float, float, float]
     index: np.ndarray  # flat bin per event, -1 outside
     inside: np.ndarray  # events with index >= 0
@@ -111,7 +153,7 @@ class DensityMap(QWidget):
         self._poly_cell: PairCell | None = None
         self._poly_preview: pg.PlotDataItem | None = None
         self.colourbar: pg.ColorBarItem | None = None
-        self._plots: list = []  # (PlotItem, ImageItem, ScatterPlotItem) reused between redraws
+        self._plots: list = []  # (PlotItem, ImageItem, DotsItem) reused between redraws
         self.title = pg.LabelItem("", color="#c9d1cc", size="10pt")
         self.view.scene().sigMouseClicked.connect(self._scene_clicked)
 
@@ -178,7 +220,7 @@ class DensityMap(QWidget):
                 plot.getAxis(ax).enableAutoSIPrefix(False)
             img = pg.ImageItem(np.zeros((BINS, BINS, 4), dtype=np.uint8), axisOrder="row-major")
             plot.addItem(img)
-            hl = pg.ScatterPlotItem(size=4, pen=None, brush=pg.mkBrush(style.RARE), pxMode=True)
+            hl = DotsItem(style.RARE, 3.5)
             hl.setZValue(5)
             plot.addItem(hl)
             self._plots.append((plot, img, hl))
@@ -264,7 +306,7 @@ class DensityMap(QWidget):
 
     def highlighted_points(self) -> int:
         """Number of highlight points currently drawn over all plots (after subsampling)."""
-        return sum(len(c.highlight.data) for c in self.cells)
+        return sum(c.highlight.n for c in self.cells)
 
     # ------------------------------------------------------------- contours
     def set_contours(self, lines_per_cell: Sequence[Sequence[tuple[int, np.ndarray]]] | None) -> None:

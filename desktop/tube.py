@@ -33,6 +33,8 @@ class Tube:
     control_path: str | None = None
     dirty: bool = False  # regions changed since the recipe was last saved
     _compensated: np.ndarray | None = None
+    _rare_order: np.ndarray | None = None
+    _rare_for: object = None
 
     @classmethod
     def open(cls, path: str) -> "Tube":
@@ -78,13 +80,24 @@ class Tube:
         return None if self.analysis is None else self.analysis.rarity
 
     def update_rare(self) -> None:
-        """Rare events at the current share (core.rare.rare_by_share)."""
-        if self.analysis is None:
+        """Rare events at the current share: the rule of core.rare.rare_by_share
+        (the round(share x n_kept) lowest finite log densities, ties by event
+        order).  The stable ordering is sorted once per fit and kept, so moving
+        the rarity control costs no sort; tests check the result equals
+        core.rare.rare_by_share at every share they try."""
+        a = self.analysis
+        if a is None:
             self.rare_mask = None
             return
-        from core.rare import rare_by_share
-
-        self.rare_mask = rare_by_share(self.analysis.log_density, self.share).mask
+        if self._rare_for is not a:
+            ld = np.asarray(a.log_density, dtype=np.float64)
+            ok = np.flatnonzero(np.isfinite(ld))
+            self._rare_order = ok[np.argsort(ld[ok], kind="stable")]
+            self._rare_for = a
+        k = int(round(self.share * self._rare_order.size))
+        mask = np.zeros(self.n_events, dtype=bool)
+        mask[self._rare_order[:k]] = True
+        self.rare_mask = mask
 
     def update_regions(self) -> None:
         """Masks and statistics of every region (core.regions)."""
