@@ -346,3 +346,90 @@ def test_many_qt_calls_do_not_abort_the_interpreter():
     res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120,
                          cwd=os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
     assert res.returncode == 0 and "ALIVE" in res.stdout, res.stderr[-2000:]
+
+
+class _Click:
+    """What pyqtgraph's scene hands to a click handler (button, place, double)."""
+
+    def __init__(self, pos, double=False):
+        self._pos, self._double = pos, double
+
+    def button(self):
+        from PySide6.QtCore import Qt
+
+        return Qt.LeftButton
+
+    def scenePos(self):
+        return self._pos
+
+    def double(self):
+        return self._double
+
+    def accept(self):
+        pass
+
+
+def test_drawing_tools_rename_and_drop(qtbot, window, tmp_path):
+    from PySide6.QtCore import QMimeData, QPointF, Qt, QUrl
+    from PySide6.QtGui import QDropEvent
+
+    path = make_fcs(tmp_path / "t.fcs", n=1000)
+    # drop the file on the window, as from a file manager
+    mime = QMimeData()
+    mime.setUrls([QUrl.fromLocalFile(path)])
+    drop = QDropEvent(QPointF(50, 50), Qt.CopyAction, mime, Qt.LeftButton, Qt.NoModifier)
+    window.dropEvent(drop)
+    qtbot.waitUntil(lambda: window.current is not None, timeout=10_000)
+    tube = window.current
+    cell = window.density_map.cells[0]
+    vb = cell.plot.vb
+    (x0, x1), (y0, y1) = vb.viewRange()
+    # rectangle tool: one click places a box centred on the click
+    window.act_rect.trigger()
+    centre = vb.mapViewToScene(QPointF(0.5 * (x0 + x1), 0.5 * (y0 + y1)))
+    window.density_map._scene_clicked(_Click(centre))
+    assert len(tube.regions) == 1
+    r = tube.regions.names[0]
+    reg = tube.regions[r]
+    xs, ys = tube.values[:, cell.ix], tube.values[:, cell.iy]
+    # reference: numpy count with half-open bounds (Gating-ML 2.0 rectangle gates, from memory)
+    ref = np.count_nonzero((xs >= reg.x[0]) & (xs < reg.x[1]) & (ys >= reg.y[0]) & (ys < reg.y[1]))
+    assert window.region_count(r) == ref > 0
+    # polygon tool: three clicks, the last a double-click, close a triangle
+    window.act_poly.trigger()
+    pts = [(x0 + 0.1 * (x1 - x0), y0 + 0.1 * (y1 - y0)), (x0 + 0.9 * (x1 - x0), y0 + 0.1 * (y1 - y0)),
+           (0.5 * (x0 + x1), y0 + 0.9 * (y1 - y0))]
+    for k, (px, py) in enumerate(pts + [pts[-1]]):
+        window.density_map._scene_clicked(_Click(vb.mapViewToScene(QPointF(px, py)), double=(k == 3)))
+    assert len(tube.regions) == 2
+    poly = tube.regions[tube.regions.names[1]]
+    assert poly.kind == "polygon" and len(poly.vertices) == 3
+    # rename by editing the table cell
+    window.selections.table.item(0, 0).setText("box")
+    assert tube.regions.names[0] == "box" and "box" in window.density_map.cells[0].rois
+
+
+def test_contrast_with_control_highlights_enriched(qtbot, window, tmp_path):
+    from core.contrast import DEFAULT_ALPHA
+
+    test_path = make_fcs(tmp_path / "test.fcs", n=2000, seed=3)
+    # control: events of the same generator without the bright FL1 population
+    base = make_fcs(tmp_path / "base.fcs", n=2000, seed=4)
+    from core.fcs import read_fcs
+
+    ef = read_fcs(base)
+    data = ef.data.copy()
+    k = 2000 // 40
+    data[:k, 2] = data[k:2 * k, 2]  # remove the bright population
+    write_fcs(tmp_path / "control.fcs", data, CHANNELS, keywords={"$SPILLOVER": ef.keywords["$SPILLOVER"]},
+              channel_labels=["", "", "CD3", "CD4"], channel_ranges=[262144] * 4)
+    window.open_paths([test_path])
+    with qtbot.waitSignal(window.fitEnded, timeout=120_000) as blocker:
+        window.choose_control(str(tmp_path / "control.fcs"))
+    assert blocker.args == [True], window.last_fit_problem
+    a = window.current.analysis
+    assert a.enriched is not None and a.contrast.alpha == DEFAULT_ALPHA
+    assert window.highlight_enriched
+    assert f"{int(a.enriched.sum()):,} enriched" in window.rarity_bar.count.text()
+    # the enriched events lie mostly in the population the control lacks (the first 50 events)
+    assert a.enriched[:k].mean() > 0.5 > 10 * a.enriched[k:].mean()

@@ -252,9 +252,12 @@ class ChannelsPanel(QWidget):
 
 
 def describe(spec: dict | None) -> str:
-    """Short text of a transform spec, e.g. ``arcsinh (cofactor 150)``."""
+    """Short text of a transform spec, e.g. ``arcsinh (cofactor 150)`` (core's label)."""
     if not spec:
         return "linear"
-    kind = spec.get("kind", "?")
-    params = [f"{k} {spec[k]:g}" for k, *_ in PARAMETERS.get(kind, []) if isinstance(spec.get(k), (int, float))]
-    return f"{kind} ({', '.join(params)})" if params else kind
+    from core.transforms import make_transform
+
+    try:
+        return make_transform(spec).label
+    except Exception:  # noqa: BLE001 - an invalid spec is shown as written
+        return str(spec.get("kind", "?"))
