@@ -251,6 +251,9 @@ class MainWindow(QMainWindow):
         self._drag_timer.timeout.connect(self._apply_pending_roi)
         self._pending_roi: tuple | None = None
         self.density_map.set_title("Open an FCS file or a folder (Ctrl+O), or drop one here")
+        geometry = self.settings.value("window/geometry")
+        if geometry is not None and interactive:
+            self.restoreGeometry(geometry)
 
     # ------------------------------------------------------------------ actions
     def _action(self, text, slot, shortcut=None, icon_name=None, tip="", checkable=False):
@@ -735,6 +738,13 @@ class MainWindow(QMainWindow):
 
     def _fit_done(self, tube: Tube, recipe, result, control) -> None:
         self._job_ended()
+        if (tube.recipe.transforms != recipe.transforms or tube.recipe.compensation != recipe.compensation
+                or list(tube.recipe.channels) != list(recipe.channels)):
+            self.last_fit_problem = "the scales, channels or compensation changed during the fit"
+            self.fit_panel.ended("Not used: the scales, channels or compensation changed during the fit. "
+                                 "Fit again.")
+            self.fitEnded.emit(False)
+            return
         try:
             analysis = result
             tube.analysis = analysis
@@ -1099,6 +1109,8 @@ class MainWindow(QMainWindow):
         if self.job is not None:
             self.job.cancel()
             self.job.wait(20000)
+        if self.interactive:
+            self.settings.set_value("window/geometry", self.saveGeometry())
         self.settings.sync()
         event.accept()
 

@@ -35,13 +35,13 @@ RANGE_SAMPLE = 50_000
 
 def channel_extent(column: np.ndarray, seed: int = 0) -> tuple[float, float]:
     """Display range of one channel: 0.05-99.95 percentiles (of at most
-    ``RANGE_SAMPLE`` finite values, fixed seed) padded by 4 % on each side."""
+    ``RANGE_SAMPLE`` values drawn with a fixed seed) padded by 4 % on each side."""
     col = np.asarray(column, dtype=np.float64)
+    if col.size > RANGE_SAMPLE:
+        col = col[np.random.default_rng(seed).integers(0, col.size, RANGE_SAMPLE)]
     col = col[np.isfinite(col)]
     if col.size == 0:
         return (0.0, 1.0)
-    if col.size > RANGE_SAMPLE:
-        col = np.random.default_rng(seed).choice(col, RANGE_SAMPLE, replace=False)
     lo, hi = np.percentile(col, [0.05, 99.95])
     if not hi > lo:
         lo, hi = lo - 0.5, hi + 0.5
@@ -49,16 +49,26 @@ def channel_extent(column: np.ndarray, seed: int = 0) -> tuple[float, float]:
     return (float(lo - pad), float(hi + pad))
 
 
+def channel_bins(column: np.ndarray, lo: float, hi: float, bins: int = BINS) -> np.ndarray:
+    """Bin number (0..bins-1) of each value over [lo, hi); -1 outside or not finite."""
+    with np.errstate(invalid="ignore", over="ignore"):
+        f = (np.asarray(column, dtype=np.float64) - lo) * (bins / (hi - lo))
+        ok = (f >= 0) & (f < bins)
+    out = np.full(f.shape, -1, dtype=np.int32)
+    out[ok] = f[ok].astype(np.int32)
+    return out
+
+
 def bin_index(x: np.ndarray, y: np.ndarray, extent: tuple[float, float, float, float],
               bins: int = BINS) -> np.ndarray:
     """Flat bin index (row = y bin, column = x bin) of each event; -1 outside the extent."""
-    x0, x1, y0, y1 = extent
-    with np.errstate(invalid="ignore"):
-        fx = (x - x0) * (bins / (x1 - x0))
-        fy = (y - y0) * (bins / (y1 - y0))
-        inside = (fx >= 0) & (fx < bins) & (fy >= 0) & (fy < bins)
-    idx = np.full(x.shape, -1, dtype=np.int64)
-    idx[inside] = fy[inside].astype(np.int64) * bins + fx[inside].astype(np.int64)
+    return pair_index(channel_bins(x, extent[0], extent[1], bins), channel_bins(y, extent[2], extent[3], bins), bins)
+
+
+def pair_index(bx: np.ndarray, by: np.ndarray, bins: int = BINS) -> np.ndarray:
+    """Combine per-channel bins (from :func:`channel_bins`) into flat 2-D bins; -1 outside."""
+    idx = by.astype(np.int64) * bins + bx
+    idx[(bx < 0) | (by < 0)] = -1
     return idx
 
 
@@ -185,17 +195,19 @@ class DensityMap(QWidget):
             self._build_grid(n, columns)
         self.cells = []
         extents: dict[int, tuple[float, float]] = {}
+        chan_bins: dict[int, np.ndarray] = {}
         for k, (ix, iy) in enumerate(pairs):
             for c in (ix, iy):
                 if c not in extents:
                     extents[c] = channel_extent(values[:, c])
+                    chan_bins[c] = channel_bins(values[:, c], *extents[c])
             ext = extents[ix] + extents[iy]
             plot, img, hl = self._plots[k]
             plot.setLabel("bottom", _axis_label(self.names[ix], labels[ix]))
             plot.setLabel("left", _axis_label(self.names[iy], labels[iy]))
             img.setRect(QRectF(ext[0], ext[2], ext[1] - ext[0], ext[3] - ext[2]))
             plot.setRange(xRange=ext[:2], yRange=ext[2:], padding=0)
-            idx = bin_index(values[:, ix], values[:, iy], ext)
+            idx = pair_index(chan_bins[ix], chan_bins[iy])
             inside = idx >= 0
             counts = np.bincount(idx[inside], minlength=BINS * BINS).astype(np.float64)
             self.cells.append(PairCell(ix, iy, plot, img, hl, ext, idx, inside, counts))
