@@ -456,6 +456,20 @@ def run_speed(args, log=print):
 
 # ----------------------------------------------------------------- report
 
+def engine_version() -> str:
+    """Last commit touching core/density and whether the working tree differs from it."""
+    import subprocess
+
+    try:
+        head = subprocess.run(["git", "log", "-1", "--format=%h %cI", "--", "core/density"], cwd=ROOT,
+                              capture_output=True, text=True, timeout=10).stdout.strip()
+        dirty = subprocess.run(["git", "status", "--porcelain", "--", "core/density"], cwd=ROOT,
+                               capture_output=True, text=True, timeout=10).stdout.strip()
+    except (OSError, subprocess.SubprocessError):
+        return "unknown (no git)"
+    return (head or "not committed") + (" + uncommitted changes" if dirty else "")
+
+
 def report(rows, file_rows, speed, args, markdown=False) -> str:
     cores = os.cpu_count()
     out = []
@@ -505,7 +519,8 @@ def report(rows, file_rows, speed, args, markdown=False) -> str:
 
     notes = [
         "truth: exact log density of the scenario (density_scenarios.py); the best any model can do on average.",
-        "ours: core.density.AdditiveTreeDensity(random_state=seed) with default settings.",
+        f"ours: core.density.AdditiveTreeDensity(random_state=seed) with default settings; core/density at "
+        f"{ENGINE_VERSION}.",
         f"GMM-BIC: sklearn GaussianMixture, full covariance, components chosen by BIC on the training "
         f"events among {', '.join(map(str, GMM_CANDIDATES))} (a subset of 4..32 to keep time); fit s is the "
         f"whole search; one initialisation (k-means), max_iter 200.",
@@ -573,8 +588,13 @@ def select_cases(spec):
     return chosen
 
 
+ENGINE_VERSION = "not measured"
+
+
 def main(argv=None):
+    global ENGINE_VERSION
     args = parse_args(argv)
+    ENGINE_VERSION = engine_version()
     cases = select_cases(args.scenarios)
     cache = load_cache(args.cache)     # --no-cache: entries are recomputed and replaced
 
