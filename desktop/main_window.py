@@ -298,6 +298,10 @@ class MainWindow(QMainWindow):
         self.act_rarer = self._action("Fewer rare events", lambda: self.rarity_bar.step(-1), "[")
         self.act_more = self._action("More rare events", lambda: self.rarity_bar.step(+1), "]")
         self.act_delete = self._action("Delete region", self.delete_selected_regions, "Del")
+        # Del only acts in the Selections panel, never on a value being edited elsewhere
+        self.removeAction(self.act_delete)
+        self.act_delete.setShortcutContext(Qt.WidgetWithChildrenShortcut)
+        self.selections.addAction(self.act_delete)
         self.act_about = self._action(f"About {SOFTWARE_NAME}", self.about)
         self.act_quit = self._action("Quit", self.close, "Ctrl+Q")
 
