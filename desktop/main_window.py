@@ -938,9 +938,9 @@ class MainWindow(QMainWindow):
 
     def _roi_moved(self, name: str, vertices) -> None:
         self._pending_roi = (name, vertices)
-        self._apply_pending_roi()
+        self._apply_pending_roi(final=True)
 
-    def _apply_pending_roi(self) -> None:
+    def _apply_pending_roi(self, final: bool = False) -> None:
         if self._pending_roi is None or self.current is None:
             return
         name, vertices = self._pending_roi
@@ -960,7 +960,10 @@ class MainWindow(QMainWindow):
             self.statusBar().showMessage(str(exc), 4000)
             return
         tube.dirty = True
-        self._refresh_regions()
+        if not final and tube.update_region(name):
+            self.selections.update_counts(tube.stats)  # dependants follow when the drag ends
+        else:
+            self._refresh_regions()
 
     def _refresh_regions(self, full: bool = False) -> None:
         tube = self.current

@@ -53,10 +53,11 @@ def channel_bins(column: np.ndarray, lo: float, hi: float, bins: int = BINS) -> 
     """Bin number (0..bins-1) of each value over [lo, hi); -1 outside or not finite."""
     with np.errstate(invalid="ignore", over="ignore"):
         f = (np.asarray(column, dtype=np.float64) - lo) * (bins / (hi - lo))
-        ok = (f >= 0) & (f < bins)
-    out = np.full(f.shape, -1, dtype=np.int32)
-    out[ok] = f[ok].astype(np.int32)
-    return out
+        np.nan_to_num(f, copy=False, nan=-1.0, posinf=-1.0, neginf=-1.0)
+        f[f >= bins] = -1.0
+        np.floor(f, out=f)
+        np.maximum(f, -1.0, out=f)
+    return f.astype(np.int32)
 
 
 def bin_index(x: np.ndarray, y: np.ndarray, extent: tuple[float, float, float, float],

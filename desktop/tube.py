@@ -116,6 +116,28 @@ class Tube:
         self.masks = self.regions.evaluate(values, rarity, self.n_events)
         self.stats = self.regions.statistics(values, rarity, self.n_events, masks=self.masks)
 
+    def update_region(self, name: str) -> bool:
+        """Re-count one region (and what it refers to) without touching the others:
+        the fast path while its outline is dragged.  Returns False when a full
+        update is needed instead (the region relies on rarity before a fit)."""
+        if name not in self.regions or not self.stats:
+            return False
+        needed, stack = {name}, [name]
+        while stack:
+            for ref in self.regions[stack.pop()].references():
+                if ref not in needed:
+                    needed.add(ref)
+                    stack.append(ref)
+        if self.rarity is None and any(_uses_rarity(self.regions[n], self.regions) for n in needed):
+            return False
+        sub = RegionSet([r for r in self.regions if r.name in needed])
+        values = self.by_channel()
+        masks = sub.evaluate(values, self.rarity, self.n_events)
+        rows = {s.name: s for s in sub.statistics(values, self.rarity, self.n_events, masks=masks)}
+        self.masks.update(masks)
+        self.stats = [rows.get(s.name, s) for s in self.stats]
+        return True
+
     def recipe_with_regions(self):
         r = copy.deepcopy(self.recipe)
         r.regions = self.regions.to_dict()
