@@ -227,6 +227,13 @@ def test_scale_and_compensation_edits_recompute_values(qtbot, window, tmp_path):
     window.channels_panel.set_spec("FL1-A", {"kind": "arcsinh", "cofactor": 5.0})
     qtbot.waitUntil(lambda: tube.recipe.transforms["FL1-A"]["kind"] == "arcsinh", timeout=3000)
     np.testing.assert_allclose(tube.values[:, 2], np.arcsinh(comp[:, 0] / 5.0), rtol=1e-9, atol=1e-12)
+    # the live preview is the histogram of the new scale (reference: numpy.histogram, same bins)
+    xs, ys = window.channels_panel.hist_curve.getData()
+    shown = np.arcsinh(comp[:, 0] / 5.0)
+    lo, hi = np.percentile(shown, [0.05, 99.95])
+    ref_counts, ref_edges = np.histogram(shown, bins=120, range=(lo, hi))
+    np.testing.assert_allclose(xs, ref_edges)
+    np.testing.assert_array_equal(ys, ref_counts)
     # edit one spillover value, apply: the matrix is saved as CSV and used
     window.comp_panel.set_value(0, 1, 0.2)
     window.comp_panel.apply_button.click()
