@@ -81,7 +81,6 @@ class DotsItem(pg.GraphicsObject):
         super().__init__()
         pen = QPen(QColor(colour))
         pen.setWidthF(size)
-        pen.setCosmetic(True)
         pen.setCapStyle(Qt.SquareCap)
         self._pen = pen
         self._poly = QPolygonF()
@@ -108,10 +107,15 @@ class DotsItem(pg.GraphicsObject):
 
     def paint(self, painter, *args) -> None:
         if self.n:
-            # square, unsmoothed dots: an order of magnitude faster than round antialiased ones
+            # square, unsmoothed dots drawn in device pixels (a pen cap under the plot's
+            # non-uniform scaling would stretch them): far faster than round antialiased ones
+            device = painter.transform().map(self._poly)
+            painter.save()
+            painter.resetTransform()
             painter.setRenderHint(QPainter.Antialiasing, False)
             painter.setPen(self._pen)
-            painter.drawPoints(self._poly)
+            painter.drawPoints(device)
+            painter.restore()
 
 
 @dataclass
