@@ -25,7 +25,6 @@ from PySide6.QtWidgets import (QDockWidget, QFileDialog, QHBoxLayout, QInputDial
 from core import RESEARCH_USE_NOTE, SOFTWARE_NAME, __version__
 from core.errors import BoscageError, RegionError
 
-from desktop import style
 from desktop.app import guarded, icon, show_error
 from desktop.panels.channels import ChannelsPanel
 from desktop.panels.compensation import CompensationPanel, save_matrix_csv
@@ -980,8 +979,9 @@ class MainWindow(QMainWindow):
         tube = self.current
         try:
             tube.regions.rename(old, new)
-        finally:
-            pass
+        except RegionError:
+            self._refresh_regions(full=True)  # put the old name back in the table
+            raise
         self.density_map.remove_roi(old)
         self._show_roi(tube.regions[new])
         tube.dirty = True

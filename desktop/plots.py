@@ -18,7 +18,7 @@ from __future__ import annotations
 import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
 
 from dataclasses import dataclass, field
-from typing import Callable, Sequence
+from typing import Sequence
 
 import numpy as np
 import pyqtgraph as pg
