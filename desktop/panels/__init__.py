@@ -1,0 +1,1 @@
+"""Side panels of the main window (Fit, Selections, Channels, Spillover, Tubes)."""
