@@ -126,8 +126,8 @@ def test_integrates_to_one_2d():
     model = AdditiveTreeDensity(random_state=0).fit(X)
     # reference: scipy.integrate.trapezoid applied per axis on the substituted grid.
     # The density is discontinuous across box edges, so the quadrature error
-    # falls only like the grid step: 1500 x 1500 points keep it near 2e-4.
-    n = 1500
+    # falls only like the grid step: 2500 x 2500 points keep it near 2e-4.
+    n = 2500
     centre = np.median(X, axis=0)
     v, x0, d0 = _cauchy_substitution(n, centre[0], 2.0)
     _, x1, d1 = _cauchy_substitution(n, centre[1], 2.0)

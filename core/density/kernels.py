@@ -551,14 +551,19 @@ def pwl_inverse(U, offsets, xs, ys, slopes):
 # by the gain of the split plus the best split of each of its two children.
 
 @njit(cache=True)
-def pair_histogram(R, node_of, k, box_lo, box_inv, n_bins, allowed):
+def pair_histogram(R, node_of, k, box_lo, box_inv, n_bins, allowed, stride):
     """Joint counts H[j1, j2, b1, b2] of node ``k``'s events on equal-width bins
-    of the node's box (n_bins per dimension), for allowed j1, j2."""
+    of the node's box (n_bins per dimension), for allowed j1, j2; only every
+    ``stride``-th event of the node is counted (cost n d^2 / stride)."""
     n, d = R.shape
     H = np.zeros((d, d, n_bins, n_bins), np.int64)
     bins = np.zeros(d, np.int64)
+    seen = 0
     for i in range(n):
         if node_of[i] != k:
+            continue
+        seen += 1
+        if (seen - 1) % stride != 0:
             continue
         for j in range(d):
             b = int((R[i, j] - box_lo[j]) * box_inv[j] * n_bins)

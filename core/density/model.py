@@ -123,6 +123,10 @@ class AdditiveTreeDensity:
         Share of the events held out for early stopping.
     patience : int
         Trees without held-out improvement before stopping.
+    tol : float
+        A dependence tree counts as an improvement only when it raises the
+        best held-out mean log-likelihood by more than this (nats): the
+        long tail of tiny gains, which costs scoring time, is cut.
     max_fit_events : int
         Above this many events the fit uses a seeded random subsample.
     marginal_trees, marginal_learning_rate, marginal_depth, marginal_alpha :
@@ -142,6 +146,9 @@ class AdditiveTreeDensity:
     lookahead : int
         Levels (from the root) whose splits are chosen by two-level
         lookahead: the split's gain plus the best gain of each child.
+    lookahead_bins : int
+        Equal-width candidate cuts per channel in the lookahead (its cost
+        grows as channels^2 x lookahead_bins^2).
     jitter : bool
         Shift each node's grid of candidate cuts by a random fraction of a
         bin (seeded by ``random_state``).
@@ -153,13 +160,14 @@ class AdditiveTreeDensity:
         bit-identical models.
     """
 
-    def __init__(self, n_trees: int = 400, learning_rate: float = 0.9, max_depth: int = 20,
-                 n_bins: int = 64, min_leaf: int = 5, validation_fraction: float = 0.2,
-                 patience: int = 20, max_fit_events: int = 200_000, marginal_trees: int = 100,
+    def __init__(self, n_trees: int = 400, learning_rate: float = 0.9, max_depth: int = 14,
+                 n_bins: int = 64, min_leaf: int = 10, validation_fraction: float = 0.2,
+                 patience: int = 10, max_fit_events: int = 200_000, marginal_trees: int = 100,
                  marginal_learning_rate: float = 0.2, marginal_depth: int = 6,
                  n_layers: int = 3, layer_trees: int = 150, layer_tol: float = 0.01,
                  alpha: float = 1000.0, rotation: str = "pca", jitter: bool = False,
-                 min_gain: float = 0.0, lookahead: int = 3, marginal_alpha: float = -1.0,
+                 min_gain: float = 0.0, lookahead: int = 3, lookahead_bins: int = 16,
+                 marginal_alpha: float = -1.0, tol: float = 0.0,
                  random_state: int | None = None):
         self.n_trees = n_trees
         self.learning_rate = learning_rate
@@ -179,14 +187,16 @@ class AdditiveTreeDensity:
         self.jitter = jitter
         self.min_gain = min_gain
         self.lookahead = lookahead
+        self.lookahead_bins = lookahead_bins
         self.marginal_alpha = marginal_alpha
+        self.tol = tol
         self.layer_tol = layer_tol
         self.random_state = random_state
 
     # ------------------------------------------------------------ params
     _PARAMS = ("n_trees", "learning_rate", "max_depth", "n_bins", "min_leaf", "validation_fraction",
                "patience", "max_fit_events", "marginal_trees", "marginal_learning_rate",
-               "marginal_depth", "n_layers", "layer_trees", "layer_tol", "alpha", "rotation", "jitter", "min_gain", "lookahead", "marginal_alpha", "random_state")
+               "marginal_depth", "n_layers", "layer_trees", "layer_tol", "alpha", "rotation", "jitter", "min_gain", "lookahead", "lookahead_bins", "marginal_alpha", "tol", "random_state")
 
     def get_params(self, deep: bool = True) -> dict[str, Any]:
         return {k: getattr(self, k) for k in self._PARAMS}
@@ -301,7 +311,7 @@ class AdditiveTreeDensity:
             for k in range(1, min(total - done, int(self.layer_trees)) + 1):
                 tree = fit_tree(U_tr, lr, int(self.max_depth), int(self.n_bins), int(self.min_leaf),
                                 allowed, float(self.alpha), rng if self.jitter else None,
-                                float(self.min_gain), int(self.lookahead))
+                                float(self.min_gain), int(self.lookahead), int(self.lookahead_bins))
                 if tree.n_nodes == 0:
                     self.stopped_by_ = "no split"
                     break
@@ -312,7 +322,7 @@ class AdditiveTreeDensity:
                 forest.append(tree)
                 ll = float(ld_va.mean())
                 curve.append(ll)
-                if ll > best_ll:
+                if ll > best_ll + float(self.tol):
                     best_k, best_ll = k, ll
                     best_state = None
                 elif best_state is None:

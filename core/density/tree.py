@@ -24,6 +24,9 @@ import numpy as np
 
 from . import kernels
 
+#: Events sampled (evenly) from a node for its pair histogram in the lookahead.
+LOOKAHEAD_EVENTS = 20_000
+
 
 @dataclass
 class Forest:
@@ -200,11 +203,19 @@ def fit_tree(R: np.ndarray, learning_rate: float, max_depth: int, n_bins: int, m
             for k in range(n_nodes):
                 if counts[k] < 2 * min_leaf:
                     continue
-                H = kernels.pair_histogram(R, node_of, k, box_lo[k], inv[k], int(lookahead_bins), allowed)
-                j, b, nl, _score = kernels.lookahead_split(H, lr, float(alpha), int(min_leaf), allowed)
+                # at most ~LOOKAHEAD_EVENTS events per pair histogram
+                stride = max(1, int(counts[k]) // LOOKAHEAD_EVENTS)
+                H = kernels.pair_histogram(R, node_of, k, box_lo[k], inv[k], int(lookahead_bins), allowed,
+                                           stride)
+                j, b, _nl, _score = kernels.lookahead_split(H, lr, float(alpha) / stride,
+                                                            max(1, int(min_leaf) // stride), allowed)
                 if j >= 0:
-                    bdim[k], nleft[k] = j, nl
-                    cut_frac[k] = (b + 1.0) / lookahead_bins
+                    frac = (b + 1.0) / lookahead_bins
+                    c = box_lo[k, j] + frac * width[k, j]
+                    nl = int(np.count_nonzero((node_of == k) & (R[:, j] < c)))
+                    if nl >= min_leaf and counts[k] - nl >= min_leaf:
+                        bdim[k], nleft[k] = j, nl
+                        cut_frac[k] = frac
         split_cut = np.zeros(n_nodes)
         child_l = np.full(n_nodes, -1, np.int64)
         child_r = np.full(n_nodes, -1, np.int64)
