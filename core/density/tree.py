@@ -179,12 +179,13 @@ def fit_tree(R: np.ndarray, learning_rate: float, max_depth: int, n_bins: int, m
     box_lo = np.zeros((1, d))
     box_hi = np.ones((1, d))
     counts = np.array([n], np.int64)
-    parent_link = [(-1, False)]             # (global parent id, is_left) per active node
+    parent_gid = np.array([-1], np.int64)   # global id of each active node's parent
+    parent_left = np.array([False])         # is the active node its parent's left child
 
-    dims, cuts, los, his, thetas, lefts, rights = [], [], [], [], [], [], []
-
-    def p_mix(cnt, vol):
-        return (1.0 - lr) * vol + lr * cnt / n
+    dims, cuts, los, his, thetas = [], [], [], [], []
+    lefts = np.zeros(0, np.int64)
+    rights = np.zeros(0, np.int64)
+    n_split = 0
 
     for _level in range(int(max_depth)):
         n_nodes = box_lo.shape[0]
@@ -219,64 +220,65 @@ def fit_tree(R: np.ndarray, learning_rate: float, max_depth: int, n_bins: int, m
         split_cut = np.zeros(n_nodes)
         child_l = np.full(n_nodes, -1, np.int64)
         child_r = np.full(n_nodes, -1, np.int64)
-        new_lo, new_hi, new_counts, new_links = [], [], [], []
-        for k in range(n_nodes):
-            j = int(bdim[k])
-            if j < 0:
-                continue
-            a, b = box_lo[k, j], box_hi[k, j]
-            c = a + cut_frac[k] * (b - a)
-            if not a < c < b:
-                continue  # rounding at a tiny node: leave it a leaf
-            split_cut[k] = c
-            gid = len(dims)
-            pa, is_left = parent_link[k]
-            if pa >= 0:
-                if is_left:
-                    lefts[pa] = gid
-                else:
-                    rights[pa] = gid
-            nl = int(nleft[k])
-            nr = int(counts[k]) - nl
-            frac = (c - a) / (b - a)
-            if alpha >= 0:
-                pl = kernels.node_theta(nl, nl + nr, frac, lr, float(alpha))
-                pr = 1.0 - pl
-            else:
-                pl = p_mix(nl, vol[k] * frac)
-                pr = p_mix(nr, vol[k] * (1.0 - frac))
-            dims.append(j)
-            cuts.append(c)
-            los.append(a)
-            his.append(b)
-            thetas.append(pl / (pl + pr))
-            lefts.append(-1)
-            rights.append(-1)
-            for cnt, is_l in ((nl, True), (nr, False)):
-                if cnt >= 2 * min_leaf:
-                    lo_c = box_lo[k].copy()
-                    hi_c = box_hi[k].copy()
-                    if is_l:
-                        hi_c[j] = c
-                        child_l[k] = len(new_lo)
-                    else:
-                        lo_c[j] = c
-                        child_r[k] = len(new_lo)
-                    new_lo.append(lo_c)
-                    new_hi.append(hi_c)
-                    new_counts.append(cnt)
-                    new_links.append((gid, is_l))
-        if not new_lo or _level == max_depth - 1:
+        ks = np.flatnonzero(bdim >= 0)
+        js = bdim[ks]
+        a = box_lo[ks, js]
+        b = box_hi[ks, js]
+        c = a + cut_frac[ks] * (b - a)
+        good = (a < c) & (c < b)  # rounding at a tiny node: leave it a leaf
+        ks, js, a, b, c = ks[good], js[good], a[good], b[good], c[good]
+        bdim = np.where(np.isin(np.arange(n_nodes), ks), bdim, -1)
+        m = ks.size
+        if m == 0:
             break
+        split_cut[ks] = c
+        gids = n_split + np.arange(m)
+        # link each new node to its parent
+        pa = parent_gid[ks]
+        has_pa = pa >= 0
+        is_l = parent_left[ks]
+        lefts[pa[has_pa & is_l]] = gids[has_pa & is_l]
+        rights[pa[has_pa & ~is_l]] = gids[has_pa & ~is_l]
+        nl = nleft[ks].astype(np.float64)
+        na = counts[ks].astype(np.float64)
+        nr = na - nl
+        frac = (c - a) / (b - a)
+        if alpha >= 0:
+            theta = (1.0 - lr) * frac + lr * (nl + alpha * frac) / (na + alpha)
+        else:
+            pl = (1.0 - lr) * vol[ks] * frac + lr * nl / n
+            pr = (1.0 - lr) * vol[ks] * (1.0 - frac) + lr * nr / n
+            theta = pl / (pl + pr)
+        dims.append(js)
+        cuts.append(c)
+        los.append(a)
+        his.append(b)
+        thetas.append(theta)
+        lefts = np.concatenate([lefts, np.full(m, -1, np.int64)])
+        rights = np.concatenate([rights, np.full(m, -1, np.int64)])
+        n_split += m
+        # children that can still be split become next level's nodes (left, right per node)
+        grow = np.stack([nl >= 2 * min_leaf, nr >= 2 * min_leaf], axis=1).ravel()
+        if not grow.any() or _level == max_depth - 1:
+            break
+        rows = np.repeat(np.arange(m), 2)[grow]
+        sides = np.tile([True, False], m)[grow]
+        kk = ks[rows]
+        new_lo = box_lo[kk].copy()
+        new_hi = box_hi[kk].copy()
+        new_hi[sides, js[rows][sides]] = c[rows][sides]
+        new_lo[~sides, js[rows][~sides]] = c[rows][~sides]
+        local = np.arange(rows.size)
+        child_l[kk[sides]] = local[sides]
+        child_r[kk[~sides]] = local[~sides]
+        new_counts = np.where(sides, nl[rows], nr[rows]).astype(np.int64)
         kernels.route_events(R, node_of, bdim, split_cut, child_l, child_r)
-        box_lo = np.array(new_lo)
-        box_hi = np.array(new_hi)
-        counts = np.array(new_counts, np.int64)
-        parent_link = new_links
+        box_lo, box_hi, counts = new_lo, new_hi, new_counts
+        parent_gid = gids[rows]
+        parent_left = sides
 
-    if not dims:
+    if n_split == 0:
         return Forest(roots=np.array([-1], np.int64))
-    return Forest(roots=np.array([0], np.int64), dim=np.array(dims, np.int64),
-                  cut=np.array(cuts), lo=np.array(los), hi=np.array(his),
-                  theta=np.array(thetas), left=np.array(lefts, np.int64),
-                  right=np.array(rights, np.int64))
+    return Forest(roots=np.array([0], np.int64), dim=np.concatenate(dims).astype(np.int64),
+                  cut=np.concatenate(cuts), lo=np.concatenate(los), hi=np.concatenate(his),
+                  theta=np.concatenate(thetas), left=lefts, right=rights)
