@@ -218,6 +218,24 @@ class Analysis:
     def n_rare(self) -> int:
         return int(np.count_nonzero(self.rare))
 
+    def export_columns(self) -> dict:
+        """Per-event parameters an FCS/CSV export adds, name -> (n_events,) float64.
+
+        FCS float data should hold no NaN, so removed events carry log density
+        0 and rarity percentile -1, and ``cleaning flag`` says why (0 kept,
+        1 saturated, 2 non-finite).  With a control: ``contrast score`` and
+        ``enriched`` (0/1).
+        """
+        kept = self.kept
+        flag = np.where(kept, 0.0, np.where(self.reason == "saturated", 1.0, 2.0))
+        cols = {"log density": np.where(kept, self.log_density, 0.0),
+                "rarity percentile": np.where(kept, self.rarity, -1.0),
+                "cleaning flag": flag}
+        if self.contrast_score is not None:
+            cols["contrast score"] = np.where(np.isfinite(self.contrast_score), self.contrast_score, 0.0)
+            cols["enriched"] = self.enriched.astype(float)
+        return cols
+
     def table(self):
         """One row per event (pandas.DataFrame), removed events included.
 

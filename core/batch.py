@@ -86,20 +86,6 @@ def _source_stamp(path: str) -> dict:
     return {"size": int(st.st_size), "mtime_ns": int(st.st_mtime_ns)}
 
 
-def _export_columns(an) -> dict:
-    import numpy as np
-
-    kept = an.reason == ""
-    flag = np.where(kept, 0.0, np.where(an.reason == "saturated", 1.0, 2.0))
-    cols = {"log density": np.where(kept, an.log_density, 0.0),
-            "rarity percentile": np.where(kept, an.rarity, -1.0),
-            "cleaning flag": flag}
-    if an.contrast_score is not None:
-        cols["contrast score"] = np.where(np.isfinite(an.contrast_score), an.contrast_score, 0.0)
-        cols["enriched"] = an.enriched.astype(float)
-    return cols
-
-
 def process_file(task: dict) -> dict:
     """Analyse and export one file; never raises for problems with the file.
 
@@ -125,7 +111,7 @@ def process_file(task: dict) -> dict:
         folder = file_out_dir(task["out_dir"], path)
         os.makedirs(folder, exist_ok=True)
         stem = os.path.basename(folder)
-        extra = _export_columns(an)
+        extra = an.export_columns()
         export_events_fcs(os.path.join(folder, f"{stem} rare.fcs"), ef, an.rare, extra, task["digest"],
                           overwrite=True)
         for name, mask in an.region_masks.items():

@@ -33,15 +33,6 @@ def _path_row(parent: QWidget, edit: QLineEdit, choose) -> QWidget:
     return w
 
 
-def analysis_columns(analysis) -> dict:
-    """Per-event columns an export carries after a fit (log density, rarity,
-    cleaning flag, contrast), as the batch writes them."""
-    from core import batch
-
-    fn = getattr(batch, "export_columns", None) or getattr(batch, "_export_columns")
-    return fn(analysis)
-
-
 class ExportDialog(QDialog):
     """Choose which events (all, rare, enriched, a region) and where to write them."""
 
@@ -120,7 +111,7 @@ class ExportDialog(QDialog):
             raise ExportError("choose a file to write")
         t = self.tube
         mask = self.mask()
-        extra = {} if t.analysis is None else dict(analysis_columns(t.analysis))
+        extra = {} if t.analysis is None else t.analysis.export_columns()
         for name, m in t.masks.items():
             extra[f"region {name}"] = np.asarray(m, dtype=float)
         overwrite = getattr(self, "_overwrite", False)
