@@ -156,8 +156,31 @@ class AdditiveTreeDensity:
         A layer that improves the held-out mean log-likelihood by less than
         this (nats) is dropped and fitting ends.
     random_state : int or None
-        Seed for subsampling and the held-out split; equal seeds give
-        bit-identical models.
+        Seed for subsampling, the held-out split and any random choice;
+        equal seeds give bit-identical models.
+
+    Attributes (after fit)
+    ----------------------
+    n_features_in_ : int
+        Channels.
+    bounds_ : ndarray (2, n_channels)
+        Per-channel minimum and maximum of the fitted events.
+    n_trees_ : int
+        Dependence trees kept (all layers).
+    n_marginal_trees_ : ndarray (n_channels,)
+        One-channel trees of the first layer's marginal stage, per channel.
+    learning_curve_ : ndarray
+        Held-out mean log-likelihood (nats per event, units of X): one entry
+        after each layer's rotation and marginal stage, then one after each
+        dependence tree; when a layer is rolled back to its best prefix or
+        dropped, the value of the kept model is appended.  The last entry
+        is the kept model's value.
+    heldout_loglik_ : float
+        The kept model's held-out mean log-likelihood.
+    n_events_fitted_ : int
+        Events used (after the ``max_fit_events`` subsample).
+    stopped_by_ : str
+        "early stopping", "n_trees", "no split" or "cancelled".
     """
 
     def __init__(self, n_trees: int = 400, learning_rate: float = 0.9, max_depth: int = 14,
