@@ -47,6 +47,7 @@ from dataclasses import dataclass
 from functools import lru_cache
 from typing import Any, Callable
 
+import numba
 import numpy as np
 
 from .errors import TransformError
@@ -302,67 +303,64 @@ def _start_table(k: _LogicleConstants) -> tuple[np.ndarray, float, float]:
 def _solve_biex(v: np.ndarray, k: _LogicleConstants, max_iter: int = 100) -> np.ndarray:
     """z >= 0 with p expm1(b z) - q expm1(-d z) = v, for finite v >= 0 (vectorised).
 
-    Start from a table (:func:`_start_table`), take two Halley steps on the
-    whole array, and hand the few values that have not converged to the
-    bracketed solver (:func:`_halley_loop`): the bracket
-    log1p(max(v - q, 0)/p)/b <= z <= log1p(v/p)/b (the q term lies in [0, q)),
-    Halley steps replaced by bisection when they leave it.
+    Each value starts from a table (:func:`_start_table`) and takes Halley
+    steps inside the bracket log1p(max(v - q, 0)/p)/b <= z <= log1p(v/p)/b
+    (the q term lies in [0, q)); a step that leaves the bracket is replaced by
+    bisection, so every value converges.  The loop is compiled (numba) and runs
+    in parallel over values; most values converge in two steps.
     """
-    p, q, b, d = k.p, k.q, k.b, k.d
-    eps = np.finfo(float).eps
     z_table, ds, scale = _start_table(k)
-    with np.errstate(over="ignore", invalid="ignore"):
-        t = np.arcsinh(v / scale) / ds
-        i = np.minimum(t.astype(np.intp), z_table.size - 2)
-        frac = t - i
-        z = z_table[i] + frac * (z_table[i + 1] - z_table[i])
-        beyond = frac > 1.0
-        z[beyond] = np.log1p(v[beyond] / p) / b
-        step = np.zeros_like(z)
-        for _ in range(2):
-            em1b = np.expm1(b * z)
-            em1d = np.expm1(-d * z)
-            h = p * em1b - q * em1d - v
-            h1 = p * b * (em1b + 1.0) + q * d * (em1d + 1.0)
-            h2 = p * b * b * (em1b + 1.0) - q * d * d * (em1d + 1.0)
+    v = np.ascontiguousarray(v, dtype=np.float64).ravel()
+    return _solve_biex_kernel(v, z_table, ds, scale, k.p, k.q, k.b, k.d, max_iter)
+
+
+@numba.njit(cache=True, parallel=True, fastmath=False)
+def _solve_biex_kernel(v, z_table, ds, scale, p, q, b, d, max_iter):  # pragma: no cover - compiled
+    eps = 2.220446049250313e-16
+    n = v.shape[0]
+    out = np.empty(n)
+    last = z_table.shape[0] - 2
+    for i in numba.prange(n):
+        vi = v[i]
+        if vi == 0.0:
+            out[i] = 0.0
+            continue
+        lo = np.log1p(max(vi - q, 0.0) / p) / b
+        hi = np.log1p(vi / p) / b
+        t = np.arcsinh(vi / scale) / ds
+        if t < last + 1.0:
+            m = int(t)
+            frac = t - m
+            z = z_table[m] + frac * (z_table[m + 1] - z_table[m])
+        else:
+            z = hi
+        if not (z >= lo and z <= hi):
+            z = 0.5 * (lo + hi)
+        for _ in range(max_iter):
+            eb = np.exp(b * z)
+            ed = np.exp(-d * z)
+            h = p * np.expm1(b * z) - q * np.expm1(-d * z) - vi
+            if h == 0.0:
+                break
+            if h < 0.0:
+                lo = z
+            else:
+                hi = z
+            h1 = p * b * eb + q * d * ed
+            h2 = p * b * b * eb - q * d * d * ed
             newton = h / h1
-            step = newton / (1.0 - 0.5 * newton * (h2 / h1))
-            z = np.maximum(z - step, 0.0)
-        bad = ~(np.abs(step) <= 4 * eps * z) & (v > 0)
-        bad |= ~np.isfinite(z)
-        if bad.any():
-            vb = v[bad]
-            lo = np.log1p(np.maximum(vb - q, 0.0) / p) / b
-            hi = np.log1p(vb / p) / b
-            zb = np.clip(np.where(np.isfinite(z[bad]), z[bad], hi), lo, hi)
-            z[bad] = _halley_loop(zb, vb, lo, hi, np.arange(vb.size), k, max_iter, eps)
-    z[v == 0] = 0.0
-    return z
-
-
-def _halley_loop(z, v, lo, hi, active, k, max_iter, eps):
-    p, q, b, d = k.p, k.q, k.b, k.d
-    for _ in range(max_iter):
-        if active.size == 0:
-            break
-        za, va, la, ha = z[active], v[active], lo[active], hi[active]
-        eb = np.exp(b * za)
-        ed = np.exp(-d * za)
-        h = p * np.expm1(b * za) - q * np.expm1(-d * za) - va
-        h1 = p * b * eb + q * d * ed
-        h2 = p * b * b * eb - q * d * d * ed
-        la = np.where(h < 0, za, la)
-        ha = np.where(h > 0, za, ha)
-        newton = h / h1
-        step = newton / (1.0 - 0.5 * newton * (h2 / h1))   # Halley, written to avoid overflow
-        zn = za - step
-        converged = (np.abs(step) <= 2 * eps * np.abs(za)) | (h == 0)
-        outside = ~((zn >= la) & (zn <= ha)) | ~np.isfinite(zn)
-        zn = np.where(outside & ~converged, 0.5 * (la + ha), zn)
-        done = converged | (ha - la <= 2 * eps * np.abs(zn))
-        z[active], lo[active], hi[active] = zn, la, ha
-        active = active[~done]
-    return z
+            step = newton / (1.0 - 0.5 * newton * (h2 / h1))   # Halley, written to avoid overflow
+            zn = z - step
+            if abs(step) <= 2.0 * eps * abs(z):
+                z = zn if (zn >= lo and zn <= hi) else z
+                break
+            if not (zn >= lo and zn <= hi):
+                zn = 0.5 * (lo + hi)
+            z = zn
+            if hi - lo <= 2.0 * eps * abs(z):
+                break
+        out[i] = z
+    return out
 
 
 def logicle_inverse(y, T: float, W: float, M: float = DEFAULT_M, A: float = 0.0) -> np.ndarray:
