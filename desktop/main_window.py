@@ -677,7 +677,9 @@ class MainWindow(QMainWindow):
 
     def _current_recipe(self, tube: Tube):
         recipe = tube.recipe_with_regions()
-        engine = dict(recipe.engine or {})
+        # the panel owns these four settings; it returns only those changed from the defaults
+        engine = {k: v for k, v in (recipe.engine or {}).items()
+                  if k not in ("n_trees", "learning_rate", "max_depth", "max_fit_events")}
         engine.update(self.fit_panel.engine_settings())
         recipe.engine = engine
         return recipe

@@ -13,6 +13,17 @@ from PySide6.QtWidgets import (QDoubleSpinBox, QFormLayout, QHBoxLayout, QLabel,
 from desktop import style
 
 
+def engine_defaults() -> dict:
+    """The engine's own default keyword arguments (core.density), so the panel starts there."""
+    import inspect
+
+    from core.density import AdditiveTreeDensity
+
+    sig = inspect.signature(AdditiveTreeDensity.__init__)
+    return {k: p.default for k, p in sig.parameters.items()
+            if k != "self" and p.default is not inspect.Parameter.empty}
+
+
 class FitPanel(QWidget):
     """Start / cancel a density fit and watch it learn.
 
@@ -36,27 +47,28 @@ class FitPanel(QWidget):
         lay.addWidget(note)
 
         form = QFormLayout()
+        self._defaults = engine_defaults()
         self.n_trees = QSpinBox()
         self.n_trees.setRange(1, 5000)
-        self.n_trees.setValue(400)
+        self.n_trees.setValue(int(self._defaults["n_trees"]))
         self.n_trees.setToolTip("Largest number of trees. Fitting stops earlier when the "
                                 "held-out events stop gaining likelihood (early stopping).")
         self.learning_rate = QDoubleSpinBox()
         self.learning_rate.setDecimals(3)
         self.learning_rate.setRange(0.001, 1.0)
         self.learning_rate.setSingleStep(0.01)
-        self.learning_rate.setValue(0.1)
+        self.learning_rate.setValue(float(self._defaults["learning_rate"]))
         self.learning_rate.setToolTip("Shrinkage of each tree toward the uniform: smaller learns "
                                       "more slowly but usually generalises better.")
         self.max_depth = QSpinBox()
-        self.max_depth.setRange(1, 12)
-        self.max_depth.setValue(5)
+        self.max_depth.setRange(1, 40)
+        self.max_depth.setValue(int(self._defaults["max_depth"]))
         self.max_depth.setToolTip("Depth of each tree (at most 2^depth leaves). Deeper trees capture "
                                   "finer structure in one step.")
         self.max_events = QSpinBox()
         self.max_events.setRange(1000, 10_000_000)
         self.max_events.setSingleStep(10_000)
-        self.max_events.setValue(200_000)
+        self.max_events.setValue(int(self._defaults["max_fit_events"]))
         self.max_events.setToolTip("Fit on at most this many events (a fixed-seed random subsample); "
                                    "every event is still scored.")
         form.addRow("Trees (most)", self.n_trees)
@@ -104,9 +116,11 @@ class FitPanel(QWidget):
         self.cancel_button.clicked.connect(self.cancelRequested)
 
     def engine_settings(self) -> dict:
-        """The engine keyword arguments chosen here."""
-        return {"n_trees": int(self.n_trees.value()), "learning_rate": float(self.learning_rate.value()),
-                "max_depth": int(self.max_depth.value()), "max_fit_events": int(self.max_events.value())}
+        """The engine keyword arguments changed here from the engine's defaults
+        (an untouched panel gives {} so the recipe keeps the engine defaults)."""
+        chosen = {"n_trees": int(self.n_trees.value()), "learning_rate": float(self.learning_rate.value()),
+                  "max_depth": int(self.max_depth.value()), "max_fit_events": int(self.max_events.value())}
+        return {k: v for k, v in chosen.items() if v != self._defaults.get(k)}
 
     def set_engine_settings(self, engine: dict) -> None:
         if "n_trees" in engine:
