@@ -552,11 +552,11 @@ def pwl_inverse(U, offsets, xs, ys, slopes):
 
 @njit(cache=True)
 def pair_histogram(R, node_of, k, box_lo, box_inv, n_bins, allowed, stride):
-    """Joint counts H[j1, j2, b1, b2] of node ``k``'s events on equal-width bins
+    """Joint counts H[j1, b1, j2, b2] of node ``k``'s events on equal-width bins
     of the node's box (n_bins per dimension), for allowed j1, j2; only every
     ``stride``-th event of the node is counted (cost n d^2 / stride)."""
     n, d = R.shape
-    H = np.zeros((d, d, n_bins, n_bins), np.int64)
+    H = np.zeros((d, n_bins, d, n_bins), np.int64)
     bins = np.zeros(d, np.int64)
     seen = 0
     for i in range(n):
@@ -577,7 +577,7 @@ def pair_histogram(R, node_of, k, box_lo, box_inv, n_bins, allowed, stride):
                 continue
             for j2 in range(d):
                 if allowed[j2]:
-                    H[j1, j2, bins[j1], bins[j2]] += 1
+                    H[j1, bins[j1], j2, bins[j2]] += 1
     return H
 
 
@@ -624,7 +624,7 @@ def lookahead_split(H, lr, alpha, min_leaf, allowed):
     (dim, bin, n_left, score); the cut is after ``bin``; dim = -1 if none.
     """
     d = H.shape[0]
-    B = H.shape[2]
+    B = H.shape[1]
     best_score = 1e-9
     best_j, best_b, best_nl = -1, 0, 0
     marg = np.zeros(B, np.int64)
@@ -637,7 +637,7 @@ def lookahead_split(H, lr, alpha, min_leaf, allowed):
         for b in range(B):
             s = 0
             for c in range(B):
-                s += H[j1, j1, b, c]
+                s += H[j1, b, j1, c]
             marg[b] = s
         n_a = 0
         for b in range(B):
@@ -662,11 +662,11 @@ def lookahead_split(H, lr, alpha, min_leaf, allowed):
                 row[c] = 0
                 s = 0
                 for b in range(B):
-                    s += H[j1, j2, b, c]
+                    s += H[j1, b, j2, c]
                 tot[c] = s
             for b1 in range(B - 1):
                 for c in range(B):
-                    row[c] += H[j1, j2, b1, c]
+                    row[c] += H[j1, b1, j2, c]
                     rest[c] = tot[c] - row[c]
                 gl = _best_child_gain(row, 0, B, lr, alpha, min_leaf)
                 gr = _best_child_gain(rest, 0, B, lr, alpha, min_leaf)

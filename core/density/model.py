@@ -58,6 +58,8 @@ from .tree import Forest, fit_tree
 #: Events per chunk when scoring/transforming (bounded memory).
 CHUNK = 1 << 16
 MIN_EVENTS = 50
+#: (nodes x channel pairs) per tree the two-level lookahead may examine.
+LOOKAHEAD_PAIR_BUDGET = 1200
 _LOGISTIC_IQR = 2.0 * math.log(3.0)
 
 
@@ -146,6 +148,8 @@ class AdditiveTreeDensity:
     lookahead : int
         Levels (from the root) whose splits are chosen by two-level
         lookahead: the split's gain plus the best gain of each child.
+        Fewer levels are used when channels^2 x nodes would exceed
+        ``LOOKAHEAD_PAIR_BUDGET`` (at least the root).
     lookahead_bins : int
         Equal-width candidate cuts per channel in the lookahead (its cost
         grows as channels^2 x lookahead_bins^2).
@@ -313,6 +317,13 @@ class AdditiveTreeDensity:
         curve = []
         scratch = np.zeros(tr.size)
         lr = float(self.learning_rate)
+        # lookahead costs channels^2 per node: fewer levels for many channels
+        # (3 levels up to 12 channels, 2 up to 20, only the root beyond)
+        free = int(allowed.sum())
+        look = int(self.lookahead)
+        if look > 0:
+            nodes = LOOKAHEAD_PAIR_BUDGET / max(1, free * free)
+            look = max(1, min(look, int(math.floor(math.log2(nodes + 1.0)))))
         done = 0
         n_layers = max(1, int(self.n_layers)) if total else 1
         for layer in range(n_layers):
@@ -334,7 +345,7 @@ class AdditiveTreeDensity:
             for k in range(1, min(total - done, int(self.layer_trees)) + 1):
                 tree = fit_tree(U_tr, lr, int(self.max_depth), int(self.n_bins), int(self.min_leaf),
                                 allowed, float(self.alpha), rng if self.jitter else None,
-                                float(self.min_gain), int(self.lookahead), int(self.lookahead_bins))
+                                float(self.min_gain), look, int(self.lookahead_bins))
                 if tree.n_nodes == 0:
                     self.stopped_by_ = "no split"
                     break
