@@ -5,6 +5,14 @@ script or a notebook.
 Research use only: nothing Boscage computes is a clinical diagnosis.
 """
 
+import os as _os
+
+# OpenMP threads that spin while waiting make numba's parallel loops (density
+# engine, logicle) hundreds of times slower on a busy machine; waiting passively
+# costs microseconds per parallel region.  This must be set before the first
+# parallel kernel loads the OpenMP runtime, hence here; a user's setting wins.
+_os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+
 __version__ = "0.1.0"
 
 #: The caution carried by the app, the README and every export.

@@ -7,14 +7,7 @@ sampling).  See :mod:`core.density.model` for the method and its design.
     log_density = model.score_samples(events)
 """
 
-import os as _os
-
-# OpenMP threads that spin while waiting make numba's parallel loops hundreds
-# of times slower on a busy machine (a desktop running other work); waiting
-# passively costs microseconds per parallel region.  Must be set before the
-# first parallel kernel loads the OpenMP runtime; a user's setting wins.
-_os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
-
-from .model import AdditiveTreeDensity  # noqa: E402
+# OMP_WAIT_POLICY=PASSIVE is set in core/__init__.py, before any parallel kernel runs.
+from .model import AdditiveTreeDensity
 
 __all__ = ["AdditiveTreeDensity"]
