@@ -440,3 +440,23 @@ def test_contrast_with_control_highlights_enriched(qtbot, window, tmp_path):
     assert f"{int(a.enriched.sum()):,} enriched" in window.rarity_bar.count.text()
     # the enriched events lie mostly in the population the control lacks (the first 50 events)
     assert a.enriched[:k].mean() > 0.5 > 10 * a.enriched[k:].mean()
+
+
+def test_scale_editor_keeps_small_factors(qtbot, window, tmp_path):
+    # a linear scale of 1/$PnR (about 3.8e-06 for a 262,144 range) must be shown
+    # and kept as is, not rounded to 0 by the editor
+    path = make_fcs(tmp_path / "t.fcs", n=500)
+    window.open_paths([path])
+    tube = window.current
+    panel = window.channels_panel
+    panel.set_spec("FSC-A", {"kind": "linear", "scale": 3.814697265625e-06, "offset": 0.0})
+    qtbot.waitUntil(lambda: tube.recipe.transforms["FSC-A"]["scale"] == 3.814697265625e-06, timeout=3000)
+    panel.table.selectRow(panel._names.index("FSC-A"))
+    box = panel._param_boxes["scale"]
+    assert box.value() == pytest.approx(3.814697265625e-06, rel=1e-12)
+    assert box.text().startswith("3.8147e-06")
+    box.stepBy(1)          # a step is a tenth of the value's magnitude
+    qtbot.waitUntil(lambda: tube.recipe.transforms["FSC-A"]["scale"] == pytest.approx(3.914697265625e-06, rel=1e-9),
+                    timeout=3000)
+    scale = tube.recipe.transforms["FSC-A"]["scale"]
+    np.testing.assert_allclose(tube.values[:, 0], tube.event_file.data[:, 0] * scale, rtol=1e-12)

@@ -32,6 +32,45 @@ PARAMETERS = {
                 ("M", "Decades (M)", "Number of decades the display covers.", 1.0, 10.0, 4.5),
                 ("A", "Extra negative (A)", "Additional decades of negative values shown.", 0.0, 10.0, 0.0)],
 }
+
+
+class NumberBox(QDoubleSpinBox):
+    """A spin box that shows and accepts numbers in any magnitude (6 significant
+    digits, scientific notation when needed), so a scale such as 3.8e-06 is
+    neither shown nor stored as 0."""
+
+    def __init__(self, parent=None) -> None:
+        super().__init__(parent)
+        self.setDecimals(15)
+
+    def textFromValue(self, value: float) -> str:  # noqa: N802 (Qt name)
+        return f"{value:.6g}"
+
+    def valueFromText(self, text: str) -> float:  # noqa: N802 (Qt name)
+        try:
+            return float(text.strip())
+        except ValueError:
+            return self.value()
+
+    def validate(self, text: str, pos: int):
+        from PySide6.QtGui import QValidator
+
+        t = text.strip()
+        try:
+            v = float(t)
+        except ValueError:
+            ok = t in ("", "-", "+", ".", "-.", "+.") or t[-1:] in ("e", "E", "-", "+")
+            return (QValidator.Intermediate if ok else QValidator.Invalid), text, pos
+        return (QValidator.Acceptable if self.minimum() <= v <= self.maximum()
+                else QValidator.Intermediate), text, pos
+
+    def stepBy(self, steps: int) -> None:  # noqa: N802 (Qt name)
+        # step by a tenth of the value's own magnitude, not by a fixed amount
+        v = self.value()
+        mag = 10.0 ** np.floor(np.log10(abs(v))) if v != 0 else 1.0
+        self.setValue(v + steps * mag / 10.0)
+
+
 KIND_LABELS = {"linear": "linear", "log": "log", "arcsinh": "arcsinh", "logicle": "logicle"}
 
 
@@ -173,8 +212,7 @@ class ChannelsPanel(QWidget):
             self.form.removeRow(1)
         self._param_boxes = {}
         for key, label, tip, lo, hi, default in PARAMETERS.get(spec.get("kind", "linear"), []):
-            box = QDoubleSpinBox()
-            box.setDecimals(4)
+            box = NumberBox()
             box.setRange(lo, hi)
             box.setValue(float(spec.get(key, default)))
             box.setToolTip(tip)
