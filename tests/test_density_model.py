@@ -51,19 +51,25 @@ def mix2_logpdf(x):
     return np.log(sum(w * stats.multivariate_normal(m, c).pdf(x) for w, m, c in MIX2))
 
 
+@pytest.fixture(scope="module", params=["logistic", "gmm"])
+def base(request):
+    """Every model test runs with both bases (logistic map / Gaussian-mixture Rosenblatt map)."""
+    return request.param
+
+
 @pytest.fixture(scope="module")
-def mix2_model():
+def mix2_model(base):
     rng = np.random.default_rng(11)
     X = mix2_rvs(20_000, rng)
-    model = AdditiveTreeDensity(random_state=0).fit(X)
+    model = AdditiveTreeDensity(base=base, random_state=0).fit(X)
     return model, X, mix2_rvs(20_000, rng)
 
 
 @pytest.fixture(scope="module")
-def mix1_model():
+def mix1_model(base):
     rng = np.random.default_rng(12)
     X = mix1_rvs(20_000, rng)
-    return AdditiveTreeDensity(random_state=0).fit(X), X, mix1_rvs(20_000, rng)
+    return AdditiveTreeDensity(base=base, random_state=0).fit(X), X, mix1_rvs(20_000, rng)
 
 
 # ------------------------------------------------------------ accuracy
@@ -74,23 +80,28 @@ def test_accuracy_1d_normal_mixture(mix1_model):
     assert abs(model.score(Xt) - mix1_logpdf(Xt).mean()) < 0.05
 
 
-def test_accuracy_lognormal():
+def test_accuracy_lognormal(base):
     rng = np.random.default_rng(13)
     X = LOGNORM.rvs(size=(20_000, 1), random_state=rng)
     Xt = LOGNORM.rvs(size=(20_000, 1), random_state=rng)
-    model = AdditiveTreeDensity(random_state=0).fit(X)
+    model = AdditiveTreeDensity(base=base, random_state=0).fit(X)
     # reference: scipy.stats.lognorm.logpdf
     assert abs(model.score(Xt) - LOGNORM.logpdf(Xt[:, 0]).mean()) < 0.05
 
 
-def test_accuracy_2d_correlated_mixture(mix2_model):
+def test_accuracy_2d_correlated_mixture(mix2_model, base):
     model, _, Xt = mix2_model
     # reference: scipy.stats.multivariate_normal.pdf of the two-component mixture
     truth = mix2_logpdf(Xt).mean()
     assert abs(model.score(Xt) - truth) < 0.05
     # the held-out curve is what early stopping followed: its best entry is the kept model
     assert model.heldout_loglik_ == pytest.approx(model.learning_curve_[-1])
-    assert model.n_trees_ >= 1
+    if base == "logistic":
+        assert model.n_trees_ >= 1
+    else:
+        # the mixture base already is the truth's family: trees are kept only when they
+        # raise the held-out log-likelihood above the base's own
+        assert model.heldout_loglik_ >= model.base_heldout_loglik_
 
 
 # ------------------------------------------------------------ normalisation
@@ -120,10 +131,10 @@ def test_integrates_to_one_1d(mix1_model):
     assert tail < 1e-4
 
 
-def test_integrates_to_one_2d():
+def test_integrates_to_one_2d(base):
     rng = np.random.default_rng(11)
     X = mix2_rvs(4000, rng)
-    model = AdditiveTreeDensity(random_state=0).fit(X)
+    model = AdditiveTreeDensity(base=base, random_state=0).fit(X)
     # reference: scipy.integrate.trapezoid applied per axis on the substituted grid.
     # The density is discontinuous across box edges, so the quadrature error
     # falls only like the grid step: 2500 x 2500 points keep it near 2e-4.
@@ -172,13 +183,13 @@ def test_sample_is_seeded(mix1_model):
     np.testing.assert_array_equal(model.sample(100, random_state=3), model.sample(100, random_state=3))
 
 
-def test_sampling_2d_cancels_dependence_correctly():
+def test_sampling_2d_cancels_dependence_correctly(base):
     # a strongly dependent density: y = x + small noise.  Samples must keep the
     # dependence (reference: scipy.stats.pearsonr of the sample vs the data)
     rng = np.random.default_rng(21)
     x = rng.normal(size=8000)
     X = np.column_stack([x, x + 0.3 * rng.normal(size=8000)])
-    model = AdditiveTreeDensity(random_state=1).fit(X)
+    model = AdditiveTreeDensity(base=base, random_state=1).fit(X)
     S = model.sample(8000, random_state=2)
     r_data = stats.pearsonr(X[:, 0], X[:, 1])[0]
     r_samp = stats.pearsonr(S[:, 0], S[:, 1])[0]
@@ -188,7 +199,7 @@ def test_sampling_2d_cancels_dependence_correctly():
 
 # ------------------------------------------------------------ files
 
-def test_save_load_identical(tmp_path, mix2_model):
+def test_save_load_identical(tmp_path, mix2_model, base):
     model, _, Xt = mix2_model
     path = tmp_path / "model.npz"
     model.save(path)
@@ -201,7 +212,8 @@ def test_save_load_identical(tmp_path, mix2_model):
     # reference: numpy.load with allow_pickle=False reads it (no pickled objects inside)
     with np.load(path, allow_pickle=False) as z:
         meta = json.loads(str(z["metadata"][()]))
-    assert meta["format_version"] == 1 and meta["n_features_in"] == 2
+    # version 1: logistic base; version 2 adds the Gaussian-mixture arrays
+    assert meta["format_version"] == (2 if base == "gmm" else 1) and meta["n_features_in"] == 2
 
 
 def test_damaged_files_raise_model_file_error(tmp_path, mix1_model):
@@ -253,7 +265,7 @@ def test_damaged_files_raise_model_file_error(tmp_path, mix1_model):
 
 # ------------------------------------------------------------ fitting behaviour
 
-def test_cancel_keeps_a_usable_model(mix2_model):
+def test_cancel_keeps_a_usable_model(mix2_model, base):
     _, X, Xt = mix2_model
     calls = []
 
@@ -261,7 +273,7 @@ def test_cancel_keeps_a_usable_model(mix2_model):
         calls.append((step, total, info))
         return step < 3
 
-    model = AdditiveTreeDensity(random_state=0).fit(X[:5000], progress=progress)
+    model = AdditiveTreeDensity(base=base, random_state=0).fit(X[:5000], progress=progress)
     assert model.n_trees_ == 3 and model.stopped_by_ == "cancelled"
     assert [c[0] for c in calls] == [0, 1, 2, 3]
     assert all(np.isfinite(c[2]) for c in calls)
@@ -270,17 +282,17 @@ def test_cancel_keeps_a_usable_model(mix2_model):
     assert model.sample(10, random_state=0).shape == (10, 2)
 
 
-def test_deterministic_given_seed(mix2_model):
+def test_deterministic_given_seed(mix2_model, base):
     _, X, Xt = mix2_model
-    a = AdditiveTreeDensity(random_state=3).fit(X[:6000])
-    b = AdditiveTreeDensity(random_state=3).fit(X[:6000])
+    a = AdditiveTreeDensity(base=base, random_state=3).fit(X[:6000])
+    b = AdditiveTreeDensity(base=base, random_state=3).fit(X[:6000])
     np.testing.assert_array_equal(a.score_samples(Xt[:3000]), b.score_samples(Xt[:3000]))
     np.testing.assert_array_equal(a.transform(Xt[:500]), b.transform(Xt[:500]))
 
 
-def test_subsample_above_max_fit_events(mix2_model):
+def test_subsample_above_max_fit_events(mix2_model, base):
     _, X, Xt = mix2_model
-    model = AdditiveTreeDensity(random_state=0, max_fit_events=3000).fit(X)
+    model = AdditiveTreeDensity(base=base, random_state=0, max_fit_events=3000).fit(X)
     assert model.n_events_fitted_ == 3000
     np.testing.assert_array_equal(model.bounds_.shape, (2, 2))
     # reference: scipy.stats mixture density; a smaller fit is still close
@@ -295,24 +307,24 @@ def test_bounds_are_training_min_max(mix1_model):
 
 # ------------------------------------------------------------ bad input
 
-def test_nan_and_inf_are_reported_with_count_and_columns():
+def test_nan_and_inf_are_reported_with_count_and_columns(base):
     rng = np.random.default_rng(0)
     X = rng.normal(size=(200, 3))
     X[5, 1] = np.nan
     X[7, 1] = np.inf
     X[9, 2] = np.nan
     with pytest.raises(EventDataError, match=r"3 event\(s\).*\[1, 2\]"):
-        AdditiveTreeDensity().fit(X)
-    model = AdditiveTreeDensity(random_state=0).fit(rng.normal(size=(200, 3)))
+        AdditiveTreeDensity(base=base).fit(X)
+    model = AdditiveTreeDensity(base=base, random_state=0).fit(rng.normal(size=(200, 3)))
     with pytest.raises(EventDataError, match=r"3 event\(s\)"):
         model.score_samples(X)
 
 
-def test_too_few_events_and_wrong_columns():
+def test_too_few_events_and_wrong_columns(base):
     rng = np.random.default_rng(0)
     with pytest.raises(EventDataError, match="too few"):
-        AdditiveTreeDensity().fit(rng.normal(size=(49, 2)))
-    model = AdditiveTreeDensity(random_state=0).fit(rng.normal(size=(300, 2)))
+        AdditiveTreeDensity(base=base).fit(rng.normal(size=(49, 2)))
+    model = AdditiveTreeDensity(base=base, random_state=0).fit(rng.normal(size=(300, 2)))
     with pytest.raises(EventDataError, match="2 channels"):
         model.score_samples(rng.normal(size=(10, 3)))
 
@@ -326,10 +338,10 @@ def test_outside_range_points_have_finite_density(mix2_model):
     assert s[0] < model.score_samples(np.array([[3.0, -1.0]]))[0] - 100
 
 
-def test_constant_channel_fallback():
+def test_constant_channel_fallback(base):
     rng = np.random.default_rng(4)
     X = np.column_stack([rng.normal(size=2000), np.full(2000, 7.0), rng.normal(size=2000)])
-    model = AdditiveTreeDensity(random_state=0).fit(X)
+    model = AdditiveTreeDensity(base=base, random_state=0).fit(X)
     s = model.score_samples(X[:100])
     assert np.isfinite(s).all()
     S = model.sample(1000, random_state=1)
@@ -362,11 +374,11 @@ def test_float32_and_chunked_scoring_agree(mix2_model, monkeypatch):
     np.testing.assert_allclose(s32, whole, atol=1e-3)
 
 
-def test_rotation_layers_stay_exact(tmp_path):
+def test_rotation_layers_stay_exact(tmp_path, base):
     # force three layers (two rotations in Gaussianised coordinates)
     rng = np.random.default_rng(31)
     X = mix2_rvs(6000, rng)
-    model = AdditiveTreeDensity(random_state=0, n_layers=3, layer_trees=4, layer_tol=-1e9).fit(X)
+    model = AdditiveTreeDensity(base=base, random_state=0, n_layers=3, layer_trees=4, layer_tol=-1e9).fit(X)
     assert sum(Q is not None for Q, _, _ in model._layers) == 2
     Xt = mix2_rvs(3000, rng)
     np.testing.assert_allclose(model.inverse_transform(model.transform(Xt)), Xt, rtol=0, atol=1e-9)

@@ -34,6 +34,16 @@ maps (the "zero" model at the end of the chain is uniform on the cube):
 
 No integration anywhere; sampling runs the chain backwards from a uniform draw.
 
+**Base** (``base``): ``"logistic"`` is step 1 above.  ``"gmm"`` replaces it
+with a fitted parametric base measure: a full-covariance Gaussian mixture
+(plus a broad logistic background component, so tails stay finite) fitted
+by EM on the training share, pushed onto the cube by its Rosenblatt map
+(:mod:`core.density.gaussian_base`), whose log-Jacobian is exactly the
+mixture's log density.  The trees then only correct what the mixture
+misses; held-out early stopping keeps the model from doing worse on the
+held-out share than the mixture itself.  Constant channels keep the
+logistic fallback below in both cases.
+
 Units: log densities are natural logs per unit volume of the input X
 (i.e. in the units of the transformed channels the caller passes).
 
@@ -53,6 +63,7 @@ import numpy as np
 from ..errors import EventDataError
 from ..progress import keep_going
 from . import kernels
+from .gaussian_base import GaussianMixtureBase
 from .tree import Forest, fit_tree
 
 #: Events per chunk when scoring/transforming (bounded memory).
@@ -159,6 +170,10 @@ class AdditiveTreeDensity:
     layer_tol : float
         A layer that improves the held-out mean log-likelihood by less than
         this (nats) is dropped and fitting ends.
+    base : "logistic" or "gmm"
+        The first map into the cube: per-channel logistic of robust
+        location/scale, or the Rosenblatt map of a Gaussian mixture fitted
+        by EM (component count by BIC) on the training share.
     random_state : int or None
         Seed for subsampling, the held-out split and any random choice;
         equal seeds give bit-identical models.
@@ -194,7 +209,7 @@ class AdditiveTreeDensity:
                  n_layers: int = 3, layer_trees: int = 150, layer_tol: float = 0.01,
                  alpha: float = 1000.0, rotation: str = "pca", jitter: bool = False,
                  min_gain: float = 0.0, lookahead: int = 3, lookahead_bins: int = 16,
-                 marginal_alpha: float = -1.0, tol: float = 0.0,
+                 marginal_alpha: float = -1.0, tol: float = 0.0, base: str = "logistic",
                  random_state: int | None = None):
         self.n_trees = n_trees
         self.learning_rate = learning_rate
@@ -218,12 +233,13 @@ class AdditiveTreeDensity:
         self.marginal_alpha = marginal_alpha
         self.tol = tol
         self.layer_tol = layer_tol
+        self.base = base
         self.random_state = random_state
 
     # ------------------------------------------------------------ params
     _PARAMS = ("n_trees", "learning_rate", "max_depth", "n_bins", "min_leaf", "validation_fraction",
                "patience", "max_fit_events", "marginal_trees", "marginal_learning_rate",
-               "marginal_depth", "n_layers", "layer_trees", "layer_tol", "alpha", "rotation", "jitter", "min_gain", "lookahead", "lookahead_bins", "marginal_alpha", "tol", "random_state")
+               "marginal_depth", "n_layers", "layer_trees", "layer_tol", "alpha", "rotation", "jitter", "min_gain", "lookahead", "lookahead_bins", "marginal_alpha", "tol", "base", "random_state")
 
     def get_params(self, deep: bool = True) -> dict[str, Any]:
         return {k: getattr(self, k) for k in self._PARAMS}
@@ -253,6 +269,8 @@ class AdditiveTreeDensity:
             raise ValueError("min_leaf must be at least 1")
         if not 0.0 < float(self.validation_fraction) < 0.9:
             raise ValueError("validation_fraction must be in (0, 0.9)")
+        if self.base not in ("logistic", "gmm"):
+            raise ValueError("base must be 'logistic' or 'gmm'")
         if self.rotation not in ("pca", "random"):
             raise ValueError("rotation must be 'pca' or 'random'")
         if not np.isfinite(float(self.alpha)):
@@ -299,12 +317,15 @@ class AdditiveTreeDensity:
         perm = rng.permutation(n)
         n_val = max(1, int(round(float(self.validation_fraction) * n)))
         va, tr = np.sort(perm[:n_val]), np.sort(perm[n_val:])
-        U_tr = np.empty((tr.size, d))
-        U_va = np.empty((va.size, d))
-        ld_tr = np.zeros(tr.size)
-        ld_va = np.zeros(va.size)
-        kernels.base_forward(X[tr], U_tr, ld_tr, self._loc, self._scale, np.log(self._scale))
-        kernels.base_forward(X[va], U_va, ld_va, self._loc, self._scale, np.log(self._scale))
+        self._gmm = None
+        if self.base == "gmm" and (~frozen).any():
+            free = ~frozen
+            self._gmm = GaussianMixtureBase.fit(
+                X[tr][:, free], self._loc[free], self._scale[free],
+                random_state=int(rng.integers(2 ** 31)))
+        U_tr, ld_tr = self._base_forward(X[tr])
+        U_va, ld_va = self._base_forward(X[va])
+        self.base_heldout_loglik_ = float(ld_va.mean())
 
         # 2. layers: [rotation] -> marginals -> block of dependence trees
         self._layers = []
@@ -464,11 +485,34 @@ class AdditiveTreeDensity:
         if not hasattr(self, "_layers"):
             raise EventDataError("the density model is not fitted yet; call fit(events) first")
 
-    def _forward_chunk(self, C: np.ndarray):
+    def _base_forward(self, C: np.ndarray):
+        """The base map into the cube: (U (m, d), log-Jacobian (m,))."""
         m, d = C.shape
         U = np.empty((m, d))
         logd = np.zeros(m)
-        kernels.base_forward(C, U, logd, self._loc, self._scale, np.log(self._scale))
+        gmm = getattr(self, "_gmm", None)
+        if gmm is None:
+            kernels.base_forward(C, U, logd, self._loc, self._scale, np.log(self._scale))
+            return U, logd
+        fr = self._frozen
+        if fr.any():
+            Uf = np.empty((m, int(fr.sum())))
+            kernels.base_forward(np.ascontiguousarray(C[:, fr]), Uf, logd, self._loc[fr],
+                                 self._scale[fr], np.log(self._scale[fr]))
+            U[:, fr] = Uf
+        Ug, lg = gmm.forward(C[:, ~fr])
+        U[:, ~fr] = Ug
+        logd += lg
+        return U, logd
+
+    def _base_inverse(self, C: np.ndarray, out: np.ndarray) -> None:
+        gmm = getattr(self, "_gmm", None)
+        kernels.base_inverse(C, out, self._loc, self._scale)
+        if gmm is not None:
+            out[:, ~self._frozen] = gmm.inverse(C[:, ~self._frozen])
+
+    def _forward_chunk(self, C: np.ndarray):
+        U, logd = self._base_forward(C)
         for Q, pwl, forest in self._layers:
             if Q is not None:
                 kernels.rotate(U, Q)
@@ -517,7 +561,7 @@ class AdditiveTreeDensity:
                 kernels.pwl_inverse(C, *pwl[:4])
                 if Q is not None:
                     kernels.rotate(C, np.ascontiguousarray(Q.T))
-            kernels.base_inverse(C, out[a:b], self._loc, self._scale)
+            self._base_inverse(C, out[a:b])
         return out
 
     def sample(self, n: int, random_state=None) -> np.ndarray:

@@ -21,10 +21,16 @@ from .. import RESEARCH_USE_NOTE, __version__
 from ..atomic import atomic_write
 from ..errors import ModelFileError
 from . import kernels
+from .gaussian_base import GaussianMixtureBase
 from .tree import Forest
 
 FORMAT_NAME = "boscage-additive-tree-density"
-FORMAT_VERSION = 1
+#: Newest version written/read.  Version 1: logistic base.  Version 2 adds the
+#: Gaussian-mixture base (arrays ``gmm_weights``, ``gmm_means``,
+#: ``gmm_covariances``, ``gmm_loc``, ``gmm_scale``); models with the logistic
+#: base are still written as version 1 so older readers keep reading them.
+FORMAT_VERSION = 2
+_GMM_ARRAYS = ("gmm_weights", "gmm_means", "gmm_covariances", "gmm_loc", "gmm_scale")
 
 _ARRAYS = ("loc", "scale", "frozen", "bounds", "rot", "has_rot", "m_off", "m_xs", "m_ys", "m_sl",
            "n_marginal_trees", "layer_trees", "roots", "dim", "cut", "lo", "hi", "theta", "left",
@@ -53,9 +59,10 @@ def save_model(model, path) -> None:
         sl.append(pwl[3])
         forest.append(f)
         layer_trees.append(forest.n_trees)
+    gmm = getattr(model, "_gmm", None)
     meta = {
         "format": FORMAT_NAME,
-        "format_version": FORMAT_VERSION,
+        "format_version": 2 if gmm is not None else 1,
         "software_version": __version__,
         "note": RESEARCH_USE_NOTE,
         "params": model.get_params(),
@@ -73,6 +80,9 @@ def save_model(model, path) -> None:
                   n_marginal_trees=model.n_marginal_trees_, layer_trees=np.array(layer_trees, np.int64),
                   roots=f.roots, dim=f.dim, cut=f.cut, lo=f.lo, hi=f.hi, theta=f.theta, left=f.left,
                   right=f.right, learning_curve=model.learning_curve_)
+    if gmm is not None:
+        arrays.update(gmm_weights=gmm.weights, gmm_means=gmm.means, gmm_covariances=gmm.covariances,
+                      gmm_loc=gmm.loc, gmm_scale=gmm.scale)
     with atomic_write(path, "wb", overwrite=True) as handle:
         np.savez(handle, metadata=np.array(json.dumps(meta)), **arrays)
 
@@ -101,6 +111,11 @@ def load_model(cls, path):
             if missing:
                 raise _fail(path, f"damaged density model file: missing {', '.join(missing)}")
             a = {k: z[k] for k in _ARRAYS}
+            has_gmm = [k in files for k in _GMM_ARRAYS]
+            if any(has_gmm) and not all(has_gmm):
+                raise _fail(path, "damaged density model file: incomplete Gaussian mixture base")
+            if all(has_gmm):
+                a.update({k: z[k] for k in _GMM_ARRAYS})
     except ModelFileError:
         raise
     except (OSError, ValueError, zipfile.BadZipFile, EOFError, KeyError, json.JSONDecodeError,
@@ -191,6 +206,21 @@ def _build(cls, meta, a):
     if n_trees != roots.size:
         raise ValueError("tree count does not match the metadata")
     model._loc, model._scale, model._frozen = loc, scale, frozen
+    model._gmm = None
+    if params.get("base", "logistic") == "gmm" and not frozen.all():
+        if "gmm_weights" not in a:
+            raise ValueError("the Gaussian mixture base is missing")
+        k_free = int((~frozen).sum())
+        means = _arr(a, "gmm_means", np.float64)
+        if means.ndim != 2 or means.shape[1] != k_free:
+            raise ValueError("Gaussian mixture means do not match the free channels")
+        K = means.shape[0]
+        model._gmm = GaussianMixtureBase(
+            _arr(a, "gmm_weights", np.float64, (K + 1,)), means,
+            _arr(a, "gmm_covariances", np.float64, (K, k_free, k_free)),
+            _arr(a, "gmm_loc", np.float64, (k_free,)), _arr(a, "gmm_scale", np.float64, (k_free,)))
+    elif "gmm_weights" in a:
+        raise ValueError("a Gaussian mixture base is stored but the model does not use one")
     model.bounds_ = bounds
     layer_trees = _arr(a, "layer_trees", np.int64, (L + 1,))
     if layer_trees[0] != 0 or layer_trees[-1] != roots.size or (np.diff(layer_trees) < 0).any():
