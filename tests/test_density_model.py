@@ -209,6 +209,7 @@ def test_save_load_identical(tmp_path, mix2_model, base):
     assert loaded.n_trees_ == model.n_trees_
     np.testing.assert_array_equal(loaded.bounds_, model.bounds_)
     np.testing.assert_array_equal(loaded.learning_curve_, model.learning_curve_)
+    assert loaded.base_heldout_loglik_ == model.base_heldout_loglik_
     # reference: numpy.load with allow_pickle=False reads it (no pickled objects inside)
     with np.load(path, allow_pickle=False) as z:
         meta = json.loads(str(z["metadata"][()]))

@@ -50,8 +50,8 @@ from scipy import special
 U_CLIP = 1e-15
 #: Smallest weight of the broad background component.
 MIN_BACKGROUND = 1e-4
-#: Component counts tried (BIC picks one; the search stops after two rises).
-DEFAULT_COMPONENTS = (1, 2, 4, 8, 12, 16, 24, 32)
+#: Component counts tried in turn (held-out log-likelihood picks one).
+DEFAULT_COMPONENTS = (1, 2, 4, 8, 16, 32)
 _LOG_2PI_HALF = 0.5 * math.log(2.0 * math.pi)
 _Z_MAX = 1e100
 _CHUNK = 8192
@@ -167,7 +167,7 @@ class GaussianMixtureBase:
             cdf[:, 1:] = special.ndtr(zj)
             U[:, j] = np.einsum("ij,ij->i", p, cdf) / p.sum(axis=1)
         np.clip(U, U_CLIP, 1.0 - U_CLIP, out=U)
-        return U, special.logsumexp(lw, axis=1)
+        return U, _logsumexp_rows(lw)
 
     # ------------------------------------------------------------ inverse
     def inverse(self, U) -> np.ndarray:
@@ -239,15 +239,20 @@ class GaussianMixtureBase:
     # ------------------------------------------------------------ fitting
     @classmethod
     def fit(cls, X, loc, scale, components=DEFAULT_COMPONENTS, random_state=None,
-            max_em_events: int = 20_000, max_iter: int = 100, tol: float = 1e-4,
-            n_init: int = 1) -> "GaussianMixtureBase":
-        """Fit by EM (float64); the number of Gaussian components is chosen by BIC
-        among ``components`` (the search stops once BIC has risen twice in a row).
+            max_em_events: int = 12_500, max_iter: int = 100, tol: float = 1e-3,
+            n_init: int = 1, min_gain: float = 2e-3) -> "GaussianMixtureBase":
+        """Fit by EM (float64) and choose the number of Gaussian components by
+        held-out log-likelihood.
 
         X : (n, d) events in the units of the channels; loc, scale : (d,) the
-        background logistic's location and scale.  Above ``max_em_events`` a
-        seeded random subsample is used for EM.  ``n_init`` seeded k-means++
-        restarts per component count (best training log-likelihood kept).
+        background logistic's location and scale.  A seeded random subsample of
+        at most ``max_em_events`` events is split 80/20: EM runs on the 80 %
+        for each count in ``components`` (increasing), the 20 % scores it; the
+        search stops at the first count that does not beat the best so far by
+        more than ``min_gain`` nats per event, and the best is kept.  EM stops
+        when the training mean log-likelihood rises by less than ``tol`` nats
+        per event (or after ``max_iter`` steps).  ``n_init`` seeded
+        k-means++ restarts per count (best training log-likelihood kept).
         Covariances get ``1e-6 x`` the channel variance added on the diagonal
         (floor).
         """
@@ -255,40 +260,49 @@ class GaussianMixtureBase:
         X = np.asarray(X, dtype=np.float64)
         if X.shape[0] > max_em_events:
             X = X[np.sort(rng.choice(X.shape[0], max_em_events, replace=False))]
-        n, d = X.shape
         loc = np.asarray(loc, np.float64)
         scale = np.asarray(scale, np.float64)
+        perm = rng.permutation(X.shape[0])
+        n_va = max(1, X.shape[0] // 5)
+        Xva, X = X[np.sort(perm[:n_va])], X[np.sort(perm[n_va:])]
+        n, d = X.shape
         var = X.var(axis=0)
         reg = 1e-6 * np.where(var > 0, var, scale ** 2)
         bg = np.sum(_logistic_logpdf((X - loc) / scale) - np.log(scale), axis=1)
-        best, best_bic, rises, last = None, np.inf, 0, np.inf
+        best, best_ll = None, -np.inf
         for k in components:
-            if k * (d + 1) > n:
-                break
+            if best is not None and k * (d + 1) > n:
+                break  # too few events for this many components (k = 1 is always fitted)
             fit_k = None
             for _ in range(max(1, int(n_init))):
                 cand = _em(X, bg, k, reg, rng, max_iter, tol)
                 if fit_k is None or cand[0] > fit_k[0]:
                     fit_k = cand
-            ll, w, mu, cov = fit_k
-            n_par = k * (d + d * (d + 1) / 2 + 1)
-            bic = -2.0 * ll * n + n_par * math.log(n)
-            if bic < best_bic:
-                best, best_bic = (w, mu, cov), bic
-            rises = rises + 1 if bic > last else 0
-            last = bic
-            if rises >= 2:
+            _, w, mu, cov = fit_k
+            model = cls(w, mu, cov, loc, scale)
+            ll = float(model.logpdf(Xva).mean())
+            if best is not None and ll <= best_ll + min_gain:
                 break
-        w, mu, cov = best
-        return cls(w, mu, cov, loc, scale)
+            best, best_ll = model, ll
+        return best
 
 
 def _gauss_logpdf(X, mu, cov):
-    """(n,) log N(X; mu, cov) via Cholesky."""
+    """(n,) log N(X; mu, cov) via the Cholesky factor's inverse (one matrix product)."""
     L = np.linalg.cholesky(cov)
-    from scipy.linalg import solve_triangular
-    z = solve_triangular(L, (X - mu).T, lower=True)
-    return -0.5 * np.sum(z * z, axis=0) - np.log(np.diag(L)).sum() - X.shape[1] * _LOG_2PI_HALF
+    Linv = np.linalg.inv(L)
+    z = (X - mu) @ Linv.T
+    return -0.5 * np.einsum("ij,ij->i", z, z) - np.log(np.diag(L)).sum() - X.shape[1] * _LOG_2PI_HALF
+
+
+def _logsumexp_rows(a):
+    m = a.max(axis=1)
+    return m + np.log(np.exp(a - m[:, None]).sum(axis=1))
+
+
+def _nearest(X, C):
+    """Index of the nearest centre for each event (squared Euclidean distance)."""
+    return np.argmin((C * C).sum(axis=1)[None, :] - 2.0 * X @ C.T, axis=1)
 
 
 def _kmeanspp(X, k, rng):
@@ -309,14 +323,13 @@ def _em(X, bg, k, reg, rng, max_iter, tol):
     n, d = X.shape
     C = _kmeanspp(X, k, rng)
     for _ in range(5):  # a few Lloyd steps
-        lab = np.argmin(((X[:, None, :] - C[None]) ** 2).sum(-1), axis=1)
+        lab = _nearest(X, C)
         for c in range(k):
             if (lab == c).any():
                 C[c] = X[lab == c].mean(axis=0)
-    lab = np.argmin(((X[:, None, :] - C[None]) ** 2).sum(-1), axis=1)
+    lab = _nearest(X, C)
     R = np.zeros((n, k + 1))
-    R[np.arange(n), lab + 1] = 1.0
-    R = 0.99 * R
+    R[np.arange(n), lab + 1] = 0.99
     R[:, 0] = 0.01
     prev = -np.inf
     ll = -np.inf
@@ -339,7 +352,7 @@ def _em(X, bg, k, reg, rng, max_iter, tol):
         lp[:, 0] = np.log(w[0]) + bg
         for c in range(k):
             lp[:, c + 1] = np.log(w[c + 1]) + _gauss_logpdf(X, mu[c], cov[c])
-        tot = special.logsumexp(lp, axis=1)
+        tot = _logsumexp_rows(lp)
         ll = float(tot.mean())
         R = np.exp(lp - tot[:, None])
         if ll - prev < tol:

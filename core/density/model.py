@@ -34,7 +34,7 @@ maps (the "zero" model at the end of the chain is uniform on the cube):
 
 No integration anywhere; sampling runs the chain backwards from a uniform draw.
 
-**Base** (``base``): ``"logistic"`` is step 1 above.  ``"gmm"`` replaces it
+**Base** (``base``, default ``"gmm"``): ``"logistic"`` is step 1 above.  ``"gmm"`` replaces it
 with a fitted parametric base measure: a full-covariance Gaussian mixture
 (plus a broad logistic background component, so tails stay finite) fitted
 by EM on the training share, pushed onto the cube by its Rosenblatt map
@@ -172,8 +172,8 @@ class AdditiveTreeDensity:
         this (nats) is dropped and fitting ends.
     base : "logistic" or "gmm"
         The first map into the cube: per-channel logistic of robust
-        location/scale, or the Rosenblatt map of a Gaussian mixture fitted
-        by EM (component count by BIC) on the training share.
+        location/scale, or (default) the Rosenblatt map of a Gaussian mixture fitted
+        by EM (component count by held-out log-likelihood) on the training share.
     random_state : int or None
         Seed for subsampling, the held-out split and any random choice;
         equal seeds give bit-identical models.
@@ -196,6 +196,9 @@ class AdditiveTreeDensity:
         is the kept model's value.
     heldout_loglik_ : float
         The kept model's held-out mean log-likelihood.
+    base_heldout_loglik_ : float
+        Held-out mean log-likelihood of the base map alone (logistic or
+        Gaussian mixture), before marginals and trees.
     n_events_fitted_ : int
         Events used (after the ``max_fit_events`` subsample).
     stopped_by_ : str
@@ -209,7 +212,7 @@ class AdditiveTreeDensity:
                  n_layers: int = 3, layer_trees: int = 150, layer_tol: float = 0.01,
                  alpha: float = 1000.0, rotation: str = "pca", jitter: bool = False,
                  min_gain: float = 0.0, lookahead: int = 3, lookahead_bins: int = 16,
-                 marginal_alpha: float = -1.0, tol: float = 0.0, base: str = "logistic",
+                 marginal_alpha: float = -1.0, tol: float = 0.0, base: str = "gmm",
                  random_state: int | None = None):
         self.n_trees = n_trees
         self.learning_rate = learning_rate

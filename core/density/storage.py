@@ -70,6 +70,8 @@ def save_model(model, path) -> None:
         "n_layers": L,
         "n_trees": int(model.n_trees_),
         "heldout_loglik": float(model.heldout_loglik_),
+        "base_heldout_loglik": (float(model.base_heldout_loglik_)
+                                if hasattr(model, "base_heldout_loglik_") else None),
         "n_events_fitted": int(getattr(model, "n_events_fitted_", 0)),
         "stopped_by": getattr(model, "stopped_by_", ""),
     }
@@ -144,6 +146,10 @@ def _build(cls, meta, a):
         raise ValueError("no channels")
     params = dict(meta["params"])
     model = cls(**{k: v for k, v in params.items() if k in cls._PARAMS})
+    # files written before the base became a parameter used the logistic base
+    model.base = params.get("base", "logistic")
+    if model.base not in ("logistic", "gmm"):
+        raise ValueError(f"unknown base measure {model.base!r}")
     loc = _arr(a, "loc", np.float64, (d,))
     scale = _arr(a, "scale", np.float64, (d,))
     frozen = _arr(a, "frozen", np.bool_, (d,))
@@ -207,7 +213,7 @@ def _build(cls, meta, a):
         raise ValueError("tree count does not match the metadata")
     model._loc, model._scale, model._frozen = loc, scale, frozen
     model._gmm = None
-    if params.get("base", "logistic") == "gmm" and not frozen.all():
+    if model.base == "gmm" and not frozen.all():
         if "gmm_weights" not in a:
             raise ValueError("the Gaussian mixture base is missing")
         k_free = int((~frozen).sum())
@@ -237,6 +243,8 @@ def _build(cls, meta, a):
     model.n_trees_ = n_trees
     model.learning_curve_ = curve
     model.heldout_loglik_ = float(meta["heldout_loglik"])
+    if meta.get("base_heldout_loglik") is not None:
+        model.base_heldout_loglik_ = float(meta["base_heldout_loglik"])
     model.n_events_fitted_ = int(meta.get("n_events_fitted", 0))
     model.stopped_by_ = str(meta.get("stopped_by", ""))
     return model
