@@ -47,6 +47,8 @@ import math
 import numpy as np
 from scipy import special
 
+from . import kernels
+
 U_CLIP = 1e-15
 #: Smallest weight of the broad background component.
 MIN_BACKGROUND = 1e-4
@@ -103,6 +105,7 @@ class GaussianMixtureBase:
             self.chol = np.linalg.cholesky(self.covariances) if K else np.zeros((0, d, d))
         except np.linalg.LinAlgError as exc:
             raise ValueError("a mixture covariance is not positive definite") from exc
+        self.chol = np.ascontiguousarray(self.chol)
         self.log_weights = np.log(self.weights)
         diag = np.diagonal(self.chol, axis1=1, axis2=2)  # (K, d)
         self._sd = np.ascontiguousarray(diag.T)          # (d, K): conditional sd of x_j
@@ -123,14 +126,14 @@ class GaussianMixtureBase:
         return self.forward(X)[1]
 
     def forward(self, X) -> tuple[np.ndarray, np.ndarray]:
-        """Rosenblatt map: U (n, d) in [U_CLIP, 1 - U_CLIP] and log|det dU/dX| (n,)."""
-        X = np.asarray(X, dtype=np.float64)
+        """Rosenblatt map: U (n, d) in [U_CLIP, 1 - U_CLIP] and log|det dU/dX| (n,)
+        (compiled kernel, parallel over events for large n)."""
+        X = np.ascontiguousarray(X, dtype=np.float64)
         n, d = X.shape
         U = np.empty((n, d))
-        logd = np.empty(n)
-        for a in range(0, n, _CHUNK):
-            b = min(n, a + _CHUNK)
-            U[a:b], logd[a:b] = self._forward_rows(X[a:b])
+        logd = np.zeros(n)
+        kernels.gmm_forward(X, U, logd, self.log_weights, self.means, self.chol, self._sd,
+                            self._log_sd, self.loc, self.scale, self._log_scale, U_CLIP, _Z_MAX)
         return U, logd
 
     def _cond_mean(self, Z, j):
@@ -143,31 +146,12 @@ class GaussianMixtureBase:
     def _advance(self, x, mean, Z, lw, j):
         """Coordinate j is known (x (m,), conditional means (m, K)): store the
         components' z in Z[:, :, j] and add log f(x_j | x_<j) per component to the
-        running log weights lw (m, K + 1).  Returns (background z, Gaussian z)."""
+        running log weights lw (m, K + 1)."""
         zj = np.clip((x[:, None] - mean) / self._sd[j], -_Z_MAX, _Z_MAX)
         Z[:, :, j] = zj
         zb = np.clip((x - self.loc[j]) / self.scale[j], -_Z_MAX, _Z_MAX)
         lw[:, 0] += _logistic_logpdf(zb) - self._log_scale[j]
         lw[:, 1:] += -0.5 * zj * zj - _LOG_2PI_HALF - self._log_sd[j]
-        return zb, zj
-
-    def _forward_rows(self, X):
-        m, d = X.shape
-        K = self.n_components
-        Z = np.empty((m, K, d))
-        # running log weights: column 0 background, 1.. Gaussians
-        lw = np.empty((m, K + 1))
-        lw[:] = self.log_weights
-        U = np.empty((m, d))
-        for j in range(d):
-            p = np.exp(lw - lw.max(axis=1, keepdims=True))
-            zb, zj = self._advance(X[:, j], self._cond_mean(Z, j), Z, lw, j)
-            cdf = np.empty((m, K + 1))
-            cdf[:, 0] = special.expit(zb)
-            cdf[:, 1:] = special.ndtr(zj)
-            U[:, j] = np.einsum("ij,ij->i", p, cdf) / p.sum(axis=1)
-        np.clip(U, U_CLIP, 1.0 - U_CLIP, out=U)
-        return U, _logsumexp_rows(lw)
 
     # ------------------------------------------------------------ inverse
     def inverse(self, U) -> np.ndarray:

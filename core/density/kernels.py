@@ -205,6 +205,7 @@ def _pwl_inverse_rows(start, stop, U, offsets, xs, ys, slopes):
 
 _SQRT1_2 = 0.7071067811865476
 _INV_SQRT_2PI = 0.3989422804014327
+_LOG_SQRT_2PI = 0.9189385332046727  # log(sqrt(2 pi))
 #: probit input is kept in [U_EPS, 1 - U_EPS] (|z| <= 8.2); beyond that the
 #: normal CDF itself rounds to 0 or 1 in float64.
 U_EPS = 1e-16
@@ -686,3 +687,79 @@ def lookahead_split(H, lr, alpha, min_leaf, allowed):
                 best_score = score
                 best_j, best_b, best_nl = j1, b1, cum
     return best_j, best_b, best_nl, best_score
+
+
+# ------------------------------------------------------------ Gaussian-mixture base
+
+@njit(cache=True)
+def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale,
+                      u_clip, z_max):
+    """Rosenblatt map of background + K Gaussians (see core.density.gaussian_base).
+
+    X: (n, d) events; U: (n, d) output in [u_clip, 1 - u_clip]; logd: (n,) the
+    mixture's log density is added.  logw: (K + 1,) log weights (background
+    first); means (K, d); chol (K, d, d) lower Cholesky factors; sd, log_sd:
+    (d, K) their diagonals; loc, scale, log_scale: (d,) background logistic.
+    """
+    K, d = means.shape
+    lw = np.empty(K + 1)
+    z = np.empty((K, d))
+    cdf = np.empty(K + 1)
+    for i in range(start, stop):
+        for k in range(K + 1):
+            lw[k] = logw[k]
+        for j in range(d):
+            x = X[i, j]
+            zb = min(max((x - loc[j]) / scale[j], -z_max), z_max)
+            if zb >= 0.0:
+                cdf[0] = 1.0 / (1.0 + math.exp(-zb))
+            else:
+                e = math.exp(zb)
+                cdf[0] = e / (1.0 + e)
+            for k in range(K):
+                m = means[k, j]
+                for q in range(j):
+                    m += chol[k, j, q] * z[k, q]
+                zk = min(max((x - m) / sd[j, k], -z_max), z_max)
+                z[k, j] = zk
+                cdf[k + 1] = ndtr(zk)
+            mx = lw[0]
+            for k in range(1, K + 1):
+                mx = max(mx, lw[k])
+            s = 0.0
+            acc = 0.0
+            for k in range(K + 1):
+                p = math.exp(lw[k] - mx)
+                s += p
+                acc += p * cdf[k]
+            u = acc / s
+            U[i, j] = min(max(u, u_clip), 1.0 - u_clip)
+            lw[0] += _log_sigmoid_pair(zb) - log_scale[j]
+            for k in range(K):
+                lw[k + 1] += -0.5 * z[k, j] * z[k, j] - _LOG_SQRT_2PI - log_sd[j, k]
+        mx = lw[0]
+        for k in range(1, K + 1):
+            mx = max(mx, lw[k])
+        s = 0.0
+        for k in range(K + 1):
+            s += math.exp(lw[k] - mx)
+        logd[i] += mx + math.log(s)
+
+
+@njit(cache=True, parallel=True)
+def _gmm_forward_par(X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max):
+    n = X.shape[0]
+    nb = (n + BLOCK - 1) // BLOCK
+    for b in prange(nb):
+        _gmm_forward_rows(b * BLOCK, min(n, (b + 1) * BLOCK), X, U, logd, logw, means, chol, sd, log_sd,
+                          loc, scale, log_scale, u_clip, z_max)
+
+
+def gmm_forward(X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max):
+    """Rosenblatt map of the Gaussian-mixture base; see :func:`_gmm_forward_rows`."""
+    args = (X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, float(u_clip), float(z_max))
+    K, d = means.shape
+    if _parallel(X.shape[0], 4 * (K + 1) * d * (d + 2)):
+        _gmm_forward_par(*args)
+    else:
+        _gmm_forward_rows(0, X.shape[0], *args)
