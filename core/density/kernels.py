@@ -704,34 +704,39 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, lo
     K, d = means.shape
     lw = np.empty(K + 1)
     z = np.empty((K, d))
-    cdf = np.empty(K + 1)
     for i in range(start, stop):
         for k in range(K + 1):
             lw[k] = logw[k]
         for j in range(d):
             x = X[i, j]
             zb = min(max((x - loc[j]) / scale[j], -z_max), z_max)
-            if zb >= 0.0:
-                cdf[0] = 1.0 / (1.0 + math.exp(-zb))
-            else:
-                e = math.exp(zb)
-                cdf[0] = e / (1.0 + e)
             for k in range(K):
                 m = means[k, j]
                 for q in range(j):
                     m += chol[k, j, q] * z[k, q]
-                zk = min(max((x - m) / sd[j, k], -z_max), z_max)
-                z[k, j] = zk
-                cdf[k + 1] = ndtr(zk)
+                z[k, j] = min(max((x - m) / sd[j, k], -z_max), z_max)
             mx = lw[0]
             for k in range(1, K + 1):
                 mx = max(mx, lw[k])
+            # posterior-weighted conditional CDFs; a component whose weight is below
+            # exp(-40) ~ 4e-18 of the largest changes u by less than float64 resolution
             s = 0.0
             acc = 0.0
             for k in range(K + 1):
-                p = math.exp(lw[k] - mx)
+                g = lw[k] - mx
+                if g < -40.0:
+                    continue
+                p = math.exp(g)
                 s += p
-                acc += p * cdf[k]
+                if k == 0:
+                    if zb >= 0.0:
+                        c = 1.0 / (1.0 + math.exp(-zb))
+                    else:
+                        e = math.exp(zb)
+                        c = e / (1.0 + e)
+                else:
+                    c = ndtr(z[k - 1, j])
+                acc += p * c
             u = acc / s
             U[i, j] = min(max(u, u_clip), 1.0 - u_clip)
             lw[0] += _log_sigmoid_pair(zb) - log_scale[j]
