@@ -223,7 +223,7 @@ class GaussianMixtureBase:
     # ------------------------------------------------------------ fitting
     @classmethod
     def fit(cls, X, loc, scale, components=DEFAULT_COMPONENTS, random_state=None,
-            max_em_events: int = 12_500, max_iter: int = 100, tol: float = 1e-3,
+            max_em_events: int = 50_000, max_iter: int = 100, tol: float = 1e-3,
             n_init: int = 1, min_gain: float = 2e-3) -> "GaussianMixtureBase":
         """Fit by EM (float64) and choose the number of Gaussian components by
         held-out log-likelihood.
