@@ -45,8 +45,6 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import special
-
 from . import kernels
 
 U_CLIP = 1e-15
@@ -56,17 +54,12 @@ MIN_BACKGROUND = 1e-4
 DEFAULT_COMPONENTS = (1, 2, 4, 8, 16, 32)
 _LOG_2PI_HALF = 0.5 * math.log(2.0 * math.pi)
 _Z_MAX = 1e100
-_CHUNK = 8192
 
 
 def _logistic_logpdf(z: np.ndarray) -> np.ndarray:
     """log s'(z) = -|z| - 2 log(1 + exp(-|z|)), finite for every finite z."""
     a = np.abs(z)
     return -a - 2.0 * np.log1p(np.exp(-a))
-
-
-def _logistic_quantile(u: np.ndarray) -> np.ndarray:
-    return np.log(u) - np.log1p(-u)
 
 
 class GaussianMixtureBase:
@@ -136,89 +129,15 @@ class GaussianMixtureBase:
                             self._log_sd, self.loc, self.scale, self._log_scale, U_CLIP, _Z_MAX)
         return U, logd
 
-    def _cond_mean(self, Z, j):
-        """Conditional mean of x_j under each component given z_<j: (m, K)."""
-        m = np.broadcast_to(self.means[:, j], (Z.shape[0], self.n_components)).copy()
-        for i in range(j):
-            m += Z[:, :, i] * self.chol[:, j, i]
-        return m
-
-    def _advance(self, x, mean, Z, lw, j):
-        """Coordinate j is known (x (m,), conditional means (m, K)): store the
-        components' z in Z[:, :, j] and add log f(x_j | x_<j) per component to the
-        running log weights lw (m, K + 1)."""
-        zj = np.clip((x[:, None] - mean) / self._sd[j], -_Z_MAX, _Z_MAX)
-        Z[:, :, j] = zj
-        zb = np.clip((x - self.loc[j]) / self.scale[j], -_Z_MAX, _Z_MAX)
-        lw[:, 0] += _logistic_logpdf(zb) - self._log_scale[j]
-        lw[:, 1:] += -0.5 * zj * zj - _LOG_2PI_HALF - self._log_sd[j]
-
     # ------------------------------------------------------------ inverse
     def inverse(self, U) -> np.ndarray:
         """Inverse Rosenblatt map: U (n, d) in [0, 1] (clipped to [U_CLIP, 1 - U_CLIP])
-        back to events (n, d)."""
-        U = np.clip(np.asarray(U, dtype=np.float64), U_CLIP, 1.0 - U_CLIP)
-        n, d = U.shape
-        X = np.empty((n, d))
-        for a in range(0, n, _CHUNK):
-            b = min(n, a + _CHUNK)
-            X[a:b] = self._inverse_rows(U[a:b])
+        back to events (n, d) (compiled kernel, parallel over events for large n)."""
+        U = np.ascontiguousarray(U, dtype=np.float64)
+        X = np.empty(U.shape)
+        kernels.gmm_inverse(U, X, self.log_weights, self.means, self.chol, self._sd, self._log_sd,
+                            self.loc, self.scale, self._log_scale, U_CLIP, _Z_MAX)
         return X
-
-    def _inverse_rows(self, U):
-        m, d = U.shape
-        K = self.n_components
-        Z = np.empty((m, K, d))
-        lw = np.empty((m, K + 1))
-        lw[:] = self.log_weights
-        X = np.empty((m, d))
-        for j in range(d):
-            mean = self._cond_mean(Z, j)
-            sd = self._sd[j]
-            p = np.exp(lw - lw.max(axis=1, keepdims=True))
-            p /= p.sum(axis=1, keepdims=True)
-            u = U[:, j]
-            x = self._solve(u, p, mean, sd, float(self.loc[j]), float(self.scale[j]))
-            X[:, j] = x
-            self._advance(x, mean, Z, lw, j)
-        return X
-
-    @staticmethod
-    def _cdf_pdf(x, p, mean, sd, loc, scale):
-        zg = (x[:, None] - mean) / sd
-        zb = (x - loc) / scale
-        F = p[:, 0] * special.expit(zb) + np.einsum("ij,ij->i", p[:, 1:], special.ndtr(zg))
-        f = p[:, 0] * np.exp(_logistic_logpdf(zb)) / scale \
-            + np.einsum("ij,ij->i", p[:, 1:], np.exp(-0.5 * zg * zg - _LOG_2PI_HALF) / sd)
-        return F, f
-
-    def _solve(self, u, p, mean, sd, loc, scale, max_iter: int = 200):
-        """Root of F(x) = u per row, F the conditional mixture CDF (monotone)."""
-        qg = mean + sd * special.ndtri(u)[:, None]            # component quantiles
-        qb = loc + scale * _logistic_quantile(u)
-        lo = np.minimum(qg.min(axis=1, initial=np.inf), qb)
-        hi = np.maximum(qg.max(axis=1, initial=-np.inf), qb)
-        x = np.clip(np.einsum("ij,ij->i", p[:, 1:], qg) + p[:, 0] * qb, lo, hi)
-        active = np.arange(u.size)
-        for _ in range(max_iter):
-            if active.size == 0:
-                break
-            xa, la, ha = x[active], lo[active], hi[active]
-            F, f = self._cdf_pdf(xa, p[active], mean[active], sd, loc, scale)
-            r = F - u[active]
-            la = np.where(r < 0, xa, la)
-            ha = np.where(r > 0, xa, ha)
-            with np.errstate(divide="ignore", invalid="ignore"):
-                xn = xa - r / f
-            bad = ~np.isfinite(xn) | (xn <= la) | (xn >= ha)
-            xn = np.where(bad, 0.5 * (la + ha), xn)
-            xn = np.where(r == 0, xa, xn)  # exact root (possibly on the bracket's edge)
-            step = np.abs(xn - xa)
-            x[active], lo[active], hi[active] = xn, la, ha
-            tol = 1e-13 * np.maximum(1.0, np.abs(xn))
-            done = (r == 0) | ((step <= tol) & ~bad) | (ha - la <= tol)
-            active = active[~done]
-        return x
 
     # ------------------------------------------------------------ fitting
     @classmethod

@@ -768,3 +768,111 @@ def gmm_forward(X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale
         _gmm_forward_par(*args)
     else:
         _gmm_forward_rows(0, X.shape[0], *args)
+
+
+@njit(cache=True)
+def _gmm_inverse_rows(start, stop, U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale,
+                      u_clip, z_max):
+    """Inverse of :func:`_gmm_forward_rows`: coordinate by coordinate, the root of
+    the conditional mixture CDF F(x) = u by Newton steps safeguarded by a bracket
+    (the components' own quantiles enclose the mixture quantile; bisection when
+    Newton leaves it), to a relative step of 1e-13.  u is clipped to
+    [u_clip, 1 - u_clip]; components below exp(-40) of the largest posterior
+    weight are left out, as in the forward map."""
+    K, d = means.shape
+    lw = np.empty(K + 1)
+    z = np.empty((K, d))
+    mean = np.empty(K)
+    p = np.empty(K + 1)
+    for i in range(start, stop):
+        for k in range(K + 1):
+            lw[k] = logw[k]
+        for j in range(d):
+            u = min(max(U[i, j], u_clip), 1.0 - u_clip)
+            for k in range(K):
+                m = means[k, j]
+                for q in range(j):
+                    m += chol[k, j, q] * z[k, q]
+                mean[k] = m
+            mx = lw[0]
+            for k in range(1, K + 1):
+                mx = max(mx, lw[k])
+            s = 0.0
+            for k in range(K + 1):
+                g = lw[k] - mx
+                p[k] = math.exp(g) if g >= -40.0 else 0.0
+                s += p[k]
+            qn = ndtri(u)
+            qb = loc[j] + scale[j] * (math.log(u) - math.log1p(-u))
+            lo = np.inf
+            hi = -np.inf
+            x = 0.0
+            for k in range(K + 1):
+                if p[k] == 0.0:
+                    continue
+                p[k] /= s
+                q = qb if k == 0 else mean[k - 1] + sd[j, k - 1] * qn
+                lo = min(lo, q)
+                hi = max(hi, q)
+                x += p[k] * q
+            x = min(max(x, lo), hi)
+            for _ in range(200):
+                F = 0.0
+                f = 0.0
+                for k in range(K + 1):
+                    if p[k] == 0.0:
+                        continue
+                    if k == 0:
+                        zb = (x - loc[j]) / scale[j]
+                        if zb >= 0.0:
+                            c = 1.0 / (1.0 + math.exp(-zb))
+                        else:
+                            e = math.exp(zb)
+                            c = e / (1.0 + e)
+                        F += p[0] * c
+                        f += p[0] * math.exp(_log_sigmoid_pair(zb)) / scale[j]
+                    else:
+                        zk = (x - mean[k - 1]) / sd[j, k - 1]
+                        F += p[k] * ndtr(zk)
+                        f += p[k] * math.exp(-0.5 * zk * zk - _LOG_SQRT_2PI) / sd[j, k - 1]
+                r = F - u
+                if r == 0.0:
+                    break
+                if r < 0.0:
+                    lo = x
+                else:
+                    hi = x
+                xn = x - r / f if f > 0.0 else lo - 1.0
+                if not (xn > lo and xn < hi):
+                    xn = 0.5 * (lo + hi)
+                step = abs(xn - x)
+                x = xn
+                tol = 1e-13 * max(1.0, abs(x))
+                if step <= tol or hi - lo <= tol:
+                    break
+            X[i, j] = x
+            zb = min(max((x - loc[j]) / scale[j], -z_max), z_max)
+            lw[0] += _log_sigmoid_pair(zb) - log_scale[j]
+            for k in range(K):
+                zk = min(max((x - mean[k]) / sd[j, k], -z_max), z_max)
+                z[k, j] = zk
+                lw[k + 1] += -0.5 * zk * zk - _LOG_SQRT_2PI - log_sd[j, k]
+
+
+@njit(cache=True, parallel=True)
+def _gmm_inverse_par(U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max):
+    n = U.shape[0]
+    nb = (n + BLOCK - 1) // BLOCK
+    for b in prange(nb):
+        _gmm_inverse_rows(b * BLOCK, min(n, (b + 1) * BLOCK), U, X, logw, means, chol, sd, log_sd,
+                          loc, scale, log_scale, u_clip, z_max)
+
+
+def gmm_inverse(U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max):
+    """Inverse Rosenblatt map of the Gaussian-mixture base; see :func:`_gmm_inverse_rows`."""
+    args = (U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale, float(u_clip), float(z_max))
+    K, d = means.shape
+    if _parallel(U.shape[0], 40 * (K + 1) * d * (d + 2)):
+        _gmm_inverse_par(*args)
+    else:
+        _gmm_inverse_rows(0, U.shape[0], *args)
