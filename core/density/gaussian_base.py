@@ -34,8 +34,12 @@ between the two clip levels (mass outside them ~2e-15 per channel, far
 below any quadrature or test tolerance).  The inverse solves each
 coordinate in turn by a safeguarded Newton iteration (bracket from the
 components' own quantiles, which always enclose the mixture quantile;
-bisection whenever Newton leaves the bracket), vectorised over events, to a
-relative step of 1e-13 (well inside 1e-10).  ``z`` is clipped to +-1e100 so
+bisection whenever Newton leaves the bracket), compiled and parallel over
+events (:func:`core.density.kernels.gmm_inverse`), to a relative step of
+1e-13 (well inside 1e-10).  Both directions leave out components whose
+posterior weight is below exp(-40) ~ 4e-18 of the largest at that coordinate
+(their share of u is below float64 resolution), so forward and inverse stay
+consistent.  ``z`` is clipped to +-1e100 so
 ``z**2`` cannot overflow (those components then have log weight ~ -5e199,
 i.e. exactly zero after logsumexp with the finite background term).
 """
