@@ -115,14 +115,7 @@ def fitted_normal():
     return fitted, truth.sample(40_000, random_state=22)
 
 
-@pytest.mark.parametrize("mass", [
-    0.5, 0.9,
-    # measured with the engine of 2026-12-01 (n = 20,000, 4-D normal): the fitted
-    # tails are heavier than the truth, so the model's own 99 % region is too
-    # wide and only 0.55 % of new events fall outside it (the training events'
-    # 1 % quantile would flag 1.15 %).  XPASS once the engine's tails are right.
-    pytest.param(0.99, marks=pytest.mark.xfail(reason="engine tails heavier than the truth", strict=False)),
-])
+@pytest.mark.parametrize("mass", [0.5, 0.9, 0.99])
 def test_mass_rule_with_the_fitted_engine_flags_the_nominal_share_of_new_events(fitted_normal, mass):
     fitted, fresh = fitted_normal
     res = rare_by_mass(fitted.score_samples(fresh), fitted, mass, n_samples=100_000, random_state=23)
