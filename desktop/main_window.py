@@ -205,14 +205,7 @@ class MainWindow(QMainWindow):
 
         # left: tubes
         self.tubes_list = TubesList()
-        left = QDockWidget("Tubes", self)
-        left.setObjectName("TubesDock")
-        left.setTitleBarWidget(QWidget())
-        left.setWidget(self.tubes_list)
-        left.setFeatures(QDockWidget.NoDockWidgetFeatures)
-        left.setMinimumWidth(190)
-        left.setMaximumWidth(260)
-        self.addDockWidget(Qt.LeftDockWidgetArea, left)
+        self._add_fixed_dock("TubesDock", self.tubes_list, Qt.LeftDockWidgetArea, 190, 260)
 
         # right: the notebook of panels
         self.card = TubeCard()
@@ -228,14 +221,7 @@ class MainWindow(QMainWindow):
         self.notebook.addTab(self.comp_panel, "Spillover")
         self.notebook.addTab(self.contrast_panel, "Contrast")
         self.notebook.addTab(self.card, "Tube")
-        right = QDockWidget("Panels", self)
-        right.setObjectName("PanelsDock")
-        right.setTitleBarWidget(QWidget())
-        right.setWidget(self.notebook)
-        right.setFeatures(QDockWidget.NoDockWidgetFeatures)
-        right.setMinimumWidth(360)
-        right.setMaximumWidth(430)
-        self.addDockWidget(Qt.RightDockWidgetArea, right)
+        self._add_fixed_dock("PanelsDock", self.notebook, Qt.RightDockWidgetArea, 360, 430)
 
         self.note_label = QLabel(RESEARCH_USE_NOTE)
         self.note_label.setObjectName("Note")
@@ -254,7 +240,19 @@ class MainWindow(QMainWindow):
         if geometry is not None and interactive:
             self.restoreGeometry(geometry)
 
+    def _add_fixed_dock(self, name: str, widget: QWidget, area, min_width: int, max_width: int) -> None:
+        """A side column that cannot be moved, floated or closed (no title bar)."""
+        dock = QDockWidget(self)
+        dock.setObjectName(name)
+        dock.setTitleBarWidget(QWidget())
+        dock.setWidget(widget)
+        dock.setFeatures(QDockWidget.NoDockWidgetFeatures)
+        dock.setMinimumWidth(min_width)
+        dock.setMaximumWidth(max_width)
+        self.addDockWidget(area, dock)
+
     # ------------------------------------------------------------------ actions
+
     def _action(self, text, slot, shortcut=None, icon_name=None, tip="", checkable=False):
         a = QAction(text, self)
         if icon_name:

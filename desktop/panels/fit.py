@@ -15,13 +15,9 @@ from desktop import style
 
 def engine_defaults() -> dict:
     """The engine's own default keyword arguments (core.density), so the panel starts there."""
-    import inspect
-
     from core.density import AdditiveTreeDensity
 
-    sig = inspect.signature(AdditiveTreeDensity.__init__)
-    return {k: p.default for k, p in sig.parameters.items()
-            if k != "self" and p.default is not inspect.Parameter.empty}
+    return AdditiveTreeDensity().get_params()
 
 
 class FitPanel(QWidget):
