@@ -11,7 +11,7 @@ import pytest
 from scipy import stats
 from scipy.special import logsumexp
 
-from core.contours import pair_density, pair_density_from_model
+from core.contours import hdr_levels, pair_density, pair_density_from_model
 from core.errors import EventDataError
 
 W = np.array([0.7, 0.3])
@@ -59,10 +59,16 @@ def truth():
     return model, grid_truth_levels(model, MASSES)
 
 
-@pytest.fixture(scope="module")
-def fitted(truth):
+# Data seeds of the fitted-pair tests: 5, then the two of 5, 11..17 whose fitted
+# 99 % level was furthest from the truth (-3.45 % and -2.79 % with Sobol levels),
+# so a pass is not one lucky draw.
+FIT_SEEDS = (5, 13, 17)
+
+
+@pytest.fixture(scope="module", params=FIT_SEEDS)
+def fitted(truth, request):
     model, _ = truth
-    data = model.sample(40_000, random_state=5)
+    data = model.sample(40_000, random_state=request.param)
     train, held = data[:20_000], data[20_000:]
     return pair_density(train, grid_size=64, random_state=0), held
 
@@ -100,18 +106,31 @@ def test_mass_in_grid_cells_above_each_level_is_nominal(truth):
         assert abs(dens[pdn.log_density >= lv].sum() * area - m) < 0.01
 
 
-@pytest.mark.parametrize("mass", [
-    0.5, 0.9,
-    # measured (n = 20,000, engine defaults with the Gaussian-mixture base): the
-    # fitted 99 % level is 6.6 % below the true one (target 5 %); strict, so this
-    # fails as soon as the engine meets the target and the mark must go
-    pytest.param(0.99, marks=pytest.mark.xfail(reason="99 % level 6.6 % low (target 5 %)", strict=True)),
-])
+@pytest.mark.parametrize("mass", MASSES)
 def test_fitted_pair_levels_match_the_true_levels(fitted, truth, mass):
+    # measured 2026-12-02 (n = 20,000, 8 data seeds, Sobol levels of 2**17 draws):
+    # 99 % level -1.7 % on average (-3.5 % at worst), 50 % / 90 % within 2.5 %
     _, true_levels = truth
     pdn, _ = fitted
     rel = abs(np.exp(pdn.levels[mass] - true_levels[mass]) - 1)
     assert rel < 0.05, (mass, np.exp(pdn.levels[mass]), np.exp(true_levels[mass]))
+
+
+def test_levels_of_a_fitted_model_match_quadrature_of_its_own_density(truth):
+    # The levels are quantiles over the model's own draws; here they are checked
+    # against the fitted model's exact density integrated on a fine grid
+    # (reference: midpoint-rule quadrature, as for the true levels above), which
+    # isolates the Monte Carlo error from the model's error.  With 2**17 plain
+    # pseudo-random draws the 99 % level was measured 3.5 % off (sd over seeds).
+    model, _ = truth
+    pdn = pair_density(model.sample(20_000, random_state=5), grid_size=16, random_state=0)
+    exact = grid_truth_levels(pdn.model, MASSES, n=1000)
+    for m in MASSES:
+        assert abs(np.exp(pdn.levels[m] - exact[m]) - 1) < 0.015, (m, pdn.levels[m], exact[m])
+    # another seed of the draws gives the same levels within the same tolerance
+    again = hdr_levels(pdn.model, MASSES, random_state=1)
+    for m, v in zip(MASSES, again):
+        assert abs(np.exp(v - exact[m]) - 1) < 0.015, (m, v, exact[m])
 
 
 def test_heldout_events_inside_each_contour_share_nominal(fitted):
