@@ -194,19 +194,6 @@ class GaussianMixtureBase:
         return best
 
 
-def _gauss_logpdf(X, mu, cov):
-    """(n,) log N(X; mu, cov) via the Cholesky factor's inverse (one matrix product)."""
-    L = np.linalg.cholesky(cov)
-    Linv = np.linalg.inv(L)
-    z = (X - mu) @ Linv.T
-    return -0.5 * np.einsum("ij,ij->i", z, z) - np.log(np.diag(L)).sum() - X.shape[1] * _LOG_2PI_HALF
-
-
-def _logsumexp_rows(a):
-    m = a.max(axis=1)
-    return m + np.log(np.exp(a - m[:, None]).sum(axis=1))
-
-
 def _nearest(X, C):
     """Index of the nearest centre for each event (squared Euclidean distance)."""
     return np.argmin((C * C).sum(axis=1)[None, :] - 2.0 * X @ C.T, axis=1)
@@ -226,7 +213,13 @@ def _kmeanspp(X, k, rng):
 
 
 def _em(X, bg, k, reg, rng, max_iter, tol):
-    """EM for background + k Gaussians; returns (mean log-lik, weights, means, covs)."""
+    """EM for background + k Gaussians; returns (mean log-lik, weights, means, covs).
+
+    Start: k-means++ seeding and 5 Lloyd steps; the first M step uses the hard
+    labels with the background at 0.1 %.  Each iteration is one compiled pass
+    over the events (E step and the M step's weighted moments,
+    :func:`core.density.kernels.em_stats`), then the M step in numpy.
+    """
     n, d = X.shape
     C = _kmeanspp(X, k, rng)
     for _ in range(5):  # a few Lloyd steps
@@ -235,37 +228,41 @@ def _em(X, bg, k, reg, rng, max_iter, tol):
             if (lab == c).any():
                 C[c] = X[lab == c].mean(axis=0)
     lab = _nearest(X, C)
-    R = np.zeros((n, k + 1))
     # The background starts small (0.1 %): EM grows it where the data need it,
     # but from a large start its weight shrinks too slowly to settle before
     # ``tol`` stops EM, leaving spurious mass in the tails (a 2-component normal
     # mixture kept 0.8 % background, which put its 99 % HDR level 23 % low).
-    R[np.arange(n), lab + 1] = 0.999
-    R[:, 0] = 0.001
+    counts = np.bincount(lab, minlength=k).astype(np.float64)
+    w = np.concatenate([[0.001], 0.999 * counts / n])
+    w = np.maximum(w, 1e-12)
+    w[0] = max(w[0], MIN_BACKGROUND)
+    w /= w.sum()
+    mu = np.empty((k, d))
+    cov = np.empty((k, d, d))
+    for c in range(k):
+        Xc = X[lab == c]
+        mu[c] = Xc.mean(axis=0) if Xc.shape[0] else C[c]
+        D = Xc - mu[c]
+        cov[c] = D.T @ D / max(1, Xc.shape[0]) + np.diag(reg)
     prev = -np.inf
     ll = -np.inf
-    lp = np.empty((n, k + 1))
-    w = mu = cov = None
-    for it in range(max_iter):
-        # M step
-        Nk = R.sum(axis=0) + 1e-12
+    X = np.ascontiguousarray(X)
+    bg = np.ascontiguousarray(bg)
+    for _ in range(max_iter):
+        chol = np.ascontiguousarray(np.linalg.cholesky(cov))
+        log_det = np.log(np.diagonal(chol, axis1=1, axis2=2)).sum(axis=1)
+        total, N, S, M = kernels.em_stats(X, bg, np.log(w), np.ascontiguousarray(mu), chol, log_det)
+        ll = total / n
+        # M step (moments were taken about the current means)
+        Nk = N + 1e-12
         w = Nk / n
         w[0] = max(w[0], MIN_BACKGROUND)
         w[1:] = np.maximum(w[1:], 1e-12)
         w /= w.sum()
-        mu = (R[:, 1:].T @ X) / Nk[1:, None]
-        cov = np.empty((k, d, d))
-        for c in range(k):
-            D = X - mu[c]
-            cov[c] = (D * R[:, c + 1, None]).T @ D / Nk[c + 1]
-            cov[c] = 0.5 * (cov[c] + cov[c].T) + np.diag(reg)
-        # E step
-        lp[:, 0] = np.log(w[0]) + bg
-        for c in range(k):
-            lp[:, c + 1] = np.log(w[c + 1]) + _gauss_logpdf(X, mu[c], cov[c])
-        tot = _logsumexp_rows(lp)
-        ll = float(tot.mean())
-        R = np.exp(lp - tot[:, None])
+        delta = S / Nk[1:, None]
+        mu = mu + delta
+        cov = M / Nk[1:, None, None] - delta[:, :, None] * delta[:, None, :]
+        cov = 0.5 * (cov + np.swapaxes(cov, 1, 2)) + np.diag(reg)[None]
         if ll - prev < tol:
             break
         prev = ll

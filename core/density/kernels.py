@@ -26,6 +26,8 @@ import math
 import numpy as np
 from numba import njit, prange
 
+from .normal_cdf import ERFCX_MAX, ERFCX_STEP, ERFCX_TABLE
+
 #: Events per parallel work block in the per-event kernels.
 BLOCK = 512
 #: Deepest path a tree may have (path buffers are this long).
@@ -215,6 +217,31 @@ U_EPS = 1e-16
 def ndtr(z):
     """Standard normal CDF (via erfc, accurate in the lower tail)."""
     return 0.5 * math.erfc(-z * _SQRT1_2)
+
+
+_ERFCX_INV_STEP = 1.0 / ERFCX_STEP
+_ERFCX_DEG = ERFCX_TABLE.shape[1] - 1
+
+
+@njit(cache=True)
+def ndtr_pair(z):
+    """(Phi(z), exp(-z^2 / 2)): the standard normal CDF and the unnormalised
+    normal density kernel, from one table lookup and one exponential
+    (:mod:`core.density.normal_cdf`; relative error of Phi in the lower tail
+    a few 1e-15).  |z| >= 8.49 falls back to ``math.erfc``."""
+    t = abs(z) * _SQRT1_2
+    e = math.exp(-t * t)
+    if not t < ERFCX_MAX:
+        return ndtr(z), e
+    i = int(t * _ERFCX_INV_STEP)
+    s = (t - i * ERFCX_STEP) * (2.0 * _ERFCX_INV_STEP) - 1.0
+    c = ERFCX_TABLE[i, _ERFCX_DEG]
+    for q in range(_ERFCX_DEG - 1, -1, -1):
+        c = c * s + ERFCX_TABLE[i, q]
+    h = 0.5 * c * e
+    if z <= 0.0:
+        return h, e
+    return 1.0 - h, e
 
 
 @njit(cache=True)
@@ -876,3 +903,97 @@ def gmm_inverse(U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_cl
         _gmm_inverse_par(*args)
     else:
         _gmm_inverse_rows(0, U.shape[0], *args)
+
+
+# ------------------------------------------------------------ Gaussian-mixture EM
+
+@njit(cache=True)
+def _em_stats_rows(start, stop, X, bg, logw, means, chol, log_det, acc_n, acc_s, acc_m, ll_out):
+    """E step for rows start:stop and their responsibility-weighted sums.
+
+    X (n, d) events; bg (n,) log density of each event under the background
+    component; logw (K + 1,) log weights (background first); means (K, d);
+    chol (K, d, d) lower Cholesky factors; log_det (K,) sum of the log
+    diagonals.  Adds to acc_n (K + 1,) the responsibilities, to acc_s (K, d)
+    sum r (x - mean_k), to acc_m (K, d, d) (lower triangle) sum r (x - mean_k)(x - mean_k)^T,
+    and to ll_out[0] the log-likelihood of the rows.  Centring on the current
+    means keeps the second moments free of cancellation.
+    """
+    K, d = means.shape
+    lp = np.empty(K + 1)
+    D = np.empty((K, d))
+    z = np.empty(d)
+    ll = 0.0
+    half_d_log2pi = d * _LOG_SQRT_2PI
+    for i in range(start, stop):
+        lp[0] = logw[0] + bg[i]
+        mx = lp[0]
+        for k in range(K):
+            q = 0.0
+            for j in range(d):
+                D[k, j] = X[i, j] - means[k, j]
+                v = D[k, j]
+                for a in range(j):
+                    v -= chol[k, j, a] * z[a]
+                v /= chol[k, j, j]
+                z[j] = v
+                q += v * v
+            lp[k + 1] = logw[k + 1] - 0.5 * q - log_det[k] - half_d_log2pi
+            if lp[k + 1] > mx:
+                mx = lp[k + 1]
+        s = 0.0
+        for k in range(K + 1):
+            lp[k] = math.exp(lp[k] - mx)
+            s += lp[k]
+        ll += mx + math.log(s)
+        inv = 1.0 / s
+        acc_n[0] += lp[0] * inv
+        for k in range(K):
+            r = lp[k + 1] * inv
+            if r < 1e-300:
+                continue
+            acc_n[k + 1] += r
+            for j in range(d):
+                rv = r * D[k, j]
+                acc_s[k, j] += rv
+                for a in range(j + 1):
+                    acc_m[k, j, a] += rv * D[k, a]
+    ll_out[0] += ll
+
+
+@njit(cache=True, parallel=True)
+def _em_stats_par(X, bg, logw, means, chol, log_det, acc_n, acc_s, acc_m, ll_out):
+    n = X.shape[0]
+    nb = acc_n.shape[0]
+    step = (n + nb - 1) // nb
+    for b in prange(nb):
+        _em_stats_rows(b * step, min(n, (b + 1) * step), X, bg, logw, means, chol, log_det,
+                       acc_n[b], acc_s[b], acc_m[b], ll_out[b])
+
+
+def em_stats(X, bg, logw, means, chol, log_det, n_parts=16):
+    """One E step over all events with the M step's sufficient statistics.
+
+    Returns (total log-likelihood, N (K + 1,), S (K, d), M (K, d, d) symmetric):
+    responsibilities summed per component, and per Gaussian component the
+    responsibility-weighted first and second moments of (x - means[k]).
+    Events are split into ``n_parts`` fixed parts summed in order, so the
+    result does not depend on the number of threads.
+    """
+    K, d = means.shape
+    n = X.shape[0]
+    parts = max(1, min(int(n_parts), n // 256)) if _parallel(n, K * d * d) else 1
+    acc_n = np.zeros((parts, K + 1))
+    acc_s = np.zeros((parts, K, d))
+    acc_m = np.zeros((parts, K, d, d))
+    ll = np.zeros((parts, 1))
+    if parts > 1:
+        _em_stats_par(X, bg, logw, means, chol, log_det, acc_n, acc_s, acc_m, ll)
+    else:
+        _em_stats_rows(0, n, X, bg, logw, means, chol, log_det, acc_n[0], acc_s[0], acc_m[0], ll[0])
+    N = acc_n.sum(axis=0)
+    S = acc_s.sum(axis=0)
+    M = acc_m.sum(axis=0)
+    low = np.tril(M)
+    M = low + np.swapaxes(np.tril(M, -1), 1, 2)
+    return float(ll.sum()), N, S, M
