@@ -144,7 +144,9 @@ class AdditiveTreeDensity:
         Above this many events the fit uses a seeded random subsample.
     marginal_trees, marginal_learning_rate, marginal_depth, marginal_alpha :
         The same roles for the one-channel trees of the marginal stage
-        (``marginal_trees=0`` skips the stage).
+        (``marginal_trees=0`` skips the stage; the default -1 means 100 after
+        the logistic base and none after the Gaussian-mixture base, whose
+        margins the stage did not improve: see EXPERIMENTS.md section 13).
     n_layers : int
         Most layers; layer 2, 3, ... first rotates the cube coordinates to the
         principal axes of the current events in Gaussianised coordinates, then
@@ -207,7 +209,7 @@ class AdditiveTreeDensity:
 
     def __init__(self, n_trees: int = 400, learning_rate: float = 0.9, max_depth: int = 14,
                  n_bins: int = 64, min_leaf: int = 10, validation_fraction: float = 0.2,
-                 patience: int = 10, max_fit_events: int = 200_000, marginal_trees: int = 100,
+                 patience: int = 10, max_fit_events: int = 200_000, marginal_trees: int = -1,
                  marginal_learning_rate: float = 0.2, marginal_depth: int = 6,
                  n_layers: int = 3, layer_trees: int = 150, layer_tol: float = 0.01,
                  alpha: float = 1000.0, rotation: str = "pca", jitter: bool = False,
@@ -278,8 +280,8 @@ class AdditiveTreeDensity:
             raise ValueError("rotation must be 'pca' or 'random'")
         if not np.isfinite(float(self.alpha)):
             raise ValueError("alpha must be a finite number")
-        if int(self.n_trees) < 0 or int(self.marginal_trees) < 0 or int(self.patience) < 1:
-            raise ValueError("n_trees and marginal_trees must be >= 0 and patience >= 1")
+        if int(self.n_trees) < 0 or int(self.marginal_trees) < -1 or int(self.patience) < 1:
+            raise ValueError("n_trees must be >= 0, marginal_trees >= 0 (or -1: automatic) and patience >= 1")
 
     # ------------------------------------------------------------ fitting
     def fit(self, X, progress=None) -> "AdditiveTreeDensity":
@@ -434,6 +436,13 @@ class AdditiveTreeDensity:
         Q[np.ix_(idx, idx)] = vecs.T
         return Q
 
+    def _marginal_tree_count(self) -> int:
+        """Most one-channel trees per channel (resolves the automatic -1)."""
+        m = int(self.marginal_trees)
+        if m >= 0:
+            return m
+        return 0 if self.base == "gmm" else 100
+
     def _fit_marginals(self, U_tr: np.ndarray, U_va: np.ndarray, ld_va: np.ndarray):
         """Boost one-channel trees per channel; compose each channel's trees into a
         monotone piecewise-linear map; apply it to U_tr/U_va in place (adding to ld_va).
@@ -444,7 +453,7 @@ class AdditiveTreeDensity:
         counts = np.zeros(d, np.int64)
         lr = float(self.marginal_learning_rate)
         for j in range(d):
-            if self._frozen[j] or int(self.marginal_trees) == 0:
+            if self._frozen[j] or self._marginal_tree_count() == 0:
                 xs = np.array([0.0, 1.0])
                 ys = xs.copy()
                 sl = np.ones(2)
@@ -455,7 +464,7 @@ class AdditiveTreeDensity:
                 scratch = np.zeros(col_tr.shape[0])
                 forest = Forest()
                 best_k, best_ll = 0, 0.0
-                for k in range(1, int(self.marginal_trees) + 1):
+                for k in range(1, self._marginal_tree_count() + 1):
                     tree = fit_tree(col_tr, lr, int(self.marginal_depth), int(self.n_bins),
                                     int(self.min_leaf), None, float(self.marginal_alpha))
                     if tree.n_nodes == 0:
