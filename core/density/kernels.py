@@ -923,6 +923,10 @@ def _em_stats_rows(start, stop, X, bg, logw, means, chol, log_det, acc_n, acc_s,
     lp = np.empty(K + 1)
     D = np.empty((K, d))
     z = np.empty(d)
+    inv_diag = np.empty((K, d))
+    for k in range(K):
+        for j in range(d):
+            inv_diag[k, j] = 1.0 / chol[k, j, j]
     ll = 0.0
     half_d_log2pi = d * _LOG_SQRT_2PI
     for i in range(start, stop):
@@ -935,7 +939,7 @@ def _em_stats_rows(start, stop, X, bg, logw, means, chol, log_det, acc_n, acc_s,
                 v = D[k, j]
                 for a in range(j):
                     v -= chol[k, j, a] * z[a]
-                v /= chol[k, j, j]
+                v *= inv_diag[k, j]
                 z[j] = v
                 q += v * v
             lp[k + 1] = logw[k + 1] - 0.5 * q - log_det[k] - half_d_log2pi
@@ -950,8 +954,8 @@ def _em_stats_rows(start, stop, X, bg, logw, means, chol, log_det, acc_n, acc_s,
         acc_n[0] += lp[0] * inv
         for k in range(K):
             r = lp[k + 1] * inv
-            if r < 1e-300:
-                continue
+            if r < 1e-13:
+                continue  # its share of any moment is below float64 resolution of the sums
             acc_n[k + 1] += r
             for j in range(d):
                 rv = r * D[k, j]
