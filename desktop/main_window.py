@@ -39,7 +39,7 @@ from desktop.workers import Job
 #: The rarity slider runs over shares from 0.01 % to 20 % on a log scale.
 SHARE_MIN, SHARE_MAX, SLIDER_STEPS = 1e-4, 0.2, 1000
 #: Settings of the small 2-D densities behind the contour lines (per pair).
-CONTOUR_ENGINE = {"n_trees": 25, "max_fit_events": 5_000, "patience": 5, "marginal_trees": 30}
+CONTOUR_ENGINE = {"n_trees": 25, "max_fit_events": 5_000, "patience": 5}
 CONTOUR_EVENTS = 5_000
 CONTOUR_LEVEL_SAMPLES = 5_000
 FCS_PATTERNS = ("*.fcs", "*.FCS", "*.lmd", "*.LMD")

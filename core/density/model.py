@@ -353,7 +353,8 @@ class AdditiveTreeDensity:
         done = 0
         n_layers = max(1, int(self.n_layers)) if total else 1
         for layer in range(n_layers):
-            start_ll = float(ld_va.mean()) if layer else -np.inf
+            # after a Gaussian-mixture base the first layer must pay for itself too
+            start_ll = float(ld_va.mean()) if layer or self._gmm is not None else -np.inf
             Q = None
             if layer > 0:
                 Q = self._rotation(U_tr, allowed, rng)
@@ -405,8 +406,15 @@ class AdditiveTreeDensity:
                 curve.append(best_ll)
             done += best_k
             gain = best_ll - start_ll
-            if layer > 0 and gain < float(self.layer_tol):
-                self._layers.pop()  # a layer that does not pay for its scoring time
+            if gain < float(self.layer_tol):
+                # a layer that does not pay for its scoring time; the first one
+                # (after a mixture base) leaves the base alone, whose density
+                # then needs no Rosenblatt map (gmm_logpdf, ~3x faster)
+                if layer > 0:
+                    self._layers.pop()
+                else:
+                    self._layers[0] = (None, _identity_pwl(d), Forest())
+                    self.n_marginal_trees_ = np.zeros(d, np.int64)
                 curve.append(start_ll)
                 break
             if done >= total or self.stopped_by_ == "no split":
@@ -517,6 +525,23 @@ class AdditiveTreeDensity:
         logd += lg
         return U, logd
 
+    def _density_is_base(self) -> bool:
+        """True when nothing follows a Gaussian-mixture base (no rotation, identity
+        marginals, no trees): the log density is then the base's alone."""
+        if getattr(self, "_gmm", None) is None or len(self._layers) != 1:
+            return False
+        Q, pwl, forest = self._layers[0]
+        return Q is None and forest.n_trees == 0 and bool(np.all(pwl[3] == 1.0))
+
+    def _base_logpdf(self, C: np.ndarray) -> np.ndarray:
+        """Log density of the base alone (m,), without its map into the cube."""
+        fr = self._frozen
+        logd = np.zeros(C.shape[0])
+        if fr.any():
+            kernels.base_forward(np.ascontiguousarray(C[:, fr]), np.empty((C.shape[0], int(fr.sum()))), logd,
+                                 self._loc[fr], self._scale[fr], np.log(self._scale[fr]))
+        return logd + self._gmm.logpdf(C[:, ~fr])
+
     def _base_inverse(self, C: np.ndarray, out: np.ndarray) -> None:
         gmm = getattr(self, "_gmm", None)
         kernels.base_inverse(C, out, self._loc, self._scale)
@@ -539,9 +564,11 @@ class AdditiveTreeDensity:
         self._check_fitted()
         X = _check_matrix(X, "score", self.n_features_in_)
         out = np.empty(X.shape[0])
+        base_only = self._density_is_base()
         for a in range(0, X.shape[0], CHUNK):
             b = min(X.shape[0], a + CHUNK)
-            _, out[a:b] = self._forward_chunk(_chunk(X, a, b, "score"))
+            C = _chunk(X, a, b, "score")
+            out[a:b] = self._base_logpdf(C) if base_only else self._forward_chunk(C)[1]
         return out
 
     def score(self, X) -> float:
@@ -597,6 +624,14 @@ class AdditiveTreeDensity:
         """Read a model written by :meth:`save`; raises ModelFileError for a bad file."""
         from .storage import load_model
         return load_model(cls, path)
+
+
+def _identity_pwl(d: int):
+    """The marginal stage's map with no trees: identity on each of d channels,
+    as (offsets, xs, ys, slopes, log_slopes) like :meth:`AdditiveTreeDensity._fit_marginals`."""
+    xs = np.tile([0.0, 1.0], d)
+    sl = np.ones(2 * d)
+    return (np.arange(0, 2 * d + 1, 2, dtype=np.int64), xs, xs.copy(), sl, np.log(sl))
 
 
 def compose_1d(forest: Forest):
