@@ -178,3 +178,33 @@ def test_file_without_base_parameter_reads_as_logistic(tmp_path):
     loaded = AdditiveTreeDensity.load(old)
     assert loaded.base == "logistic"
     np.testing.assert_array_equal(loaded.score_samples(X[:500]), model.score_samples(X[:500]))
+
+
+def test_cancel_while_fitting_the_mixture_base_keeps_a_usable_model():
+    # the progress protocol (core.progress): returning False stops cleanly; the
+    # mixture found so far is the model.  Reference: a one-component mixture is
+    # a single normal (plus the background), so the cancelled model's log density
+    # must track scipy.stats.multivariate_normal fitted to the same events.
+    from scipy import stats
+
+    rng = np.random.default_rng(3)
+    X = np.vstack([rng.normal(0.0, 1.0, size=(3000, 3)), rng.normal(4.0, 0.5, size=(1000, 3))])
+    stages = []
+
+    def progress(step, total, info):
+        if isinstance(info, dict):
+            stages.append(info["stage"])
+            return "2 components" not in info["stage"]
+        return True
+
+    model = AdditiveTreeDensity(random_state=0).fit(X, progress)
+    assert model.stopped_by_ == "cancelled" and model.n_trees_ == 0
+    assert model._gmm.n_components == 1
+    assert any("1 component" in s for s in stages)
+    full = AdditiveTreeDensity(random_state=0).fit(X)
+    assert full._gmm.n_components >= 2 and full.stopped_by_ != "cancelled"
+    ref = stats.multivariate_normal(X.mean(axis=0), np.cov(X.T)).logpdf(X)
+    got = model.score_samples(X)
+    assert np.isfinite(got).all()
+    assert np.corrcoef(got, ref)[0, 1] > 0.99
+    assert full.score(X) > model.score(X) + 0.1

@@ -49,6 +49,8 @@ from __future__ import annotations
 import math
 
 import numpy as np
+
+from ..progress import keep_going
 from . import kernels
 
 U_CLIP = 1e-15
@@ -107,6 +109,8 @@ class GaussianMixtureBase:
         self._sd = np.ascontiguousarray(diag.T)          # (d, K): conditional sd of x_j
         self._log_sd = np.log(self._sd)
         self._log_scale = np.log(self.scale)
+        #: True when :meth:`fit` was stopped through its progress callback.
+        self.cancelled = False
 
     @property
     def n_components(self) -> int:
@@ -151,7 +155,7 @@ class GaussianMixtureBase:
     @classmethod
     def fit(cls, X, loc, scale, components=DEFAULT_COMPONENTS, random_state=None,
             max_em_events: int = 50_000, max_iter: int = 100, tol: float = 1e-3,
-            n_init: int = 1, min_gain: float = 2e-3) -> "GaussianMixtureBase":
+            n_init: int = 1, min_gain: float = 2e-3, progress=None) -> "GaussianMixtureBase":
         """Fit by EM (float64) and choose the number of Gaussian components by
         held-out log-likelihood.
 
@@ -166,6 +170,12 @@ class GaussianMixtureBase:
         k-means++ restarts per count (best training log-likelihood kept).
         Covariances get ``1e-6 x`` the channel variance added on the diagonal
         (floor).
+
+        ``progress(step, total, info)`` (:mod:`core.progress`) is called before
+        each component count and after each EM iteration, with ``info`` a dict
+        whose "stage" says what runs; returning False stops the search: the
+        best mixture so far is kept (a count interrupted mid-EM is used only
+        when no count has finished).
         """
         rng = np.random.default_rng(random_state)
         X = np.asarray(X, dtype=np.float64)
@@ -181,20 +191,36 @@ class GaussianMixtureBase:
         reg = 1e-6 * np.where(var > 0, var, scale ** 2)
         bg = np.sum(_logistic_logpdf((X - loc) / scale) - np.log(scale), axis=1)
         best, best_ll = None, -np.inf
-        for k in components:
+        stopped = [False]
+        for step, k in enumerate(components):
             if best is not None and k * (d + 1) > n:
                 break  # too few events for this many components (k = 1 is always fitted)
+            stage = {"stage": f"Fitting the Gaussian-mixture base: {k} component{'s' if k > 1 else ''}"}
+
+            def going(step=step, stage=stage):
+                stopped[0] = stopped[0] or not keep_going(progress, step, len(components), stage)
+                return not stopped[0]
+
+            if best is not None and not going():
+                break
             fit_k = None
             for _ in range(max(1, int(n_init))):
-                cand = _em(X, bg, k, reg, rng, max_iter, tol)
+                cand = _em(X, bg, k, reg, rng, max_iter, tol, going)
                 if fit_k is None or cand[0] > fit_k[0]:
                     fit_k = cand
+                if stopped[0]:
+                    break
+            if stopped[0] and best is not None:
+                break
             _, w, mu, cov = fit_k
             model = cls(w, mu, cov, loc, scale)
             ll = float(model.logpdf(Xva).mean())
             if best is not None and ll <= best_ll + min_gain:
                 break
             best, best_ll = model, ll
+            if stopped[0]:
+                break
+        best.cancelled = stopped[0]
         return best
 
 
@@ -216,13 +242,14 @@ def _kmeanspp(X, k, rng):
     return np.array(centres)
 
 
-def _em(X, bg, k, reg, rng, max_iter, tol):
+def _em(X, bg, k, reg, rng, max_iter, tol, going=None):
     """EM for background + k Gaussians; returns (mean log-lik, weights, means, covs).
 
     Start: k-means++ seeding and 5 Lloyd steps; the first M step uses the hard
     labels with the background at 0.1 %.  Each iteration is one compiled pass
     over the events (E step and the M step's weighted moments,
     :func:`core.density.kernels.em_stats`), then the M step in numpy.
+    ``going()`` is asked after each iteration; False ends EM there.
     """
     n, d = X.shape
     C = _kmeanspp(X, k, rng)
@@ -267,7 +294,7 @@ def _em(X, bg, k, reg, rng, max_iter, tol):
         mu = mu + delta
         cov = M / Nk[1:, None, None] - delta[:, :, None] * delta[:, None, :]
         cov = 0.5 * (cov + np.swapaxes(cov, 1, 2)) + np.diag(reg)[None]
-        if ll - prev < tol:
+        if ll - prev < tol or (going is not None and not going()):
             break
         prev = ll
     return ll, w, mu, cov

@@ -327,7 +327,8 @@ class AdditiveTreeDensity:
             free = ~frozen
             self._gmm = GaussianMixtureBase.fit(
                 X[tr][:, free], self._loc[free], self._scale[free],
-                random_state=int(rng.integers(2 ** 31)))
+                random_state=int(rng.integers(2 ** 31)),
+                progress=lambda step, total, info: keep_going(progress, 0, int(self.n_trees), info))
         U_tr, ld_tr = self._base_forward(X[tr])
         U_va, ld_va = self._base_forward(X[va])
         self.base_heldout_loglik_ = float(ld_va.mean())
@@ -337,6 +338,9 @@ class AdditiveTreeDensity:
         self.n_trees_ = 0
         self.stopped_by_ = "n_trees"
         total = int(self.n_trees)
+        if self._gmm is not None and self._gmm.cancelled:
+            total = 0  # stopped while fitting the base: the base found so far is the model
+            self.stopped_by_ = "cancelled"
         allowed = ~frozen
         if allowed.sum() < 2:
             total = 0  # at most one free channel: the marginal stage is the whole model
