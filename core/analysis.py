@@ -22,6 +22,10 @@ the batch and :func:`analyse` all call it.
 4. evaluates the recipe's regions on the transformed values (not jittered:
    what the plots show) with the rarity;
 5. with a ``control`` file, contrasts the file with it (:mod:`core.contrast`).
+   :func:`prepare_control_file` fits the control's part once
+   (:class:`core.contrast.PreparedControl`); passing that as ``control``
+   contrasts many files with one control without refitting it (the batch
+   does so), with the same result as passing the control file.
 
 Removed events stay in every per-event array with their ``reason``
 ("saturated" / "non-finite"; "" for kept events), NaN log density and NaN
@@ -269,6 +273,27 @@ def _as_event_file(obj: Any):
     return obj
 
 
+def prepare_control_file(control: Any, recipe: Any, progress=None):
+    """The control's part of the contrast, computed once for many test files.
+
+    ``control``: an EventFile or a path; validated against ``recipe`` and
+    prepared like any analysed file (:func:`density_input`), then
+    :func:`core.contrast.prepare_control` with the recipe's engine settings and
+    seed.  Returns a :class:`core.contrast.PreparedControl` whose ``source`` is
+    the control file's path; pass it to :func:`analyse` as ``control``.
+    ``progress(step, total, info)`` goes to the control fit (False: Cancelled).
+    """
+    from .contrast import prepare_control
+    from .recipe import validate_recipe
+
+    control_file = _as_event_file(control)
+    validate_recipe(recipe, control_file)
+    c_prepared, _ = density_input(control_file, recipe)
+    engine = _engine_kwargs(recipe)
+    return prepare_control(c_prepared.matrix, engine=engine, random_state=engine["random_state"],
+                           progress=progress, source=os.fspath(control_file.path))
+
+
 def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
             alpha: float | None = None) -> Analysis:
     """Fit the recipe's density to ``event_file`` and derive rarity, rare events and regions.
@@ -278,7 +303,9 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
     ``progress(step, total, heldout_loglik) -> bool``: passed to the fit(s).
     ``control``: optional control EventFile or path; the file is then contrasted
     with it (``alpha`` the share of held-out control events allowed to pass,
-    default 0.1 %).
+    default 0.1 %).  ``control`` may also be a :class:`core.contrast.PreparedControl`
+    from :func:`prepare_control_file` with the same recipe: the control is then
+    not refitted (same result).
     """
     from .density import AdditiveTreeDensity
     from .rare import rare_events, rarity_percentile
@@ -337,20 +364,24 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
 
     if control is not None and not stopped:
         t4 = time.perf_counter()
-        from .contrast import DEFAULT_ALPHA, contrast
+        from .contrast import DEFAULT_ALPHA, PreparedControl, contrast
 
-        control_file = _as_event_file(control)
-        validate_recipe(recipe, control_file)
-        c_prepared, _ = density_input(control_file, recipe)
-        res = contrast(prepared.matrix, c_prepared.matrix, alpha=DEFAULT_ALPHA if alpha is None else alpha,
+        if isinstance(control, PreparedControl):
+            pc, c_matrix, control_path = control, None, control.source
+        else:
+            control_file = _as_event_file(control)
+            validate_recipe(recipe, control_file)
+            c_matrix = density_input(control_file, recipe)[0].matrix
+            pc, control_path = None, os.fspath(control_file.path)
+        res = contrast(prepared.matrix, c_matrix, alpha=DEFAULT_ALPHA if alpha is None else alpha,
                        engine=engine, random_state=engine["random_state"], progress=progress,
-                       test_model=model)
+                       test_model=model, prepared_control=pc)
         result.contrast = res
         result.contrast_score = np.full(n, np.nan)
         result.contrast_score[prepared.kept] = res.score
         result.enriched = np.zeros(n, dtype=bool)
         result.enriched[prepared.kept] = res.enriched
-        result.info["control"] = os.fspath(control_file.path)
+        result.info["control"] = control_path
         timing["contrast"] = time.perf_counter() - t4
     timing["total"] = time.perf_counter() - t0
     return result

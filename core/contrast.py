@@ -41,6 +41,14 @@ without cross-fitting 1.00 but at 1.5 x the false-pass rate).  The cost is K
 fits on (K-1)/K of the test events.  ``cross_fit=0`` uses one f_test
 (``test_model``, e.g. the file's own fitted model): faster, optimistic.
 
+The control's part -- the held-out split, the control density fitted on the
+fit share and its log density at the held-out events -- depends on the control
+alone, so :func:`prepare_control` computes it once (:class:`PreparedControl`)
+and ``contrast(..., prepared_control=...)`` reuses it for any number of test
+files with the same result as passing the control's values (a batch does so).
+What involves the test file (its densities, the parts of the cross-fitting,
+the held-out events' part assignment, the threshold) is computed per file.
+
 Shapes: ``test_values`` (n_test, d), ``control_values`` (n_control, d) float,
 the values the density sees (transformed, cleaned).  Rows with NaN are scored
 NaN and are never enriched.
@@ -111,6 +119,77 @@ def split_heldout(n: int, fraction: float, random_state: int = 0) -> tuple[np.nd
     return np.sort(perm[n_out:]), np.sort(perm[:n_out])
 
 
+@dataclass
+class PreparedControl:
+    """The control's part of a contrast, shared by every test file (see :func:`prepare_control`).
+
+    ``model``: density fitted to the control's fit share; ``heldout``
+    (n_heldout, d) float64: the held-out control events (finite rows only);
+    ``heldout_log_control`` (n_heldout,): ``model``'s natural-log density at
+    them; ``n_fit``: events the model was fitted on; ``heldout_fraction`` and
+    ``random_state``: the split's settings (a contrast must use the same).
+    ``source``: where the control events came from (e.g. the file's path).
+    ``info``: free-form provenance (the batch records the folder and checksums
+    it was loaded from).
+    """
+
+    model: Any
+    heldout: np.ndarray
+    heldout_log_control: np.ndarray
+    n_fit: int
+    heldout_fraction: float = DEFAULT_HELDOUT_FRACTION
+    random_state: int = 0
+    source: str = ""
+    info: dict = field(default_factory=dict)   # e.g. where it was loaded from
+
+    @property
+    def n_features(self) -> int:
+        return int(self.heldout.shape[1])
+
+
+def _control_split(control_values: np.ndarray, heldout_fraction: float, random_state: int):
+    """Finite control rows split into (fit share, held-out events), as :func:`contrast` does."""
+    C = np.asarray(control_values, dtype=np.float64)
+    if C.ndim != 2:
+        raise EventDataError(f"control events must be a 2-D array (events x channels); got shape {C.shape}")
+    C = C[np.all(np.isfinite(C), axis=1)]
+    fit_idx, out_idx = split_heldout(C.shape[0], heldout_fraction, random_state)
+    return C[fit_idx], C[out_idx]
+
+
+def prepare_control(control_values: np.ndarray, heldout_fraction: float = DEFAULT_HELDOUT_FRACTION,
+                    engine: Mapping | None = None, random_state: int = 0, progress=None,
+                    model_factory: Callable | None = None, source: str = "") -> PreparedControl:
+    """Fit the control's density once, for contrasting any number of test files with it.
+
+    ``control_values`` (n_control, d): the values the density sees; rows with
+    NaN/inf are dropped.  The held-out share (seeded by ``random_state``) is
+    set aside and scored by the model fitted on the rest -- exactly what
+    :func:`contrast` does with ``control_values``, so
+    ``contrast(T, None, prepared_control=prepare_control(C, ...))`` gives the
+    same result as ``contrast(T, C, ...)`` with the same settings.
+    ``progress(step, total, info)`` is passed to the fit; returning False
+    raises :class:`Cancelled`.
+    """
+    fit_part, held = _control_split(control_values, heldout_fraction, random_state)
+    fit = model_factory or _default_factory(engine, random_state)
+    stopped = []
+
+    def relay(step, total, info):
+        go = keep_going(progress, step, total, info)
+        if not go:
+            stopped.append(True)
+        return go
+
+    model = fit(fit_part, progress=relay)
+    if stopped:
+        raise Cancelled("contrast with the control was cancelled while fitting the control events")
+    return PreparedControl(model=model, heldout=held,
+                           heldout_log_control=np.asarray(model.score_samples(held), dtype=np.float64),
+                           n_fit=int(fit_part.shape[0]), heldout_fraction=float(heldout_fraction),
+                           random_state=int(random_state), source=str(source))
+
+
 def threshold_for_alpha(heldout_scores: np.ndarray, alpha: float) -> float:
     """Smallest threshold t with at most ``alpha`` of the scores strictly above t.
 
@@ -127,7 +206,8 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray, alpha: float =
              heldout_fraction: float = DEFAULT_HELDOUT_FRACTION, engine: Mapping | None = None,
              random_state: int = 0, progress=None, test_model: Any = None,
              model_factory: Callable | None = None, confidence_level: float = 0.95,
-             cross_fit: int | bool = 3) -> ContrastResult:
+             cross_fit: int | bool = 3, prepared_control: PreparedControl | None = None
+             ) -> ContrastResult:
     """Score test events by log f_test - log f_control and flag the enriched ones.
 
     ``cross_fit``: number of parts K >= 2 for cross-fitting the test density
@@ -136,15 +216,27 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray, alpha: float =
     ``model_factory(X, progress) -> fitted model``: how densities are fitted (default: AdditiveTreeDensity with ``engine`` keywords, seeded by
     ``random_state``).  ``progress(step, total, info)`` is passed to the fits;
     returning False raises :class:`Cancelled`.
+    ``prepared_control``: the control's part computed once by
+    :func:`prepare_control` (same ``heldout_fraction`` and ``random_state``);
+    ``control_values`` is then not used and may be None.
     """
     if not 0.0 < alpha < 1.0:
         raise EventDataError(f"alpha (the share of control events allowed to pass) must be between 0 and 1; got {alpha}")
     T = np.asarray(test_values, dtype=np.float64)
-    C = np.asarray(control_values, dtype=np.float64)
-    if T.ndim != 2 or C.ndim != 2 or T.shape[1] != C.shape[1]:
-        raise EventDataError(f"test and control need the same channels; got shapes {T.shape} and {C.shape}")
+    if prepared_control is not None:
+        pc = prepared_control
+        if pc.heldout_fraction != float(heldout_fraction) or pc.random_state != int(random_state):
+            raise EventDataError(
+                f"the prepared control was split with held-out share {pc.heldout_fraction} and seed "
+                f"{pc.random_state}, but this contrast asks for {heldout_fraction} and {random_state}; "
+                "prepare the control again with the same settings")
+        C_shape = (int(pc.n_fit) + pc.heldout.shape[0], pc.heldout.shape[1])
+    else:
+        C = np.asarray(control_values, dtype=np.float64)
+        C_shape = C.shape
+    if T.ndim != 2 or len(C_shape) != 2 or T.shape[1] != C_shape[1]:
+        raise EventDataError(f"test and control need the same channels; got shapes {T.shape} and {C_shape}")
     t_ok = np.all(np.isfinite(T), axis=1)
-    C = C[np.all(np.isfinite(C), axis=1)]
     fit = model_factory or _default_factory(engine, random_state)
 
     stopped = []
@@ -156,8 +248,10 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray, alpha: float =
         return go
 
     Tk = T[t_ok]
-    fit_idx, out_idx = split_heldout(C.shape[0], heldout_fraction, random_state)
-    held = C[out_idx]
+    if prepared_control is not None:
+        fit_part, held = None, prepared_control.heldout
+    else:
+        fit_part, held = _control_split(C, heldout_fraction, random_state)
     rng = np.random.default_rng([random_state, 1])
     folds = DEFAULT_FOLDS if cross_fit is True else int(cross_fit or 0)
     if folds >= 2:
@@ -178,9 +272,16 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray, alpha: float =
             test_model = fit(Tk, progress=relay)
             if stopped:
                 raise Cancelled("contrast with the control was cancelled while fitting the test events")
-    control_model = fit(C[fit_idx], progress=relay)
-    if stopped:
-        raise Cancelled("contrast with the control was cancelled while fitting the control events")
+    if prepared_control is not None:
+        control_model = prepared_control.model
+        held_log_control = np.asarray(prepared_control.heldout_log_control, dtype=np.float64)
+        n_fit = int(prepared_control.n_fit)
+    else:
+        control_model = fit(fit_part, progress=relay)
+        if stopped:
+            raise Cancelled("contrast with the control was cancelled while fitting the control events")
+        held_log_control = np.asarray(control_model.score_samples(held), dtype=np.float64)
+        n_fit = int(fit_part.shape[0])
 
     def log_test(X, fold):
         if fold is None:
@@ -193,8 +294,7 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray, alpha: float =
                 out[sel] = model.score_samples(X[sel])
         return out
 
-    held_scores = log_test(held, fold_h) - \
-        np.asarray(control_model.score_samples(held), dtype=np.float64)
+    held_scores = log_test(held, fold_h) - held_log_control
     thr = threshold_for_alpha(held_scores, alpha)
     score = np.full(T.shape[0], np.nan)
     score[t_ok] = log_test(Tk, fold_t) - \
@@ -209,6 +309,7 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray, alpha: float =
                           share=count / n if n else float("nan"),
                           share_ci=(float(ci.low), float(ci.high)) if ci else (float("nan"),) * 2,
                           alpha=float(alpha), control_pass_share=pass_share,
-                          n_control_heldout=int(out_idx.size), expected_false=pass_share * n,
+                          n_control_heldout=int(held.shape[0]), expected_false=pass_share * n,
                           test_model=test_model, control_model=control_model,
-                          info={"n_test": n, "n_control_fit": int(fit_idx.size)})
+                          info={"n_test": n, "n_control_fit": n_fit,
+                                "control_prepared": prepared_control is not None})

@@ -5,6 +5,7 @@ source file's raw values; the summary CSV is read back with pandas.
 """
 
 import io
+import json
 import os
 
 import fcsparser
@@ -15,6 +16,7 @@ import pytest
 from core import RESEARCH_USE_NOTE
 from core.analysis import analyse
 from core.batch import DONE_NAME, TerminalProgress, file_out_dir, main, run_batch
+from core.errors import EventDataError
 from core.fcs import read_fcs, write_fcs
 from core.recipe import Recipe, load_recipe
 
@@ -210,3 +212,175 @@ def test_terminal_progress_prints_counts_and_eta():
     bar(2, 4, {"file": "b.fcs", "status": "error"})
     text = buf.getvalue()
     assert "1/4 files" in text and "2/4 files, 1 failed" in text and "ETA" in text
+
+
+# ---------------------------------------------------------------------------
+# the control's part of the contrast is prepared once per batch
+# ---------------------------------------------------------------------------
+
+def write_control(path, n=3000, seed=50):
+    """Events like make_events but without the small rare population (a control lacks it)."""
+    data = make_events(n, seed)
+    rng = np.random.default_rng(seed + 1)
+    k = max(3, n // 500)
+    data[:k, 4] = np.round(rng.lognormal(5.5, 0.5, k))
+    write_fcs(str(path), data, list(CHANNELS), channel_ranges=[RANGE] * len(CHANNELS))
+
+
+@pytest.fixture(scope="module")
+def control_folder(tmp_path_factory):
+    base = tmp_path_factory.mktemp("batch_control")
+    inp = base / "in"
+    inp.mkdir()
+    write_events(inp / "p1.fcs", n=1500, seed=21)
+    write_events(inp / "p2.fcs", n=2000, seed=22)
+    write_control(base / "control one.fcs", n=2000, seed=50)
+    write_control(base / "control two.fcs", n=2000, seed=60)
+    recipe = small_recipe(regions=[])
+    # reference: the existing per-file path, analyse() with the control FILE (refits the control)
+    reference = {name: {c: analyse(str(inp / name), recipe, control=str(base / c)).contrast.count
+                        for c in ("control one.fcs", "control two.fcs")}
+                 for name in ("p1.fcs", "p2.fcs")}
+    return base, inp, recipe, reference
+
+
+def test_contrast_with_a_prepared_control_equals_the_contrast_with_the_control_values():
+    # reference: contrast() given the control's values (the per-file path) on seeded normal events
+    from core.contrast import contrast, prepare_control
+
+    rng = np.random.default_rng(7)
+    C = rng.normal(size=(1500, 3))
+    C[5, 1] = np.nan                                   # dropped from the control like contrast() does
+    T = np.vstack([rng.normal(size=(1200, 3)), rng.normal(4.0, 0.2, size=(30, 3))])
+    engine = dict(SMALL_ENGINE)
+    direct = contrast(T, C, engine=engine)
+    pc = prepare_control(C, engine=engine)
+    shared = contrast(T, None, engine=engine, prepared_control=pc)
+    # the per-file result (control values given) is reproduced exactly
+    np.testing.assert_array_equal(shared.score, direct.score)
+    assert shared.threshold == direct.threshold and shared.count == direct.count > 0
+    assert shared.n_control_heldout == direct.n_control_heldout == round(0.3 * 1499)
+    assert shared.info["n_control_fit"] == direct.info["n_control_fit"] == 1499 - round(0.3 * 1499)
+    with pytest.raises(EventDataError, match="prepared control"):   # split settings must match
+        contrast(T, None, engine=engine, prepared_control=pc, heldout_fraction=0.2)
+
+
+def test_batch_with_a_control_prepares_it_once_and_workers_use_it(control_folder, tmp_path):
+    base, inp, recipe, reference = control_folder
+    out = tmp_path / "o"
+    ctrl = str(base / "control one.fcs")
+    res = run_batch(str(inp), str(out), recipe=recipe, control=ctrl, workers=2)
+    assert [r["status"] for r in res.rows] == ["ok", "ok"], res.rows
+    assert res.info["control_prepared"] == "built"
+    assert all(reference[n]["control one.fcs"] > 0 for n in ("p1.fcs", "p2.fcs"))  # something to compare
+    # same enriched counts as the per-file analysis with the control file
+    assert {r["file"]: r["enriched"] for r in res.rows} == {n: reference[n]["control one.fcs"]
+                                                            for n in ("p1.fcs", "p2.fcs")}
+    summary = pd.read_csv(out / "summary.csv").set_index("file")
+    assert int(summary.loc["p2.fcs", "enriched"]) == reference["p2.fcs"]["control one.fcs"]
+    # one control model for the whole batch, and each worker's task loaded that one
+    folder = res.info["control_dir"]
+    assert sorted(os.listdir(folder)) == ["control.json", "heldout.npz", "model.npz"]
+    meta = json.loads(open(os.path.join(folder, "control.json"), encoding="utf-8").read())
+    assert meta["control"] == os.path.abspath(ctrl)
+    for name in ("p1.fcs", "p2.fcs"):
+        with open(os.path.join(file_out_dir(str(out), name), DONE_NAME), encoding="utf-8") as fh:
+            used = json.load(fh)["control_prepared"]
+        assert used["folder"] == folder and used["sha256"] == meta["sha256"]
+
+
+def test_control_is_fitted_once_per_batch_not_once_per_file(control_folder, tmp_path, monkeypatch):
+    from core.density import AdditiveTreeDensity
+
+    base, inp, recipe, reference = control_folder
+    sizes = []
+    real_fit = AdditiveTreeDensity.fit
+
+    def counting_fit(self, X, *args, **kwargs):
+        sizes.append(int(np.asarray(X).shape[0]))
+        return real_fit(self, X, *args, **kwargs)
+
+    monkeypatch.setattr(AdditiveTreeDensity, "fit", counting_fit)
+    ctrl = str(base / "control two.fcs")
+    res = run_batch(str(inp), str(tmp_path / "o"), recipe=recipe, control=ctrl, workers=1)
+    assert {r["file"]: r["enriched"] for r in res.rows} == {n: reference[n]["control two.fcs"]
+                                                            for n in ("p1.fcs", "p2.fcs")}
+    # the control keeps 1995 events after cleaning (5 saturated); its fit share is 70 % of them
+    control_fit = 1995 - round(0.3 * 1995)
+    assert sizes.count(control_fit) == 1
+    # per file: its own model and 3 cross-fitted test densities, no control fit
+    assert len(sizes) == 1 + 2 * (1 + 3)
+
+
+def test_rerun_reuses_the_prepared_control_and_rebuilds_it_for_another_control(control_folder, tmp_path):
+    from core.batch import CONTROL_DIR, load_prepared_control
+
+    base, inp, recipe, reference = control_folder
+    out = tmp_path / "o"
+    one, two = str(base / "control one.fcs"), str(base / "control two.fcs")
+    res = run_batch(str(inp), str(out), recipe=recipe, control=one, workers=1)
+    folder = res.info["control_dir"]
+    model = os.path.join(folder, "model.npz")
+    stamp = os.stat(model).st_mtime_ns
+    # one file to redo, same recipe and control: the prepared control is reused as it is
+    os.unlink(os.path.join(file_out_dir(str(out), "p1.fcs"), DONE_NAME))
+    res = run_batch(str(inp), str(out), recipe=recipe, control=one, workers=1)
+    assert res.n_skipped == 1 and res.info["control_prepared"] == "reused"
+    assert os.stat(model).st_mtime_ns == stamp
+    assert res.rows[0]["enriched"] == reference["p1.fcs"]["control one.fcs"]
+    # another control: every file is redone and the prepared control rebuilt for it
+    res = run_batch(str(inp), str(out), recipe=recipe, control=two, workers=1)
+    assert res.n_skipped == 0 and res.info["control_prepared"].startswith("rebuilt")
+    assert "control" in res.info["control_prepared"]
+    assert load_prepared_control(os.path.join(str(out), CONTROL_DIR)).source == os.path.abspath(two)
+    assert [r["enriched"] for r in res.rows] == [reference[n]["control two.fcs"] for n in ("p1.fcs", "p2.fcs")]
+
+
+def test_damaged_prepared_control_gives_a_clear_error_and_is_rebuilt(control_folder, tmp_path):
+    from core.batch import CONTROL_DIR, control_key, load_prepared_control, process_file
+    from core.errors import ModelFileError
+    from core.recipe import recipe_digest
+
+    base, inp, recipe, reference = control_folder
+    out = tmp_path / "o"
+    one = str(base / "control one.fcs")
+    run_batch(str(inp), str(out), recipe=recipe, control=one, workers=1)
+    folder = os.path.join(str(out), CONTROL_DIR)
+    key = control_key(one, recipe_digest(recipe))
+    good = (tmp_path / "good.npz")
+    good.write_bytes(open(os.path.join(folder, "model.npz"), "rb").read())
+    for name, damage in [("model.npz", lambda b: b[: len(b) // 2]),
+                         ("heldout.npz", lambda b: b[:-7] + b"garbage"),
+                         ("control.json", lambda b: b"{not json")]:
+        path = os.path.join(folder, name)
+        original = open(path, "rb").read()
+        with open(path, "wb") as fh:
+            fh.write(damage(original))
+        with pytest.raises(ModelFileError, match="prepared control"):
+            load_prepared_control(folder, key)
+        # a task given the damaged folder reports it in its row instead of crashing
+        row = process_file({"path": str(inp / "p1.fcs"), "out_dir": str(out), "recipe": recipe.to_dict(),
+                            "digest": recipe_digest(recipe), "control": os.path.abspath(one),
+                            "control_prepared": folder, "control_key": key})
+        assert row["status"] == "error" and "prepared control" in row["message"], row
+        with open(path, "wb") as fh:
+            fh.write(original)
+    # a damaged folder is rebuilt by the next batch, with the same results
+    os.unlink(os.path.join(file_out_dir(str(out), "p2.fcs"), DONE_NAME))
+    with open(os.path.join(folder, "model.npz"), "r+b") as fh:
+        fh.seek(200)
+        fh.write(b"\x00" * 16)
+    res = run_batch(str(inp), str(out), recipe=recipe, control=one, workers=1)
+    assert res.info["control_prepared"].startswith("rebuilt") and "checksum" in res.info["control_prepared"]
+    assert res.rows[1]["enriched"] == reference["p2.fcs"]["control one.fcs"]
+    assert open(os.path.join(folder, "model.npz"), "rb").read() == good.read_bytes()
+
+
+def test_unreadable_control_marks_every_file_with_the_reason(control_folder, tmp_path):
+    base, inp, recipe, _ = control_folder
+    bad = tmp_path / "bad control.fcs"
+    bad.write_bytes(b"FCS3.1    garbage")
+    res = run_batch(str(inp), str(tmp_path / "o"), recipe=recipe, control=str(bad), workers=1)
+    assert res.exit_code == 1 and res.info["control_prepared"] == "failed"
+    assert [r["status"] for r in res.rows] == ["error", "error"]
+    assert all("bad control.fcs" in r["message"] for r in res.rows)
