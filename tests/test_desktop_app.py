@@ -185,9 +185,29 @@ def test_open_fit_rarity_regions_export(qtbot, window, tmp_path, messages):
     assert len(rows) - 1 == window.rare_count()
 
 
-def test_cancel_keeps_previous_state(qtbot, window, tmp_path):
+def test_cancel_keeps_previous_state(qtbot, window, tmp_path, monkeypatch):
+    # A fit that keeps reporting progress until it is asked to stop (the real
+    # engine fits this small file faster than the cancel can arrive), then
+    # returns a usable model like the engine does when cancelled.
+    import time
+
+    from core.density import AdditiveTreeDensity
+    from core.progress import keep_going
+
+    real_fit = AdditiveTreeDensity.fit
+
+    def fit_until_cancelled(self, X, progress=None):
+        for step in range(100_000):
+            if not keep_going(progress, step, 100_000, -1.0):
+                break
+            time.sleep(0.005)
+        self.set_params(n_trees=0)
+        real_fit(self, X)
+        self.stopped_by_ = "cancelled"
+        return self
+
+    monkeypatch.setattr(AdditiveTreeDensity, "fit", fit_until_cancelled)
     window.open_paths([make_fcs(tmp_path / "t.fcs")])
-    window.fit_panel.set_engine_settings({"n_trees": 2000, "max_depth": 3})
     with qtbot.waitSignal(window.fitEnded, timeout=120_000) as blocker:
         window.start_fit()
         qtbot.waitUntil(lambda: window.fit_panel.progress.maximum() > 0 or not window.fit_running(), timeout=60_000)

@@ -104,7 +104,12 @@ class FitPanel(QWidget):
             self.curve_plot.getAxis(ax).setPen(style.INK_SOFT)
         self.curve_plot.setToolTip("Mean log-likelihood of held-out events (nats per event) after each "
                                    "tree: it rises while the fit improves and flattens when it is done.")
-        self.curve = self.curve_plot.plot([], [], pen=pg.mkPen(style.MOSS, width=2))
+        self.curve = self.curve_plot.plot([], [], pen=pg.mkPen(style.MOSS, width=2), connect="finite")
+        # the kept model's held-out value: layers that did not beat it were rolled back
+        self.kept_line = pg.InfiniteLine(angle=0, movable=False,
+                                         pen=pg.mkPen(style.INK_SOFT, width=1, style=Qt.DashLine))
+        self.kept_line.setVisible(False)
+        self.curve_plot.addItem(self.kept_line)
         lay.addWidget(self.curve_plot, 1)
         self._xs: list[int] = []
         self._ys: list[float] = []
@@ -132,6 +137,8 @@ class FitPanel(QWidget):
     def started(self) -> None:
         self._xs, self._ys = [], []
         self.curve.setData([], [])
+        self.kept_line.setVisible(False)
+        self.curve_plot.setLabel("bottom", "trees")
         self.progress.setRange(0, 0)
         self.fit_button.setEnabled(False)
         self.cancel_button.setEnabled(True)
@@ -145,9 +152,13 @@ class FitPanel(QWidget):
         if isinstance(info, dict) and "stage" in info:
             self.status.setText(str(info["stage"]))
         if isinstance(ll, (int, float, np.floating)) and np.isfinite(ll):
+            if self._xs and np.isfinite(self._xs[-1]) and int(step) <= self._xs[-1]:
+                # a new layer starts again from the kept trees: a separate segment
+                self._xs.append(np.nan)
+                self._ys.append(np.nan)
             self._xs.append(int(step))
             self._ys.append(float(ll))
-            self.curve.setData(self._xs, self._ys)
+            self.curve.setData(np.array(self._xs, float), np.array(self._ys, float))
             self.status.setText(f"Tree {step}" + (f" of at most {total}" if total else "")
                                 + f": held-out log-likelihood {ll:.3f} nats per event")
 
@@ -161,5 +172,14 @@ class FitPanel(QWidget):
     def show_curve(self, curve) -> None:
         """Show a finished fit's learning curve (held-out log-likelihood per tree)."""
         ys = np.asarray(curve if curve is not None else [], dtype=np.float64).ravel()
-        xs = np.arange(1, ys.size + 1)
+        xs = np.arange(1, ys.size + 1, dtype=np.float64)
+        # a return to the best value so far is a roll-back to the kept trees (the
+        # engine appends the kept value): break the line there instead of drawing a jump
+        best = np.maximum.accumulate(ys) if ys.size else ys
+        back = np.flatnonzero((ys[1:] == best[:-1]) & (ys[:-1] < ys[1:])) + 1 if ys.size > 1 else []
+        xs, ys = np.insert(xs, back, np.nan), np.insert(ys, back, np.nan)
         self.curve.setData(xs, ys)
+        self.curve_plot.setLabel("bottom", "fit steps")
+        if ys.size:
+            self.kept_line.setValue(float(ys[-1]))  # the last entry is the kept model's value
+            self.kept_line.setVisible(True)
