@@ -132,6 +132,23 @@ def test_levels_of_a_fitted_model_match_quadrature_of_its_own_density(truth):
     again = hdr_levels(pdn.model, MASSES, random_state=1)
     for m, v in zip(MASSES, again):
         assert abs(np.exp(v - exact[m]) - 1) < 0.015, (m, v, exact[m])
+    # Over several seeds, the Sobol levels are much closer to the quadrature
+    # than levels from as many pseudo-random draws (the model's ``sample``):
+    # rms error in density over 6 seeds of the draws, 2**15 each.
+    class SamplerOnly:  # the model seen through sample / score_samples only
+        sample = staticmethod(pdn.model.sample)
+        score_samples = staticmethod(pdn.model.score_samples)
+
+    truth_levels = np.array([exact[m] for m in MASSES])
+    seeds = range(10, 16)
+    sob = np.array([hdr_levels(pdn.model, MASSES, 1 << 15, random_state=s) for s in seeds])
+    rnd = np.array([hdr_levels(SamplerOnly(), MASSES, 1 << 15, random_state=s) for s in seeds])
+    err_sob = np.sqrt(np.mean((np.exp(sob - truth_levels) - 1) ** 2, axis=0))
+    err_rnd = np.sqrt(np.mean((np.exp(rnd - truth_levels) - 1) ** 2, axis=0))
+    # measured 2026-12-02 (four blocks of 6 seeds): 0.03-0.06 / 0.08-0.34 /
+    # 0.4-1.6 % at 50 / 90 / 99 % (Sobol) vs 0.4-0.8 / 1.0-2.0 / 2.4-6.3 %
+    # (random), ratio 0.04-0.33
+    assert np.all(err_sob < 0.6 * err_rnd), (err_sob, err_rnd)
 
 
 def test_heldout_events_inside_each_contour_share_nominal(fitted):
