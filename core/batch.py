@@ -73,7 +73,7 @@ from typing import Any, Callable, Sequence
 
 from . import RESEARCH_USE_NOTE, SOFTWARE_NAME, __version__
 from .atomic import atomic_write
-from .errors import BoscageError, ModelFileError, RecipeError
+from .errors import BoscageError, Cancelled, ModelFileError, RecipeError
 from .progress import keep_going
 
 SUMMARY_NAME = "summary.csv"
@@ -287,13 +287,14 @@ def load_prepared_control(folder: str, key: dict | None = None):
 
 
 def ensure_prepared_control(out_dir: str, control: str, recipe: Any, digest: str,
-                            force: bool = False) -> tuple[str, dict, str]:
+                            force: bool = False, progress: Callable | None = None) -> tuple[str, dict, str]:
     """The batch's prepared control folder, reused when valid, otherwise (re)built.
 
     Returns ``(folder, key, how)`` with ``how`` "reused", "built" or
     "rebuilt: <reason>".  Raises what preparing the control raises
     (:class:`BoscageError` for an unreadable control or one without the
-    recipe's channels).
+    recipe's channels).  ``progress(step, total, info)`` goes to the control
+    fit; returning False raises :class:`Cancelled`.
     """
     from .analysis import prepare_control_file
 
@@ -309,7 +310,7 @@ def ensure_prepared_control(out_dir: str, control: str, recipe: Any, digest: str
                 return folder, key, "reused"
             except ModelFileError as exc:
                 how = f"rebuilt: {exc}"
-    prepared = prepare_control_file(control, recipe)
+    prepared = prepare_control_file(control, recipe, progress=progress)
     save_prepared_control(prepared, folder, key)
     return folder, key, how
 
@@ -550,10 +551,20 @@ def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | N
     control_how = None
     if control is not None and todo and not stop:
         problem = None
+        t_control = time.perf_counter()
+        last = [t_control]
+
+        def control_progress(step, tot, info):  # lets the caller stop during the control fit
+            now = time.perf_counter()
+            if now - last[0] < 5.0:
+                return True
+            last[0] = now
+            return keep_going(progress, len(rows), total, None)
+
         try:
             control_dir, key, control_how = ensure_prepared_control(out_dir, control, recipe_obj, digest,
-                                                                     force=force)
-        except KeyboardInterrupt:
+                                                                     force=force, progress=control_progress)
+        except (KeyboardInterrupt, Cancelled):
             interrupted = True
         except BoscageError as exc:
             problem = str(exc)
@@ -568,6 +579,9 @@ def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | N
                           "message": f"the control could not be prepared: {problem}"}, p)
         if problem is not None or interrupted:
             todo = []
+        control_seconds = round(time.perf_counter() - t_control, 3)
+    else:
+        control_seconds = 0.0
     tasks = [{"path": os.path.abspath(p), "out_dir": os.path.abspath(out_dir), "recipe": recipe_obj.to_dict(),
               "recipe_source": getattr(recipe_obj, "source", None), "digest": digest, "control": control,
               "control_prepared": os.path.abspath(control_dir) if control_dir else None, "control_key": key,
@@ -603,7 +617,7 @@ def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | N
     return BatchResult(rows=ordered, out_dir=out_dir, summary_path=summary_path, recipe=recipe_obj,
                        n_skipped=n_skipped, interrupted=interrupted, seconds=time.perf_counter() - t_start,
                        info={"workers": workers, "numba_threads": threads, "scheduler": scheduler,
-                             "control_prepared": control_how,
+                             "control_prepared": control_how, "control_seconds": control_seconds,
                              "control_dir": os.path.abspath(control_dir) if control_dir else None})
 
 

@@ -384,3 +384,15 @@ def test_unreadable_control_marks_every_file_with_the_reason(control_folder, tmp
     assert res.exit_code == 1 and res.info["control_prepared"] == "failed"
     assert [r["status"] for r in res.rows] == ["error", "error"]
     assert all("bad control.fcs" in r["message"] for r in res.rows)
+
+
+def test_dask_workers_load_the_prepared_control(control_folder, tmp_path):
+    distributed = pytest.importorskip("distributed")
+    base, inp, recipe, reference = control_folder
+    ctrl = str(base / "control one.fcs")
+    with distributed.LocalCluster(n_workers=1, processes=False, dashboard_address=None) as cluster:
+        res = run_batch(str(inp), str(tmp_path / "o"), recipe=recipe, control=ctrl,
+                        scheduler=cluster.scheduler_address)
+    assert [r["enriched"] for r in res.rows] == [reference[n]["control one.fcs"] for n in ("p1.fcs", "p2.fcs")]
+    with open(os.path.join(file_out_dir(str(tmp_path / "o"), "p1.fcs"), DONE_NAME), encoding="utf-8") as fh:
+        assert json.load(fh)["control_prepared"]["folder"] == res.info["control_dir"]
