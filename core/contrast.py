@@ -147,6 +147,18 @@ class PreparedControl:
         return int(self.heldout.shape[1])
 
 
+def _stop_relay(progress) -> tuple[Callable, list]:
+    """A progress relay for fits and the list it marks when ``progress`` asked to stop."""
+    stopped: list[bool] = []
+
+    def relay(step, total, info):
+        go = keep_going(progress, step, total, info)
+        if not go:
+            stopped.append(True)
+        return go
+    return relay, stopped
+
+
 def _control_split(control_values: np.ndarray, heldout_fraction: float, random_state: int):
     """Finite control rows split into (fit share, held-out events), as :func:`contrast` does."""
     C = np.asarray(control_values, dtype=np.float64)
@@ -173,14 +185,7 @@ def prepare_control(control_values: np.ndarray, heldout_fraction: float = DEFAUL
     """
     fit_part, held = _control_split(control_values, heldout_fraction, random_state)
     fit = model_factory or _default_factory(engine, random_state)
-    stopped = []
-
-    def relay(step, total, info):
-        go = keep_going(progress, step, total, info)
-        if not go:
-            stopped.append(True)
-        return go
-
+    relay, stopped = _stop_relay(progress)
     model = fit(fit_part, progress=relay)
     if stopped:
         raise Cancelled("contrast with the control was cancelled while fitting the control events")
@@ -238,20 +243,12 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray, alpha: float =
         raise EventDataError(f"test and control need the same channels; got shapes {T.shape} and {C_shape}")
     t_ok = np.all(np.isfinite(T), axis=1)
     fit = model_factory or _default_factory(engine, random_state)
-
-    stopped = []
-
-    def relay(step, total, info):
-        go = keep_going(progress, step, total, info)
-        if not go:
-            stopped.append(True)
-        return go
+    relay, stopped = _stop_relay(progress)
 
     Tk = T[t_ok]
-    if prepared_control is not None:
-        fit_part, held = None, prepared_control.heldout
-    else:
-        fit_part, held = _control_split(C, heldout_fraction, random_state)
+    # only the held-out events' count is needed before the test fits (part assignment)
+    held = (prepared_control.heldout if prepared_control is not None
+            else _control_split(C, heldout_fraction, random_state)[1])
     rng = np.random.default_rng([random_state, 1])
     folds = DEFAULT_FOLDS if cross_fit is True else int(cross_fit or 0)
     if folds >= 2:
@@ -272,16 +269,15 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray, alpha: float =
             test_model = fit(Tk, progress=relay)
             if stopped:
                 raise Cancelled("contrast with the control was cancelled while fitting the test events")
-    if prepared_control is not None:
-        control_model = prepared_control.model
-        held_log_control = np.asarray(prepared_control.heldout_log_control, dtype=np.float64)
-        n_fit = int(prepared_control.n_fit)
+    if prepared_control is None:  # the per-file path: the control's part, fitted here
+        prepared_control = prepare_control(C, heldout_fraction=heldout_fraction, random_state=random_state,
+                                           progress=progress, model_factory=fit)
+        shared = False
     else:
-        control_model = fit(fit_part, progress=relay)
-        if stopped:
-            raise Cancelled("contrast with the control was cancelled while fitting the control events")
-        held_log_control = np.asarray(control_model.score_samples(held), dtype=np.float64)
-        n_fit = int(fit_part.shape[0])
+        shared = True
+    control_model = prepared_control.model
+    held_log_control = np.asarray(prepared_control.heldout_log_control, dtype=np.float64)
+    n_fit = int(prepared_control.n_fit)
 
     def log_test(X, fold):
         if fold is None:
@@ -312,4 +308,4 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray, alpha: float =
                           n_control_heldout=int(held.shape[0]), expected_false=pass_share * n,
                           test_model=test_model, control_model=control_model,
                           info={"n_test": n, "n_control_fit": n_fit,
-                                "control_prepared": prepared_control is not None})
+                                "control_prepared": shared})
