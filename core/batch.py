@@ -32,8 +32,11 @@ and ``control.json`` (written last: recipe digest, control path, size and
 modification time, software version, split settings and SHA-256 of the two
 arrays files).  Every file's task loads it by path (worker processes and Dask
 workers alike) and fits only its own densities: the file's model and the
-cross-fitted test densities, about three fits per file instead of four,
-with the same results as analysing each file with the control file.  A
+three cross-fitted test densities (on 2/3 of its events each), about three
+full-size fits per file instead of four, with the same results as analysing
+each file with the control file.  The control's fit runs before any file
+starts (``BatchResult.info["control_seconds"]``); a caller's ``progress``
+is called at most every 5 s meanwhile and may stop it.  A
 re-run reuses the prepared control when recipe digest, control file and
 software version match; otherwise, with ``--force``, or when the folder is
 damaged, it is rebuilt.  If the control cannot be prepared (unreadable,
@@ -55,7 +58,9 @@ files).  Each worker limits numba to ``cores // workers`` threads (at least 1)
 so processes x threads do not oversubscribe the machine.  ``--workers 1``
 runs in this process.  ``--scheduler ADDRESS`` runs the same task function on
 an existing Dask distributed cluster (``pip install "boscage[cluster]"``); the
-workers must see the same file paths, since files travel as paths, not arrays.
+workers must see the same file paths (inputs, control and the output folder,
+where the prepared control is read from), since files travel as paths, not
+arrays.
 """
 
 from __future__ import annotations
@@ -463,6 +468,9 @@ summary.csv     one row per input file: events, events kept after cleaning,
                 and 'cleaning flag' (0 kept, 1 saturated, 2 non-finite;
                 removed events have log density 0 and rarity -1), and
                 'done.json' (lets a re-run skip the file).
+.prepared-control/  with a control: the control's density and held-out
+                events, fitted once for all files; rebuilt when the recipe
+                or the control file changes.
 
 Recipe used:
 {json.dumps(recipe.to_dict(), indent=2, sort_keys=True)}
