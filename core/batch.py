@@ -20,8 +20,9 @@ the recipe's regions; then, in ``OUT_DIR/<file stem>/``:
   with ``--control`` every file is contrasted with the control
   (:mod:`core.contrast`);
 * ``done.json`` -- the file's summary row, the recipe digest and the input
-  file's size and modification time: a re-run skips files whose marker
-  matches (unless ``--force``); changed inputs or recipes are redone.
+  file's size and modification time (and the control file's path, size and
+  modification time): a re-run skips files whose marker matches (unless
+  ``--force``); changed inputs, recipes or controls are redone.
 
 With ``--control`` the control's part of the contrast (its density fitted
 on the fit share, its held-out events and their log density under it) is
@@ -157,6 +158,7 @@ def process_file(task: dict) -> dict:
         row["seconds"] = round(time.perf_counter() - t0, 3)
         with atomic_write(os.path.join(folder, DONE_NAME), "w", overwrite=True, encoding="utf-8") as fh:
             json.dump({"row": row, "recipe_digest": task["digest"], "control": task.get("control"),
+                       "control_source": _source_stamp(task["control"]) if task.get("control") else None,
                        "control_prepared": used, "source": _source_stamp(path)}, fh, indent=1)
     except KeyboardInterrupt:
         raise
@@ -410,6 +412,7 @@ def _finished_row(out_dir: str, path: str, digest: str, control: str | None) -> 
         with open(marker, encoding="utf-8") as fh:
             done = json.load(fh)
         if (done.get("recipe_digest") == digest and done.get("control") == control
+                and done.get("control_source") == (_source_stamp(control) if control else None)
                 and done.get("source") == _source_stamp(path) and done["row"].get("status") == "ok"):
             return dict(done["row"])
     except (OSError, ValueError, KeyError, TypeError, AttributeError):

@@ -334,6 +334,14 @@ def test_rerun_reuses_the_prepared_control_and_rebuilds_it_for_another_control(c
     assert "control" in res.info["control_prepared"]
     assert load_prepared_control(os.path.join(str(out), CONTROL_DIR)).source == os.path.abspath(two)
     assert [r["enriched"] for r in res.rows] == [reference[n]["control two.fcs"] for n in ("p1.fcs", "p2.fcs")]
+    # the same control path with a new modification time counts as another control too
+    os.utime(two, ns=(os.stat(two).st_atime_ns, os.stat(two).st_mtime_ns + 10**9))
+    try:
+        res = run_batch(str(inp), str(out), recipe=recipe, control=two, workers=1)
+        assert res.n_skipped == 0 and res.info["control_prepared"].startswith("rebuilt")
+        assert "source" in res.info["control_prepared"]
+    finally:
+        os.utime(two, ns=(os.stat(two).st_atime_ns, os.stat(two).st_mtime_ns - 10**9))
 
 
 def test_damaged_prepared_control_gives_a_clear_error_and_is_rebuilt(control_folder, tmp_path):
