@@ -356,6 +356,13 @@ class AdditiveTreeDensity:
             look = max(1, min(look, int(math.floor(math.log2(nodes + 1.0)))))
         done = 0
         n_layers = max(1, int(self.n_layers)) if total else 1
+        if self.stopped_by_ == "cancelled":
+            # stopped while fitting the mixture: it is the whole model, and the
+            # caller is not asked again
+            n_layers = 0
+            self._layers.append((None, _identity_pwl(d), Forest()))
+            self.n_marginal_trees_ = np.zeros(d, np.int64)
+            curve.append(float(ld_va.mean()))
         for layer in range(n_layers):
             # after a Gaussian-mixture base the first layer must pay for itself too
             start_ll = float(ld_va.mean()) if layer or self._gmm is not None else -np.inf
