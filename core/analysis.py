@@ -47,7 +47,7 @@ from typing import Any, Mapping
 import numpy as np
 
 from .errors import ChannelError, EventDataError, RecipeError
-from .progress import keep_going
+from .progress import stop_relay
 
 
 # ---------------------------------------------------------------------------
@@ -324,13 +324,7 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
                              "after cleaning; at least 50 are needed to fit a density")
     timing["prepare"] = time.perf_counter() - t0
 
-    stopped: list[bool] = []
-
-    def relay(step, total, info):
-        go = keep_going(progress, step, total, info)
-        if not go:
-            stopped.append(True)
-        return go
+    relay, stopped = stop_relay(progress)
 
     t1 = time.perf_counter()
     engine = _engine_kwargs(recipe)

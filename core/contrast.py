@@ -63,7 +63,7 @@ import numpy as np
 from scipy import stats
 
 from .errors import Cancelled, EventDataError
-from .progress import keep_going
+from .progress import stop_relay
 
 DEFAULT_ALPHA = 0.001
 DEFAULT_HELDOUT_FRACTION = 0.3
@@ -147,18 +147,6 @@ class PreparedControl:
         return int(self.heldout.shape[1])
 
 
-def _stop_relay(progress) -> tuple[Callable, list]:
-    """A progress relay for fits and the list it marks when ``progress`` asked to stop."""
-    stopped: list[bool] = []
-
-    def relay(step, total, info):
-        go = keep_going(progress, step, total, info)
-        if not go:
-            stopped.append(True)
-        return go
-    return relay, stopped
-
-
 def _control_split(control_values: np.ndarray, heldout_fraction: float, random_state: int):
     """Finite control rows split into (fit share, held-out events), as :func:`contrast` does."""
     C = np.asarray(control_values, dtype=np.float64)
@@ -185,7 +173,7 @@ def prepare_control(control_values: np.ndarray, heldout_fraction: float = DEFAUL
     """
     fit_part, held = _control_split(control_values, heldout_fraction, random_state)
     fit = model_factory or _default_factory(engine, random_state)
-    relay, stopped = _stop_relay(progress)
+    relay, stopped = stop_relay(progress)
     model = fit(fit_part, progress=relay)
     if stopped:
         raise Cancelled("contrast with the control was cancelled while fitting the control events")
@@ -243,7 +231,7 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray, alpha: float =
         raise EventDataError(f"test and control need the same channels; got shapes {T.shape} and {C_shape}")
     t_ok = np.all(np.isfinite(T), axis=1)
     fit = model_factory or _default_factory(engine, random_state)
-    relay, stopped = _stop_relay(progress)
+    relay, stopped = stop_relay(progress)
 
     Tk = T[t_ok]
     # only the held-out events' count is needed before the test fits (part assignment)

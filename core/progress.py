@@ -19,3 +19,17 @@ def keep_going(progress: ProgressCallback | None, step: int, total: int | None, 
     if progress is None:
         return True
     return progress(step, total, info) is not False
+
+
+def stop_relay(progress: ProgressCallback | None) -> tuple[Callable, list]:
+    """A relay that passes every report on to ``progress`` and the list it marks
+    (appends True) when ``progress`` asked to stop; for work that must know
+    afterwards whether it was stopped."""
+    stopped: list[bool] = []
+
+    def relay(step, total, info=None):
+        go = keep_going(progress, step, total, info)
+        if not go:
+            stopped.append(True)
+        return go
+    return relay, stopped

@@ -694,13 +694,15 @@ def lookahead_split(H, lr, alpha, min_leaf, allowed):
 
 @njit(cache=True)
 def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale,
-                      u_clip, z_max):
+                      u_clip, z_max, want_u=True):
     """Rosenblatt map of background + K Gaussians (see core.density.gaussian_base).
 
     X: (n, d) events; U: (n, d) output in [u_clip, 1 - u_clip]; logd: (n,) the
     mixture's log density is added.  logw: (K + 1,) log weights (background
     first); means (K, d); chol (K, d, d) lower Cholesky factors; sd, log_sd:
     (d, K) their diagonals; loc, scale, log_scale: (d,) background logistic.
+    ``want_u=False`` skips the CDFs (U is not touched): the mixture's log
+    density alone, bit-identical to the log-Jacobian of the full map.
     """
     K, d = means.shape
     lw = np.empty(K + 1)
@@ -716,6 +718,11 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, lo
                 for q in range(j):
                     m += chol[k, j, q] * z[k, q]
                 z[k, j] = min(max((x - m) / sd[j, k], -z_max), z_max)
+            if not want_u:
+                lw[0] += _log_sigmoid_pair(zb) - log_scale[j]
+                for k in range(K):
+                    lw[k + 1] += -0.5 * z[k, j] * z[k, j] - _LOG_SQRT_2PI - log_sd[j, k]
+                continue
             mx = lw[0]
             for k in range(1, K + 1):
                 mx = max(mx, lw[k])
@@ -771,55 +778,25 @@ def gmm_forward(X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale
         _gmm_forward_rows(0, X.shape[0], *args)
 
 
-@njit(cache=True)
-def _gmm_logpdf_rows(start, stop, X, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, z_max):
-    """The mixture's log density alone (no CDFs), added to logd (n,): the same
-    arithmetic, in the same order, as the log-Jacobian of :func:`_gmm_forward_rows`,
-    so the two agree to the last bit (channel by channel, as there: the
-    components give independent work; component by component was 1.6x slower)."""
-    K, d = means.shape
-    lw = np.empty(K + 1)
-    z = np.empty((K, d))
-    for i in range(start, stop):
-        for k in range(K + 1):
-            lw[k] = logw[k]
-        for j in range(d):
-            x = X[i, j]
-            zb = min(max((x - loc[j]) / scale[j], -z_max), z_max)
-            for k in range(K):
-                m = means[k, j]
-                for q in range(j):
-                    m += chol[k, j, q] * z[k, q]
-                z[k, j] = min(max((x - m) / sd[j, k], -z_max), z_max)
-            lw[0] += _log_sigmoid_pair(zb) - log_scale[j]
-            for k in range(K):
-                lw[k + 1] += -0.5 * z[k, j] * z[k, j] - _LOG_SQRT_2PI - log_sd[j, k]
-        mx = lw[0]
-        for k in range(1, K + 1):
-            mx = max(mx, lw[k])
-        s = 0.0
-        for k in range(K + 1):
-            s += math.exp(lw[k] - mx)
-        logd[i] += mx + math.log(s)
-
-
 @njit(cache=True, parallel=True)
-def _gmm_logpdf_par(X, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, z_max):
+def _gmm_logpdf_par(X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, z_max):
     n = X.shape[0]
     nb = (n + BLOCK - 1) // BLOCK
     for b in prange(nb):
-        _gmm_logpdf_rows(b * BLOCK, min(n, (b + 1) * BLOCK), X, logd, logw, means, chol, sd, log_sd,
-                         loc, scale, log_scale, z_max)
+        _gmm_forward_rows(b * BLOCK, min(n, (b + 1) * BLOCK), X, U, logd, logw, means, chol, sd, log_sd,
+                          loc, scale, log_scale, 0.0, z_max, False)
 
 
 def gmm_logpdf(X, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, z_max):
-    """Log density of the Gaussian-mixture base added to logd; see :func:`_gmm_logpdf_rows`."""
-    args = (X, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, float(z_max))
+    """Log density of the Gaussian-mixture base added to logd: :func:`_gmm_forward_rows`
+    without its CDFs."""
+    U = np.empty((0, X.shape[1]))
     K, d = means.shape
     if _parallel(X.shape[0], (K + 1) * d * (d + 2)):
-        _gmm_logpdf_par(*args)
+        _gmm_logpdf_par(X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, float(z_max))
     else:
-        _gmm_logpdf_rows(0, X.shape[0], *args)
+        _gmm_forward_rows(0, X.shape[0], X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale,
+                          0.0, float(z_max), False)
 
 
 @njit(cache=True)
