@@ -79,6 +79,7 @@ class RarityBar(QWidget):
     """The "Rarity" control: share of events to highlight as rare, and their count."""
 
     shareChanged = Signal(float)
+    keepRequested = Signal(float)  # share: keep the highlighted rare events as a region
 
     def __init__(self, parent=None) -> None:
         super().__init__(parent)
@@ -100,9 +101,14 @@ class RarityBar(QWidget):
         self.count = QLabel("Fit the density to rank events")
         self.count.setObjectName("RareCount")
         self.count.setMinimumWidth(260)
+        self.keep_button = QPushButton("Keep as region")
+        self.keep_button.setToolTip("New region holding the events highlighted as rare now, so they can "
+                                    "be counted, combined with other regions and exported")
         lay.addWidget(self.slider, 1)
         lay.addWidget(self.spin)
         lay.addWidget(self.count)
+        lay.addWidget(self.keep_button)
+        self.keep_button.clicked.connect(lambda: self.keepRequested.emit(self._share))
         self._share = 0.005
         self.slider.valueChanged.connect(self._slid)
         self.spin.valueChanged.connect(self._typed)
@@ -358,6 +364,7 @@ class MainWindow(QMainWindow):
         self.selections.renameRequested.connect(self.rename_region)
         self.selections.deleteRequested.connect(self.delete_regions)
         self.selections.combineRequested.connect(self.combine_regions)
+        self.rarity_bar.keepRequested.connect(self.keep_rare_region)
         self.selections.exportRequested.connect(self.export_dialog)
         self.channels_panel.changed.connect(self.scales_changed)
         self.channels_panel.pairsRequested.connect(self.choose_pairs)
@@ -1016,6 +1023,26 @@ class MainWindow(QMainWindow):
         if name in tube.regions:
             name = self._next_region_name(tube, name)
         self.add_region({"name": name, "kind": operator, "operands": list(names)})
+
+    @guarded("keep rare events")
+    def keep_rare_region(self, share: float) -> None:
+        """A rarity region holding the events highlighted as rare (the share on the Rarity bar)."""
+        tube = self.current
+        if tube is None:
+            raise BoscageError("open a tube first (Ctrl+O)")
+        if tube.analysis is None:
+            raise BoscageError("fit the density first (Ctrl+F): rare events are ranked by it")
+        rare = tube.rare_mask
+        if rare is None or not rare.any():
+            raise BoscageError("no events are highlighted as rare at this share; raise it first")
+        # the rarity percentile of the densest highlighted event: the region then holds
+        # exactly the highlighted events (percentile <= share x 100 can hold one more)
+        percentile = float(np.nanmax(tube.analysis.rarity[rare]))
+        name = f"rarest {share * 100:.3g} %"
+        if name in tube.regions:
+            name = self._next_region_name(tube, name)
+        self.add_region({"name": name, "kind": "rarity", "percentile": percentile})
+        self.selections.select(name)
 
     def region_count(self, name: str) -> int:
         """Events in a region of the current tube, as the Selections panel shows."""

@@ -117,6 +117,13 @@ def test_open_fit_rarity_regions_export(qtbot, window, tmp_path, messages):
     # reference: numpy ordering -- every rare event is no denser than every other kept event
     assert a.log_density[rare].max() <= a.log_density[a.kept & ~rare].min()
     assert f"{expected:,} rare events" in window.rarity_bar.count.text()
+    # "Keep as region": a rarity region holding exactly the highlighted events
+    # (reference: core.rare.rare_by_share's mask, computed independently of the region code)
+    window.rarity_bar.keep_button.click()
+    kept_name = window.selections.selected_names()[0]
+    assert kept_name.startswith("rarest 2 %")
+    assert window.region_count(kept_name) == expected
+    np.testing.assert_array_equal(tube.masks[kept_name], rare_by_share(a.log_density, 0.02).mask)
     window.rarity_bar.slider.setValue(window.rarity_bar.slider.value() + 100)  # drag the slider
     assert window.rare_count() == rare_by_share(a.log_density, window.rarity_bar.share()).count
     assert window.rare_count() > expected
@@ -231,6 +238,8 @@ def test_broken_file_shows_message_and_app_carries_on(qtbot, window, tmp_path, m
 def test_slot_errors_become_message_boxes(qtbot, window, messages):
     window.start_fit()  # no tube open: a user error, not a crash
     assert messages and "open a tube first" in messages[-1][1]
+    window.rarity_bar.keep_button.click()  # nothing to keep yet: a message, not a crash
+    assert len(messages) == 2 and "open a tube first" in messages[-1][1]
 
 
 def test_scale_and_compensation_edits_recompute_values(qtbot, window, tmp_path):
