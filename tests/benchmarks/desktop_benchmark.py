@@ -54,7 +54,12 @@ def timed(fn, repeat: int = 1) -> float:
 
 
 def main(argv: list[str]) -> int:
-    sizes = [int(a) for a in argv] or [100_000, 1_000_000]
+    import argparse
+
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("sizes", nargs="*", type=int, metavar="N_EVENTS",
+                    help="events per test file (default 100000 1000000)")
+    sizes = ap.parse_args(argv).sizes or [100_000, 1_000_000]
     from desktop.app import make_app
 
     tmp = tempfile.mkdtemp(prefix="boscage-bench-")
