@@ -153,14 +153,20 @@ def arcsinh_inverse(y, cofactor: float = DEFAULT_COFACTOR) -> np.ndarray:
 
 # ----------------------------------------------------------------------------- fasinh (Gating-ML 2.0)
 
-def _check_fasinh(T, M, A):
+def _check_top_and_decades(T, M, who: str = "") -> tuple[float, float]:
+    """T (top of scale) and M (decades) as floats, both above zero (Gating-ML 2.0)."""
     T = _finite_number(T, "T")
     M = _finite_number(M, "M")
-    A = _finite_number(A, "A")
     if T <= 0:
-        raise TransformError(f"the top of scale T must be above zero, not {T}")
+        raise TransformError(f"{who}the top of scale T must be above zero, not {T}")
     if M <= 0:
-        raise TransformError(f"the number of decades M must be above zero, not {M}")
+        raise TransformError(f"{who}the number of decades M must be above zero, not {M}")
+    return T, M
+
+
+def _check_fasinh(T, M, A):
+    T, M = _check_top_and_decades(T, M)
+    A = _finite_number(A, "A")
     if not 0 <= A <= M:
         raise TransformError(f"the extra negative decades A must lie between 0 and M = {M}, not {A}")
     return T, M, A
@@ -185,14 +191,9 @@ def check_logicle_parameters(T, W, M, A) -> tuple[float, float, float, float]:
 
     Gating-ML 2.0: T > 0, M > 0, 0 <= W <= M/2, -W <= A <= M - 2W.
     """
-    T = _finite_number(T, "T")
+    T, M = _check_top_and_decades(T, M, "logicle: ")
     W = _finite_number(W, "W")
-    M = _finite_number(M, "M")
     A = _finite_number(A, "A")
-    if T <= 0:
-        raise TransformError(f"logicle: the top of scale T must be above zero, not {T}")
-    if M <= 0:
-        raise TransformError(f"logicle: the number of decades M must be above zero, not {M}")
     if not 0 <= W <= M / 2:
         raise TransformError(
             f"logicle: the linear width W must lie between 0 and M/2 = {M / 2:g} decades, not {W}")
