@@ -34,7 +34,8 @@ between the two clip levels (mass outside them ~2e-15 per channel, far
 below any quadrature or test tolerance).  The inverse solves each
 coordinate in turn by a safeguarded Newton iteration (bracket from the
 components' own quantiles, which always enclose the mixture quantile;
-bisection whenever Newton leaves the bracket), compiled and parallel over
+false position (Illinois rule) or bisection whenever Newton leaves the
+bracket), compiled and parallel over
 events (:func:`core.density.kernels.gmm_inverse`), to a relative step of
 1e-13 (well inside 1e-10).  Both directions leave out components whose
 posterior weight is below exp(-40) ~ 4e-18 of the largest at that coordinate
