@@ -208,3 +208,41 @@ def test_cancel_while_fitting_the_mixture_base_keeps_a_usable_model():
     assert np.isfinite(got).all()
     assert np.corrcoef(got, ref)[0, 1] > 0.99
     assert full.score(X) > model.score(X) + 0.1
+
+
+def test_density_only_path_matches_the_map_and_scipy(known):
+    # The mixture's density without its CDFs (used to score a model that is the
+    # base alone) must be the map's log-Jacobian to the last bit, and the mixture
+    # density itself.  Reference: scipy.stats.multivariate_normal and
+    # scipy.stats.logistic for the components, summed with the weights.
+    rng = np.random.default_rng(11)
+    X = np.vstack([_rvs(4000, rng), [[40.0, -30.0, 25.0], [1e6, 0.0, 0.0]]])
+    dens_only = known.logpdf(X)
+    _, log_jac = known.forward(X)
+    np.testing.assert_array_equal(dens_only, log_jac)
+    parts = [np.log(W[0]) + stats.logistic(LOC, SCALE).logpdf(X).sum(axis=1)]
+    for c in (1, 2):
+        parts.append(np.log(W[c]) + stats.multivariate_normal(MU[c - 1], COV[c - 1]).logpdf(X))
+    ref = np.logaddexp.reduce(np.vstack(parts), axis=0)
+    np.testing.assert_allclose(dens_only, ref, rtol=1e-10, atol=1e-10)
+
+
+def test_a_model_that_is_the_base_alone_scores_without_the_map():
+    # after a mixture base the first layer of trees is dropped when it gains less
+    # than layer_tol; the model's log density is then the base's (reference: the
+    # base's own log-Jacobian through the full forward map, and save/load keeps it)
+    import os
+    import tempfile
+
+    rng = np.random.default_rng(12)
+    X = np.vstack([rng.normal(0.0, 1.0, size=(3000, 3)), rng.normal(3.0, 0.5, size=(1000, 3))])
+    model = AdditiveTreeDensity(random_state=0).fit(X)
+    assert model.n_trees_ == 0 and model._density_is_base()
+    assert model.heldout_loglik_ == model.base_heldout_loglik_
+    _, via_map = model._forward_chunk(np.ascontiguousarray(X))
+    np.testing.assert_array_equal(model.score_samples(X), via_map)
+    path = os.path.join(tempfile.mkdtemp(), "base-only.npz")
+    model.save(path)
+    again = AdditiveTreeDensity.load(path)
+    assert again._density_is_base()
+    np.testing.assert_array_equal(again.score_samples(X), model.score_samples(X))
