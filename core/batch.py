@@ -19,10 +19,11 @@ the recipe's regions; then, in ``OUT_DIR/<file stem>/``:
   (:func:`core.export.export_events_fcs`, with provenance keywords);
   with ``--control`` every file is contrasted with the control
   (:mod:`core.contrast`);
-* ``done.json`` -- the file's summary row, the recipe digest and the input
-  file's size and modification time (and the control file's path, size and
-  modification time): a re-run skips files whose marker matches (unless
-  ``--force``); changed inputs, recipes or controls are redone.
+* ``done.json`` -- the file's summary row, the recipe digest (extended by the
+  contents of a spillover CSV the recipe names: :func:`inputs_digest`) and the
+  input file's size and modification time (and the control file's path, size
+  and modification time): a re-run skips files whose marker matches (unless
+  ``--force``); changed inputs, recipes, spillover CSVs or controls are redone.
 
 With ``--control`` the control's part of the contrast (its density fitted
 on the fit share, its held-out events and their log density under it) is
@@ -157,7 +158,8 @@ def process_file(task: dict) -> dict:
         row["status"] = "ok"
         row["seconds"] = round(time.perf_counter() - t0, 3)
         with atomic_write(os.path.join(folder, DONE_NAME), "w", overwrite=True, encoding="utf-8") as fh:
-            json.dump({"row": row, "recipe_digest": task["digest"], "control": task.get("control"),
+            json.dump({"row": row, "recipe_digest": task["digest"],
+                       "inputs_digest": task.get("inputs_digest", task["digest"]), "control": task.get("control"),
                        "control_source": _source_stamp(task["control"]) if task.get("control") else None,
                        "control_prepared": used, "source": _source_stamp(path)}, fh, indent=1)
     except KeyboardInterrupt:
@@ -406,12 +408,28 @@ def _resolve_recipe(recipe: Any, files: Sequence[str]):
     return recipe, "given"
 
 
-def _finished_row(out_dir: str, path: str, digest: str, control: str | None) -> dict | None:
+def inputs_digest(recipe: Any, digest: str) -> str:
+    """The recipe digest extended by the contents of the spillover CSV the recipe
+    names (compensation source "csv"): a changed matrix at the same path must redo
+    finished files and the prepared control.  ``digest`` itself stays the recipe's
+    (it is what exports record as provenance)."""
+    comp = getattr(recipe, "compensation", None) or {}
+    if comp.get("source") != "csv":
+        return digest
+    path = recipe.csv_path_resolved()
+    if not path or not os.path.isfile(path):
+        return digest  # the analysis reports the missing file itself
+    import hashlib
+
+    return hashlib.sha256(f"{digest}:{_sha256(path)}".encode("ascii")).hexdigest()[:16]
+
+
+def _finished_row(out_dir: str, path: str, key: str, control: str | None) -> dict | None:
     marker = os.path.join(file_out_dir(out_dir, path), DONE_NAME)
     try:
         with open(marker, encoding="utf-8") as fh:
             done = json.load(fh)
-        if (done.get("recipe_digest") == digest and done.get("control") == control
+        if (done.get("inputs_digest") == key and done.get("control") == control
                 and done.get("control_source") == (_source_stamp(control) if control else None)
                 and done.get("source") == _source_stamp(path) and done["row"].get("status") == "ok"):
             return dict(done["row"])
@@ -521,13 +539,14 @@ def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | N
         return BatchResult(rows=rows, out_dir=out_dir, summary_path=summary_path, recipe=None,
                            seconds=time.perf_counter() - t_start)
     digest = recipe_digest(recipe_obj)
+    key_digest = inputs_digest(recipe_obj, digest)
     save_recipe(recipe_obj, os.path.join(out_dir, "recipe.json"), overwrite=True)
     _write_readme(out_dir, recipe_obj, digest, recipe_source, control)
 
     rows: dict[str, dict] = {}
     todo: list[str] = []
     for p in files:
-        done = None if force else _finished_row(out_dir, p, digest, control)
+        done = None if force else _finished_row(out_dir, p, key_digest, control)
         if done is not None:
             rows[p] = done
         else:
@@ -573,7 +592,7 @@ def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | N
             return keep_going(progress, len(rows), total, None)
 
         try:
-            control_dir, key, control_how = ensure_prepared_control(out_dir, control, recipe_obj, digest,
+            control_dir, key, control_how = ensure_prepared_control(out_dir, control, recipe_obj, key_digest,
                                                                      force=force, progress=control_progress)
         except (KeyboardInterrupt, Cancelled):
             interrupted = True
@@ -594,7 +613,8 @@ def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | N
     else:
         control_seconds = 0.0
     tasks = [{"path": os.path.abspath(p), "out_dir": os.path.abspath(out_dir), "recipe": recipe_obj.to_dict(),
-              "recipe_source": getattr(recipe_obj, "source", None), "digest": digest, "control": control,
+              "recipe_source": getattr(recipe_obj, "source", None), "digest": digest,
+              "inputs_digest": key_digest, "control": control,
               "control_prepared": os.path.abspath(control_dir) if control_dir else None, "control_key": key,
               "numba_threads": threads if (workers > 1 or numba_threads) and not scheduler else None}
              for p in todo]

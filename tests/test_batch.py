@@ -404,3 +404,30 @@ def test_dask_workers_load_the_prepared_control(control_folder, tmp_path):
     assert [r["enriched"] for r in res.rows] == [reference[n]["control one.fcs"] for n in ("p1.fcs", "p2.fcs")]
     with open(os.path.join(file_out_dir(str(tmp_path / "o"), "p1.fcs"), DONE_NAME), encoding="utf-8") as fh:
         assert json.load(fh)["control_prepared"]["folder"] == res.info["control_dir"]
+
+
+def test_a_changed_spillover_csv_redoes_finished_files(tmp_path):
+    # The recipe names a spillover CSV by path; finished files are skipped only
+    # while the matrix in that file is the same (its contents, not its path, go
+    # into the skip marker).  Reference for the effect: the compensated values
+    # differ, so the exported events' log densities must change.
+    import os
+
+    inp = tmp_path / "in"
+    inp.mkdir()
+    write_events(inp / "a.fcs", n=1500, seed=3)
+    csv_path = tmp_path / "spill.csv"
+    csv_path.write_text("CD3,CD4,CD8\n1,0.02,0\n0,1,0.01\n0,0,1\n", encoding="utf-8")
+    recipe = small_recipe(compensation={"source": "csv", "csv_path": str(csv_path)})
+    out = tmp_path / "out"
+    first = run_batch(str(inp), str(out), recipe=recipe, workers=1)
+    assert [r["status"] for r in first.rows] == ["ok"]
+    again = run_batch(str(inp), str(out), recipe=recipe, workers=1)
+    assert again.n_skipped == 1  # same matrix: nothing to redo
+    marker_before = (out / "a" / "done.json").read_text(encoding="utf-8")
+    csv_path.write_text("CD3,CD4,CD8\n1,0.30,0\n0,1,0.20\n0,0,1\n", encoding="utf-8")
+    redone = run_batch(str(inp), str(out), recipe=recipe, workers=1)
+    assert redone.n_skipped == 0 and [r["status"] for r in redone.rows] == ["ok"]
+    assert (out / "a" / "done.json").read_text(encoding="utf-8") != marker_before
+    assert redone.rows[0]["heldout_loglik"] != first.rows[0]["heldout_loglik"]
+    assert os.path.isfile(out / "a" / "a rare.fcs")
