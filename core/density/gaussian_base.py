@@ -192,6 +192,7 @@ class GaussianMixtureBase:
         reg = 1e-6 * np.where(var > 0, var, scale ** 2)
         bg = np.sum(_logistic_logpdf((X - loc) / scale) - np.log(scale), axis=1)
         best, best_ll = None, -np.inf
+        prev_fit, prev_fresh = None, False
         stopped = [False]
         for step, k in enumerate(components):
             if best is not None and k * (d + 1) > n:
@@ -205,14 +206,19 @@ class GaussianMixtureBase:
             if best is not None and not going():
                 break
             fit_k = None
-            for _ in range(max(1, int(n_init))):
-                cand = _em(X, bg, k, reg, rng, max_iter, tol, going)
+            parent = None
+            if prev_fit is not None and prev_fresh and k == 2 * prev_fit[2].shape[0]:
+                parent = _split_components(prev_fit[1], prev_fit[2], prev_fit[3])
+            for attempt in range(max(1, int(n_init))):
+                cand = _em(X, bg, k, reg, rng, max_iter, tol, going,
+                           init=parent if attempt == 0 else None)
                 if fit_k is None or cand[0] > fit_k[0]:
                     fit_k = cand
                 if stopped[0]:
                     break
             if stopped[0] and best is not None:
                 break
+            prev_fit, prev_fresh = fit_k, parent is None
             _, w, mu, cov = fit_k
             model = cls(w, mu, cov, loc, scale)
             ll = float(model.logpdf(Xva).mean())
@@ -243,16 +249,40 @@ def _kmeanspp(X, k, rng):
     return np.array(centres)
 
 
-def _em(X, bg, k, reg, rng, max_iter, tol, going=None):
+def _split_components(w, mu, cov):
+    """Twice the components: each Gaussian split in two along its principal axis
+    (means at +-sqrt(lambda)/2 along it, that axis's variance reduced by lambda/4,
+    weights halved); the background weight is kept.  Returns (w, mu, cov)."""
+    k, d = mu.shape
+    w2 = [w[0]]
+    mu2, cov2 = [], []
+    for c in range(k):
+        lam, vec = np.linalg.eigh(cov[c])
+        v, lv = vec[:, -1], max(float(lam[-1]), 0.0)
+        off = 0.5 * math.sqrt(lv) * v
+        narrowed = cov[c] - 0.25 * lv * np.outer(v, v)
+        for sign in (1.0, -1.0):
+            w2.append(0.5 * w[c + 1])
+            mu2.append(mu[c] + sign * off)
+            cov2.append(narrowed)
+    return np.array(w2), np.array(mu2), np.array(cov2)
+
+
+def _em(X, bg, k, reg, rng, max_iter, tol, going=None, init=None):
     """EM for background + k Gaussians; returns (mean log-lik, weights, means, covs).
 
-    Start: k-means++ seeding and 5 Lloyd steps; the first M step uses the hard
-    labels with the background at 0.1 %.  Each iteration is one compiled pass
-    over the events (E step and the M step's weighted moments,
+    Start: ``init`` = (weights, means, covs) when given (the search passes the
+    previous count's mixture split in two, :func:`_split_components`); else
+    k-means++ seeding and 5 Lloyd steps, the first M step using the hard labels
+    with the background at 0.1 %.  Each iteration is one compiled pass over the
+    events (E step and the M step's weighted moments,
     :func:`core.density.kernels.em_stats`), then the M step in numpy.
     ``going()`` is asked after each iteration; False ends EM there.
     """
     n, d = X.shape
+    if init is not None:
+        w, mu, cov = (np.array(a, dtype=np.float64) for a in init)
+        return _em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going)
     C = _kmeanspp(X, k, rng)
     for _ in range(5):  # a few Lloyd steps
         lab = _nearest(X, C)
@@ -276,6 +306,12 @@ def _em(X, bg, k, reg, rng, max_iter, tol, going=None):
         mu[c] = Xc.mean(axis=0) if Xc.shape[0] else C[c]
         D = Xc - mu[c]
         cov[c] = D.T @ D / max(1, Xc.shape[0]) + np.diag(reg)
+    return _em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going)
+
+
+def _em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going):
+    """EM from the mixture (w, mu, cov) until the mean log-likelihood rises by less than tol."""
+    n = X.shape[0]
     prev = -np.inf
     ll = -np.inf
     X = np.ascontiguousarray(X)
