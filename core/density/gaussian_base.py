@@ -165,7 +165,12 @@ class GaussianMixtureBase:
         at most ``max_em_events`` events is split 80/20: EM runs on the 80 %
         for each count in ``components`` (increasing), the 20 % scores it; the
         search stops at the first count that does not beat the best so far by
-        more than ``min_gain`` nats per event, and the best is kept.  EM stops
+        more than ``min_gain`` nats per event, and the best is kept.  A count
+        that doubles a k-means++-started one starts from that mixture with each
+        component split in two along its principal axis (1, 4, 16 start from
+        k-means++, 2, 8, 32 from the split): better and faster than a fresh
+        start, while splitting a split compounds poor starts (EXPERIMENTS.md
+        section 17).  EM stops
         when the training mean log-likelihood rises by less than ``tol`` nats
         per event (or after ``max_iter`` steps).  ``n_init`` seeded
         k-means++ restarts per count (best training log-likelihood kept).
@@ -206,7 +211,7 @@ class GaussianMixtureBase:
             if best is not None and not going():
                 break
             fit_k = None
-            parent = None
+            parent = None  # split a k-means++-started mixture, never a split one
             if prev_fit is not None and prev_fresh and k == 2 * prev_fit[2].shape[0]:
                 parent = _split_components(prev_fit[1], prev_fit[2], prev_fit[3])
             for attempt in range(max(1, int(n_init))):
