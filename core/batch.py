@@ -510,7 +510,23 @@ def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | N
     row)`` is called after each file (``row`` the file's summary row);
     returning False stops the batch like Ctrl-C.  ``numba_threads``: numba
     threads per worker process (default cores // workers, at least 1).
+
+    Worker processes are started (and load the compiled kernels) at once, while
+    this process reads the first file, checks what is finished and prepares a
+    control; a pool that is not used after all is shut down before returning.
     """
+    box: dict = {"pool": None, "config": None}
+    try:
+        return _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, progress,
+                          numba_threads, box)
+    finally:
+        if box["pool"] is not None:
+            _stop_pool(box["pool"])
+
+
+def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, progress, numba_threads,
+               box) -> BatchResult:
+    """The body of :func:`run_batch`; ``box["pool"]`` holds an early-started worker pool."""
     from .recipe import recipe_digest, save_recipe
 
     t_start = time.perf_counter()
@@ -529,6 +545,12 @@ def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | N
     if not files:
         raise RecipeError(f"{input_dir}: the folder holds no *.fcs files")
     os.makedirs(out_dir, exist_ok=True)
+    cores = os.cpu_count() or 1
+    if scheduler is None and len(files) > 1:
+        guess = max(1, int(workers)) if workers is not None else max(1, min(cores, len(files)))
+        if guess > 1:
+            config = (guess, numba_threads or max(1, cores // guess))
+            box["pool"], box["config"] = _start_pool(*config), config
     try:
         recipe_obj, recipe_source = _resolve_recipe(recipe, files)
     except _NoReadableFile as exc:  # nothing to build a default recipe from: every file failed
@@ -553,7 +575,6 @@ def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | N
             todo.append(p)
     n_skipped = len(files) - len(todo)
     total = len(files)
-    cores = os.cpu_count() or 1
     if workers is None:
         workers = max(1, min(cores, len(todo)))
     workers = max(1, int(workers))
@@ -631,8 +652,11 @@ def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | N
                     break
                 finished(process_file(t), by_path[t["path"]])
         else:
+            pool = None
+            if box["pool"] is not None and box["config"] == (workers, threads):
+                pool, box["pool"] = box["pool"], None  # _run_processes owns it now
             _run_processes(tasks, workers, threads, lambda row, t: finished(row, by_path[t["path"]]),
-                           lambda: stop)
+                           lambda: stop, pool=pool)
     except KeyboardInterrupt:
         interrupted = True
     if stop:
@@ -652,14 +676,43 @@ def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | N
                              "control_dir": os.path.abspath(control_dir) if control_dir else None})
 
 
-def _run_processes(tasks: list, workers: int, threads: int, on_row: Callable, should_stop: Callable) -> None:
+def _start_pool(workers: int, threads: int):
+    """A pool of ``workers`` spawned processes, each limited to ``threads`` numba
+    threads and warmed up (imports and compiled kernels loaded) at once."""
     import multiprocessing
-    from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
-    from concurrent.futures.process import BrokenProcessPool
+    from concurrent.futures import ProcessPoolExecutor
 
     ctx = multiprocessing.get_context("spawn")
     pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init_worker,
                                initargs=(threads,))
+    for _ in range(workers):
+        pool.submit(_warm_up)
+    return pool
+
+
+def _warm_up() -> None:
+    """Load the compiled kernels a file's analysis uses (a tiny seeded fit, scored
+    and mapped), so the first file does not pay for it."""
+    import numpy as np
+
+    from .density import AdditiveTreeDensity
+    from .transforms import logicle
+
+    X = np.random.default_rng(0).normal(size=(600, 3))
+    model = AdditiveTreeDensity(random_state=0, n_trees=2, patience=1).fit(X)
+    model.score_samples(X)
+    model.transform(X[:10])
+    logicle(np.linspace(-100.0, 1e5, 64), 262144.0, 0.5)
+
+
+def _run_processes(tasks: list, workers: int, threads: int, on_row: Callable, should_stop: Callable,
+                   pool=None) -> None:
+    """Run ``tasks`` on worker processes (``pool`` if given, else a new one), largest file first."""
+    from concurrent.futures import FIRST_COMPLETED, wait
+    from concurrent.futures.process import BrokenProcessPool
+
+    if pool is None:
+        pool = _start_pool(workers, threads)
     # largest files first: with a few files of unequal size this shortens the batch
     # (the last file to start is a small one)
     order = sorted(tasks, key=lambda t: -_file_size(t["path"]))
