@@ -54,9 +54,12 @@ Exit code: 0 when every file succeeded, 1 when any failed, 2 for bad
 arguments, 130 when stopped with Ctrl-C (finished files are kept; the summary
 lists the rest as ``cancelled``).
 
-Parallelism: ``--workers N`` worker processes (``concurrent.futures``,
-"spawn" start method; default: the number of CPU cores, at most the number of
-files).  Each worker limits numba to ``cores // workers`` threads (at least 1)
+Parallelism: ``--workers N`` worker processes (``concurrent.futures``; the
+"forkserver" start method where the platform has it -- workers fork from a
+clean server that imported the science once and never ran a parallel kernel --
+else "spawn"; default: the number of CPU cores, at most the number of files).
+The workers start, and load the compiled kernels, while this process reads
+the first file and prepares a control.  Each worker limits numba to ``cores // workers`` threads (at least 1)
 so processes x threads do not oversubscribe the machine.  ``--workers 1``
 runs in this process.  ``--scheduler ADDRESS`` runs the same task function on
 an existing Dask distributed cluster (``pip install "boscage[cluster]"``); the
@@ -90,7 +93,7 @@ TAIL_COLUMNS = ["heldout_loglik", "seconds", "status", "message"]
 
 
 # ---------------------------------------------------------------------------
-# the task function (top level: runs in spawned processes and on Dask workers)
+# the task function (top level: runs in worker processes and on Dask workers)
 # ---------------------------------------------------------------------------
 
 def _safe_name(text: str) -> str:
@@ -677,12 +680,18 @@ def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, p
 
 
 def _start_pool(workers: int, threads: int):
-    """A pool of ``workers`` spawned processes, each limited to ``threads`` numba
+    """A pool of ``workers`` processes, each limited to ``threads`` numba
     threads and warmed up (imports and compiled kernels loaded) at once."""
     import multiprocessing
     from concurrent.futures import ProcessPoolExecutor
 
-    ctx = multiprocessing.get_context("spawn")
+    if "forkserver" in multiprocessing.get_all_start_methods():
+        # workers fork from a clean server process that has imported the science
+        # once (it never runs a parallel kernel, so forking from it is safe)
+        ctx = multiprocessing.get_context("forkserver")
+        ctx.set_forkserver_preload(["core.batch", "core.analysis", "core.density", "core.transforms"])
+    else:
+        ctx = multiprocessing.get_context("spawn")
     pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init_worker,
                                initargs=(threads,))
     for _ in range(workers):
