@@ -177,12 +177,7 @@ def test_sobol_levels_of_a_normal_beat_random_draws_against_chi2():
     mapped = MappedNormalModel(MEAN4, COV4)
     masses = [0.5, 0.9, 0.99]
     true = np.array([true_normal_level(mapped, m) for m in masses])
-    n = 1 << 15
-    seeds = range(12)
-    sob = np.array([hdr_levels(mapped, masses, n, random_state=s) for s in seeds])
-    rnd = np.array([hdr_levels(SamplerOnly(mapped), masses, n, random_state=s) for s in seeds])
-    err_sob = np.sqrt(np.mean((np.exp(sob - true) - 1) ** 2, axis=0))
-    err_rnd = np.sqrt(np.mean((np.exp(rnd - true) - 1) ** 2, axis=0))
+    err_sob, err_rnd = rms_level_errors(mapped, masses, true, 1 << 15, range(12))
     # measured 2026-12-02 (three blocks of 12 seeds, 2**15 draws): rms error
     # in density at 50 / 90 / 99 % 0.2-0.3 / 0.6-0.8 / 2.4-4.0 % (Sobol) vs
     # 0.8-0.9 / 1.0-2.6 / 5.9-7.2 % (random), ratio 0.25-0.68; the gain shrinks
@@ -202,6 +197,15 @@ def test_rare_by_mass_with_sobol_levels_flags_the_nominal_share(model4):
         # a percent in density, below 0.0003 in mass here
         ci = stats.binomtest(res.count, fresh.shape[0]).proportion_ci(confidence_level=0.999)
         assert ci.low - 0.0003 <= 1 - mass <= ci.high + 0.0003, (mass, res.count, ci)
+
+
+def rms_level_errors(model, masses, reference, n, seeds):
+    """RMS relative error in density of the HDR levels over ``seeds``: (Sobol points
+    through the inverse map, the model's own random draws), against ``reference``."""
+    sob = np.array([hdr_levels(model, masses, n, random_state=s) for s in seeds])
+    rnd = np.array([hdr_levels(SamplerOnly(model), masses, n, random_state=s) for s in seeds])
+    return (np.sqrt(np.mean((np.exp(sob - reference) - 1) ** 2, axis=0)),
+            np.sqrt(np.mean((np.exp(rnd - reference) - 1) ** 2, axis=0)))
 
 
 def quadrature_levels_1d(model, masses, lo, hi, n=200_000):
@@ -232,12 +236,7 @@ def test_sobol_levels_of_a_fitted_model_match_its_quadrature_and_beat_random_dra
     model = fitted_1d
     masses = np.array([0.5, 0.9, 0.995])
     exact = quadrature_levels_1d(model, masses, -10.0, 12.0)
-    n = 1 << 14
-    seeds = range(6)
-    sob = np.array([hdr_levels(model, masses, n, random_state=s) for s in seeds])
-    rnd = np.array([hdr_levels(SamplerOnly(model), masses, n, random_state=s) for s in seeds])
-    err_sob = np.sqrt(np.mean((np.exp(sob - exact) - 1) ** 2, axis=0))
-    err_rnd = np.sqrt(np.mean((np.exp(rnd - exact) - 1) ** 2, axis=0))
+    err_sob, err_rnd = rms_level_errors(model, masses, exact, 1 << 14, range(6))
     # measured 2026-12-02 (three blocks of 6 seeds, 2**14 draws, rms error in
     # density against the quadrature): 0.003 / 0.03-0.05 / 0.5-0.9 % at
     # 50 / 90 / 99.5 % (Sobol) vs 0.3-0.6 / 1.7-2.8 / 7-18 % (random)
