@@ -341,7 +341,13 @@ def _init_worker(threads: int) -> None:
     import signal
 
     signal.signal(signal.SIGINT, signal.SIG_IGN)
-    os.environ["NUMBA_NUM_THREADS"] = str(threads)
+    if "numba" not in sys.modules:
+        # a spawned worker: size numba's pool before numba is imported.  A worker
+        # forked from the fork server has numba loaded already; changing the
+        # variable then makes numba refuse to compile ("Cannot set
+        # NUMBA_NUM_THREADS to a different value once the threads have been
+        # launched"), so only the number of threads in use is limited below.
+        os.environ["NUMBA_NUM_THREADS"] = str(threads)
     for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
         os.environ.setdefault(var, str(threads))
     _limit_numba_threads(threads)

@@ -187,7 +187,7 @@ def test_default_recipe_from_first_readable_file_and_two_worker_processes(tmp_pa
     write_events(inp / "1.fcs", n=1500, seed=4)
     write_events(inp / "2.fcs", n=1500, seed=5)
     res = run_batch(str(inp), str(tmp_path / "o"), workers=2)
-    assert [r["status"] for r in res.rows] == ["error", "ok", "ok"]
+    assert [r["status"] for r in res.rows] == ["error", "ok", "ok"], [r.get("message") for r in res.rows]
     assert res.info["workers"] == 2 and res.info["numba_threads"] >= 1
     assert "CD3" in res.recipe.channels and "FSC-A" not in res.recipe.channels
 
