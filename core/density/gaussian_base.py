@@ -215,15 +215,18 @@ class GaussianMixtureBase:
             if prev_fit is not None and prev_fresh and k == 2 * prev_fit[2].shape[0]:
                 parent = _split_components(prev_fit[1], prev_fit[2], prev_fit[3])
             for attempt in range(max(1, int(n_init))):
-                cand = _em(X, bg, k, reg, rng, max_iter, tol, going,
-                           init=parent if attempt == 0 else None)
+                split_start = parent is not None and attempt == 0
+                if split_start:
+                    cand = _em_iterations(X, bg, *parent, reg, max_iter, tol, going)
+                else:
+                    cand = _em(X, bg, k, reg, rng, max_iter, tol, going)
                 if fit_k is None or cand[0] > fit_k[0]:
-                    fit_k = cand
+                    fit_k, fit_fresh = cand, not split_start
                 if stopped[0]:
                     break
             if stopped[0] and best is not None:
                 break
-            prev_fit, prev_fresh = fit_k, parent is None
+            prev_fit, prev_fresh = fit_k, fit_fresh
             _, w, mu, cov = fit_k
             model = cls(w, mu, cov, loc, scale)
             ll = float(model.logpdf(Xva).mean())
@@ -273,21 +276,14 @@ def _split_components(w, mu, cov):
     return np.array(w2), np.array(mu2), np.array(cov2)
 
 
-def _em(X, bg, k, reg, rng, max_iter, tol, going=None, init=None):
-    """EM for background + k Gaussians; returns (mean log-lik, weights, means, covs).
+def _em(X, bg, k, reg, rng, max_iter, tol, going=None):
+    """EM for background + k Gaussians from a k-means++ start; returns (mean
+    log-lik, weights, means, covs).
 
-    Start: ``init`` = (weights, means, covs) when given (the search passes the
-    previous count's mixture split in two, :func:`_split_components`); else
-    k-means++ seeding and 5 Lloyd steps, the first M step using the hard labels
-    with the background at 0.1 %.  Each iteration is one compiled pass over the
-    events (E step and the M step's weighted moments,
-    :func:`core.density.kernels.em_stats`), then the M step in numpy.
-    ``going()`` is asked after each iteration; False ends EM there.
+    Start: k-means++ seeding and 5 Lloyd steps, the first M step using the hard
+    labels with the background at 0.1 %; then :func:`_em_iterations`.
     """
     n, d = X.shape
-    if init is not None:
-        w, mu, cov = (np.array(a, dtype=np.float64) for a in init)
-        return _em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going)
     C = _kmeanspp(X, k, rng)
     for _ in range(5):  # a few Lloyd steps
         lab = _nearest(X, C)
@@ -315,7 +311,11 @@ def _em(X, bg, k, reg, rng, max_iter, tol, going=None, init=None):
 
 
 def _em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going):
-    """EM from the mixture (w, mu, cov) until the mean log-likelihood rises by less than tol."""
+    """EM from the mixture (w, mu, cov) until the mean log-likelihood rises by less
+    than tol; returns (mean log-lik, weights, means, covs).  Each iteration is one
+    compiled pass over the events (E step and the M step's weighted moments,
+    :func:`core.density.kernels.em_stats`), then the M step in numpy.
+    ``going()`` is asked after each iteration; False ends EM there."""
     n = X.shape[0]
     prev = -np.inf
     ll = -np.inf

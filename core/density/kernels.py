@@ -760,43 +760,34 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, lo
 
 
 @njit(cache=True, parallel=True)
-def _gmm_forward_par(X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max):
+def _gmm_forward_par(X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max,
+                     want_u):
     n = X.shape[0]
     nb = (n + BLOCK - 1) // BLOCK
     for b in prange(nb):
         _gmm_forward_rows(b * BLOCK, min(n, (b + 1) * BLOCK), X, U, logd, logw, means, chol, sd, log_sd,
-                          loc, scale, log_scale, u_clip, z_max)
+                          loc, scale, log_scale, u_clip, z_max, want_u)
 
 
-def gmm_forward(X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max):
-    """Rosenblatt map of the Gaussian-mixture base; see :func:`_gmm_forward_rows`."""
-    args = (X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, float(u_clip), float(z_max))
+def gmm_forward(X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max,
+                want_u=True):
+    """Rosenblatt map of the Gaussian-mixture base; see :func:`_gmm_forward_rows`.
+    ``want_u=False``: only the log density (U is not touched, its CDFs not computed)."""
+    args = (X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, float(u_clip), float(z_max),
+            bool(want_u))
     K, d = means.shape
-    if _parallel(X.shape[0], 4 * (K + 1) * d * (d + 2)):
+    cost = (4 if want_u else 1) * (K + 1) * d * (d + 2)
+    if _parallel(X.shape[0], cost):
         _gmm_forward_par(*args)
     else:
         _gmm_forward_rows(0, X.shape[0], *args)
 
 
-@njit(cache=True, parallel=True)
-def _gmm_logpdf_par(X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, z_max):
-    n = X.shape[0]
-    nb = (n + BLOCK - 1) // BLOCK
-    for b in prange(nb):
-        _gmm_forward_rows(b * BLOCK, min(n, (b + 1) * BLOCK), X, U, logd, logw, means, chol, sd, log_sd,
-                          loc, scale, log_scale, 0.0, z_max, False)
-
-
 def gmm_logpdf(X, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, z_max):
-    """Log density of the Gaussian-mixture base added to logd: :func:`_gmm_forward_rows`
+    """Log density of the Gaussian-mixture base added to logd: :func:`gmm_forward`
     without its CDFs."""
-    U = np.empty((0, X.shape[1]))
-    K, d = means.shape
-    if _parallel(X.shape[0], (K + 1) * d * (d + 2)):
-        _gmm_logpdf_par(X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, float(z_max))
-    else:
-        _gmm_forward_rows(0, X.shape[0], X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale,
-                          0.0, float(z_max), False)
+    gmm_forward(X, np.empty((0, X.shape[1])), logd, logw, means, chol, sd, log_sd, loc, scale, log_scale,
+                0.0, z_max, want_u=False)
 
 
 @njit(cache=True)

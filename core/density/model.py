@@ -338,9 +338,6 @@ class AdditiveTreeDensity:
         self.n_trees_ = 0
         self.stopped_by_ = "n_trees"
         total = int(self.n_trees)
-        if self._gmm is not None and self._gmm.cancelled:
-            total = 0  # stopped while fitting the base: the base found so far is the model
-            self.stopped_by_ = "cancelled"
         allowed = ~frozen
         if allowed.sum() < 2:
             total = 0  # at most one free channel: the marginal stage is the whole model
@@ -356,12 +353,12 @@ class AdditiveTreeDensity:
             look = max(1, min(look, int(math.floor(math.log2(nodes + 1.0)))))
         done = 0
         n_layers = max(1, int(self.n_layers)) if total else 1
-        if self.stopped_by_ == "cancelled":
+        if self._gmm is not None and self._gmm.cancelled:
             # stopped while fitting the mixture: it is the whole model, and the
             # caller is not asked again
+            self.stopped_by_ = "cancelled"
             n_layers = 0
-            self._layers.append((None, _identity_pwl(d), Forest()))
-            self.n_marginal_trees_ = np.zeros(d, np.int64)
+            self._keep_base_only(d)
             curve.append(float(ld_va.mean()))
         for layer in range(n_layers):
             # after a Gaussian-mixture base the first layer must pay for itself too
@@ -424,8 +421,7 @@ class AdditiveTreeDensity:
                 if layer > 0:
                     self._layers.pop()
                 else:
-                    self._layers[0] = (None, _identity_pwl(d), Forest())
-                    self.n_marginal_trees_ = np.zeros(d, np.int64)
+                    self._keep_base_only(d)
                 curve.append(start_ll)
                 break
             if done >= total or self.stopped_by_ == "no split":
@@ -454,6 +450,12 @@ class AdditiveTreeDensity:
         idx = np.flatnonzero(allowed)
         Q[np.ix_(idx, idx)] = vecs.T
         return Q
+
+    def _keep_base_only(self, d: int) -> None:
+        """Make the base the whole model: one layer with no rotation, identity
+        marginals and no trees (:meth:`_density_is_base` then holds)."""
+        self._layers = [(None, _identity_pwl(d), Forest())]
+        self.n_marginal_trees_ = np.zeros(d, np.int64)
 
     def _marginal_tree_count(self) -> int:
         """Most one-channel trees per channel (resolves the automatic -1)."""
@@ -516,21 +518,25 @@ class AdditiveTreeDensity:
         if not hasattr(self, "_layers"):
             raise EventDataError("the density model is not fitted yet; call fit(events) first")
 
-    def _base_forward(self, C: np.ndarray):
-        """The base map into the cube: (U (m, d), log-Jacobian (m,))."""
+    def _base_forward(self, C: np.ndarray, want_u: bool = True):
+        """The base map into the cube: (U (m, d), log-Jacobian (m,)); with
+        ``want_u=False`` only the log density (U is None), which for the
+        Gaussian-mixture base skips the CDFs of its Rosenblatt map."""
         m, d = C.shape
         U = np.empty((m, d))
         logd = np.zeros(m)
         gmm = getattr(self, "_gmm", None)
         if gmm is None:
             kernels.base_forward(C, U, logd, self._loc, self._scale, np.log(self._scale))
-            return U, logd
+            return (U if want_u else None), logd
         fr = self._frozen
         if fr.any():
             Uf = np.empty((m, int(fr.sum())))
             kernels.base_forward(np.ascontiguousarray(C[:, fr]), Uf, logd, self._loc[fr],
                                  self._scale[fr], np.log(self._scale[fr]))
             U[:, fr] = Uf
+        if not want_u:
+            return None, logd + gmm.logpdf(C[:, ~fr])
         Ug, lg = gmm.forward(C[:, ~fr])
         U[:, ~fr] = Ug
         logd += lg
@@ -543,15 +549,6 @@ class AdditiveTreeDensity:
             return False
         Q, pwl, forest = self._layers[0]
         return Q is None and forest.n_trees == 0 and bool(np.all(pwl[3] == 1.0))
-
-    def _base_logpdf(self, C: np.ndarray) -> np.ndarray:
-        """Log density of the base alone (m,), without its map into the cube."""
-        fr = self._frozen
-        logd = np.zeros(C.shape[0])
-        if fr.any():
-            kernels.base_forward(np.ascontiguousarray(C[:, fr]), np.empty((C.shape[0], int(fr.sum()))), logd,
-                                 self._loc[fr], self._scale[fr], np.log(self._scale[fr]))
-        return logd + self._gmm.logpdf(C[:, ~fr])
 
     def _base_inverse(self, C: np.ndarray, out: np.ndarray) -> None:
         gmm = getattr(self, "_gmm", None)
@@ -579,7 +576,7 @@ class AdditiveTreeDensity:
         for a in range(0, X.shape[0], CHUNK):
             b = min(X.shape[0], a + CHUNK)
             C = _chunk(X, a, b, "score")
-            out[a:b] = self._base_logpdf(C) if base_only else self._forward_chunk(C)[1]
+            out[a:b] = self._base_forward(C, want_u=False)[1] if base_only else self._forward_chunk(C)[1]
         return out
 
     def score(self, X) -> float:
