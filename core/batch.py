@@ -58,8 +58,8 @@ Parallelism: ``--workers N`` worker processes (``concurrent.futures``; the
 "forkserver" start method where the platform has it -- workers fork from a
 clean server that imported the science once and never ran a parallel kernel --
 else "spawn"; default: the number of CPU cores, at most the number of files).
-The workers start, and load the compiled kernels, while this process reads
-the first file and prepares a control.  Each worker limits numba to ``cores // workers`` threads (at least 1)
+The workers start, and load the compiled kernels, while this process
+prepares a control.  Each worker limits numba to ``cores // workers`` threads (at least 1)
 so processes x threads do not oversubscribe the machine.  ``--workers 1``
 runs in this process.  ``--scheduler ADDRESS`` runs the same task function on
 an existing Dask distributed cluster (``pip install "boscage[cluster]"``); the
@@ -520,11 +520,12 @@ def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | N
     returning False stops the batch like Ctrl-C.  ``numba_threads``: numba
     threads per worker process (default cores // workers, at least 1).
 
-    Worker processes are started (and load the compiled kernels) at once, while
-    this process reads the first file, checks what is finished and prepares a
-    control; a pool that is not used after all is shut down before returning.
+    Worker processes are started (and load the compiled kernels) as soon as the
+    files to do are known, while this process reports the skipped ones and
+    prepares a control; a pool that is not used after all is shut down before
+    returning.
     """
-    box: dict = {"pool": None, "config": None}
+    box: dict = {"pool": None}
     try:
         return _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, progress,
                           numba_threads, box)
@@ -555,11 +556,6 @@ def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, p
         raise RecipeError(f"{input_dir}: the folder holds no *.fcs files")
     os.makedirs(out_dir, exist_ok=True)
     cores = os.cpu_count() or 1
-    if scheduler is None and len(files) > 1:
-        guess = max(1, int(workers)) if workers is not None else max(1, min(cores, len(files)))
-        if guess > 1:
-            config = (guess, numba_threads or max(1, cores // guess))
-            box["pool"], box["config"] = _start_pool(*config), config
     try:
         recipe_obj, recipe_source = _resolve_recipe(recipe, files)
     except _NoReadableFile as exc:  # nothing to build a default recipe from: every file failed
@@ -588,6 +584,8 @@ def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, p
         workers = max(1, min(cores, len(todo)))
     workers = max(1, int(workers))
     threads = numba_threads or max(1, cores // workers)
+    if todo and workers > 1 and scheduler is None:
+        box["pool"] = _start_pool(workers, threads)  # warms up while the control is prepared
 
     stop = False
     interrupted = False
@@ -661,9 +659,7 @@ def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, p
                     break
                 finished(process_file(t), by_path[t["path"]])
         else:
-            pool = None
-            if box["pool"] is not None and box["config"] == (workers, threads):
-                pool, box["pool"] = box["pool"], None  # _run_processes owns it now
+            pool, box["pool"] = box["pool"], None  # _run_processes owns it now
             _run_processes(tasks, workers, threads, lambda row, t: finished(row, by_path[t["path"]]),
                            lambda: stop, pool=pool)
     except KeyboardInterrupt:
