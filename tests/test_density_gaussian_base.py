@@ -137,13 +137,17 @@ def test_invalid_parameters_rejected():
         GaussianMixtureBase(np.array([0.5, 0.5, 0.5]), MU, COV, LOC, SCALE)
 
 
+def _saved_arrays(model, path):
+    """Save ``model`` to ``path`` and read the arrays of the file back (no pickle)."""
+    model.save(path)
+    with np.load(path, allow_pickle=False) as z:
+        return {k: z[k] for k in z.files}
+
+
 def test_damaged_mixture_in_model_file(tmp_path):
     X = _rvs(3000, np.random.default_rng(6))
-    model = AdditiveTreeDensity(base="gmm", random_state=0, n_trees=3).fit(X)
-    good = tmp_path / "good.npz"
-    model.save(good)
-    with np.load(good, allow_pickle=False) as z:
-        arrays = {k: z[k] for k in z.files}
+    arrays = _saved_arrays(AdditiveTreeDensity(base="gmm", random_state=0, n_trees=3).fit(X),
+                           tmp_path / "good.npz")
     cov = arrays["gmm_covariances"].copy()
     cov[0] = -np.eye(3)
     broken = tmp_path / "not_pd.npz"
@@ -167,9 +171,7 @@ def test_file_without_base_parameter_reads_as_logistic(tmp_path):
     X = _rvs(3000, np.random.default_rng(7))
     model = AdditiveTreeDensity(base="logistic", random_state=0, n_trees=3).fit(X)
     path = tmp_path / "v1.npz"
-    model.save(path)
-    with np.load(path, allow_pickle=False) as z:
-        arrays = {k: z[k] for k in z.files}
+    arrays = _saved_arrays(model, path)
     meta = json.loads(str(arrays["metadata"][()]))
     assert meta["format_version"] == 1
     del meta["params"]["base"]
