@@ -692,9 +692,32 @@ def lookahead_split(H, lr, alpha, min_leaf, allowed):
 
 # ------------------------------------------------------------ Gaussian-mixture base
 
+#: |(x - centre) / scale| is clipped here before a skew transform, so its square stays finite.
+_SKEW_XT_MAX = 1e150
+
+
+@njit(cache=True)
+def _skew_y(x, skew, j, k):
+    """Component k's sinh-arcsinh transform of channel j at x:
+    ``y = sinh(asinh(t) - eps)`` with ``t = (x - centre) / scale``, and
+    ``J = scale * dy/dx = cosh(eps) - t sinh(eps) / sqrt(1 + t^2)`` (in
+    [exp(-|eps|), exp(|eps|)], always positive).  ``skew`` (4, d, K) holds centre,
+    1/scale, cosh(eps) and sinh(eps).  Returns (y, J)."""
+    t = (x - skew[0, j, k]) * skew[1, j, k]
+    t = min(max(t, -_SKEW_XT_MAX), _SKEW_XT_MAX)
+    r = math.sqrt(1.0 + t * t)
+    return t * skew[2, j, k] - r * skew[3, j, k], skew[2, j, k] - t * skew[3, j, k] / r
+
+
+@njit(cache=True)
+def _skew_x(y, skew, j, k):
+    """Inverse of :func:`_skew_y`: the x whose transform is y."""
+    return skew[0, j, k] + (y * skew[2, j, k] + math.sqrt(1.0 + y * y) * skew[3, j, k]) / skew[1, j, k]
+
+
 @njit(cache=True)
 def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale,
-                      u_clip, z_max, want_u=True):
+                      u_clip, z_max, want_u, skewed, skew):
     """Rosenblatt map of background + K Gaussians (see core.density.gaussian_base).
 
     X: (n, d) events; U: (n, d) output in [u_clip, 1 - u_clip]; logd: (n,) the
@@ -703,10 +726,14 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, lo
     (d, K) their diagonals; loc, scale, log_scale: (d,) background logistic.
     ``want_u=False`` skips the CDFs (U is not touched): the mixture's log
     density alone, bit-identical to the log-Jacobian of the full map.
+    ``skewed``: each component's Gaussian is on its own sinh-arcsinh transform
+    of the channels (``skew``, see :func:`_skew_y`; means and chol are then in
+    the transformed units and log_sd includes log(scale)); else ``skew`` is unused.
     """
     K, d = means.shape
     lw = np.empty(K + 1)
     z = np.empty((K, d))
+    lj = np.zeros(K)
     for i in range(start, stop):
         for k in range(K + 1):
             lw[k] = logw[k]
@@ -717,11 +744,15 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, lo
                 m = means[k, j]
                 for q in range(j):
                     m += chol[k, j, q] * z[k, q]
-                z[k, j] = min(max((x - m) / sd[j, k], -z_max), z_max)
+                y = x
+                if skewed:
+                    y, jac = _skew_y(x, skew, j, k)
+                    lj[k] = math.log(jac)
+                z[k, j] = min(max((y - m) / sd[j, k], -z_max), z_max)
             if not want_u:
                 lw[0] += _log_sigmoid_pair(zb) - log_scale[j]
                 for k in range(K):
-                    lw[k + 1] += -0.5 * z[k, j] * z[k, j] - _LOG_SQRT_2PI - log_sd[j, k]
+                    lw[k + 1] += -0.5 * z[k, j] * z[k, j] - _LOG_SQRT_2PI - log_sd[j, k] + lj[k]
                 continue
             mx = lw[0]
             for k in range(1, K + 1):
@@ -749,7 +780,7 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, lo
             U[i, j] = min(max(u, u_clip), 1.0 - u_clip)
             lw[0] += _log_sigmoid_pair(zb) - log_scale[j]
             for k in range(K):
-                lw[k + 1] += -0.5 * z[k, j] * z[k, j] - _LOG_SQRT_2PI - log_sd[j, k]
+                lw[k + 1] += -0.5 * z[k, j] * z[k, j] - _LOG_SQRT_2PI - log_sd[j, k] + lj[k]
         mx = lw[0]
         for k in range(1, K + 1):
             mx = max(mx, lw[k])
@@ -761,38 +792,44 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, lo
 
 @njit(cache=True, parallel=True)
 def _gmm_forward_par(X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max,
-                     want_u):
+                     want_u, skewed, skew):
     n = X.shape[0]
     nb = (n + BLOCK - 1) // BLOCK
     for b in prange(nb):
         _gmm_forward_rows(b * BLOCK, min(n, (b + 1) * BLOCK), X, U, logd, logw, means, chol, sd, log_sd,
-                          loc, scale, log_scale, u_clip, z_max, want_u)
+                          loc, scale, log_scale, u_clip, z_max, want_u, skewed, skew)
+
+
+#: ``skew`` argument of the mixture kernels for a mixture without skew transforms.
+NO_SKEW = np.zeros((4, 1, 1))
 
 
 def gmm_forward(X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max,
-                want_u=True):
+                want_u=True, skew=None):
     """Rosenblatt map of the Gaussian-mixture base; see :func:`_gmm_forward_rows`.
-    ``want_u=False``: only the log density (U is not touched, its CDFs not computed)."""
+    ``want_u=False``: only the log density (U is not touched, its CDFs not computed).
+    ``skew``: (4, d, K) per-component transforms (see :func:`_skew_y`) or None."""
+    skewed = skew is not None
     args = (X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, float(u_clip), float(z_max),
-            bool(want_u))
+            bool(want_u), skewed, skew if skewed else NO_SKEW)
     K, d = means.shape
-    cost = (4 if want_u else 1) * (K + 1) * d * (d + 2)
+    cost = (4 if want_u else 1) * (K + 1) * d * (d + 2 + (8 if skewed else 0))
     if _parallel(X.shape[0], cost):
         _gmm_forward_par(*args)
     else:
         _gmm_forward_rows(0, X.shape[0], *args)
 
 
-def gmm_logpdf(X, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, z_max):
+def gmm_logpdf(X, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, z_max, skew=None):
     """Log density of the Gaussian-mixture base added to logd: :func:`gmm_forward`
     without its CDFs."""
     gmm_forward(X, np.empty((0, X.shape[1])), logd, logw, means, chol, sd, log_sd, loc, scale, log_scale,
-                0.0, z_max, want_u=False)
+                0.0, z_max, want_u=False, skew=skew)
 
 
 @njit(cache=True)
 def _gmm_inverse_rows(start, stop, U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale,
-                      u_clip, z_max):
+                      u_clip, z_max, skewed, skew):
     """Inverse of :func:`_gmm_forward_rows`: coordinate by coordinate, the root of
     the conditional mixture CDF F(x) = u by Newton steps safeguarded by a bracket
     (the components' own quantiles enclose the mixture quantile; when Newton
@@ -800,7 +837,9 @@ def _gmm_inverse_rows(start, stop, U, X, logw, means, chol, sd, log_sd, loc, sca
     are known, else bisection: 6.7 instead of 11.4 steps per coordinate on a
     32-component fit), to a relative step of 1e-13.  u is clipped to
     [u_clip, 1 - u_clip]; components below exp(-40) of the largest posterior
-    weight are left out, as in the forward map."""
+    weight are left out, as in the forward map.  With ``skewed`` a component's
+    conditional CDF is Phi((y_k(x) - mean) / sd), y_k its monotone skew
+    transform, and its quantile is mapped back through the inverse transform."""
     K, d = means.shape
     lw = np.empty(K + 1)
     z = np.empty((K, d))
@@ -834,6 +873,8 @@ def _gmm_inverse_rows(start, stop, U, X, logw, means, chol, sd, log_sd, loc, sca
                     continue
                 p[k] /= s
                 q = qb if k == 0 else mean[k - 1] + sd[j, k - 1] * qn
+                if skewed and k > 0:
+                    q = _skew_x(q, skew, j, k - 1)
                 lo = min(lo, q)
                 hi = max(hi, q)
                 x += p[k] * q
@@ -857,9 +898,14 @@ def _gmm_inverse_rows(start, stop, U, X, logw, means, chol, sd, log_sd, loc, sca
                         F += p[0] * c
                         f += p[0] * math.exp(_log_sigmoid_pair(zb)) / scale[j]
                     else:
-                        zk = (x - mean[k - 1]) / sd[j, k - 1]
+                        y = x
+                        dydx = 1.0
+                        if skewed:
+                            y, jac = _skew_y(x, skew, j, k - 1)
+                            dydx = jac * skew[1, j, k - 1]
+                        zk = (y - mean[k - 1]) / sd[j, k - 1]
                         F += p[k] * ndtr(zk)
-                        f += p[k] * math.exp(-0.5 * zk * zk - _LOG_SQRT_2PI) / sd[j, k - 1]
+                        f += p[k] * math.exp(-0.5 * zk * zk - _LOG_SQRT_2PI) / sd[j, k - 1] * dydx
                 r = F - u
                 if r == 0.0:
                     break
@@ -892,23 +938,31 @@ def _gmm_inverse_rows(start, stop, U, X, logw, means, chol, sd, log_sd, loc, sca
             zb = min(max((x - loc[j]) / scale[j], -z_max), z_max)
             lw[0] += _log_sigmoid_pair(zb) - log_scale[j]
             for k in range(K):
-                zk = min(max((x - mean[k]) / sd[j, k], -z_max), z_max)
+                y = x
+                ljk = 0.0
+                if skewed:
+                    y, jac = _skew_y(x, skew, j, k)
+                    ljk = math.log(jac)
+                zk = min(max((y - mean[k]) / sd[j, k], -z_max), z_max)
                 z[k, j] = zk
-                lw[k + 1] += -0.5 * zk * zk - _LOG_SQRT_2PI - log_sd[j, k]
+                lw[k + 1] += -0.5 * zk * zk - _LOG_SQRT_2PI - log_sd[j, k] + ljk
 
 
 @njit(cache=True, parallel=True)
-def _gmm_inverse_par(U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max):
+def _gmm_inverse_par(U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max,
+                     skewed, skew):
     n = U.shape[0]
     nb = (n + BLOCK - 1) // BLOCK
     for b in prange(nb):
         _gmm_inverse_rows(b * BLOCK, min(n, (b + 1) * BLOCK), U, X, logw, means, chol, sd, log_sd,
-                          loc, scale, log_scale, u_clip, z_max)
+                          loc, scale, log_scale, u_clip, z_max, skewed, skew)
 
 
-def gmm_inverse(U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max):
+def gmm_inverse(U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max, skew=None):
     """Inverse Rosenblatt map of the Gaussian-mixture base; see :func:`_gmm_inverse_rows`."""
-    args = (U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale, float(u_clip), float(z_max))
+    skewed = skew is not None
+    args = (U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale, float(u_clip), float(z_max),
+            skewed, skew if skewed else NO_SKEW)
     K, d = means.shape
     if _parallel(U.shape[0], 40 * (K + 1) * d * (d + 2)):
         _gmm_inverse_par(*args)
@@ -1012,3 +1066,65 @@ def em_stats(X, bg, logw, means, chol, log_det, n_parts=16):
     low = np.tril(M)
     M = low + np.swapaxes(np.tril(M, -1), 1, 2)
     return float(ll.sum()), N, S, M
+
+
+# ------------------------------------------------------------ skewed-component EM
+
+@njit(cache=True)
+def _skew_estep_rows(start, stop, X, bg, logw, means, chol, log_det, skew, R, ll):
+    """E step of a mixture whose components are Gaussians on their own skew
+    transforms (:func:`_skew_y`).  For rows start:stop writes the
+    responsibilities to R (n, K + 1) (background first) and each row's log
+    likelihood to ll (n,).  means (K, d), chol (K, d, d) are in the transformed
+    units; log_det (K,) is sum log diag(chol) + sum log(scale) of the component."""
+    K, d = means.shape
+    lp = np.empty(K + 1)
+    z = np.empty(d)
+    half_d_log2pi = d * _LOG_SQRT_2PI
+    for i in range(start, stop):
+        lp[0] = logw[0] + bg[i]
+        mx = lp[0]
+        for k in range(K):
+            q = 0.0
+            lj = 0.0
+            for j in range(d):
+                y, jac = _skew_y(X[i, j], skew, j, k)
+                lj += math.log(jac)
+                v = y - means[k, j]
+                for a in range(j):
+                    v -= chol[k, j, a] * z[a]
+                v /= chol[k, j, j]
+                z[j] = v
+                q += v * v
+            lp[k + 1] = logw[k + 1] - 0.5 * q - log_det[k] - half_d_log2pi + lj
+            if lp[k + 1] > mx:
+                mx = lp[k + 1]
+        s = 0.0
+        for k in range(K + 1):
+            lp[k] = math.exp(lp[k] - mx)
+            s += lp[k]
+        ll[i] = mx + math.log(s)
+        for k in range(K + 1):
+            R[i, k] = lp[k] / s
+
+
+@njit(cache=True, parallel=True)
+def _skew_estep_par(X, bg, logw, means, chol, log_det, skew, R, ll):
+    n = X.shape[0]
+    nb = (n + BLOCK - 1) // BLOCK
+    for b in prange(nb):
+        _skew_estep_rows(b * BLOCK, min(n, (b + 1) * BLOCK), X, bg, logw, means, chol, log_det, skew, R, ll)
+
+
+def skew_estep(X, bg, logw, means, chol, log_det, skew):
+    """E step of the skewed-component mixture: (responsibilities (n, K + 1),
+    log-likelihood of each event (n,)); see :func:`_skew_estep_rows`."""
+    n = X.shape[0]
+    K, d = means.shape
+    R = np.empty((n, K + 1))
+    ll = np.empty(n)
+    if _parallel(n, K * d * (d + 8)):
+        _skew_estep_par(X, bg, logw, means, chol, log_det, skew, R, ll)
+    else:
+        _skew_estep_rows(0, n, X, bg, logw, means, chol, log_det, skew, R, ll)
+    return R, ll

@@ -21,7 +21,7 @@ from .. import RESEARCH_USE_NOTE, __version__
 from ..atomic import atomic_write
 from ..errors import ModelFileError
 from . import kernels
-from .gaussian_base import GaussianMixtureBase
+from .gaussian_base import BASES, MIXTURE_BASES, GaussianMixtureBase
 from .tree import Forest
 
 FORMAT_NAME = "boscage-additive-tree-density"
@@ -29,7 +29,11 @@ FORMAT_NAME = "boscage-additive-tree-density"
 #: Gaussian-mixture base (arrays ``gmm_weights``, ``gmm_means``,
 #: ``gmm_covariances``, ``gmm_loc``, ``gmm_scale``); models with the logistic
 #: base are still written as version 1 so older readers keep reading them.
-FORMAT_VERSION = 2
+#: Version 3 adds skewed mixture components (array ``gmm_skew`` (3, K, d):
+#: transform centres, scales and skews); a mixture without them is still
+#: written as version 2, and an older reader refuses a version-3 file rather
+#: than scoring it without its transforms.
+FORMAT_VERSION = 3
 _GMM_ARRAYS = ("gmm_weights", "gmm_means", "gmm_covariances", "gmm_loc", "gmm_scale")
 
 _ARRAYS = ("loc", "scale", "frozen", "bounds", "rot", "has_rot", "m_off", "m_xs", "m_ys", "m_sl",
@@ -62,7 +66,7 @@ def save_model(model, path) -> None:
     gmm = getattr(model, "_gmm", None)
     meta = {
         "format": FORMAT_NAME,
-        "format_version": 2 if gmm is not None else 1,
+        "format_version": (1 if gmm is None else 2 if gmm.skew is None else 3),
         "software_version": __version__,
         "note": RESEARCH_USE_NOTE,
         "params": model.get_params(),
@@ -85,6 +89,8 @@ def save_model(model, path) -> None:
     if gmm is not None:
         arrays.update(gmm_weights=gmm.weights, gmm_means=gmm.means, gmm_covariances=gmm.covariances,
                       gmm_loc=gmm.loc, gmm_scale=gmm.scale)
+        if gmm.skew is not None:
+            arrays.update(gmm_skew=gmm.skew)
     with atomic_write(path, "wb", overwrite=True) as handle:
         np.savez(handle, metadata=np.array(json.dumps(meta)), **arrays)
 
@@ -118,6 +124,10 @@ def load_model(cls, path):
                 raise _fail(path, "damaged density model file: incomplete Gaussian mixture base")
             if all(has_gmm):
                 a.update({k: z[k] for k in _GMM_ARRAYS})
+            if "gmm_skew" in files:
+                if not all(has_gmm):
+                    raise _fail(path, "damaged density model file: skew transforms without a mixture")
+                a["gmm_skew"] = z["gmm_skew"]
     except ModelFileError:
         raise
     except (OSError, ValueError, zipfile.BadZipFile, EOFError, KeyError, json.JSONDecodeError,
@@ -148,7 +158,7 @@ def _build(cls, meta, a):
     model = cls(**{k: v for k, v in params.items() if k in cls._PARAMS})
     # files written before the base became a parameter used the logistic base
     model.base = params.get("base", "logistic")
-    if model.base not in ("logistic", "gmm"):
+    if model.base not in BASES:
         raise ValueError(f"unknown base measure {model.base!r}")
     loc = _arr(a, "loc", np.float64, (d,))
     scale = _arr(a, "scale", np.float64, (d,))
@@ -213,7 +223,7 @@ def _build(cls, meta, a):
         raise ValueError("tree count does not match the metadata")
     model._loc, model._scale, model._frozen = loc, scale, frozen
     model._gmm = None
-    if model.base == "gmm" and not frozen.all():
+    if model.base in MIXTURE_BASES and not frozen.all():
         if "gmm_weights" not in a:
             raise ValueError("the Gaussian mixture base is missing")
         k_free = int((~frozen).sum())
@@ -224,7 +234,8 @@ def _build(cls, meta, a):
         model._gmm = GaussianMixtureBase(
             _arr(a, "gmm_weights", np.float64, (K + 1,)), means,
             _arr(a, "gmm_covariances", np.float64, (K, k_free, k_free)),
-            _arr(a, "gmm_loc", np.float64, (k_free,)), _arr(a, "gmm_scale", np.float64, (k_free,)))
+            _arr(a, "gmm_loc", np.float64, (k_free,)), _arr(a, "gmm_scale", np.float64, (k_free,)),
+            skew=_arr(a, "gmm_skew", np.float64, (3, K, k_free)) if "gmm_skew" in a else None)
     elif "gmm_weights" in a:
         raise ValueError("a Gaussian mixture base is stored but the model does not use one")
     model.bounds_ = bounds
