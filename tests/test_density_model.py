@@ -51,9 +51,10 @@ def mix2_logpdf(x):
     return np.log(sum(w * stats.multivariate_normal(m, c).pdf(x) for w, m, c in MIX2))
 
 
-@pytest.fixture(scope="module", params=["logistic", "gmm"])
+@pytest.fixture(scope="module", params=["logistic", "gmm", "skewed"])
 def base(request):
-    """Every model test runs with both bases (logistic map / Gaussian-mixture Rosenblatt map)."""
+    """Every model test runs with each base (logistic map / Gaussian-mixture Rosenblatt map /
+    the same with skewed components, the default)."""
     return request.param
 
 
@@ -213,8 +214,10 @@ def test_save_load_identical(tmp_path, mix2_model, base):
     # reference: numpy.load with allow_pickle=False reads it (no pickled objects inside)
     with np.load(path, allow_pickle=False) as z:
         meta = json.loads(str(z["metadata"][()]))
-    # version 1: logistic base; version 2 adds the Gaussian-mixture arrays
-    assert meta["format_version"] == (2 if base == "gmm" else 1) and meta["n_features_in"] == 2
+    # version 1: logistic base; version 2 adds the Gaussian-mixture arrays, version 3 skewed components
+    skewed = model._gmm is not None and model._gmm.skew is not None
+    assert meta["format_version"] == (1 if base == "logistic" else 3 if skewed else 2)
+    assert meta["n_features_in"] == 2
 
 
 def test_damaged_files_raise_model_file_error(tmp_path, mix1_model):
@@ -279,7 +282,7 @@ def test_cancel_keeps_a_usable_model(mix2_model, base):
     # the mixture base reports its stages first (step 0, a dict naming the stage)
     base_calls = [c for c in calls if isinstance(c[2], dict)]
     assert all(c[0] == 0 and "stage" in c[2] for c in base_calls)
-    assert (len(base_calls) > 0) == (base == "gmm")
+    assert (len(base_calls) > 0) == (base != "logistic")
     tree_calls = [c for c in calls if not isinstance(c[2], dict)]
     assert [c[0] for c in tree_calls] == [0, 1, 2, 3]
     assert all(np.isfinite(c[2]) for c in tree_calls)

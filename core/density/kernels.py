@@ -692,11 +692,15 @@ def lookahead_split(H, lr, alpha, min_leaf, allowed):
 
 # ------------------------------------------------------------ Gaussian-mixture base
 
+# The mixture kernels use numpy's error model (IEEE results, no Python
+# ZeroDivisionError checks) so their loops over components can be vectorised;
+# no division in them can meet a zero divisor (scales and sds are positive).
+
 #: |(x - centre) / scale| is clipped here before a skew transform, so its square stays finite.
 _SKEW_XT_MAX = 1e150
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _skew_y(x, skew, j, k):
     """Component k's sinh-arcsinh transform of channel j at x:
     ``y = sinh(asinh(t) - eps)`` with ``t = (x - centre) / scale``, and
@@ -709,13 +713,13 @@ def _skew_y(x, skew, j, k):
     return t * skew[2, j, k] - r * skew[3, j, k], skew[2, j, k] - t * skew[3, j, k] / r
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _skew_x(y, skew, j, k):
     """Inverse of :func:`_skew_y`: the x whose transform is y."""
     return skew[0, j, k] + (y * skew[2, j, k] + math.sqrt(1.0 + y * y) * skew[3, j, k]) / skew[1, j, k]
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale,
                       u_clip, z_max, want_u, skewed, skew):
     """Rosenblatt map of background + K Gaussians (see core.density.gaussian_base).
@@ -725,7 +729,9 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, lo
     first); means (K, d); chol (K, d, d) lower Cholesky factors; sd, log_sd:
     (d, K) their diagonals; loc, scale, log_scale: (d,) background logistic.
     ``want_u=False`` skips the CDFs (U is not touched): the mixture's log
-    density alone, bit-identical to the log-Jacobian of the full map.
+    density alone, bit-identical to the log-Jacobian of the full map for
+    Gaussian components (with skewed ones the transform factors are multiplied
+    before their log is taken: equal to ~1e-14).
     ``skewed``: each component's Gaussian is on its own sinh-arcsinh transform
     of the channels (``skew``, see :func:`_skew_y`; means and chol are then in
     the transformed units and log_sd includes log(scale)); else ``skew`` is unused.
@@ -734,9 +740,13 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, lo
     lw = np.empty(K + 1)
     z = np.empty((K, d))
     lj = np.zeros(K)
+    jp = np.ones(K)
     for i in range(start, stop):
         for k in range(K + 1):
             lw[k] = logw[k]
+        if skewed and not want_u:
+            for k in range(K):
+                jp[k] = 1.0
         for j in range(d):
             x = X[i, j]
             zb = min(max((x - loc[j]) / scale[j], -z_max), z_max)
@@ -747,7 +757,12 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, lo
                 y = x
                 if skewed:
                     y, jac = _skew_y(x, skew, j, k)
-                    lj[k] = math.log(jac)
+                    if want_u:
+                        lj[k] = math.log(jac)
+                    else:
+                        # density only: multiply the factors (each within
+                        # exp(+-MAX_SKEW), so no overflow) and take one log per component
+                        jp[k] *= jac
                 z[k, j] = min(max((y - m) / sd[j, k], -z_max), z_max)
             if not want_u:
                 lw[0] += _log_sigmoid_pair(zb) - log_scale[j]
@@ -781,6 +796,9 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, lo
             lw[0] += _log_sigmoid_pair(zb) - log_scale[j]
             for k in range(K):
                 lw[k + 1] += -0.5 * z[k, j] * z[k, j] - _LOG_SQRT_2PI - log_sd[j, k] + lj[k]
+        if skewed and not want_u:
+            for k in range(K):
+                lw[k + 1] += math.log(jp[k])
         mx = lw[0]
         for k in range(1, K + 1):
             mx = max(mx, lw[k])
@@ -790,7 +808,74 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, lo
         logd[i] += mx + math.log(s)
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, error_model="numpy")
+def _skew_logpdf_rows(start, stop, X, logd, logw, means_t, chol_t, inv_sd, log_sd, loc, scale, log_scale,
+                      z_max, skew):
+    """Log density of a mixture with skewed components (added to logd), laid out
+    with the component index innermost so the compiler can vectorise over
+    components: means_t (d, K), chol_t (d, d, K) (chol_t[j, q, k] = L_k[j, q]),
+    inv_sd, log_sd (d, K) (log_sd includes log scale of the transform), skew
+    (4, d, K).  The same density as :func:`_gmm_forward_rows` with
+    ``want_u=False`` (to ~1e-14; the per-channel factors dy/dx are multiplied,
+    each within exp(+-|eps|), and one log is taken per component)."""
+    d, K = means_t.shape
+    lw = np.empty(K)
+    m = np.empty(K)
+    jp = np.empty(K)
+    z = np.empty((d, K))
+    for i in range(start, stop):
+        lw0 = logw[0]
+        for k in range(K):
+            lw[k] = logw[k + 1]
+            jp[k] = 1.0
+        for j in range(d):
+            x = X[i, j]
+            zb = min(max((x - loc[j]) / scale[j], -z_max), z_max)
+            lw0 += _log_sigmoid_pair(zb) - log_scale[j]
+            for k in range(K):
+                m[k] = means_t[j, k]
+            for q in range(j):
+                for k in range(K):
+                    m[k] += chol_t[j, q, k] * z[q, k]
+            for k in range(K):
+                t = (x - skew[0, j, k]) * skew[1, j, k]
+                t = min(max(t, -_SKEW_XT_MAX), _SKEW_XT_MAX)
+                r = math.sqrt(1.0 + t * t)
+                y = t * skew[2, j, k] - r * skew[3, j, k]
+                jp[k] *= skew[2, j, k] - t * skew[3, j, k] / r
+                zz = min(max((y - m[k]) * inv_sd[j, k], -z_max), z_max)
+                z[j, k] = zz
+                lw[k] += -0.5 * zz * zz - log_sd[j, k]
+        mx = lw0
+        for k in range(K):
+            lw[k] += math.log(jp[k]) - d * _LOG_SQRT_2PI
+            mx = max(mx, lw[k])
+        acc = math.exp(lw0 - mx)
+        for k in range(K):
+            acc += math.exp(lw[k] - mx)
+        logd[i] += mx + math.log(acc)
+
+
+@njit(cache=True, parallel=True, error_model="numpy")
+def _skew_logpdf_par(X, logd, logw, means_t, chol_t, inv_sd, log_sd, loc, scale, log_scale, z_max, skew):
+    n = X.shape[0]
+    nb = (n + BLOCK - 1) // BLOCK
+    for b in prange(nb):
+        _skew_logpdf_rows(b * BLOCK, min(n, (b + 1) * BLOCK), X, logd, logw, means_t, chol_t, inv_sd,
+                          log_sd, loc, scale, log_scale, z_max, skew)
+
+
+def skew_logpdf(X, logd, logw, means_t, chol_t, inv_sd, log_sd, loc, scale, log_scale, z_max, skew):
+    """Log density of the skewed-component mixture added to logd; see :func:`_skew_logpdf_rows`."""
+    args = (X, logd, logw, means_t, chol_t, inv_sd, log_sd, loc, scale, log_scale, float(z_max), skew)
+    d, K = means_t.shape
+    if _parallel(X.shape[0], (K + 1) * d * (d + 10)):
+        _skew_logpdf_par(*args)
+    else:
+        _skew_logpdf_rows(0, X.shape[0], *args)
+
+
+@njit(cache=True, parallel=True, error_model="numpy")
 def _gmm_forward_par(X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max,
                      want_u, skewed, skew):
     n = X.shape[0]
@@ -827,7 +912,7 @@ def gmm_logpdf(X, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, z_
                 0.0, z_max, want_u=False, skew=skew)
 
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _gmm_inverse_rows(start, stop, U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale,
                       u_clip, z_max, skewed, skew):
     """Inverse of :func:`_gmm_forward_rows`: coordinate by coordinate, the root of
@@ -948,7 +1033,7 @@ def _gmm_inverse_rows(start, stop, U, X, logw, means, chol, sd, log_sd, loc, sca
                 lw[k + 1] += -0.5 * zk * zk - _LOG_SQRT_2PI - log_sd[j, k] + ljk
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=True, error_model="numpy")
 def _gmm_inverse_par(U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max,
                      skewed, skew):
     n = U.shape[0]
@@ -972,7 +1057,7 @@ def gmm_inverse(U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_cl
 
 # ------------------------------------------------------------ Gaussian-mixture EM
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _em_stats_rows(start, stop, X, bg, logw, means, chol, log_det, acc_n, acc_s, acc_m, ll_out):
     """E step for rows start:stop and their responsibility-weighted sums.
 
@@ -1030,7 +1115,7 @@ def _em_stats_rows(start, stop, X, bg, logw, means, chol, log_det, acc_n, acc_s,
     ll_out[0] += ll
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=True, error_model="numpy")
 def _em_stats_par(X, bg, logw, means, chol, log_det, acc_n, acc_s, acc_m, ll_out):
     n = X.shape[0]
     nb = acc_n.shape[0]
@@ -1070,7 +1155,7 @@ def em_stats(X, bg, logw, means, chol, log_det, n_parts=16):
 
 # ------------------------------------------------------------ skewed-component EM
 
-@njit(cache=True)
+@njit(cache=True, error_model="numpy")
 def _skew_estep_rows(start, stop, X, bg, logw, means, chol, log_det, skew, R, ll):
     """E step of a mixture whose components are Gaussians on their own skew
     transforms (:func:`_skew_y`).  For rows start:stop writes the
@@ -1086,17 +1171,17 @@ def _skew_estep_rows(start, stop, X, bg, logw, means, chol, log_det, skew, R, ll
         mx = lp[0]
         for k in range(K):
             q = 0.0
-            lj = 0.0
+            jp = 1.0
             for j in range(d):
                 y, jac = _skew_y(X[i, j], skew, j, k)
-                lj += math.log(jac)
+                jp *= jac
                 v = y - means[k, j]
                 for a in range(j):
                     v -= chol[k, j, a] * z[a]
                 v /= chol[k, j, j]
                 z[j] = v
                 q += v * v
-            lp[k + 1] = logw[k + 1] - 0.5 * q - log_det[k] - half_d_log2pi + lj
+            lp[k + 1] = logw[k + 1] - 0.5 * q - log_det[k] - half_d_log2pi + math.log(jp)
             if lp[k + 1] > mx:
                 mx = lp[k + 1]
         s = 0.0
@@ -1108,7 +1193,7 @@ def _skew_estep_rows(start, stop, X, bg, logw, means, chol, log_det, skew, R, ll
             R[i, k] = lp[k] / s
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=True, error_model="numpy")
 def _skew_estep_par(X, bg, logw, means, chol, log_det, skew, R, ll):
     n = X.shape[0]
     nb = (n + BLOCK - 1) // BLOCK
