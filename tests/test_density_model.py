@@ -215,8 +215,8 @@ def test_save_load_identical(tmp_path, mix2_model, base):
     with np.load(path, allow_pickle=False) as z:
         meta = json.loads(str(z["metadata"][()]))
     # version 1: logistic base; version 2 adds the Gaussian-mixture arrays, version 3 skewed components
-    skewed = model._gmm is not None and model._gmm.skew is not None
-    assert meta["format_version"] == (1 if base == "logistic" else 3 if skewed else 2)
+    new_parts = model._gmm is not None and (model._gmm.skew is not None or model._gmm.background is not None)
+    assert meta["format_version"] == (1 if base == "logistic" else 3 if new_parts else 2)
     assert meta["n_features_in"] == 2
 
 

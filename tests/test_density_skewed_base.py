@@ -27,19 +27,43 @@ SCALE = np.array([[1.0, 0.5, 2.0], [0.7, 1.5, 1.0]])
 EPS = np.array([[0.8, -0.5, 0.0], [-1.2, 0.3, 1.5]])
 LOC = np.array([1.5, -0.5, 0.0])
 BG_SCALE = np.array([3.0, 2.0, 3.0])
+#: A flat-top background: edges a, b and softness per channel.
+FLAT = np.array([[-6.0, -8.0, -5.0], [9.0, 6.0, 7.0], [0.3, 0.1, 0.5]])
 
 
-@pytest.fixture(scope="module")
-def known():
-    return GaussianMixtureBase(W, MU, COV, LOC, BG_SCALE, skew=np.stack([CENTRE, SCALE, EPS]))
+@pytest.fixture(scope="module", params=["logistic background", "flat background"])
+def known(request):
+    flat = FLAT if request.param == "flat background" else None
+    return GaussianMixtureBase(W, MU, COV, LOC, BG_SCALE, skew=np.stack([CENTRE, SCALE, EPS]), background=flat)
 
 
-def _rvs(n, rng):
+def _background_rvs(size, rng, flat):
+    if flat is None:
+        return stats.logistic(LOC, BG_SCALE).rvs(size=size, random_state=rng)
+    # uniform on [a, b] plus logistic noise of scale s (scipy.stats.uniform, logistic)
+    return (stats.uniform(FLAT[0], FLAT[1] - FLAT[0]).rvs(size=size, random_state=rng)
+            + stats.logistic(0.0, FLAT[2]).rvs(size=size, random_state=rng))
+
+
+def _bg_ref_logpdf(X, flat):
+    if flat is None:
+        return stats.logistic(LOC, BG_SCALE).logpdf(X).sum(axis=1)
+    # the convolution's density: (F_L((x - a)/s) - F_L((x - b)/s)) / (b - a), F_L the
+    # logistic CDF (scipy.stats.logistic.cdf; its survival function sf right of the
+    # middle, where both CDFs are near 1)
+    a, b, soft = FLAT
+    L = stats.logistic
+    left = L.cdf((X - a) / soft) - L.cdf((X - b) / soft)
+    right = L.sf((X - b) / soft) - L.sf((X - a) / soft)
+    return np.log(np.where(X < 0.5 * (a + b), left, right) / (b - a)).sum(axis=1)
+
+
+def _rvs(n, rng, flat=None):
     """Draws: y ~ N(mu_k, cov_k), x = centre + scale sinh(asinh(y) + eps); or the background."""
     k = rng.choice(3, size=n, p=W)
     X = np.empty((n, 3))
     bg = k == 0
-    X[bg] = stats.logistic(LOC, BG_SCALE).rvs(size=(bg.sum(), 3), random_state=rng)
+    X[bg] = _background_rvs((bg.sum(), 3), rng, flat)
     for c in (1, 2):
         sel = k == c
         y = rng.multivariate_normal(MU[c - 1], COV[c - 1], sel.sum())
@@ -47,11 +71,11 @@ def _rvs(n, rng):
     return X
 
 
-def _ref_logpdf(X):
+def _ref_logpdf(X, flat=None):
     # change of variables written directly: y = sinh(asinh(t) - eps), t = (x - c)/s,
     # dy/dx = cosh(asinh(t) - eps) / sqrt(1 + t^2) / s; Gaussian density from
     # scipy.stats.multivariate_normal, background from scipy.stats.logistic
-    dens = W[0] * np.exp(stats.logistic(LOC, BG_SCALE).logpdf(X).sum(axis=1))
+    dens = W[0] * np.exp(_bg_ref_logpdf(X, flat))
     for c in (1, 2):
         t = (X - CENTRE[c - 1]) / SCALE[c - 1]
         a = np.arcsinh(t) - EPS[c - 1]
@@ -62,15 +86,16 @@ def _ref_logpdf(X):
 
 
 def test_log_density_matches_change_of_variables(known):
-    X = _rvs(3000, np.random.default_rng(1))
-    ref = _ref_logpdf(X)
+    X = _rvs(3000, np.random.default_rng(1), known.background)
+    X[:50] = np.random.default_rng(9).uniform(-30, 30, (50, 3))  # the background's tails too
+    ref = _ref_logpdf(X, known.background)
     np.testing.assert_allclose(known.logpdf(X), ref, rtol=0, atol=1e-9)
     _, logd = known.forward(X)
     np.testing.assert_allclose(logd, ref, rtol=0, atol=1e-9)
 
 
 def test_map_of_samples_is_uniform_and_independent(known):
-    U, _ = known.forward(_rvs(20_000, np.random.default_rng(2)))
+    U, _ = known.forward(_rvs(20_000, np.random.default_rng(2), known.background))
     for j in range(3):
         # reference: scipy.stats.kstest against uniform(0, 1)
         assert stats.kstest(U[:, j], "uniform").pvalue > 1e-3
@@ -81,7 +106,7 @@ def test_map_of_samples_is_uniform_and_independent(known):
 
 def test_log_jacobian_is_the_maps_own(known):
     # the map is triangular: log det = sum_j log d u_j / d x_j (central differences)
-    X = _rvs(200, np.random.default_rng(3))
+    X = _rvs(200, np.random.default_rng(3), known.background)
     _, logd = known.forward(X)
     h = 1e-6
     jac = np.zeros(X.shape[0])
@@ -94,22 +119,35 @@ def test_log_jacobian_is_the_maps_own(known):
 
 
 def test_inverse_round_trip_and_sampling(known):
-    X = _rvs(5000, np.random.default_rng(4))
+    X = _rvs(5000, np.random.default_rng(4), known.background)
+    X[:50] = np.random.default_rng(10).uniform(-30, 30, (50, 3))
     U, _ = known.forward(X)
-    np.testing.assert_allclose(known.inverse(U), X, rtol=1e-9, atol=1e-9)
+    # rows whose u reached the clip level (1e-15 from 0 or 1: the far tails of a
+    # thin-edged background) cannot come back exactly; every other row does
+    inner = ((U > 1e-13) & (U < 1 - 1e-13)).all(axis=1)
+    assert inner[50:].mean() > 0.99
+    back = known.inverse(U[inner])
+    # in u the round trip is exact to the solver's 1e-13 relative step; in x to the conditioning
+    # of the tails (where 1 - u ~ 1e-10, u's last bit moves x by ~1e-7 of the softness)
+    np.testing.assert_allclose(known.forward(back)[0], U[inner], rtol=0, atol=1e-12)
+    np.testing.assert_allclose(back, X[inner], rtol=1e-6, atol=1e-9)
+    central = ((U > 1e-4) & (U < 1 - 1e-4)).all(axis=1)
+    np.testing.assert_allclose(known.inverse(U[central]), X[central], rtol=1e-9, atol=1e-9)
     # uniform draws pushed back follow the mixture: compare each channel with
     # direct draws (reference: scipy.stats.ks_2samp)
     S = known.inverse(np.random.default_rng(5).random((20_000, 3)))
-    D = _rvs(20_000, np.random.default_rng(6))
+    D = _rvs(20_000, np.random.default_rng(6), known.background)
     for j in range(3):
         assert stats.ks_2samp(S[:, j], D[:, j]).pvalue > 1e-3
 
 
-def test_two_channel_density_integrates_to_one():
+@pytest.mark.parametrize("flat", [None, FLAT[:, :2]], ids=["logistic background", "flat background"])
+def test_two_channel_density_integrates_to_one(flat):
     # numpy trapezoid rule on a wide grid (the logistic background's tails
-    # beyond +-150 scale units hold < 1e-60 of the mass)
+    # beyond +-130 scale units hold < 1e-50 of the mass)
     sk = np.stack([CENTRE[:, :2], SCALE[:, :2], EPS[:, :2]])
-    m = GaussianMixtureBase(W, MU[:, :2], COV[:, :2, :2], LOC[:2], BG_SCALE[:2], skew=sk)
+    w = np.array([0.3, 0.3, 0.4])  # a heavy background, so its own normalisation counts
+    m = GaussianMixtureBase(w, MU[:, :2], COV[:, :2, :2], LOC[:2], BG_SCALE[:2], skew=sk, background=flat)
     g = np.concatenate([np.linspace(-400, -20, 400), np.linspace(-20, 20, 2001)[1:-1],
                         np.linspace(20, 400, 400)])
     A, B = np.meshgrid(g, g, indexing="ij")
@@ -126,8 +164,11 @@ def test_far_events_keep_a_finite_log_density(known):
     assert np.isfinite(U).all() and np.isfinite(logd).all()
 
 
-def test_invalid_skew_rejected():
+def test_invalid_skew_or_background_rejected():
     sk = np.stack([CENTRE, SCALE, EPS])
+    for bad in (FLAT[::-1], FLAT[:, :2], FLAT * np.array([[1], [1], [0]])):
+        with pytest.raises(ValueError):
+            GaussianMixtureBase(W, MU, COV, LOC, BG_SCALE, skew=sk, background=bad)
     bad_scale = sk.copy()
     bad_scale[1, 0, 0] = 0.0
     bad_eps = sk.copy()
@@ -151,14 +192,15 @@ def test_fit_recovers_a_skewed_mixture_better_than_gaussians():
 
 def test_model_file_keeps_the_skew(tmp_path):
     rng = np.random.default_rng(8)
-    X = _rvs(8000, rng)
+    X = _rvs(12_000, rng)
     model = AdditiveTreeDensity(random_state=0).fit(X)
-    assert model.base == "skewed" and model._gmm.skew is not None
+    assert model.base == "skewed" and model._gmm.skew is not None and model._gmm.background is not None
     path = tmp_path / "skewed.npz"
     model.save(path)
     with np.load(path, allow_pickle=False) as z:
         assert json.loads(str(z["metadata"][()]))["format_version"] == 3
         np.testing.assert_array_equal(z["gmm_skew"], model._gmm.skew)
+        np.testing.assert_array_equal(z["gmm_background"], model._gmm.background)
     back = AdditiveTreeDensity.load(path)
     Xt = _rvs(2000, rng)
     np.testing.assert_array_equal(back.score_samples(Xt), model.score_samples(Xt))

@@ -103,9 +103,13 @@ class GaussianMixtureBase:
     covariances : ndarray (K, d, d)
     loc, scale : ndarray (d,)
         Background component's logistic location and scale (units of X).
+    background : ndarray (3, d) or None
+        When given, the background is instead a flat top with soft edges per
+        channel: rows a, b, s (the uniform on [a, b] convolved with a
+        logistic of scale s; :func:`core.density.kernels._bg_logpdf`).
     """
 
-    def __init__(self, weights, means, covariances, loc, scale, skew=None):
+    def __init__(self, weights, means, covariances, loc, scale, skew=None, background=None):
         self.weights = np.ascontiguousarray(weights, dtype=np.float64)
         self.means = np.ascontiguousarray(means, dtype=np.float64)
         self.covariances = np.ascontiguousarray(covariances, dtype=np.float64)
@@ -151,6 +155,21 @@ class GaussianMixtureBase:
             self._chol_t = np.ascontiguousarray(np.transpose(self.chol, (1, 2, 0)))
             self._inv_sd = 1.0 / self._sd
         self._log_scale = np.log(self.scale)
+        self.background = None
+        if background is None:
+            self._bgp = np.ascontiguousarray(np.stack([self.loc, self.scale, self._log_scale, np.zeros(d)]))
+        else:
+            bgr = np.ascontiguousarray(background, dtype=np.float64)
+            if bgr.shape != (3, d):
+                raise ValueError("inconsistent background array shape")
+            a, b, soft = bgr
+            if not (np.isfinite(bgr).all() and (b > a).all() and (soft > 0).all()):
+                raise ValueError("a flat background needs finite edges a < b and positive softness")
+            self.background = bgr
+            width = b - a
+            const = np.log(-np.expm1(-width / soft)) - np.log(width)
+            self._bgp = np.ascontiguousarray(np.stack([a, b, soft, const]))
+        self._flat = self.background is not None
         #: True when :meth:`fit` was stopped through its progress callback.
         self.cancelled = False
 
@@ -171,10 +190,10 @@ class GaussianMixtureBase:
         logd = np.zeros(X.shape[0])
         if self._skew is not None:
             kernels.skew_logpdf(X, logd, self.log_weights, self._means_t, self._chol_t, self._inv_sd,
-                                self._log_sd, self.loc, self.scale, self._log_scale, _Z_MAX, self._skew)
+                                self._log_sd, self._bgp, self._flat, _Z_MAX, self._skew)
             return logd
         kernels.gmm_logpdf(X, logd, self.log_weights, self.means, self.chol, self._sd, self._log_sd,
-                           self.loc, self.scale, self._log_scale, _Z_MAX, skew=self._skew)
+                           self._bgp, self._flat, _Z_MAX, skew=self._skew)
         return logd
 
     def forward(self, X) -> tuple[np.ndarray, np.ndarray]:
@@ -185,7 +204,7 @@ class GaussianMixtureBase:
         U = np.empty((n, d))
         logd = np.zeros(n)
         kernels.gmm_forward(X, U, logd, self.log_weights, self.means, self.chol, self._sd,
-                            self._log_sd, self.loc, self.scale, self._log_scale, U_CLIP, _Z_MAX,
+                            self._log_sd, self._bgp, self._flat, U_CLIP, _Z_MAX,
                             skew=self._skew)
         return U, logd
 
@@ -196,7 +215,7 @@ class GaussianMixtureBase:
         U = np.ascontiguousarray(U, dtype=np.float64)
         X = np.empty(U.shape)
         kernels.gmm_inverse(U, X, self.log_weights, self.means, self.chol, self._sd, self._log_sd,
-                            self.loc, self.scale, self._log_scale, U_CLIP, _Z_MAX, skew=self._skew)
+                            self._bgp, self._flat, U_CLIP, _Z_MAX, skew=self._skew)
         return X
 
     # ------------------------------------------------------------ fitting
@@ -204,7 +223,7 @@ class GaussianMixtureBase:
     def fit(cls, X, loc, scale, components=DEFAULT_COMPONENTS, random_state=None,
             max_em_events: int = 50_000, max_iter: int = 100, tol: float = 1e-3,
             n_init: int = 1, min_gain: float = 2e-3, skew: bool = True,
-            progress=None) -> "GaussianMixtureBase":
+            flat_background: bool = False, progress=None) -> "GaussianMixtureBase":
         """Fit by EM (float64) and choose the number of Gaussian components by
         held-out log-likelihood.
 
@@ -226,6 +245,10 @@ class GaussianMixtureBase:
         (floor).  With ``skew``, the chosen mixture is then refitted with a
         sinh-arcsinh transform per component and channel (:func:`_skew_em`),
         kept only if it beats it on the held-out 20 % by ``min_gain``.
+        With ``flat_background`` the background component is a flat top with
+        soft edges per channel (:func:`_initial_flat_background`), whose
+        edges and softness the skewed-component fit also updates
+        (:func:`_flat_background_step`); else the logistic of ``loc``, ``scale``.
 
         ``progress(step, total, info)`` (:mod:`core.progress`) is called before
         each component count and after each EM iteration, with ``info`` a dict
@@ -245,7 +268,8 @@ class GaussianMixtureBase:
         n, d = X.shape
         var = X.var(axis=0)
         reg = 1e-6 * np.where(var > 0, var, scale ** 2)
-        bg = np.sum(_logistic_logpdf((X - loc) / scale) - np.log(scale), axis=1)
+        bgr = _initial_flat_background(X) if flat_background else None
+        bg = _background_logpdf(X, loc, scale, bgr)
         best, best_ll = None, -np.inf
         prev_fit, prev_fresh = None, False
         stopped = [False]
@@ -278,7 +302,7 @@ class GaussianMixtureBase:
                 break
             prev_fit, prev_fresh = fit_k, fit_fresh
             _, w, mu, cov = fit_k
-            model = cls(w, mu, cov, loc, scale)
+            model = cls(w, mu, cov, loc, scale, background=bgr)
             ll = float(model.logpdf(Xva).mean())
             if best is not None and ll <= best_ll + min_gain:
                 break
@@ -293,13 +317,84 @@ class GaussianMixtureBase:
                 return not stopped[0]
 
             if going_skew():
-                skewed = _skew_em(X, bg, best, reg, max_iter, tol, going_skew)
-                if stopped[0] and skewed is None:
-                    pass
-                elif skewed is not None and float(skewed.logpdf(Xva).mean()) > best_ll + min_gain:
+                skewed = _skew_em(X, best, reg, max_iter, tol, going_skew)
+                if skewed is not None and float(skewed.logpdf(Xva).mean()) > best_ll + min_gain:
                     best = skewed
         best.cancelled = stopped[0]
         return best
+
+
+def _background_logpdf(X, loc, scale, flat=None):
+    """Log density (n,) of events X (n, d) under the background component: the
+    logistic of loc, scale (d,), or the flat top ``flat`` (3, d) (rows a, b, s)."""
+    if flat is None:
+        return np.sum(_logistic_logpdf((X - loc) / scale) - np.log(scale), axis=1)
+    a, b, soft = flat
+    ua, ub = (X - a) / soft, (X - b) / soft
+    const = np.log(-np.expm1(-(b - a) / soft)) - np.log(b - a)
+    return np.sum(-np.logaddexp(0.0, -ua) - np.logaddexp(0.0, ub) + const, axis=1)
+
+
+#: Starting flat-top background: edges at these quantiles of each channel,
+#: softness this share of the width between them.
+FLAT_EDGE_QUANTILE = 0.002
+FLAT_SOFTNESS = 0.03
+
+
+def _initial_flat_background(X):
+    """(3, d) rows a, b, s: each channel's 0.2 % and 99.8 % quantiles and 3 % of
+    their distance (a channel whose quantiles coincide gets a width of 1e-6 of
+    its magnitude, at least 1e-12)."""
+    a, b = np.quantile(X, [FLAT_EDGE_QUANTILE, 1.0 - FLAT_EDGE_QUANTILE], axis=0)
+    width = np.maximum(b - a, 1e-6 * np.maximum(1e-6, np.abs(a)))
+    b = a + width
+    return np.stack([a, b, FLAT_SOFTNESS * width])
+
+
+#: Moves of a flat-top edge (shares of the width) and factors of its softness
+#: tried by one background step.
+_EDGE_MOVES = np.array([-0.02, -0.01, -0.005, 0.0, 0.005, 0.01, 0.02])
+_SOFT_FACTORS = np.array([0.7, 0.85, 1.0, 1.2, 1.4])
+_BG_BINS = 2048
+
+
+def _flat_background_step(X, r0, bgr):
+    """One generalised-EM step of the flat-top background: per channel, the
+    edges a, b and the softness s in turn, each the best of a few moves by the
+    responsibility-weighted log likelihood (over a 2048-bin weighted
+    histogram of the channel; it only ranks the moves).  X (n, d), r0 (n,) the
+    background responsibilities, bgr (3, d).  Returns the new (3, d)."""
+    bgr = bgr.copy()
+    if r0.sum() <= 0:
+        return bgr
+    for j in range(X.shape[1]):
+        x = X[:, j]
+        lo, hi = float(x.min()), float(x.max())
+        if hi <= lo:
+            continue
+        h, edges = np.histogram(x, bins=_BG_BINS, range=(lo, hi), weights=r0)
+        hx = np.histogram(x, bins=_BG_BINS, range=(lo, hi), weights=r0 * x)[0]
+        keep = h > 0
+        w, c = h[keep], hx[keep] / h[keep]
+
+        def score(a, b, soft):
+            ok = (b > a) & (soft > 0)
+            a, b, soft = np.where(ok, a, 0.0), np.where(ok, b, 1.0), np.where(ok, soft, 1.0)
+            const = np.log(-np.expm1(-(b - a) / soft)) - np.log(b - a)
+            ll = (-np.logaddexp(0.0, -(c[:, None] - a) / soft) - np.logaddexp(0.0, (c[:, None] - b) / soft)) \
+                + const
+            return np.where(ok, w @ ll, -np.inf)
+
+        a, b, soft = bgr[:, j]
+        width = b - a
+        cand = a + width * _EDGE_MOVES
+        a = cand[int(np.argmax(score(cand, np.full_like(cand, b), np.full_like(cand, soft))))]
+        cand = b + width * _EDGE_MOVES
+        b = cand[int(np.argmax(score(np.full_like(cand, a), cand, np.full_like(cand, soft))))]
+        cand = soft * _SOFT_FACTORS
+        soft = cand[int(np.argmax(score(np.full_like(cand, a), np.full_like(cand, b), cand)))]
+        bgr[:, j] = a, b, soft
+    return bgr
 
 
 def _nearest(X, C):
@@ -468,7 +563,7 @@ def _component_shape(T, rs, eps, reg):
     return mean, 0.5 * (cov + cov.T) + np.diag(reg)
 
 
-def _skew_em(X, bg, gauss, reg, max_iter, tol, going):
+def _skew_em(X, gauss, reg, max_iter, tol, going):
     """Generalised EM for background + K Gaussian copulas with sinh-arcsinh margins,
     started from the Gaussian mixture ``gauss`` (each transform centred and scaled
     by its component's mean and standard deviation, skew 0: the same mixture).
@@ -479,7 +574,9 @@ def _skew_em(X, bg, gauss, reg, max_iter, tol, going):
     skew by :func:`_best_skew` (coordinate-wise, the profile likelihood over
     m_k and S_k), then m_k and S_k in closed form.  Stops when the training
     mean log-likelihood rises by less than ``tol``; returns the best mixture
-    seen (None if ``going()`` said stop before any E step finished)."""
+    seen (None if ``going()`` said stop before any E step finished).  A flat-top
+    background's edges and softness are updated in each step too
+    (:func:`_flat_background_step`)."""
     K, d = gauss.means.shape
     n = X.shape[0]
     w = gauss.weights.copy()
@@ -489,9 +586,12 @@ def _skew_em(X, bg, gauss, reg, max_iter, tol, going):
     mu = np.zeros((K, d))
     cov = gauss.covariances / (scale[:, :, None] * scale[:, None, :])
     reg_y = reg[None, :] / scale ** 2                               # (K, d)
+    bgr = gauss.background
     best, prev = None, -np.inf
     for _ in range(max_iter):
-        model = GaussianMixtureBase(w, mu, cov, gauss.loc, gauss.scale, skew=np.stack([centre, scale, eps]))
+        model = GaussianMixtureBase(w, mu, cov, gauss.loc, gauss.scale, skew=np.stack([centre, scale, eps]),
+                                    background=bgr)
+        bg = _background_logpdf(X, gauss.loc, gauss.scale, bgr)
         log_det = np.log(np.diagonal(model.chol, axis1=1, axis2=2)).sum(axis=1) + np.log(scale).sum(axis=1)
         R, ll_rows = kernels.skew_estep(X, bg, model.log_weights, model.means, model.chol, log_det,
                                         model._skew)
@@ -508,6 +608,8 @@ def _skew_em(X, bg, gauss, reg, max_iter, tol, going):
         w[1:] = np.maximum(w[1:], 1e-12)
         w /= w.sum()
         mu, cov, eps = mu.copy(), cov.copy(), eps.copy()
+        if bgr is not None:
+            bgr = _flat_background_step(X, R[:, 0], bgr)
         for k in range(K):
             rk = R[:, k + 1]
             sel = rk > 1e-6 * max(rk.max(), 1e-300)

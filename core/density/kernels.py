@@ -701,6 +701,47 @@ _SKEW_XT_MAX = 1e150
 
 
 @njit(cache=True, error_model="numpy")
+def _softplus(u):
+    """log(1 + exp(u)), stably."""
+    if u > 0.0:
+        return u + math.log1p(math.exp(-u))
+    return math.log1p(math.exp(u))
+
+
+@njit(cache=True, error_model="numpy")
+def _bg_logpdf(x, j, bgp, flat, z_max):
+    """Log density of the mixture's background component in channel j at x.
+
+    ``flat`` False: logistic, bgp[:, j] = (loc, scale, log scale, -).
+    ``flat`` True: a flat top with soft edges, the uniform on [a, b] convolved
+    with a logistic of scale s: (sigma((x - a)/s) - sigma((x - b)/s)) / (b - a),
+    bgp[:, j] = (a, b, s, log(1 - exp(-(b - a)/s)) - log(b - a)); computed as
+    log sigma(u_a) + log sigma(-u_b) + bgp[3, j] (no cancellation)."""
+    if flat:
+        ua = min(max((x - bgp[0, j]) / bgp[2, j], -z_max), z_max)
+        ub = min(max((x - bgp[1, j]) / bgp[2, j], -z_max), z_max)
+        return -_softplus(-ua) - _softplus(ub) + bgp[3, j]
+    zb = min(max((x - bgp[0, j]) / bgp[1, j], -z_max), z_max)
+    return _log_sigmoid_pair(zb) - bgp[2, j]
+
+
+@njit(cache=True, error_model="numpy")
+def _bg_cdf(x, j, bgp, flat, z_max):
+    """CDF of the background component in channel j at x (see :func:`_bg_logpdf`);
+    the flat top's is s / (b - a) (softplus(u_a) - softplus(u_b))."""
+    if flat:
+        ua = min(max((x - bgp[0, j]) / bgp[2, j], -z_max), z_max)
+        ub = min(max((x - bgp[1, j]) / bgp[2, j], -z_max), z_max)
+        c = bgp[2, j] / (bgp[1, j] - bgp[0, j]) * (_softplus(ua) - _softplus(ub))
+        return min(max(c, 0.0), 1.0)
+    zb = min(max((x - bgp[0, j]) / bgp[1, j], -z_max), z_max)
+    if zb >= 0.0:
+        return 1.0 / (1.0 + math.exp(-zb))
+    e = math.exp(zb)
+    return e / (1.0 + e)
+
+
+@njit(cache=True, error_model="numpy")
 def _skew_y(x, skew, j, k):
     """Component k's sinh-arcsinh transform of channel j at x:
     ``y = sinh(asinh(t) - eps)`` with ``t = (x - centre) / scale``, and
@@ -720,14 +761,14 @@ def _skew_x(y, skew, j, k):
 
 
 @njit(cache=True, error_model="numpy")
-def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale,
+def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, bgp, flat,
                       u_clip, z_max, want_u, skewed, skew):
     """Rosenblatt map of background + K Gaussians (see core.density.gaussian_base).
 
     X: (n, d) events; U: (n, d) output in [u_clip, 1 - u_clip]; logd: (n,) the
     mixture's log density is added.  logw: (K + 1,) log weights (background
     first); means (K, d); chol (K, d, d) lower Cholesky factors; sd, log_sd:
-    (d, K) their diagonals; loc, scale, log_scale: (d,) background logistic.
+    (d, K) their diagonals; bgp (4, d), flat: the background (:func:`_bg_logpdf`).
     ``want_u=False`` skips the CDFs (U is not touched): the mixture's log
     density alone, bit-identical to the log-Jacobian of the full map for
     Gaussian components (with skewed ones the transform factors are multiplied
@@ -749,7 +790,7 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, lo
                 jp[k] = 1.0
         for j in range(d):
             x = X[i, j]
-            zb = min(max((x - loc[j]) / scale[j], -z_max), z_max)
+            lbg = _bg_logpdf(x, j, bgp, flat, z_max)
             for k in range(K):
                 m = means[k, j]
                 for q in range(j):
@@ -765,7 +806,7 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, lo
                         jp[k] *= jac
                 z[k, j] = min(max((y - m) / sd[j, k], -z_max), z_max)
             if not want_u:
-                lw[0] += _log_sigmoid_pair(zb) - log_scale[j]
+                lw[0] += lbg
                 for k in range(K):
                     lw[k + 1] += -0.5 * z[k, j] * z[k, j] - _LOG_SQRT_2PI - log_sd[j, k] + lj[k]
                 continue
@@ -783,17 +824,13 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, lo
                 p = math.exp(g)
                 s += p
                 if k == 0:
-                    if zb >= 0.0:
-                        c = 1.0 / (1.0 + math.exp(-zb))
-                    else:
-                        e = math.exp(zb)
-                        c = e / (1.0 + e)
+                    c = _bg_cdf(x, j, bgp, flat, z_max)
                 else:
                     c = ndtr(z[k - 1, j])
                 acc += p * c
             u = acc / s
             U[i, j] = min(max(u, u_clip), 1.0 - u_clip)
-            lw[0] += _log_sigmoid_pair(zb) - log_scale[j]
+            lw[0] += lbg
             for k in range(K):
                 lw[k + 1] += -0.5 * z[k, j] * z[k, j] - _LOG_SQRT_2PI - log_sd[j, k] + lj[k]
         if skewed and not want_u:
@@ -809,7 +846,7 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, lo
 
 
 @njit(cache=True, error_model="numpy")
-def _skew_logpdf_rows(start, stop, X, logd, logw, means_t, chol_t, inv_sd, log_sd, loc, scale, log_scale,
+def _skew_logpdf_rows(start, stop, X, logd, logw, means_t, chol_t, inv_sd, log_sd, bgp, flat,
                       z_max, skew):
     """Log density of a mixture with skewed components (added to logd), laid out
     with the component index innermost so the compiler can vectorise over
@@ -830,8 +867,7 @@ def _skew_logpdf_rows(start, stop, X, logd, logw, means_t, chol_t, inv_sd, log_s
             jp[k] = 1.0
         for j in range(d):
             x = X[i, j]
-            zb = min(max((x - loc[j]) / scale[j], -z_max), z_max)
-            lw0 += _log_sigmoid_pair(zb) - log_scale[j]
+            lw0 += _bg_logpdf(x, j, bgp, flat, z_max)
             for k in range(K):
                 m[k] = means_t[j, k]
             for q in range(j):
@@ -857,17 +893,17 @@ def _skew_logpdf_rows(start, stop, X, logd, logw, means_t, chol_t, inv_sd, log_s
 
 
 @njit(cache=True, parallel=True, error_model="numpy")
-def _skew_logpdf_par(X, logd, logw, means_t, chol_t, inv_sd, log_sd, loc, scale, log_scale, z_max, skew):
+def _skew_logpdf_par(X, logd, logw, means_t, chol_t, inv_sd, log_sd, bgp, flat, z_max, skew):
     n = X.shape[0]
     nb = (n + BLOCK - 1) // BLOCK
     for b in prange(nb):
         _skew_logpdf_rows(b * BLOCK, min(n, (b + 1) * BLOCK), X, logd, logw, means_t, chol_t, inv_sd,
-                          log_sd, loc, scale, log_scale, z_max, skew)
+                          log_sd, bgp, flat, z_max, skew)
 
 
-def skew_logpdf(X, logd, logw, means_t, chol_t, inv_sd, log_sd, loc, scale, log_scale, z_max, skew):
+def skew_logpdf(X, logd, logw, means_t, chol_t, inv_sd, log_sd, bgp, flat, z_max, skew):
     """Log density of the skewed-component mixture added to logd; see :func:`_skew_logpdf_rows`."""
-    args = (X, logd, logw, means_t, chol_t, inv_sd, log_sd, loc, scale, log_scale, float(z_max), skew)
+    args = (X, logd, logw, means_t, chol_t, inv_sd, log_sd, bgp, bool(flat), float(z_max), skew)
     d, K = means_t.shape
     if _parallel(X.shape[0], (K + 1) * d * (d + 10)):
         _skew_logpdf_par(*args)
@@ -876,26 +912,26 @@ def skew_logpdf(X, logd, logw, means_t, chol_t, inv_sd, log_sd, loc, scale, log_
 
 
 @njit(cache=True, parallel=True, error_model="numpy")
-def _gmm_forward_par(X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max,
+def _gmm_forward_par(X, U, logd, logw, means, chol, sd, log_sd, bgp, flat, u_clip, z_max,
                      want_u, skewed, skew):
     n = X.shape[0]
     nb = (n + BLOCK - 1) // BLOCK
     for b in prange(nb):
         _gmm_forward_rows(b * BLOCK, min(n, (b + 1) * BLOCK), X, U, logd, logw, means, chol, sd, log_sd,
-                          loc, scale, log_scale, u_clip, z_max, want_u, skewed, skew)
+                          bgp, flat, u_clip, z_max, want_u, skewed, skew)
 
 
 #: ``skew`` argument of the mixture kernels for a mixture without skew transforms.
 NO_SKEW = np.zeros((4, 1, 1))
 
 
-def gmm_forward(X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max,
+def gmm_forward(X, U, logd, logw, means, chol, sd, log_sd, bgp, flat, u_clip, z_max,
                 want_u=True, skew=None):
     """Rosenblatt map of the Gaussian-mixture base; see :func:`_gmm_forward_rows`.
     ``want_u=False``: only the log density (U is not touched, its CDFs not computed).
     ``skew``: (4, d, K) per-component transforms (see :func:`_skew_y`) or None."""
     skewed = skew is not None
-    args = (X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, float(u_clip), float(z_max),
+    args = (X, U, logd, logw, means, chol, sd, log_sd, bgp, bool(flat), float(u_clip), float(z_max),
             bool(want_u), skewed, skew if skewed else NO_SKEW)
     K, d = means.shape
     cost = (4 if want_u else 1) * (K + 1) * d * (d + 2 + (8 if skewed else 0))
@@ -905,15 +941,15 @@ def gmm_forward(X, U, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale
         _gmm_forward_rows(0, X.shape[0], *args)
 
 
-def gmm_logpdf(X, logd, logw, means, chol, sd, log_sd, loc, scale, log_scale, z_max, skew=None):
+def gmm_logpdf(X, logd, logw, means, chol, sd, log_sd, bgp, flat, z_max, skew=None):
     """Log density of the Gaussian-mixture base added to logd: :func:`gmm_forward`
     without its CDFs."""
-    gmm_forward(X, np.empty((0, X.shape[1])), logd, logw, means, chol, sd, log_sd, loc, scale, log_scale,
+    gmm_forward(X, np.empty((0, X.shape[1])), logd, logw, means, chol, sd, log_sd, bgp, flat,
                 0.0, z_max, want_u=False, skew=skew)
 
 
 @njit(cache=True, error_model="numpy")
-def _gmm_inverse_rows(start, stop, U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale,
+def _gmm_inverse_rows(start, stop, U, X, logw, means, chol, sd, log_sd, bgp, flat,
                       u_clip, z_max, skewed, skew):
     """Inverse of :func:`_gmm_forward_rows`: coordinate by coordinate, the root of
     the conditional mixture CDF F(x) = u by Newton steps safeguarded by a bracket
@@ -949,7 +985,14 @@ def _gmm_inverse_rows(start, stop, U, X, logw, means, chol, sd, log_sd, loc, sca
                 p[k] = math.exp(g) if g >= -40.0 else 0.0
                 s += p[k]
             qn = ndtri(u)
-            qb = loc[j] + scale[j] * (math.log(u) - math.log1p(-u))
+            lu = math.log(u) - math.log1p(-u)
+            if flat:
+                # the flat top's quantile lies between a + s logit(u) and b + s logit(u)
+                qb_lo = bgp[0, j] + bgp[2, j] * lu
+                qb_hi = bgp[1, j] + bgp[2, j] * lu
+            else:
+                qb_lo = bgp[0, j] + bgp[1, j] * lu
+                qb_hi = qb_lo
             lo = np.inf
             hi = -np.inf
             x = 0.0
@@ -957,8 +1000,13 @@ def _gmm_inverse_rows(start, stop, U, X, logw, means, chol, sd, log_sd, loc, sca
                 if p[k] == 0.0:
                     continue
                 p[k] /= s
-                q = qb if k == 0 else mean[k - 1] + sd[j, k - 1] * qn
-                if skewed and k > 0:
+                if k == 0:
+                    lo = min(lo, qb_lo)
+                    hi = max(hi, qb_hi)
+                    x += p[0] * 0.5 * (qb_lo + qb_hi)
+                    continue
+                q = mean[k - 1] + sd[j, k - 1] * qn
+                if skewed:
                     q = _skew_x(q, skew, j, k - 1)
                 lo = min(lo, q)
                 hi = max(hi, q)
@@ -974,14 +1022,8 @@ def _gmm_inverse_rows(start, stop, U, X, logw, means, chol, sd, log_sd, loc, sca
                     if p[k] == 0.0:
                         continue
                     if k == 0:
-                        zb = (x - loc[j]) / scale[j]
-                        if zb >= 0.0:
-                            c = 1.0 / (1.0 + math.exp(-zb))
-                        else:
-                            e = math.exp(zb)
-                            c = e / (1.0 + e)
-                        F += p[0] * c
-                        f += p[0] * math.exp(_log_sigmoid_pair(zb)) / scale[j]
+                        F += p[0] * _bg_cdf(x, j, bgp, flat, z_max)
+                        f += p[0] * math.exp(_bg_logpdf(x, j, bgp, flat, z_max))
                     else:
                         y = x
                         dydx = 1.0
@@ -1020,8 +1062,7 @@ def _gmm_inverse_rows(start, stop, U, X, logw, means, chol, sd, log_sd, loc, sca
                 if step <= tol or hi - lo <= tol:
                     break
             X[i, j] = x
-            zb = min(max((x - loc[j]) / scale[j], -z_max), z_max)
-            lw[0] += _log_sigmoid_pair(zb) - log_scale[j]
+            lw[0] += _bg_logpdf(x, j, bgp, flat, z_max)
             for k in range(K):
                 y = x
                 ljk = 0.0
@@ -1034,19 +1075,19 @@ def _gmm_inverse_rows(start, stop, U, X, logw, means, chol, sd, log_sd, loc, sca
 
 
 @njit(cache=True, parallel=True, error_model="numpy")
-def _gmm_inverse_par(U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max,
+def _gmm_inverse_par(U, X, logw, means, chol, sd, log_sd, bgp, flat, u_clip, z_max,
                      skewed, skew):
     n = U.shape[0]
     nb = (n + BLOCK - 1) // BLOCK
     for b in prange(nb):
         _gmm_inverse_rows(b * BLOCK, min(n, (b + 1) * BLOCK), U, X, logw, means, chol, sd, log_sd,
-                          loc, scale, log_scale, u_clip, z_max, skewed, skew)
+                          bgp, flat, u_clip, z_max, skewed, skew)
 
 
-def gmm_inverse(U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale, u_clip, z_max, skew=None):
+def gmm_inverse(U, X, logw, means, chol, sd, log_sd, bgp, flat, u_clip, z_max, skew=None):
     """Inverse Rosenblatt map of the Gaussian-mixture base; see :func:`_gmm_inverse_rows`."""
     skewed = skew is not None
-    args = (U, X, logw, means, chol, sd, log_sd, loc, scale, log_scale, float(u_clip), float(z_max),
+    args = (U, X, logw, means, chol, sd, log_sd, bgp, bool(flat), float(u_clip), float(z_max),
             skewed, skew if skewed else NO_SKEW)
     K, d = means.shape
     if _parallel(U.shape[0], 40 * (K + 1) * d * (d + 2)):

@@ -30,9 +30,10 @@ FORMAT_NAME = "boscage-additive-tree-density"
 #: ``gmm_covariances``, ``gmm_loc``, ``gmm_scale``); models with the logistic
 #: base are still written as version 1 so older readers keep reading them.
 #: Version 3 adds skewed mixture components (array ``gmm_skew`` (3, K, d):
-#: transform centres, scales and skews); a mixture without them is still
-#: written as version 2, and an older reader refuses a version-3 file rather
-#: than scoring it without its transforms.
+#: transform centres, scales and skews) and the flat-top background (array
+#: ``gmm_background`` (3, d): edges a, b and softness); a mixture without
+#: either is still written as version 2, and an older reader refuses a
+#: version-3 file rather than scoring it without them.
 FORMAT_VERSION = 3
 _GMM_ARRAYS = ("gmm_weights", "gmm_means", "gmm_covariances", "gmm_loc", "gmm_scale")
 
@@ -66,7 +67,7 @@ def save_model(model, path) -> None:
     gmm = getattr(model, "_gmm", None)
     meta = {
         "format": FORMAT_NAME,
-        "format_version": (1 if gmm is None else 2 if gmm.skew is None else 3),
+        "format_version": (1 if gmm is None else 2 if gmm.skew is None and gmm.background is None else 3),
         "software_version": __version__,
         "note": RESEARCH_USE_NOTE,
         "params": model.get_params(),
@@ -91,6 +92,8 @@ def save_model(model, path) -> None:
                       gmm_loc=gmm.loc, gmm_scale=gmm.scale)
         if gmm.skew is not None:
             arrays.update(gmm_skew=gmm.skew)
+        if gmm.background is not None:
+            arrays.update(gmm_background=gmm.background)
     with atomic_write(path, "wb", overwrite=True) as handle:
         np.savez(handle, metadata=np.array(json.dumps(meta)), **arrays)
 
@@ -124,10 +127,11 @@ def load_model(cls, path):
                 raise _fail(path, "damaged density model file: incomplete Gaussian mixture base")
             if all(has_gmm):
                 a.update({k: z[k] for k in _GMM_ARRAYS})
-            if "gmm_skew" in files:
-                if not all(has_gmm):
-                    raise _fail(path, "damaged density model file: skew transforms without a mixture")
-                a["gmm_skew"] = z["gmm_skew"]
+            for key in ("gmm_skew", "gmm_background"):
+                if key in files:
+                    if not all(has_gmm):
+                        raise _fail(path, "damaged density model file: mixture parts without a mixture")
+                    a[key] = z[key]
     except ModelFileError:
         raise
     except (OSError, ValueError, zipfile.BadZipFile, EOFError, KeyError, json.JSONDecodeError,
@@ -235,7 +239,8 @@ def _build(cls, meta, a):
             _arr(a, "gmm_weights", np.float64, (K + 1,)), means,
             _arr(a, "gmm_covariances", np.float64, (K, k_free, k_free)),
             _arr(a, "gmm_loc", np.float64, (k_free,)), _arr(a, "gmm_scale", np.float64, (k_free,)),
-            skew=_arr(a, "gmm_skew", np.float64, (3, K, k_free)) if "gmm_skew" in a else None)
+            skew=_arr(a, "gmm_skew", np.float64, (3, K, k_free)) if "gmm_skew" in a else None,
+            background=_arr(a, "gmm_background", np.float64, (3, k_free)) if "gmm_background" in a else None)
     elif "gmm_weights" in a:
         raise ValueError("a Gaussian mixture base is stored but the model does not use one")
     model.bounds_ = bounds
