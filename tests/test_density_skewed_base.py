@@ -16,6 +16,7 @@ import pytest
 from scipy import stats
 
 from core.density import AdditiveTreeDensity
+from core.density.gaussian_base import BACKGROUND_LOGISTIC_SHARE as ETA
 from core.density.gaussian_base import MAX_SKEW, GaussianMixtureBase
 
 W = np.array([2e-3, 0.45, 0.548])
@@ -40,9 +41,12 @@ def known(request):
 def _background_rvs(size, rng, flat):
     if flat is None:
         return stats.logistic(LOC, BG_SCALE).rvs(size=size, random_state=rng)
-    # uniform on [a, b] plus logistic noise of scale s (scipy.stats.uniform, logistic)
-    return (stats.uniform(FLAT[0], FLAT[1] - FLAT[0]).rvs(size=size, random_state=rng)
-            + stats.logistic(0.0, FLAT[2]).rvs(size=size, random_state=rng))
+    # per channel: share 1 - ETA uniform on [a, b] plus logistic noise of scale s
+    # (scipy.stats.uniform, logistic), share ETA the logistic of LOC, BG_SCALE
+    top = (stats.uniform(FLAT[0], FLAT[1] - FLAT[0]).rvs(size=size, random_state=rng)
+           + stats.logistic(0.0, FLAT[2]).rvs(size=size, random_state=rng))
+    wide = stats.logistic(LOC, BG_SCALE).rvs(size=size, random_state=rng)
+    return np.where(rng.random(size) < ETA, wide, top)
 
 
 def _bg_ref_logpdf(X, flat):
@@ -55,7 +59,8 @@ def _bg_ref_logpdf(X, flat):
     L = stats.logistic
     left = L.cdf((X - a) / soft) - L.cdf((X - b) / soft)
     right = L.sf((X - b) / soft) - L.sf((X - a) / soft)
-    return np.log(np.where(X < 0.5 * (a + b), left, right) / (b - a)).sum(axis=1)
+    top = np.where(X < 0.5 * (a + b), left, right) / (b - a)
+    return np.log((1 - ETA) * top + ETA * L(LOC, BG_SCALE).pdf(X)).sum(axis=1)
 
 
 def _rvs(n, rng, flat=None):

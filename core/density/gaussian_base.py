@@ -104,9 +104,11 @@ class GaussianMixtureBase:
     loc, scale : ndarray (d,)
         Background component's logistic location and scale (units of X).
     background : ndarray (3, d) or None
-        When given, the background is instead a flat top with soft edges per
-        channel: rows a, b, s (the uniform on [a, b] convolved with a
-        logistic of scale s; :func:`core.density.kernels._bg_logpdf`).
+        When given, the background is instead, per channel, a flat top with
+        soft edges: rows a, b, s (the uniform on [a, b] convolved with a
+        logistic of scale s), with share ``BACKGROUND_LOGISTIC_SHARE`` of the
+        logistic of loc, scale mixed in, so an event beyond a thin edge keeps
+        a bounded penalty (:func:`core.density.kernels._bg_logpdf`).
     """
 
     def __init__(self, weights, means, covariances, loc, scale, skew=None, background=None):
@@ -167,8 +169,10 @@ class GaussianMixtureBase:
                 raise ValueError("a flat background needs finite edges a < b and positive softness")
             self.background = bgr
             width = b - a
-            const = np.log(-np.expm1(-width / soft)) - np.log(width)
-            self._bgp = np.ascontiguousarray(np.stack([a, b, soft, const]))
+            eta = BACKGROUND_LOGISTIC_SHARE
+            const = np.log(-np.expm1(-width / soft)) - np.log(width) + math.log1p(-eta)
+            self._bgp = np.ascontiguousarray(np.stack([a, b, soft, const, self.loc, self.scale,
+                                                       self._log_scale - math.log(eta), np.full(d, eta)]))
         self._flat = self.background is not None
         #: True when :meth:`fit` was stopped through its progress callback.
         self.cancelled = False
@@ -223,14 +227,16 @@ class GaussianMixtureBase:
     def fit(cls, X, loc, scale, components=DEFAULT_COMPONENTS, random_state=None,
             max_em_events: int = 50_000, max_iter: int = 100, tol: float = 1e-3,
             n_init: int = 1, min_gain: float = 2e-3, skew: bool = True,
-            flat_background: bool = False, progress=None) -> "GaussianMixtureBase":
+            flat_background: bool = False, validation=None, progress=None) -> "GaussianMixtureBase":
         """Fit by EM (float64) and choose the number of Gaussian components by
         held-out log-likelihood.
 
         X : (n, d) events in the units of the channels; loc, scale : (d,) the
         background logistic's location and scale.  A seeded random subsample of
         at most ``max_em_events`` events is split 80/20: EM runs on the 80 %
-        for each count in ``components`` (increasing), the 20 % scores it; the
+        for each count in ``components`` (increasing), the 20 % scores it
+        (given ``validation`` (m, d), EM runs on the whole subsample and a
+        subsample of at most ``max_em_events // 4`` validation events scores); the
         search stops at the first count that does not beat the best so far by
         more than ``min_gain`` nats per event, and the best is kept.  A count
         that doubles a k-means++-started one starts from that mixture with each
@@ -262,9 +268,14 @@ class GaussianMixtureBase:
             X = X[np.sort(rng.choice(X.shape[0], max_em_events, replace=False))]
         loc = np.asarray(loc, np.float64)
         scale = np.asarray(scale, np.float64)
-        perm = rng.permutation(X.shape[0])
-        n_va = max(1, X.shape[0] // 5)
-        Xva, X = X[np.sort(perm[:n_va])], X[np.sort(perm[n_va:])]
+        if validation is None:
+            perm = rng.permutation(X.shape[0])
+            n_va = max(1, X.shape[0] // 5)
+            Xva, X = X[np.sort(perm[:n_va])], X[np.sort(perm[n_va:])]
+        else:
+            Xva = np.ascontiguousarray(validation, dtype=np.float64)
+            if Xva.shape[0] > max_em_events // 4:
+                Xva = Xva[np.sort(rng.choice(Xva.shape[0], max_em_events // 4, replace=False))]
         n, d = X.shape
         var = X.var(axis=0)
         reg = 1e-6 * np.where(var > 0, var, scale ** 2)
@@ -326,15 +337,21 @@ class GaussianMixtureBase:
 
 def _background_logpdf(X, loc, scale, flat=None):
     """Log density (n,) of events X (n, d) under the background component: the
-    logistic of loc, scale (d,), or the flat top ``flat`` (3, d) (rows a, b, s)."""
+    logistic of loc, scale (d,), or the flat top ``flat`` (3, d) (rows a, b, s)
+    with its logistic share (see :class:`GaussianMixtureBase`)."""
+    logistic = _logistic_logpdf((X - loc) / scale) - np.log(scale)
     if flat is None:
-        return np.sum(_logistic_logpdf((X - loc) / scale) - np.log(scale), axis=1)
+        return np.sum(logistic, axis=1)
     a, b, soft = flat
+    eta = BACKGROUND_LOGISTIC_SHARE
     ua, ub = (X - a) / soft, (X - b) / soft
     const = np.log(-np.expm1(-(b - a) / soft)) - np.log(b - a)
-    return np.sum(-np.logaddexp(0.0, -ua) - np.logaddexp(0.0, ub) + const, axis=1)
+    top = -np.logaddexp(0.0, -ua) - np.logaddexp(0.0, ub) + const
+    return np.sum(np.logaddexp(top + math.log1p(-eta), logistic + math.log(eta)), axis=1)
 
 
+#: Share of the logistic in each channel of a flat-top background.
+BACKGROUND_LOGISTIC_SHARE = 0.001
 #: Starting flat-top background: edges at these quantiles of each channel,
 #: softness this share of the width between them.
 FLAT_EDGE_QUANTILE = 0.002
@@ -353,14 +370,16 @@ def _initial_flat_background(X):
 
 #: Moves of a flat-top edge (shares of the width) and factors of its softness
 #: tried by one background step.
-_EDGE_MOVES = np.array([-0.02, -0.01, -0.005, 0.0, 0.005, 0.01, 0.02])
-_SOFT_FACTORS = np.array([0.7, 0.85, 1.0, 1.2, 1.4])
+_EDGE_MOVES = np.array([-0.05, -0.02, -0.01, -0.005, -0.002, 0.0, 0.002, 0.005, 0.01, 0.02, 0.05])
+_SOFT_FACTORS = np.array([0.3, 0.5, 0.7, 0.85, 1.0, 1.2, 1.5, 2.0])
+#: Rounds of edge and softness moves per generalised-EM step.
+_BG_ROUNDS = 3
 _BG_BINS = 2048
 
 
 def _flat_background_step(X, r0, bgr):
     """One generalised-EM step of the flat-top background: per channel, the
-    edges a, b and the softness s in turn, each the best of a few moves by the
+    edges a, b and the softness s in turn (``_BG_ROUNDS`` rounds), each the best of a few moves by the
     responsibility-weighted log likelihood (over a 2048-bin weighted
     histogram of the channel; it only ranks the moves).  X (n, d), r0 (n,) the
     background responsibilities, bgr (3, d).  Returns the new (3, d)."""
@@ -386,13 +405,14 @@ def _flat_background_step(X, r0, bgr):
             return np.where(ok, w @ ll, -np.inf)
 
         a, b, soft = bgr[:, j]
-        width = b - a
-        cand = a + width * _EDGE_MOVES
-        a = cand[int(np.argmax(score(cand, np.full_like(cand, b), np.full_like(cand, soft))))]
-        cand = b + width * _EDGE_MOVES
-        b = cand[int(np.argmax(score(np.full_like(cand, a), cand, np.full_like(cand, soft))))]
-        cand = soft * _SOFT_FACTORS
-        soft = cand[int(np.argmax(score(np.full_like(cand, a), np.full_like(cand, b), cand)))]
+        for _ in range(_BG_ROUNDS):
+            width = b - a
+            cand = a + width * _EDGE_MOVES
+            a = cand[int(np.argmax(score(cand, np.full_like(cand, b), np.full_like(cand, soft))))]
+            cand = b + width * _EDGE_MOVES
+            b = cand[int(np.argmax(score(np.full_like(cand, a), cand, np.full_like(cand, soft))))]
+            cand = soft * _SOFT_FACTORS
+            soft = cand[int(np.argmax(score(np.full_like(cand, a), np.full_like(cand, b), cand)))]
         bgr[:, j] = a, b, soft
     return bgr
 

@@ -712,15 +712,24 @@ def _softplus(u):
 def _bg_logpdf(x, j, bgp, flat, z_max):
     """Log density of the mixture's background component in channel j at x.
 
-    ``flat`` False: logistic, bgp[:, j] = (loc, scale, log scale, -).
-    ``flat`` True: a flat top with soft edges, the uniform on [a, b] convolved
-    with a logistic of scale s: (sigma((x - a)/s) - sigma((x - b)/s)) / (b - a),
-    bgp[:, j] = (a, b, s, log(1 - exp(-(b - a)/s)) - log(b - a)); computed as
-    log sigma(u_a) + log sigma(-u_b) + bgp[3, j] (no cancellation)."""
+    ``flat`` False: logistic, bgp[:, j] = (loc, scale, log scale, ...).
+    ``flat`` True: share 1 - eta a flat top with soft edges, the uniform on
+    [a, b] convolved with a logistic of scale s:
+    (sigma((x - a)/s) - sigma((x - b)/s)) / (b - a), computed as
+    log sigma(u_a) + log sigma(-u_b) + log(1 - exp(-(b - a)/s)) - log(b - a)
+    (no cancellation); share eta the logistic of (loc, scale), which bounds
+    the penalty of an event beyond a thin edge.  bgp[:, j] = (a, b, s,
+    log(1 - exp(-(b - a)/s)) - log(b - a) + log(1 - eta), loc, scale,
+    log scale - log eta, eta)."""
     if flat:
         ua = min(max((x - bgp[0, j]) / bgp[2, j], -z_max), z_max)
         ub = min(max((x - bgp[1, j]) / bgp[2, j], -z_max), z_max)
-        return -_softplus(-ua) - _softplus(ub) + bgp[3, j]
+        lf = -_softplus(-ua) - _softplus(ub) + bgp[3, j]
+        zb = min(max((x - bgp[4, j]) / bgp[5, j], -z_max), z_max)
+        ll = _log_sigmoid_pair(zb) - bgp[6, j]
+        if lf >= ll:
+            return lf + math.log1p(math.exp(ll - lf))
+        return ll + math.log1p(math.exp(lf - ll))
     zb = min(max((x - bgp[0, j]) / bgp[1, j], -z_max), z_max)
     return _log_sigmoid_pair(zb) - bgp[2, j]
 
@@ -733,7 +742,14 @@ def _bg_cdf(x, j, bgp, flat, z_max):
         ua = min(max((x - bgp[0, j]) / bgp[2, j], -z_max), z_max)
         ub = min(max((x - bgp[1, j]) / bgp[2, j], -z_max), z_max)
         c = bgp[2, j] / (bgp[1, j] - bgp[0, j]) * (_softplus(ua) - _softplus(ub))
-        return min(max(c, 0.0), 1.0)
+        c = min(max(c, 0.0), 1.0)
+        zb = min(max((x - bgp[4, j]) / bgp[5, j], -z_max), z_max)
+        if zb >= 0.0:
+            cl = 1.0 / (1.0 + math.exp(-zb))
+        else:
+            e = math.exp(zb)
+            cl = e / (1.0 + e)
+        return (1.0 - bgp[7, j]) * c + bgp[7, j] * cl
     zb = min(max((x - bgp[0, j]) / bgp[1, j], -z_max), z_max)
     if zb >= 0.0:
         return 1.0 / (1.0 + math.exp(-zb))
@@ -987,9 +1003,11 @@ def _gmm_inverse_rows(start, stop, U, X, logw, means, chol, sd, log_sd, bgp, fla
             qn = ndtri(u)
             lu = math.log(u) - math.log1p(-u)
             if flat:
-                # the flat top's quantile lies between a + s logit(u) and b + s logit(u)
-                qb_lo = bgp[0, j] + bgp[2, j] * lu
-                qb_hi = bgp[1, j] + bgp[2, j] * lu
+                # the flat top's quantile lies between a + s logit(u) and b + s logit(u),
+                # the background's between those and its logistic share's quantile
+                ql = bgp[4, j] + bgp[5, j] * lu
+                qb_lo = min(bgp[0, j] + bgp[2, j] * lu, ql)
+                qb_hi = max(bgp[1, j] + bgp[2, j] * lu, ql)
             else:
                 qb_lo = bgp[0, j] + bgp[1, j] * lu
                 qb_hi = qb_lo

@@ -334,7 +334,7 @@ class AdditiveTreeDensity:
             self._gmm = GaussianMixtureBase.fit(
                 X[tr][:, free], self._loc[free], self._scale[free],
                 random_state=int(rng.integers(2 ** 31)), skew=self.base == "skewed",
-                flat_background=self.base == "skewed",
+                flat_background=self.base == "skewed", validation=X[va][:, free],
                 progress=lambda step, total, info: keep_going(progress, 0, int(self.n_trees), info))
         U_tr, ld_tr = self._base_forward(X[tr])
         U_va, ld_va = self._base_forward(X[va])
