@@ -51,10 +51,10 @@ def mix2_logpdf(x):
     return np.log(sum(w * stats.multivariate_normal(m, c).pdf(x) for w, m, c in MIX2))
 
 
-@pytest.fixture(scope="module", params=["logistic", "gmm", "skewed"])
+@pytest.fixture(scope="module", params=["logistic", "gmm", "skewed", "auto"])
 def base(request):
     """Every model test runs with each base (logistic map / Gaussian-mixture Rosenblatt map /
-    the same with skewed components, the default)."""
+    the same with skewed components / the default choice between them)."""
     return request.param
 
 
@@ -216,7 +216,8 @@ def test_save_load_identical(tmp_path, mix2_model, base):
         meta = json.loads(str(z["metadata"][()]))
     # version 1: logistic base; version 2 adds the Gaussian-mixture arrays, version 3 skewed components
     new_parts = model._gmm is not None and (model._gmm.skew is not None or model._gmm.background is not None)
-    assert meta["format_version"] == (1 if base == "logistic" else 3 if new_parts else 2)
+    assert meta["format_version"] == (1 if base == "logistic" else 3 if new_parts or base == "auto" else 2)
+    assert meta["base_used"] == model.base_ == loaded.base_
     assert meta["n_features_in"] == 2
 
 
@@ -283,6 +284,7 @@ def test_cancel_keeps_a_usable_model(mix2_model, base):
     base_calls = [c for c in calls if isinstance(c[2], dict)]
     assert all(c[0] == 0 and "stage" in c[2] for c in base_calls)
     assert (len(base_calls) > 0) == (base != "logistic")
+    assert model.base_ == ("skewed" if base == "auto" else base)
     tree_calls = [c for c in calls if not isinstance(c[2], dict)]
     assert [c[0] for c in tree_calls] == [0, 1, 2, 3]
     assert all(np.isfinite(c[2]) for c in tree_calls)

@@ -199,7 +199,7 @@ def test_model_file_keeps_the_skew(tmp_path):
     rng = np.random.default_rng(8)
     X = _rvs(12_000, rng)
     model = AdditiveTreeDensity(random_state=0).fit(X)
-    assert model.base == "skewed" and model._gmm.skew is not None and model._gmm.background is not None
+    assert model.base_ == "skewed" and model._gmm.skew is not None and model._gmm.background is not None
     path = tmp_path / "skewed.npz"
     model.save(path)
     with np.load(path, allow_pickle=False) as z:
@@ -210,3 +210,45 @@ def test_model_file_keeps_the_skew(tmp_path):
     Xt = _rvs(2000, rng)
     np.testing.assert_array_equal(back.score_samples(Xt), model.score_samples(Xt))
     np.testing.assert_array_equal(back.sample(500, random_state=1), model.sample(500, random_state=1))
+
+
+# ------------------------------------------------------------ the default "auto" base
+
+def _with_floor(n, rng):
+    """Events of the known mixture with 30 % of channel 0 pinned to one value (a floor)."""
+    X = _rvs(n, rng)
+    X[rng.random(n) < 0.3, 0] = -1.0
+    return X
+
+
+def test_largest_atom_share_matches_numpy_unique():
+    from core.density.model import largest_atom_share
+
+    rng = np.random.default_rng(11)
+    X = _with_floor(20_000, rng)
+    # reference: numpy.unique's counts of channel 0 (the others are continuous)
+    _, counts = np.unique(X[:, 0], return_counts=True)
+    assert largest_atom_share(X) == pytest.approx(counts.max() / X.shape[0], abs=1e-12)
+    assert largest_atom_share(_rvs(5000, rng)) == pytest.approx(1 / 5000)
+
+
+def test_auto_base_keeps_the_better_held_out_choice_when_a_channel_has_an_atom():
+    X = _with_floor(12_000, np.random.default_rng(12))
+    auto = AdditiveTreeDensity(random_state=0).fit(X)
+    skewed = AdditiveTreeDensity(base="skewed", random_state=0).fit(X)
+    logistic = AdditiveTreeDensity(base="logistic", random_state=0).fit(X)
+    # same seed, same held-out split: auto is whichever scored better there
+    best = max((skewed, logistic), key=lambda m: m.heldout_loglik_)
+    assert auto.base == "auto" and auto.base_ == best.base
+    assert auto.heldout_loglik_ == best.heldout_loglik_
+    Xt = _with_floor(3000, np.random.default_rng(13))
+    np.testing.assert_array_equal(auto.score_samples(Xt), best.score_samples(Xt))
+
+
+def test_auto_base_on_continuous_events_is_the_skewed_mixture():
+    X = _rvs(6000, np.random.default_rng(14))
+    auto = AdditiveTreeDensity(random_state=0).fit(X)
+    skewed = AdditiveTreeDensity(base="skewed", random_state=0).fit(X)
+    assert auto.base_ == "skewed"
+    Xt = _rvs(2000, np.random.default_rng(15))
+    np.testing.assert_array_equal(auto.score_samples(Xt), skewed.score_samples(Xt))

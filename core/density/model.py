@@ -114,6 +114,28 @@ def _chunk(X: np.ndarray, a: int, b: int, what: str) -> np.ndarray:
     return C
 
 
+#: With ``base="auto"``: a channel whose most frequent value holds at least this
+#: share of the events has an atom, and the logistic base is tried as well.
+ATOM_SHARE = 0.05
+#: Events looked at (evenly strided) to find atoms.
+_ATOM_SAMPLE = 50_000
+
+
+def largest_atom_share(X) -> float:
+    """Largest share of events (n_events, n_channels) sitting on one single value
+    in any channel, from at most 50,000 evenly strided events; 0 for none."""
+    X = np.asarray(X)
+    step = max(1, X.shape[0] // _ATOM_SAMPLE)
+    S = np.sort(X[::step], axis=0)
+    n = S.shape[0]
+    best = 0
+    for j in range(S.shape[1]):
+        col = S[:, j]
+        starts = np.flatnonzero(np.concatenate([[True], col[1:] != col[:-1], [True]]))
+        best = max(best, int(np.diff(starts).max()))
+    return best / n if n else 0.0
+
+
 class AdditiveTreeDensity:
     """Density of events x channels by unsupervised tree boosting (see module docstring).
 
@@ -176,12 +198,17 @@ class AdditiveTreeDensity:
     layer_tol : float
         A layer that improves the held-out mean log-likelihood by less than
         this (nats) is dropped and fitting ends.
-    base : "logistic", "gmm" or "skewed"
+    base : "auto", "logistic", "gmm" or "skewed"
         The first map into the cube: per-channel logistic of robust
         location/scale, or the Rosenblatt map of a Gaussian mixture fitted
         by EM (component count by held-out log-likelihood) on the training
-        share, or (default) that mixture refitted with skewed components
-        when they score better.
+        share, or that mixture refitted with skewed components (and a
+        flat-top background) when they score better.  "auto" (default):
+        "skewed", and when a channel has an atom (one value holding at least
+        ``ATOM_SHARE`` of the events: a floor, a pinned value) also
+        "logistic", keeping the better on the held-out share: axis-aligned
+        trees capture an atom exactly after the per-channel map, while the
+        mixture's conditional map bends it into a surface they cannot follow.
     random_state : int or None
         Seed for subsampling, the held-out split and any random choice;
         equal seeds give bit-identical models.
@@ -211,6 +238,8 @@ class AdditiveTreeDensity:
         Events used (after the ``max_fit_events`` subsample).
     stopped_by_ : str
         "early stopping", "n_trees", "no split" or "cancelled".
+    base_ : str
+        The first map used ("logistic", "gmm" or "skewed"; ``base`` unless "auto").
     """
 
     def __init__(self, n_trees: int = 400, learning_rate: float = 0.9, max_depth: int = 14,
@@ -220,7 +249,7 @@ class AdditiveTreeDensity:
                  n_layers: int = 3, layer_trees: int = 150, layer_tol: float = 0.01,
                  alpha: float = 1000.0, rotation: str = "pca", jitter: bool = False,
                  min_gain: float = 0.0, lookahead: int = 3, lookahead_bins: int = 16,
-                 marginal_alpha: float = -1.0, tol: float = 0.0, base: str = "skewed",
+                 marginal_alpha: float = -1.0, tol: float = 0.0, base: str = "auto",
                  random_state: int | None = None):
         self.n_trees = n_trees
         self.learning_rate = learning_rate
@@ -280,8 +309,8 @@ class AdditiveTreeDensity:
             raise ValueError("min_leaf must be at least 1")
         if not 0.0 < float(self.validation_fraction) < 0.9:
             raise ValueError("validation_fraction must be in (0, 0.9)")
-        if self.base not in BASES:
-            raise ValueError("base must be 'logistic', 'gmm' or 'skewed'")
+        if self.base not in BASES + ("auto",):
+            raise ValueError("base must be 'auto', 'logistic', 'gmm' or 'skewed'")
         if self.rotation not in ("pca", "random"):
             raise ValueError("rotation must be 'pca' or 'random'")
         if not np.isfinite(float(self.alpha)):
@@ -296,9 +325,33 @@ class AdditiveTreeDensity:
         ``progress(step, total, heldout_loglik)`` is called after the
         marginal stage (step 0) and after each dependence tree; returning
         False stops cleanly keeping the trees so far (the model is usable).
+        With ``base="auto"`` the skewed-mixture model is fitted and, when a
+        channel has an atom (:func:`largest_atom_share` >= ``ATOM_SHARE``), the
+        logistic-base model too (its progress follows, with the stage named);
+        the one with the better held-out log-likelihood is kept (``base_``).
         """
         self._validate_params()
         X = _check_matrix(X, "fit", min_events=MIN_EVENTS)
+        if self.base != "auto":
+            self.base_ = self.base
+            return self._fit_base(X, self.base, progress)
+        self._fit_base(X, "skewed", progress)
+        self.base_ = "skewed"
+        if self.stopped_by_ == "cancelled" or largest_atom_share(X) < ATOM_SHARE:
+            return self
+        if not keep_going(progress, 0, int(self.n_trees),
+                          {"stage": "Channels with atoms: fitting the logistic base as well"}):
+            return self
+        other = AdditiveTreeDensity(**self.get_params())
+        other._fit_base(X, "logistic", progress)
+        if other.stopped_by_ != "cancelled" and other.heldout_loglik_ > self.heldout_loglik_:
+            self.__dict__.update({k: v for k, v in other.__dict__.items() if k not in self._PARAMS})
+            self.base_ = "logistic"
+        return self
+
+    def _fit_base(self, X, base, progress) -> "AdditiveTreeDensity":
+        """:meth:`fit` with the first map ``base`` ("logistic", "gmm" or "skewed");
+        X already checked."""
         rng = np.random.default_rng(self.random_state)
         n_all = X.shape[0]
         if n_all > int(self.max_fit_events):
@@ -329,12 +382,13 @@ class AdditiveTreeDensity:
         n_val = max(1, int(round(float(self.validation_fraction) * n)))
         va, tr = np.sort(perm[:n_val]), np.sort(perm[n_val:])
         self._gmm = None
-        if self.base in MIXTURE_BASES and (~frozen).any():
+        self.base_ = base
+        if base in MIXTURE_BASES and (~frozen).any():
             free = ~frozen
             self._gmm = GaussianMixtureBase.fit(
                 X[tr][:, free], self._loc[free], self._scale[free],
-                random_state=int(rng.integers(2 ** 31)), skew=self.base == "skewed",
-                flat_background=self.base == "skewed", validation=X[va][:, free],
+                random_state=int(rng.integers(2 ** 31)), skew=base == "skewed",
+                flat_background=base == "skewed", validation=X[va][:, free],
                 progress=lambda step, total, info: keep_going(progress, 0, int(self.n_trees), info))
         U_tr, ld_tr = self._base_forward(X[tr])
         U_va, ld_va = self._base_forward(X[va])
@@ -469,7 +523,7 @@ class AdditiveTreeDensity:
         m = int(self.marginal_trees)
         if m >= 0:
             return m
-        return 0 if self.base in MIXTURE_BASES else 100
+        return 0 if getattr(self, "base_", self.base) in MIXTURE_BASES else 100
 
     def _fit_marginals(self, U_tr: np.ndarray, U_va: np.ndarray, ld_va: np.ndarray):
         """Boost one-channel trees per channel; compose each channel's trees into a

@@ -67,7 +67,9 @@ def save_model(model, path) -> None:
     gmm = getattr(model, "_gmm", None)
     meta = {
         "format": FORMAT_NAME,
-        "format_version": (1 if gmm is None else 2 if gmm.skew is None and gmm.background is None else 3),
+        # 3 whenever a version-2 reader would misread it (new arrays, or the "auto" base)
+        "format_version": (3 if model.base == "auto" or (gmm is not None and (
+            gmm.skew is not None or gmm.background is not None)) else 2 if gmm is not None else 1),
         "software_version": __version__,
         "note": RESEARCH_USE_NOTE,
         "params": model.get_params(),
@@ -79,6 +81,7 @@ def save_model(model, path) -> None:
                                 if hasattr(model, "base_heldout_loglik_") else None),
         "n_events_fitted": int(getattr(model, "n_events_fitted_", 0)),
         "stopped_by": getattr(model, "stopped_by_", ""),
+        "base_used": getattr(model, "base_", model.base),
     }
     f = forest
     arrays = dict(loc=model._loc, scale=model._scale, frozen=model._frozen, bounds=model.bounds_,
@@ -160,10 +163,12 @@ def _build(cls, meta, a):
         raise ValueError("no channels")
     params = dict(meta["params"])
     model = cls(**{k: v for k, v in params.items() if k in cls._PARAMS})
-    # files written before the base became a parameter used the logistic base
+    # files written before the base became a parameter used the logistic base;
+    # "base_used" (the map "auto" chose) is in files since format 3
     model.base = params.get("base", "logistic")
-    if model.base not in BASES:
-        raise ValueError(f"unknown base measure {model.base!r}")
+    model.base_ = meta.get("base_used", model.base)
+    if model.base not in BASES + ("auto",) or model.base_ not in BASES:
+        raise ValueError(f"unknown base measure {model.base_!r}")
     loc = _arr(a, "loc", np.float64, (d,))
     scale = _arr(a, "scale", np.float64, (d,))
     frozen = _arr(a, "frozen", np.bool_, (d,))
@@ -227,7 +232,7 @@ def _build(cls, meta, a):
         raise ValueError("tree count does not match the metadata")
     model._loc, model._scale, model._frozen = loc, scale, frozen
     model._gmm = None
-    if model.base in MIXTURE_BASES and not frozen.all():
+    if model.base_ in MIXTURE_BASES and not frozen.all():
         if "gmm_weights" not in a:
             raise ValueError("the Gaussian mixture base is missing")
         k_free = int((~frozen).sum())
