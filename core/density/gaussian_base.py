@@ -373,7 +373,7 @@ def _initial_flat_background(X):
 _EDGE_MOVES = np.array([-0.05, -0.02, -0.01, -0.005, -0.002, 0.0, 0.002, 0.005, 0.01, 0.02, 0.05])
 _SOFT_FACTORS = np.array([0.3, 0.5, 0.7, 0.85, 1.0, 1.2, 1.5, 2.0])
 #: Rounds of edge and softness moves per generalised-EM step.
-_BG_ROUNDS = 3
+_BG_ROUNDS = 1
 _BG_BINS = 2048
 
 
@@ -590,9 +590,10 @@ def _skew_em(X, gauss, reg, max_iter, tol, going):
 
     Component k's density is N(y; m_k, S_k) prod_j dy_j/dx_j with
     y_j = sinh(asinh((x_j - c_kj) / s_kj) - eps_kj).  Each step: E step
-    (:func:`core.density.kernels.skew_estep`), then per component each channel's
-    skew by :func:`_best_skew` (coordinate-wise, the profile likelihood over
-    m_k and S_k), then m_k and S_k in closed form.  Stops when the training
+    (:func:`core.density.kernels.skew_logpdf` with its posterior output), then
+    per component :func:`_component_shape` (each channel's skew in turn by the
+    profile likelihood over m_k and S_k, then m_k and S_k in closed form).
+    Stops when the training
     mean log-likelihood rises by less than ``tol``; returns the best mixture
     seen (None if ``going()`` said stop before any E step finished).  A flat-top
     background's edges and softness are updated in each step too
@@ -611,10 +612,10 @@ def _skew_em(X, gauss, reg, max_iter, tol, going):
     for _ in range(max_iter):
         model = GaussianMixtureBase(w, mu, cov, gauss.loc, gauss.scale, skew=np.stack([centre, scale, eps]),
                                     background=bgr)
-        bg = _background_logpdf(X, gauss.loc, gauss.scale, bgr)
-        log_det = np.log(np.diagonal(model.chol, axis1=1, axis2=2)).sum(axis=1) + np.log(scale).sum(axis=1)
-        R, ll_rows = kernels.skew_estep(X, bg, model.log_weights, model.means, model.chol, log_det,
-                                        model._skew)
+        R = np.empty((n, K + 1))
+        ll_rows = np.zeros(n)
+        kernels.skew_logpdf(X, ll_rows, model.log_weights, model._means_t, model._chol_t, model._inv_sd,
+                            model._log_sd, model._bgp, model._flat, _Z_MAX, model._skew, R)
         ll = float(ll_rows.mean())
         if ll <= prev:
             break
@@ -632,7 +633,7 @@ def _skew_em(X, gauss, reg, max_iter, tol, going):
             bgr = _flat_background_step(X, R[:, 0], bgr)
         for k in range(K):
             rk = R[:, k + 1]
-            sel = rk > 1e-6 * max(rk.max(), 1e-300)
+            sel = rk > 1e-3 * max(rk.max(), 1e-300)
             n_k = float(rk[sel].sum())
             if n_k < 2 * (d + 1):
                 continue  # too little weight to move this component's shape

@@ -863,15 +863,18 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, bg
 
 @njit(cache=True, error_model="numpy")
 def _skew_logpdf_rows(start, stop, X, logd, logw, means_t, chol_t, inv_sd, log_sd, bgp, flat,
-                      z_max, skew):
+                      z_max, skew, R):
     """Log density of a mixture with skewed components (added to logd), laid out
     with the component index innermost so the compiler can vectorise over
     components: means_t (d, K), chol_t (d, d, K) (chol_t[j, q, k] = L_k[j, q]),
     inv_sd, log_sd (d, K) (log_sd includes log scale of the transform), skew
     (4, d, K).  The same density as :func:`_gmm_forward_rows` with
     ``want_u=False`` (to ~1e-14; the per-channel factors dy/dx are multiplied,
-    each within exp(+-|eps|), and one log is taken per component)."""
+    each within exp(+-|eps|), and one log is taken per component).  When R
+    has rows (n, K + 1), each event's posterior component probabilities
+    (background first) are written there too: the E step of the fit."""
     d, K = means_t.shape
+    want_r = R.shape[0] > 0
     lw = np.empty(K)
     m = np.empty(K)
     jp = np.empty(K)
@@ -904,22 +907,31 @@ def _skew_logpdf_rows(start, stop, X, logd, logw, means_t, chol_t, inv_sd, log_s
             mx = max(mx, lw[k])
         acc = math.exp(lw0 - mx)
         for k in range(K):
-            acc += math.exp(lw[k] - mx)
+            lw[k] = math.exp(lw[k] - mx)
+            acc += lw[k]
         logd[i] += mx + math.log(acc)
+        if want_r:
+            inv = 1.0 / acc
+            R[i, 0] = math.exp(lw0 - mx) * inv
+            for k in range(K):
+                R[i, k + 1] = lw[k] * inv
 
 
 @njit(cache=True, parallel=True, error_model="numpy")
-def _skew_logpdf_par(X, logd, logw, means_t, chol_t, inv_sd, log_sd, bgp, flat, z_max, skew):
+def _skew_logpdf_par(X, logd, logw, means_t, chol_t, inv_sd, log_sd, bgp, flat, z_max, skew, R):
     n = X.shape[0]
     nb = (n + BLOCK - 1) // BLOCK
     for b in prange(nb):
         _skew_logpdf_rows(b * BLOCK, min(n, (b + 1) * BLOCK), X, logd, logw, means_t, chol_t, inv_sd,
-                          log_sd, bgp, flat, z_max, skew)
+                          log_sd, bgp, flat, z_max, skew, R)
 
 
-def skew_logpdf(X, logd, logw, means_t, chol_t, inv_sd, log_sd, bgp, flat, z_max, skew):
-    """Log density of the skewed-component mixture added to logd; see :func:`_skew_logpdf_rows`."""
-    args = (X, logd, logw, means_t, chol_t, inv_sd, log_sd, bgp, bool(flat), float(z_max), skew)
+def skew_logpdf(X, logd, logw, means_t, chol_t, inv_sd, log_sd, bgp, flat, z_max, skew, R=None):
+    """Log density of the skewed-component mixture added to logd; with R (n, K + 1)
+    also the posterior component probabilities; see :func:`_skew_logpdf_rows`."""
+    if R is None:
+        R = np.empty((0, means_t.shape[1] + 1))
+    args = (X, logd, logw, means_t, chol_t, inv_sd, log_sd, bgp, bool(flat), float(z_max), skew, R)
     d, K = means_t.shape
     if _parallel(X.shape[0], (K + 1) * d * (d + 10)):
         _skew_logpdf_par(*args)
@@ -1210,65 +1222,3 @@ def em_stats(X, bg, logw, means, chol, log_det, n_parts=16):
     low = np.tril(M)
     M = low + np.swapaxes(np.tril(M, -1), 1, 2)
     return float(ll.sum()), N, S, M
-
-
-# ------------------------------------------------------------ skewed-component EM
-
-@njit(cache=True, error_model="numpy")
-def _skew_estep_rows(start, stop, X, bg, logw, means, chol, log_det, skew, R, ll):
-    """E step of a mixture whose components are Gaussians on their own skew
-    transforms (:func:`_skew_y`).  For rows start:stop writes the
-    responsibilities to R (n, K + 1) (background first) and each row's log
-    likelihood to ll (n,).  means (K, d), chol (K, d, d) are in the transformed
-    units; log_det (K,) is sum log diag(chol) + sum log(scale) of the component."""
-    K, d = means.shape
-    lp = np.empty(K + 1)
-    z = np.empty(d)
-    half_d_log2pi = d * _LOG_SQRT_2PI
-    for i in range(start, stop):
-        lp[0] = logw[0] + bg[i]
-        mx = lp[0]
-        for k in range(K):
-            q = 0.0
-            jp = 1.0
-            for j in range(d):
-                y, jac = _skew_y(X[i, j], skew, j, k)
-                jp *= jac
-                v = y - means[k, j]
-                for a in range(j):
-                    v -= chol[k, j, a] * z[a]
-                v /= chol[k, j, j]
-                z[j] = v
-                q += v * v
-            lp[k + 1] = logw[k + 1] - 0.5 * q - log_det[k] - half_d_log2pi + math.log(jp)
-            if lp[k + 1] > mx:
-                mx = lp[k + 1]
-        s = 0.0
-        for k in range(K + 1):
-            lp[k] = math.exp(lp[k] - mx)
-            s += lp[k]
-        ll[i] = mx + math.log(s)
-        for k in range(K + 1):
-            R[i, k] = lp[k] / s
-
-
-@njit(cache=True, parallel=True, error_model="numpy")
-def _skew_estep_par(X, bg, logw, means, chol, log_det, skew, R, ll):
-    n = X.shape[0]
-    nb = (n + BLOCK - 1) // BLOCK
-    for b in prange(nb):
-        _skew_estep_rows(b * BLOCK, min(n, (b + 1) * BLOCK), X, bg, logw, means, chol, log_det, skew, R, ll)
-
-
-def skew_estep(X, bg, logw, means, chol, log_det, skew):
-    """E step of the skewed-component mixture: (responsibilities (n, K + 1),
-    log-likelihood of each event (n,)); see :func:`_skew_estep_rows`."""
-    n = X.shape[0]
-    K, d = means.shape
-    R = np.empty((n, K + 1))
-    ll = np.empty(n)
-    if _parallel(n, K * d * (d + 8)):
-        _skew_estep_par(X, bg, logw, means, chol, log_det, skew, R, ll)
-    else:
-        _skew_estep_rows(0, n, X, bg, logw, means, chol, log_det, skew, R, ll)
-    return R, ll
