@@ -172,7 +172,8 @@ class GaussianMixtureBase:
             eta = BACKGROUND_LOGISTIC_SHARE
             const = np.log(-np.expm1(-width / soft)) - np.log(width) + math.log1p(-eta)
             self._bgp = np.ascontiguousarray(np.stack([a, b, soft, const, self.loc, self.scale,
-                                                       self._log_scale - math.log(eta), np.full(d, eta)]))
+                                                       self._log_scale - math.log(eta), np.full(d, eta),
+                                                       np.exp(const), eta / self.scale]))
         self._flat = self.background is not None
         #: True when :meth:`fit` was stopped through its progress callback.
         self.cancelled = False

@@ -720,12 +720,22 @@ def _bg_logpdf(x, j, bgp, flat, z_max):
     (no cancellation); share eta the logistic of (loc, scale), which bounds
     the penalty of an event beyond a thin edge.  bgp[:, j] = (a, b, s,
     log(1 - exp(-(b - a)/s)) - log(b - a) + log(1 - eta), loc, scale,
-    log scale - log eta, eta)."""
+    log scale - log eta, eta, and rows 8, 9 the linear-space factors
+    (1 - eta)(1 - exp(-(b - a)/s)) / (b - a) and eta / scale)."""
     if flat:
         ua = min(max((x - bgp[0, j]) / bgp[2, j], -z_max), z_max)
         ub = min(max((x - bgp[1, j]) / bgp[2, j], -z_max), z_max)
-        lf = -_softplus(-ua) - _softplus(ub) + bgp[3, j]
         zb = min(max((x - bgp[4, j]) / bgp[5, j], -z_max), z_max)
+        # in linear space first (one exp and one log where the density is not
+        # tiny; sigma(u) is taken as 1 beyond u = 40, a change below 4e-18)
+        sa = 1.0 if ua > 40.0 else 1.0 / (1.0 + math.exp(-ua))
+        sb = 1.0 if ub < -40.0 else 1.0 / (1.0 + math.exp(ub))
+        e = math.exp(-abs(zb))
+        dens = bgp[8, j] * sa * sb + bgp[9, j] * e / ((1.0 + e) * (1.0 + e))
+        if dens > 1e-280:
+            return math.log(dens)
+        # far tails: in log space
+        lf = bgp[3, j] - _softplus(-ua) - _softplus(ub)
         ll = _log_sigmoid_pair(zb) - bgp[6, j]
         if lf >= ll:
             return lf + math.log1p(math.exp(ll - lf))
@@ -879,10 +889,15 @@ def _skew_logpdf_rows(start, stop, X, logd, logw, means_t, chol_t, inv_sd, log_s
     m = np.empty(K)
     jp = np.empty(K)
     z = np.empty((d, K))
+    start_k = np.empty(K)  # log weight minus the normal constants and log sds of all channels
+    for k in range(K):
+        start_k[k] = logw[k + 1] - d * _LOG_SQRT_2PI
+        for j in range(d):
+            start_k[k] -= log_sd[j, k]
     for i in range(start, stop):
         lw0 = logw[0]
         for k in range(K):
-            lw[k] = logw[k + 1]
+            lw[k] = start_k[k]
             jp[k] = 1.0
         for j in range(d):
             x = X[i, j]
@@ -900,10 +915,10 @@ def _skew_logpdf_rows(start, stop, X, logd, logw, means_t, chol_t, inv_sd, log_s
                 jp[k] *= skew[2, j, k] - t * skew[3, j, k] / r
                 zz = min(max((y - m[k]) * inv_sd[j, k], -z_max), z_max)
                 z[j, k] = zz
-                lw[k] += -0.5 * zz * zz - log_sd[j, k]
+                lw[k] -= 0.5 * zz * zz
         mx = lw0
         for k in range(K):
-            lw[k] += math.log(jp[k]) - d * _LOG_SQRT_2PI
+            lw[k] += math.log(jp[k])
             mx = max(mx, lw[k])
         acc = math.exp(lw0 - mx)
         for k in range(K):
