@@ -784,10 +784,16 @@ class MainWindow(QMainWindow):
         if self.act_contours.isChecked() and tube is self.current:
             self.start_contours()
 
+    #: How the fit panel names each first map of the engine (``base_``).
+    BASE_NAMES = {"skewed": "skewed-mixture start", "gmm": "Gaussian-mixture start",
+                  "logistic": "per-channel start"}
+
     def _fit_text(self, a) -> str:
         n_trees = getattr(a.model, "n_trees_", "?")
+        start = self.BASE_NAMES.get(getattr(a.model, "base_", ""), "")
         secs = a.timing.get("total", float("nan")) if isinstance(a.timing, dict) else float("nan")
-        return (f"Fitted: {n_trees} trees, held-out log-likelihood {a.heldout_loglik:.3f} nats per event, "
+        return (f"Fitted: {start + ' + ' if start else ''}{n_trees} trees, held-out log-likelihood "
+                f"{a.heldout_loglik:.3f} nats per event, "
                 f"{a.n_kept:,} of {a.n_events:,} events kept, {secs:.1f} s.")
 
     def _fit_stopped(self) -> None:

@@ -107,6 +107,8 @@ def test_open_fit_rarity_regions_export(qtbot, window, tmp_path, messages):
     fit(qtbot, window)
     a = tube.analysis
     assert a is not None and np.isfinite(a.log_density[a.kept]).all()
+    # the panel names the first map the engine chose
+    assert window.BASE_NAMES[a.model.base_] in window.fit_panel.status.text()
 
     # the rarity control: count equals core's, and is the definition of "lowest share"
     window.rarity_bar.set_share(0.02)
