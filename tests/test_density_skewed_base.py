@@ -252,3 +252,19 @@ def test_auto_base_on_continuous_events_is_the_skewed_mixture():
     assert auto.base_ == "skewed"
     Xt = _rvs(2000, np.random.default_rng(15))
     np.testing.assert_array_equal(auto.score_samples(Xt), skewed.score_samples(Xt))
+
+
+def test_auto_base_stopped_before_the_second_fit_keeps_the_mixture_model():
+    X = _with_floor(6000, np.random.default_rng(16))
+    stages = []
+
+    def progress(step, total, info):
+        if isinstance(info, dict):
+            stages.append(info["stage"])
+            return "atoms" not in info["stage"]  # stop when the logistic fit is announced
+        return True
+
+    model = AdditiveTreeDensity(random_state=0).fit(X, progress=progress)
+    assert any("atoms" in s for s in stages)
+    assert model.base_ == "skewed" and model.stopped_by_ == "cancelled"
+    assert np.isfinite(model.score_samples(X[:500])).all()

@@ -34,7 +34,7 @@ maps (the "zero" model at the end of the chain is uniform on the cube):
 
 No integration anywhere; sampling runs the chain backwards from a uniform draw.
 
-**Base** (``base``, default ``"skewed"``): ``"logistic"`` is step 1 above.  ``"gmm"`` replaces it
+**Base** (``base``, default ``"auto"``): ``"logistic"`` is step 1 above.  ``"gmm"`` replaces it
 with a fitted parametric base measure: a full-covariance Gaussian mixture
 (plus a broad logistic background component, so tails stay finite) fitted
 by EM on the training share, pushed onto the cube by its Rosenblatt map
@@ -44,9 +44,11 @@ misses; held-out early stopping keeps the model from doing worse on the
 held-out share than the mixture itself.  ``"skewed"`` goes one step further:
 the chosen mixture is refitted with a sinh-arcsinh transform per component
 and channel (each component a Gaussian copula with skewed margins) and kept
-when that scores better on the mixture's held-out events; its Rosenblatt
-map stays exact.  Constant channels keep the
-logistic fallback below in both cases.
+when that scores better on the held-out events, with a flat-top background
+component; its Rosenblatt map stays exact.  ``"auto"`` is ``"skewed"``, and on
+events with atoms (a value holding >= ``ATOM_SHARE`` of a channel) also
+``"logistic"``, keeping the better on the held-out share.  Constant channels
+keep the logistic fallback below in every case.
 
 Units: log densities are natural logs per unit volume of the input X
 (i.e. in the units of the transformed channels the caller passes).
@@ -329,6 +331,8 @@ class AdditiveTreeDensity:
         channel has an atom (:func:`largest_atom_share` >= ``ATOM_SHARE``), the
         logistic-base model too (its progress follows, with the stage named);
         the one with the better held-out log-likelihood is kept (``base_``).
+        Stopped during that second fit, the skewed-mixture model is kept and
+        ``stopped_by_`` is "cancelled".
         """
         self._validate_params()
         X = _check_matrix(X, "fit", min_events=MIN_EVENTS)
@@ -341,10 +345,14 @@ class AdditiveTreeDensity:
             return self
         if not keep_going(progress, 0, int(self.n_trees),
                           {"stage": "Channels with atoms: fitting the logistic base as well"}):
+            self.stopped_by_ = "cancelled"  # the skewed-mixture model is complete and usable
             return self
         other = AdditiveTreeDensity(**self.get_params())
         other._fit_base(X, "logistic", progress)
-        if other.stopped_by_ != "cancelled" and other.heldout_loglik_ > self.heldout_loglik_:
+        if other.stopped_by_ == "cancelled":
+            self.stopped_by_ = "cancelled"
+            return self
+        if other.heldout_loglik_ > self.heldout_loglik_:
             self.__dict__.update({k: v for k, v in other.__dict__.items() if k not in self._PARAMS})
             self.base_ = "logistic"
         return self
