@@ -268,3 +268,29 @@ def test_auto_base_stopped_before_the_second_fit_keeps_the_mixture_model():
     assert any("atoms" in s for s in stages)
     assert model.base_ == "skewed" and model.stopped_by_ == "cancelled"
     assert np.isfinite(model.score_samples(X[:500])).all()
+
+
+def test_skew_search_residual_variance_matches_least_squares():
+    from core.density import kernels
+
+    rng = np.random.default_rng(17)
+    n, d = 4000, 5
+    T = rng.standard_normal((n, d)) @ rng.standard_normal((d, d))
+    Rt = np.sqrt(1 + T * T)
+    w = rng.random(n)
+    w /= w.sum()
+    Z = np.hstack([T, Rt])
+    Zc = Z - w @ Z
+    CZ = (Zc * w[:, None]).T @ Zc
+    eps = rng.uniform(-1, 1, d)
+    cand = np.array([-0.7, 0.0, 0.4, 1.3])
+    j = 2
+    got = kernels.skew_residual_variance(CZ, np.cosh(eps), -np.sinh(eps), j, np.cosh(cand), np.sinh(cand))
+    # reference: weighted least squares of each candidate y_j on the other y's with an
+    # intercept (numpy.linalg.lstsq on sqrt(w)-scaled rows), residual variance
+    Y = T * np.cosh(eps) - Rt * np.sinh(eps)
+    A = np.column_stack([np.ones(n), np.delete(Y, j, axis=1)]) * np.sqrt(w)[:, None]
+    for g, e in enumerate(cand):
+        y = (T[:, j] * np.cosh(e) - Rt[:, j] * np.sinh(e)) * np.sqrt(w)
+        resid = y - A @ np.linalg.lstsq(A, y, rcond=None)[0]
+        assert got[g] == pytest.approx(resid @ resid, rel=1e-9)

@@ -555,9 +555,10 @@ def _component_shape(T, rs, eps, reg):
     Uq = T / Rt
     nb = _SKEW_JAC_BINS
     idx = np.clip(((Uq + 1.0) * (0.5 * nb)).astype(np.int64), 0, nb - 1)
+    diag = np.arange(d)
     B = np.zeros((2 * d, d))
-    B[np.arange(d), np.arange(d)] = np.cosh(eps)
-    B[d + np.arange(d), np.arange(d)] = -np.sinh(eps)
+    B[diag, diag] = np.cosh(eps)
+    B[d + diag, diag] = -np.sinh(eps)
     for j in range(d):
         hw = np.bincount(idx[:, j], weights=rs, minlength=nb)
         keep = hw > 0
@@ -565,15 +566,9 @@ def _component_shape(T, rs, eps, reg):
         hw = hw[keep]
         cand = np.unique(np.clip(np.concatenate([_SKEW_GRID, eps[j] + _SKEW_MOVES]), -MAX_SKEW, MAX_SKEW))
         ch, sh = np.cosh(cand), np.sinh(cand)
-        var = ch * ch * CZ[j, j] - 2.0 * ch * sh * CZ[j, d + j] + sh * sh * CZ[d + j, d + j]
-        if d > 1:
-            Bo = np.delete(B, j, axis=1)
-            S = Bo.T @ CZ @ Bo
-            C = ch[None, :] * (Bo.T @ CZ[:, j])[:, None] - sh[None, :] * (Bo.T @ CZ[:, d + j])[:, None]
-            try:
-                var = var - np.einsum("mg,mg->g", C, np.linalg.solve(S, C))
-            except np.linalg.LinAlgError:
-                pass
+        var = kernels.skew_residual_variance(CZ, B[diag, diag], B[d + diag, diag], j, ch, sh)
+        if not np.isfinite(var).all():
+            continue  # the other channels' covariance is singular here: keep this skew
         jac = hw @ np.log(ch[None, :] - hu[:, None] * sh[None, :])
         score = -0.5 * n_k * np.log(np.maximum(var, 1e-300)) + jac
         g = int(np.argmax(score))
