@@ -327,6 +327,10 @@ def ensure_prepared_control(out_dir: str, control: str, recipe: Any, digest: str
     return folder, key, how
 
 
+#: Environment variables that size the BLAS / OpenMP thread pools at numpy's import.
+_BLAS_THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
+
+
 def _limit_numba_threads(threads: int) -> None:
     try:
         import numba
@@ -348,7 +352,7 @@ def _init_worker(threads: int) -> None:
         # NUMBA_NUM_THREADS to a different value once the threads have been
         # launched"), so only the number of threads in use is limited below.
         os.environ["NUMBA_NUM_THREADS"] = str(threads)
-    for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    for var in _BLAS_THREAD_VARS:
         os.environ.setdefault(var, str(threads))
     _limit_numba_threads(threads)
 
@@ -694,10 +698,22 @@ def _start_pool(workers: int, threads: int):
         ctx.set_forkserver_preload(["core.batch", "core.analysis", "core.density", "core.transforms"])
     else:
         ctx = multiprocessing.get_context("spawn")
-    pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init_worker,
-                               initargs=(threads,))
-    for _ in range(workers):
-        pool.submit(_warm_up)
+    # the fork server imports numpy before any worker starts, so the BLAS thread
+    # limit must be in the environment it is started with (set for the start,
+    # then restored): two workers with two BLAS threads each oversubscribe the cores
+    saved = {var: os.environ.get(var) for var in _BLAS_THREAD_VARS}
+    os.environ.update({var: str(threads) for var in _BLAS_THREAD_VARS})
+    try:
+        pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init_worker,
+                                   initargs=(threads,))
+        for _ in range(workers):
+            pool.submit(_warm_up)
+    finally:
+        for var, value in saved.items():
+            if value is None:
+                os.environ.pop(var, None)
+            else:
+                os.environ[var] = value
     return pool
 
 
