@@ -42,6 +42,13 @@ density gains the factor dy_kj/dx_j, which lies in
 [exp(-|eps|) / s, exp(|eps|) / s], so the log density stays exact and finite.
 Fitted by generalised EM from the chosen Gaussian mixture (:func:`_skew_em`).
 
+Flat-top background (``background``, with the skewed components in the model's
+default): per channel 99.9 % the uniform on [a, b] convolved with a logistic of
+scale s and 0.1 % the logistic of loc, scale, so debris spread over the
+measured range has its own component while an event beyond a thin edge keeps
+a bounded penalty; a product over channels like the logistic one, so its
+conditional CDFs are its marginal CDFs (:func:`core.density.kernels._bg_cdf`).
+
 Numerics: u is clipped to ``[U_CLIP, 1 - U_CLIP]`` (U_CLIP = 1e-15): a float64
 CDF near 1 cannot resolve 1 - u below ~1e-16, so the map is a bijection only
 between the two clip levels (mass outside them ~2e-15 per channel, far
