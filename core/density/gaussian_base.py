@@ -258,7 +258,7 @@ class GaussianMixtureBase:
         Covariances get ``1e-6 x`` the channel variance added on the diagonal
         (floor).  With ``skew``, the chosen mixture is then refitted with a
         sinh-arcsinh transform per component and channel (:func:`_skew_em`),
-        kept only if it beats it on the held-out 20 % by ``min_gain``.
+        kept only if it beats it on the held-out events by ``min_gain``.
         With ``flat_background`` the background component is a flat top with
         soft edges per channel (:func:`_initial_flat_background`), whose
         edges and softness the skewed-component fit also updates
