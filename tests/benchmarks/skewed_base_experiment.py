@@ -52,7 +52,7 @@ def fit_gauss_in_y(y, r, reg):
 def fit(X, K, bg_logpdf_fn, iters=25, skew=True):
     n, d = X.shape
     loc = np.median(X, 0); scale = (np.percentile(X, 75, 0) - np.percentile(X, 25, 0)) / (2 * np.log(3))
-    g = gb.GaussianMixtureBase.fit(X, loc, scale, components=(K,), random_state=0)
+    g = gb.GaussianMixtureBase.fit(X, loc, scale, components=(K,), random_state=0, skew=False)
     reg = 1e-6 * X.var(0)
     comps = []
     for k in range(g.n_components):
