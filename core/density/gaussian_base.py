@@ -175,9 +175,8 @@ class GaussianMixtureBase:
             if not (np.isfinite(bgr).all() and (b > a).all() and (soft > 0).all()):
                 raise ValueError("a flat background needs finite edges a < b and positive softness")
             self.background = bgr
-            width = b - a
             eta = BACKGROUND_LOGISTIC_SHARE
-            const = np.log(-np.expm1(-width / soft)) - np.log(width) + math.log1p(-eta)
+            const = _flat_top_log_norm(a, b, soft) + math.log1p(-eta)
             self._bgp = np.ascontiguousarray(np.stack([a, b, soft, const, self.loc, self.scale,
                                                        self._log_scale - math.log(eta), np.full(d, eta),
                                                        np.exp(const), eta / self.scale]))
@@ -205,7 +204,7 @@ class GaussianMixtureBase:
                                 self._log_sd, self._bgp, self._flat, _Z_MAX, self._skew)
             return logd
         kernels.gmm_logpdf(X, logd, self.log_weights, self.means, self.chol, self._sd, self._log_sd,
-                           self._bgp, self._flat, _Z_MAX, skew=self._skew)
+                           self._bgp, self._flat, _Z_MAX)
         return logd
 
     def forward(self, X) -> tuple[np.ndarray, np.ndarray]:
@@ -343,19 +342,20 @@ class GaussianMixtureBase:
         return best
 
 
+def _flat_top_log_norm(a, b, soft):
+    """log(1 - exp(-(b - a)/s)) - log(b - a): the flat top's density is
+    sigma((x - a)/s) sigma(-(x - b)/s) times exp of this (arrays broadcast)."""
+    return np.log(-np.expm1(-(b - a) / soft)) - np.log(b - a)
+
+
 def _background_logpdf(X, loc, scale, flat=None):
-    """Log density (n,) of events X (n, d) under the background component: the
-    logistic of loc, scale (d,), or the flat top ``flat`` (3, d) (rows a, b, s)
-    with its logistic share (see :class:`GaussianMixtureBase`)."""
-    logistic = _logistic_logpdf((X - loc) / scale) - np.log(scale)
-    if flat is None:
-        return np.sum(logistic, axis=1)
-    a, b, soft = flat
-    eta = BACKGROUND_LOGISTIC_SHARE
-    ua, ub = (X - a) / soft, (X - b) / soft
-    const = np.log(-np.expm1(-(b - a) / soft)) - np.log(b - a)
-    top = -np.logaddexp(0.0, -ua) - np.logaddexp(0.0, ub) + const
-    return np.sum(np.logaddexp(top + math.log1p(-eta), logistic + math.log(eta)), axis=1)
+    """Log density (n,) of events X (n, d) under the background component alone:
+    the logistic of loc, scale (d,), or the flat top ``flat`` (3, d) (rows a, b,
+    s) with its logistic share, scored by the mixture kernel as a mixture of
+    the background only."""
+    d = X.shape[1]
+    alone = GaussianMixtureBase(np.ones(1), np.zeros((0, d)), np.zeros((0, d, d)), loc, scale, background=flat)
+    return alone.logpdf(X)
 
 
 #: Share of the logistic in each channel of a flat-top background.
@@ -399,7 +399,7 @@ def _flat_background_step(X, r0, bgr):
         lo, hi = float(x.min()), float(x.max())
         if hi <= lo:
             continue
-        h, edges = np.histogram(x, bins=_BG_BINS, range=(lo, hi), weights=r0)
+        h = np.histogram(x, bins=_BG_BINS, range=(lo, hi), weights=r0)[0]
         hx = np.histogram(x, bins=_BG_BINS, range=(lo, hi), weights=r0 * x)[0]
         keep = h > 0
         w, c = h[keep], hx[keep] / h[keep]
@@ -407,9 +407,8 @@ def _flat_background_step(X, r0, bgr):
         def score(a, b, soft):
             ok = (b > a) & (soft > 0)
             a, b, soft = np.where(ok, a, 0.0), np.where(ok, b, 1.0), np.where(ok, soft, 1.0)
-            const = np.log(-np.expm1(-(b - a) / soft)) - np.log(b - a)
             ll = (-np.logaddexp(0.0, -(c[:, None] - a) / soft) - np.logaddexp(0.0, (c[:, None] - b) / soft)) \
-                + const
+                + _flat_top_log_norm(a, b, soft)
             return np.where(ok, w @ ll, -np.inf)
 
         a, b, soft = bgr[:, j]

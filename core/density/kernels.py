@@ -107,6 +107,15 @@ def _log_sigmoid_pair(z):
 
 
 @njit(cache=True)
+def _logistic_cdf(z):
+    """sigma(z) = 1 / (1 + exp(-z)), without overflow for either sign of z."""
+    if z >= 0.0:
+        return 1.0 / (1.0 + math.exp(-z))
+    e = math.exp(z)
+    return e / (1.0 + e)
+
+
+@njit(cache=True)
 def _base_forward_rows(start, stop, X, U, logd, loc, scale, log_scale):
     """Per-channel logistic map R -> (0, 1): u = sigma((x - loc) / scale).
 
@@ -118,12 +127,7 @@ def _base_forward_rows(start, stop, X, U, logd, loc, scale, log_scale):
         acc = 0.0
         for j in range(d):
             z = (X[i, j] - loc[j]) / scale[j]
-            if z >= 0.0:
-                e = math.exp(-z)
-                U[i, j] = 1.0 / (1.0 + e)
-            else:
-                e = math.exp(z)
-                U[i, j] = e / (1.0 + e)
+            U[i, j] = _logistic_cdf(z)
             acc += _log_sigmoid_pair(z) - log_scale[j]
         logd[i] += acc
 
@@ -754,17 +758,8 @@ def _bg_cdf(x, j, bgp, flat, z_max):
         c = bgp[2, j] / (bgp[1, j] - bgp[0, j]) * (_softplus(ua) - _softplus(ub))
         c = min(max(c, 0.0), 1.0)
         zb = min(max((x - bgp[4, j]) / bgp[5, j], -z_max), z_max)
-        if zb >= 0.0:
-            cl = 1.0 / (1.0 + math.exp(-zb))
-        else:
-            e = math.exp(zb)
-            cl = e / (1.0 + e)
-        return (1.0 - bgp[7, j]) * c + bgp[7, j] * cl
-    zb = min(max((x - bgp[0, j]) / bgp[1, j], -z_max), z_max)
-    if zb >= 0.0:
-        return 1.0 / (1.0 + math.exp(-zb))
-    e = math.exp(zb)
-    return e / (1.0 + e)
+        return (1.0 - bgp[7, j]) * c + bgp[7, j] * _logistic_cdf(zb)
+    return _logistic_cdf(min(max((x - bgp[0, j]) / bgp[1, j], -z_max), z_max))
 
 
 @njit(cache=True, error_model="numpy")
@@ -796,9 +791,8 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, bg
     first); means (K, d); chol (K, d, d) lower Cholesky factors; sd, log_sd:
     (d, K) their diagonals; bgp (4, d), flat: the background (:func:`_bg_logpdf`).
     ``want_u=False`` skips the CDFs (U is not touched): the mixture's log
-    density alone, bit-identical to the log-Jacobian of the full map for
-    Gaussian components (with skewed ones the transform factors are multiplied
-    before their log is taken: equal to ~1e-14).
+    density alone, bit-identical to the log-Jacobian of the full map (skewed
+    mixtures score with :func:`_skew_logpdf_rows` instead).
     ``skewed``: each component's Gaussian is on its own sinh-arcsinh transform
     of the channels (``skew``, see :func:`_skew_y`; means and chol are then in
     the transformed units and log_sd includes log(scale)); else ``skew`` is unused.
@@ -807,13 +801,9 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, bg
     lw = np.empty(K + 1)
     z = np.empty((K, d))
     lj = np.zeros(K)
-    jp = np.ones(K)
     for i in range(start, stop):
         for k in range(K + 1):
             lw[k] = logw[k]
-        if skewed and not want_u:
-            for k in range(K):
-                jp[k] = 1.0
         for j in range(d):
             x = X[i, j]
             lbg = _bg_logpdf(x, j, bgp, flat, z_max)
@@ -824,12 +814,7 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, bg
                 y = x
                 if skewed:
                     y, jac = _skew_y(x, skew, j, k)
-                    if want_u:
-                        lj[k] = math.log(jac)
-                    else:
-                        # density only: multiply the factors (each within
-                        # exp(+-MAX_SKEW), so no overflow) and take one log per component
-                        jp[k] *= jac
+                    lj[k] = math.log(jac)
                 z[k, j] = min(max((y - m) / sd[j, k], -z_max), z_max)
             if not want_u:
                 lw[0] += lbg
@@ -859,9 +844,6 @@ def _gmm_forward_rows(start, stop, X, U, logd, logw, means, chol, sd, log_sd, bg
             lw[0] += lbg
             for k in range(K):
                 lw[k + 1] += -0.5 * z[k, j] * z[k, j] - _LOG_SQRT_2PI - log_sd[j, k] + lj[k]
-        if skewed and not want_u:
-            for k in range(K):
-                lw[k + 1] += math.log(jp[k])
         mx = lw[0]
         for k in range(1, K + 1):
             mx = max(mx, lw[k])
@@ -908,11 +890,8 @@ def _skew_logpdf_rows(start, stop, X, logd, logw, means_t, chol_t, inv_sd, log_s
                 for k in range(K):
                     m[k] += chol_t[j, q, k] * z[q, k]
             for k in range(K):
-                t = (x - skew[0, j, k]) * skew[1, j, k]
-                t = min(max(t, -_SKEW_XT_MAX), _SKEW_XT_MAX)
-                r = math.sqrt(1.0 + t * t)
-                y = t * skew[2, j, k] - r * skew[3, j, k]
-                jp[k] *= skew[2, j, k] - t * skew[3, j, k] / r
+                y, jac = _skew_y(x, skew, j, k)
+                jp[k] *= jac
                 zz = min(max((y - m[k]) * inv_sd[j, k], -z_max), z_max)
                 z[j, k] = zz
                 lw[k] -= 0.5 * zz * zz
@@ -984,11 +963,11 @@ def gmm_forward(X, U, logd, logw, means, chol, sd, log_sd, bgp, flat, u_clip, z_
         _gmm_forward_rows(0, X.shape[0], *args)
 
 
-def gmm_logpdf(X, logd, logw, means, chol, sd, log_sd, bgp, flat, z_max, skew=None):
-    """Log density of the Gaussian-mixture base added to logd: :func:`gmm_forward`
-    without its CDFs."""
+def gmm_logpdf(X, logd, logw, means, chol, sd, log_sd, bgp, flat, z_max):
+    """Log density of the Gaussian-mixture base (Gaussian components) added to logd:
+    :func:`gmm_forward` without its CDFs."""
     gmm_forward(X, np.empty((0, X.shape[1])), logd, logw, means, chol, sd, log_sd, bgp, flat,
-                0.0, z_max, want_u=False, skew=skew)
+                0.0, z_max, want_u=False)
 
 
 @njit(cache=True, error_model="numpy")
