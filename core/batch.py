@@ -352,8 +352,8 @@ def _init_worker(threads: int) -> None:
         # NUMBA_NUM_THREADS to a different value once the threads have been
         # launched"), so only the number of threads in use is limited below.
         os.environ["NUMBA_NUM_THREADS"] = str(threads)
-    for var in _BLAS_THREAD_VARS:
-        os.environ.setdefault(var, str(threads))
+    # BLAS pools are sized when numpy is imported, before this runs: _start_pool
+    # puts the limit in the environment the workers (or their fork server) start with
     _limit_numba_threads(threads)
 
 

@@ -79,6 +79,8 @@ from . import kernels
 #: last two fit this module's mixture, "skewed" with skewed components.
 BASES = ("logistic", "gmm", "skewed")
 MIXTURE_BASES = ("gmm", "skewed")
+#: Values of the model's ``base`` parameter: a map, or "auto" (the model picks one).
+BASE_CHOICES = BASES + ("auto",)
 U_CLIP = 1e-15
 #: Smallest weight of the broad background component.
 MIN_BACKGROUND = 1e-4

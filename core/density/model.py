@@ -69,7 +69,7 @@ import numpy as np
 from ..errors import EventDataError
 from ..progress import keep_going
 from . import kernels
-from .gaussian_base import BASES, MIXTURE_BASES, GaussianMixtureBase
+from .gaussian_base import BASE_CHOICES, MIXTURE_BASES, GaussianMixtureBase
 from .tree import Forest, fit_tree
 
 #: Events per chunk when scoring/transforming (bounded memory).
@@ -311,7 +311,7 @@ class AdditiveTreeDensity:
             raise ValueError("min_leaf must be at least 1")
         if not 0.0 < float(self.validation_fraction) < 0.9:
             raise ValueError("validation_fraction must be in (0, 0.9)")
-        if self.base not in BASES + ("auto",):
+        if self.base not in BASE_CHOICES:
             raise ValueError("base must be 'auto', 'logistic', 'gmm' or 'skewed'")
         if self.rotation not in ("pca", "random"):
             raise ValueError("rotation must be 'pca' or 'random'")
@@ -337,10 +337,8 @@ class AdditiveTreeDensity:
         self._validate_params()
         X = _check_matrix(X, "fit", min_events=MIN_EVENTS)
         if self.base != "auto":
-            self.base_ = self.base
             return self._fit_base(X, self.base, progress)
         self._fit_base(X, "skewed", progress)
-        self.base_ = "skewed"
         if self.stopped_by_ == "cancelled" or largest_atom_share(X) < ATOM_SHARE:
             return self
         if not keep_going(progress, 0, int(self.n_trees),
@@ -353,8 +351,8 @@ class AdditiveTreeDensity:
             self.stopped_by_ = "cancelled"
             return self
         if other.heldout_loglik_ > self.heldout_loglik_:
+            # its fitted state (base_ "logistic" included), not its parameters
             self.__dict__.update({k: v for k, v in other.__dict__.items() if k not in self._PARAMS})
-            self.base_ = "logistic"
         return self
 
     def _fit_base(self, X, base, progress) -> "AdditiveTreeDensity":

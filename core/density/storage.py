@@ -21,7 +21,7 @@ from .. import RESEARCH_USE_NOTE, __version__
 from ..atomic import atomic_write
 from ..errors import ModelFileError
 from . import kernels
-from .gaussian_base import BASES, MIXTURE_BASES, GaussianMixtureBase
+from .gaussian_base import BASE_CHOICES, BASES, MIXTURE_BASES, GaussianMixtureBase
 from .tree import Forest
 
 FORMAT_NAME = "boscage-additive-tree-density"
@@ -167,8 +167,9 @@ def _build(cls, meta, a):
     # "base_used" (the map "auto" chose) is in files since format 3
     model.base = params.get("base", "logistic")
     model.base_ = meta.get("base_used", model.base)
-    if model.base not in BASES + ("auto",) or model.base_ not in BASES:
-        raise ValueError(f"unknown base measure {model.base_!r}")
+    for value, allowed in ((model.base, BASE_CHOICES), (model.base_, BASES)):
+        if value not in allowed:
+            raise ValueError(f"unknown base measure {value!r}")
     loc = _arr(a, "loc", np.float64, (d,))
     scale = _arr(a, "scale", np.float64, (d,))
     frozen = _arr(a, "frozen", np.bool_, (d,))
