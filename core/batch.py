@@ -390,10 +390,11 @@ class BatchResult:
 
 
 def list_fcs_files(input_dir: str) -> list[str]:
-    """``*.fcs`` files directly in ``input_dir`` (any case of the extension), sorted by name."""
-    files = [p for p in glob.glob(os.path.join(glob.escape(os.fspath(input_dir)), "*"))
-             if os.path.isfile(p) and p.lower().endswith(".fcs")]
-    return sorted(files, key=lambda p: os.path.basename(p).lower())
+    """FCS data files directly in ``input_dir``: the rule of :mod:`core.files`,
+    the same for the window and the batch."""
+    from .files import list_fcs_files as listed
+
+    return listed(input_dir)
 
 
 class _NoReadableFile(Exception):

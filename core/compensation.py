@@ -179,6 +179,22 @@ def spillover_from_keywords(keywords: dict, source: str = "") -> SpilloverMatrix
     return None
 
 
+def write_spillover_csv(path: str | os.PathLike, S: "SpilloverMatrix", overwrite: bool = False) -> str:
+    """Write ``S`` as CSV: a header row of detector names after an empty cell,
+    then one row per fluorochrome named by its detector (the layout
+    :func:`read_spillover_csv` reads back exactly: values as ``repr`` floats).
+    Written atomically; an existing file is replaced only with ``overwrite``."""
+    from .atomic import atomic_write
+
+    path = os.fspath(path)
+    with atomic_write(path, "w", overwrite=overwrite, encoding="utf-8") as handle:
+        w = csv.writer(handle, lineterminator="\n")
+        w.writerow([""] + list(S.detectors))
+        for name, row in zip(S.detectors, np.asarray(S.matrix, dtype=np.float64)):
+            w.writerow([name] + [repr(float(v)) for v in row])
+    return path
+
+
 def read_spillover_csv(path: str | os.PathLike) -> SpilloverMatrix:
     """Read a spillover matrix from a CSV file.
 

@@ -124,6 +124,24 @@ def rarity_percentile(log_density: np.ndarray) -> np.ndarray:
     return out
 
 
+def share_order(log_density: np.ndarray) -> np.ndarray:
+    """Indices of the finite entries of ``log_density`` from the lowest up
+    (ties by event order): the ranking :func:`rare_by_share` takes its first
+    ``round(share * n_kept)`` from.  Sorting once and keeping the order lets a
+    viewer move the share without sorting again (:func:`share_mask`)."""
+    ld = np.asarray(log_density, dtype=np.float64).ravel()
+    ok = np.flatnonzero(np.isfinite(ld))
+    return ok[np.argsort(ld[ok], kind="stable")]
+
+
+def share_mask(order: np.ndarray, share: float, n_events: int) -> np.ndarray:
+    """Rare events at ``share`` from an ordering by :func:`share_order`:
+    bool (n_events,), the same mask :func:`rare_by_share` gives."""
+    mask = np.zeros(int(n_events), dtype=bool)
+    mask[order[:int(round(float(share) * order.size))]] = True
+    return mask
+
+
 def rare_by_share(log_density: np.ndarray, share: float = 0.005) -> RareResult:
     """The ``round(share * n_kept)`` events with the lowest finite log density.
 
@@ -138,7 +156,7 @@ def rare_by_share(log_density: np.ndarray, share: float = 0.005) -> RareResult:
     k = int(round(share * ok.size))
     level = float("nan")
     if k > 0:
-        order = ok[np.argsort(ld[ok], kind="stable")]
+        order = share_order(ld)
         mask[order[:k]] = True
         level = float(ld[order[k]]) if k < ok.size else float("inf")
     elif ok.size:

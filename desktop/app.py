@@ -1,73 +1,22 @@
-"""Application start-up, error reporting and the headless screenshot mode.
+"""Application start-up and the headless screenshot mode.
 
-Every exception raised by a user action ends in a message box and the
-application carries on: slots are wrapped with :func:`guarded`, and a global
-``sys.excepthook`` catches whatever escapes into the Qt event loop.
+A global ``sys.excepthook`` turns whatever escapes into the Qt event loop into
+a message box (:mod:`desktop.messages`); slots use its ``guarded``.
 """
 
 from __future__ import annotations
 
 import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
 
-import functools
 import os
 import sys
 import traceback
 
 from PySide6.QtCore import QEventLoop, QTimer
-from PySide6.QtGui import QIcon
-from PySide6.QtWidgets import QApplication, QMessageBox, QWidget
+from PySide6.QtWidgets import QApplication
 
 from core import RESEARCH_USE_NOTE, SOFTWARE_NAME
-from core.errors import BoscageError
-
-ICON_DIR = os.path.join(os.path.dirname(__file__), "icons")
-
-
-def icon(name: str) -> QIcon:
-    """An icon from ``desktop/icons/NAME.svg``."""
-    return QIcon(os.path.join(ICON_DIR, f"{name}.svg"))
-
-
-def error_text(exc: BaseException) -> str:
-    """What the analyst reads: our own errors verbatim, anything else with its type."""
-    if isinstance(exc, BoscageError):
-        return str(exc)
-    if isinstance(exc, MemoryError):
-        return "Not enough memory for this step. Try fewer events or fewer channels."
-    if isinstance(exc, OSError):
-        where = f" ({exc.filename})" if getattr(exc, "filename", None) else ""
-        return f"The system refused a file operation{where}: {exc.strerror or exc}"
-    return f"Unexpected problem ({type(exc).__name__}): {exc}"
-
-
-def show_error(parent: QWidget | None, title: str, exc_or_text, details: str | None = None) -> None:
-    """Show a message box for a failed action (the application carries on)."""
-    text = exc_or_text if isinstance(exc_or_text, str) else error_text(exc_or_text)
-    if details and not isinstance(exc_or_text, BoscageError):
-        # keep the box short: the last lines of the traceback tell a developer enough
-        tail = "\n".join(details.strip().splitlines()[-4:])
-        text = f"{text}\n\n{tail}"
-    QMessageBox.critical(parent, f"{SOFTWARE_NAME}: {title}", text)
-
-
-def guarded(title: str):
-    """Decorator for slots: an exception becomes a message box, not a crash."""
-
-    def wrap(fn):
-        @functools.wraps(fn)
-        def inner(self, *args, **kwargs):
-            try:
-                return fn(self, *args, **kwargs)
-            except Exception as exc:  # noqa: BLE001 - every failure is shown to the analyst
-                parent = self if isinstance(self, QWidget) else None
-                show_error(parent, title, exc, traceback.format_exc())
-                return None
-
-        return inner
-
-    return wrap
-
+from desktop.messages import error_text, icon, show_error
 
 def _excepthook(exc_type, exc, tb) -> None:
     if issubclass(exc_type, KeyboardInterrupt):
@@ -76,7 +25,7 @@ def _excepthook(exc_type, exc, tb) -> None:
     details = "".join(traceback.format_exception(exc_type, exc, tb))
     sys.stderr.write(details)
     try:
-        show_error(QApplication.activeWindow(), "problem", exc, details)
+        show_error(QApplication.activeWindow(), "problem", exc)
     except Exception:  # noqa: BLE001 - never let the hook itself abort
         pass
 

@@ -1,4 +1,4 @@
-"""Dialogs: export selected events, run a recipe over a folder."""
+"""Dialogs: export selected events, run a recipe over a folder, choose plot pairs."""
 
 from __future__ import annotations
 
@@ -16,8 +16,42 @@ from PySide6.QtWidgets import (QComboBox, QDialog, QDialogButtonBox, QFileDialog
 
 from core import RESEARCH_USE_NOTE
 from core.errors import ExportError
+from core.files import list_fcs_files
 
-from desktop.app import guarded, show_error
+#: Readable headers for the batch summary's columns (the CSV keeps its names).
+SUMMARY_HEADERS = {"file": "File", "status": "Status", "events": "Events", "events_kept": "Events kept",
+                   "rare_events": "Rare events", "rare_percent": "Rare %", "heldout_loglik": "Fit score",
+                   "seconds": "Seconds", "message": "Message", "enriched": "Enriched events"}
+
+
+def summary_header(column: str) -> str:
+    """What the batch table calls a summary.csv column."""
+    if column.startswith("region:"):
+        return f"{column.split(':', 1)[1]} (events)"
+    return SUMMARY_HEADERS.get(column, column.replace("_", " ").capitalize())
+
+
+def file_stem(text: str) -> str:
+    """A file-name part from free text: letters, digits, '-' and '_' only
+    ('%' becomes 'pct', other runs of characters one '-')."""
+    import re
+
+    text = text.replace("%", "pct")
+    return re.sub(r"[^A-Za-z0-9_]+", "-", text).strip("-") or "events"
+
+
+def default_folder(settings) -> str:
+    """The last export folder, else the documents folder, else home (never
+    beside the input file)."""
+    from PySide6.QtCore import QStandardPaths
+
+    last = settings.value("folders/export", "") if settings is not None else ""
+    if last and os.path.isdir(last):
+        return last
+    docs = QStandardPaths.writableLocation(QStandardPaths.DocumentsLocation)
+    return docs if docs and os.path.isdir(docs) else os.path.expanduser("~")
+
+from desktop.messages import guarded, show_error
 from desktop.workers import Job
 
 
@@ -36,10 +70,11 @@ def _path_row(parent: QWidget, edit: QLineEdit, choose) -> QWidget:
 class ExportDialog(QDialog):
     """Choose which events (all, rare, enriched, a region) and where to write them."""
 
-    def __init__(self, parent, tube, selected_regions=()) -> None:
+    def __init__(self, parent, tube, selected_regions=(), settings=None) -> None:
         super().__init__(parent)
         self.setWindowTitle("Export events")
         self.tube = tube
+        self.settings = settings
         lay = QVBoxLayout(self)
         form = QFormLayout()
         self.which = QComboBox()
@@ -50,7 +85,7 @@ class ExportDialog(QDialog):
         if a is not None and a.enriched is not None:
             self.which.addItem(f"Enriched events ({int(a.enriched.sum()):,})", "enriched")
         for s in tube.stats:
-            self.which.addItem(f"Region {s.name} ({s.count:,})", "region:" + s.name)
+            self.which.addItem(f"{s.name} ({s.count:,})", "region:" + s.name)
         if selected_regions:
             i = self.which.findData("region:" + selected_regions[0])
             if i >= 0:
@@ -61,8 +96,10 @@ class ExportDialog(QDialog):
         self.format.addItem("CSV (transformed values + added columns)", "csv")
         self.format.setToolTip("FCS keeps the recorded (uncompensated) values and the file's spillover "
                                "keyword; CSV holds the values as plotted")
-        stem = os.path.splitext(tube.path)[0]
-        self.path = QLineEdit(f"{stem}-selected.fcs")
+        self.folder = default_folder(settings)
+        self.path = QLineEdit()
+        self.which.currentIndexChanged.connect(self._propose_name)
+        self._propose_name()
         form.addRow("Events", self.which)
         form.addRow("Format", self.format)
         form.addRow("File", _path_row(self, self.path, self._choose))
@@ -78,6 +115,14 @@ class ExportDialog(QDialog):
         self.format.currentIndexChanged.connect(self._format_changed)
         self.written: str | None = None
 
+    def _propose_name(self) -> None:
+        """``<input stem>-<what>.<ext>`` in the last export folder."""
+        stem = os.path.splitext(os.path.basename(self.tube.path))[0]
+        kind, _, name = str(self.which.currentData()).partition(":")
+        what = file_stem(name) if kind == "region" else kind
+        ext = "csv" if getattr(self, "format", None) is not None and self.format.currentData() == "csv" else "fcs"
+        self.path.setText(os.path.join(self.folder, f"{file_stem(stem)}-{what}.{ext}"))
+
     def _format_changed(self) -> None:
         stem, _ = os.path.splitext(self.path.text())
         self.path.setText(stem + (".fcs" if self.format.currentData() == "fcs" else ".csv"))
@@ -88,7 +133,7 @@ class ExportDialog(QDialog):
                                               "FCS files (*.fcs)" if ext == "fcs" else "CSV files (*.csv)")
         if path:
             self.path.setText(path)
-            self._overwrite = True
+            self._overwrite = True  # the system dialog asked before replacing
 
     def mask(self):
         kind, _, name = str(self.which.currentData()).partition(":")
@@ -115,6 +160,15 @@ class ExportDialog(QDialog):
         for name, m in t.masks.items():
             extra[f"region {name}"] = np.asarray(m, dtype=float)
         overwrite = getattr(self, "_overwrite", False)
+        if not overwrite and os.path.exists(path):
+            from PySide6.QtWidgets import QMessageBox
+
+            answer = QMessageBox.question(self, "Replace file?", f"{os.path.basename(path)} exists already in "
+                                          f"{os.path.dirname(path)}. Replace it?",
+                                          QMessageBox.Yes | QMessageBox.No, QMessageBox.No)
+            if answer != QMessageBox.Yes:
+                return
+            overwrite = True
         if self.format.currentData() == "fcs":
             digest = recipe_digest(t.recipe_with_regions())
             self.written = export_events_fcs(path, t.event_file, mask, extra, digest, overwrite=overwrite,
@@ -122,6 +176,8 @@ class ExportDialog(QDialog):
         else:
             self.written = export_events_csv(path, t.names, t.values, mask, extra, overwrite=overwrite,
                                              source_paths=[t.path])
+        if self.settings is not None:
+            self.settings.set_value("folders/export", os.path.dirname(os.path.abspath(self.written)))
         parent = self.parent()
         if parent is not None and hasattr(parent, "statusBar"):
             parent.statusBar().showMessage(f"Wrote {int(np.count_nonzero(mask)):,} events to {self.written}", 8000)
@@ -133,7 +189,7 @@ class BatchDialog(QDialog):
 
     ended = Signal(bool)
 
-    def __init__(self, parent, recipe) -> None:
+    def __init__(self, parent, recipe, folder: str = "", control: str | None = None) -> None:
         super().__init__(parent)
         self.setWindowTitle("Run a recipe over a folder")
         self.resize(760, 520)
@@ -148,8 +204,9 @@ class BatchDialog(QDialog):
         self.control.setPlaceholderText("optional: contrast every file with this control tube")
         self.workers = QSpinBox()
         self.workers.setRange(1, max(1, os.cpu_count() or 1))
-        self.workers.setValue(1)
-        self.workers.setToolTip("Files analysed at the same time (one process each)")
+        self.workers.setValue(max(1, os.cpu_count() or 1))  # the command line's default: every core
+        self.workers.setToolTip("Files analysed at the same time (one process each); the command line "
+                                "uses every core unless told otherwise")
         self.force = QCheckBox("Redo files already finished in the output folder")
         form.addRow("FCS folder", _path_row(self, self.input, self._choose_input))
         form.addRow("Output folder", _path_row(self, self.output, self._choose_output))
@@ -157,6 +214,12 @@ class BatchDialog(QDialog):
         form.addRow("Parallel files", self.workers)
         form.addRow("", self.force)
         lay.addLayout(form)
+        self.files_label = QLabel("")
+        self.files_label.setObjectName("Note")
+        self.files_label.setWordWrap(True)
+        lay.addWidget(self.files_label)
+        self.input.textChanged.connect(self._list_files)
+        self.control.textChanged.connect(self._list_files)
         self.recipe_label = QLabel("Recipe: the current tube's recipe (channels, scales, compensation, "
                                    "engine, rarity and regions)" if recipe is not None else
                                    "Recipe: the default recipe of the folder's first file")
@@ -187,10 +250,29 @@ class BatchDialog(QDialog):
         note = QLabel(RESEARCH_USE_NOTE)
         note.setObjectName("Note")
         lay.addWidget(note)
+        if folder:
+            self.input.setText(folder)
+            self.output.setText(os.path.join(os.path.dirname(folder), os.path.basename(folder) + "-boscage"))
+        if control:
+            self.control.setText(control)
         self.run_button.clicked.connect(self.run)
         self.stop_button.clicked.connect(self.stop)
         self.open_csv.clicked.connect(self.open_summary)
         self.close_button.clicked.connect(self.close)
+
+    def _list_files(self) -> None:
+        """Say which files will run, and that the control is the reference, not analysed."""
+        folder = self.input.text().strip()
+        files = list_fcs_files(folder) if folder and os.path.isdir(folder) else []
+        control = os.path.abspath(self.control.text().strip()) if self.control.text().strip() else None
+        runs = [f for f in files if f != control]
+        text = f"{len(runs)} FCS file(s) will be analysed: " + ", ".join(os.path.basename(f) for f in runs[:8])
+        text += " ..." if len(runs) > 8 else ""
+        if control and control in files:
+            text += (f". The control {os.path.basename(control)} is in this folder: it is the reference every "
+                     "file is compared with, so it is not analysed itself.")
+        self.files_label.setText(text if files else ("No FCS files in this folder." if folder else ""))
+        self._n_files = len(runs)
 
     def _choose_input(self) -> None:
         d = QFileDialog.getExistingDirectory(self, "Folder of FCS files", self.input.text())
@@ -234,7 +316,8 @@ class BatchDialog(QDialog):
         self.run_button.setEnabled(False)
         self.stop_button.setEnabled(True)
         self.progress.setRange(0, 0)
-        self.status.setText("Running...")
+        self.status.setText("Starting: reading the recipe and the first file..."
+                            if control is None else "Starting: preparing the control (fitting its density)...")
         self.job.start()
 
     def stop(self) -> None:
@@ -247,7 +330,14 @@ class BatchDialog(QDialog):
             self.progress.setRange(0, int(total))
             self.progress.setValue(int(done))
         if isinstance(row, dict):
-            self.status.setText(f"{done} of {total}: {row.get('file', '')} — {row.get('status', '')}")
+            self.status.setText(f"{done} of {total} files done; last: {row.get('file', '')} — "
+                                f"{'skipped (finished earlier)' if row.get('skipped') else row.get('status', '')}. "
+                                + ("Working on the others..." if done < (total or 0) else ""))
+        elif self.control.text().strip() and done == 0:
+            self.status.setText(f"0 of {total} files done: preparing the control (fitting its density), "
+                                "then the files in parallel...")
+        else:
+            self.status.setText(f"{done} of {total} files done; fitting the densities of the others...")
 
     def _done(self, result) -> None:
         self.result = result
@@ -283,10 +373,16 @@ class BatchDialog(QDialog):
         if not rows:
             return
         header, body = rows[0], rows[1:]
+        # status right after the file name, so it is seen without scrolling
+        order = list(range(len(header)))
+        if "status" in header and "file" in header:
+            order.remove(header.index("status"))
+            order.insert(header.index("file") + 1, header.index("status"))
         self.table.setColumnCount(len(header))
-        self.table.setHorizontalHeaderLabels(header)
+        self.table.setHorizontalHeaderLabels([summary_header(header[j]) for j in order])
         self.table.setRowCount(len(body))
         for i, r in enumerate(body):
+            r = [r[j] if j < len(r) else "" for j in order]
             for j, text in enumerate(r):
                 item = QTableWidgetItem(text)
                 item.setFlags(Qt.ItemIsSelectable | Qt.ItemIsEnabled)
@@ -301,3 +397,67 @@ class BatchDialog(QDialog):
             self.job.cancel()
             self.job.wait(30000)
         event.accept()
+
+
+class PairsDialog(QDialog):
+    """Choose the channel pairs of the density map from lists showing each
+    channel's label and name."""
+
+    def __init__(self, parent, tube, limit: int = 9) -> None:
+        super().__init__(parent)
+        self.setWindowTitle("Plot pairs")
+        self.tube = tube
+        self.limit = limit
+        lay = QVBoxLayout(self)
+        note = QLabel(f"Each row is one plot: horizontal and vertical channel (at most {limit}). "
+                      "Contours are drawn for every plot once the density is fitted.")
+        note.setWordWrap(True)
+        note.setObjectName("Note")
+        lay.addWidget(note)
+        self.rows: list[tuple[QComboBox, QComboBox]] = []
+        self.form = QFormLayout()
+        lay.addLayout(self.form)
+        for ix, iy in tube.pairs:
+            self._add_row(ix, iy)
+        row = QHBoxLayout()
+        self.add_button = QPushButton("Add a plot")
+        self.remove_button = QPushButton("Remove the last")
+        row.addWidget(self.add_button)
+        row.addWidget(self.remove_button)
+        row.addStretch(1)
+        lay.addLayout(row)
+        buttons = QDialogButtonBox(QDialogButtonBox.Ok | QDialogButtonBox.Cancel)
+        buttons.accepted.connect(self.accept)
+        buttons.rejected.connect(self.reject)
+        lay.addWidget(buttons)
+        self.add_button.clicked.connect(lambda: self._add_row(0, min(1, len(tube.names) - 1)))
+        self.remove_button.clicked.connect(self._remove_row)
+
+    def _combo(self, index: int) -> QComboBox:
+        box = QComboBox()
+        for name, label in zip(self.tube.names, self.tube.labels):
+            box.addItem(f"{label} ({name})" if label and label != name else name, name)
+        box.setCurrentIndex(index)
+        return box
+
+    def _add_row(self, ix: int, iy: int) -> None:
+        if len(self.rows) >= self.limit:
+            return
+        x, y = self._combo(ix), self._combo(iy)
+        w = QWidget()
+        h = QHBoxLayout(w)
+        h.setContentsMargins(0, 0, 0, 0)
+        h.addWidget(x, 1)
+        h.addWidget(QLabel("against"))
+        h.addWidget(y, 1)
+        self.form.addRow(f"Plot {len(self.rows) + 1}", w)
+        self.rows.append((x, y))
+
+    def _remove_row(self) -> None:
+        if len(self.rows) > 1:
+            self.rows.pop()
+            self.form.removeRow(self.form.rowCount() - 1)
+
+    def pairs(self) -> list[tuple[str, str]]:
+        """The chosen (x, y) channel names ($PnN), in order."""
+        return [(x.currentData(), y.currentData()) for x, y in self.rows]

@@ -25,11 +25,15 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6.QtCore import QRectF, Qt, Signal
 from PySide6.QtGui import QColor, QPainter, QPen, QPolygonF
-from PySide6.QtWidgets import QVBoxLayout, QWidget
+from PySide6.QtWidgets import QLabel, QVBoxLayout, QWidget
 
 from desktop import style
+from desktop.axes import TransformAxis
 
 BINS = 200
+#: Colour modes: the density's rank (percent of events less dense: 0 rarest, 100
+#: most common; the default) or the fitted log density in nats.
+COLOUR_MODES = {"rank": "density rank: % of events less dense", "log": "log density (nats)"}
 MAX_HIGHLIGHT = 20000
 RANGE_SAMPLE = 50_000
 
@@ -166,7 +170,16 @@ class DensityMap(QWidget):
         self.view.setBackground(style.SLATE)
         lay = QVBoxLayout(self)
         lay.setContentsMargins(0, 0, 0, 0)
-        lay.addWidget(self.view)
+        lay.setSpacing(0)
+        lay.addWidget(self.view, 1)
+        self.legend = QLabel()
+        self.legend.setObjectName("MapLegend")
+        self.legend.setWordWrap(True)
+        self.legend.setStyleSheet(f"background: {style.SLATE}; color: #c9d1cc; padding: 3px 8px; font-size: 9pt;")
+        lay.addWidget(self.legend)
+        self.only: np.ndarray | None = None  # show only these events (bool (n_events,)) or all
+        self.level_range: tuple[float, float] | None = None  # fixed colour levels, else percentiles
+        self._drag_preview = None
         self.cells: list[PairCell] = []
         self.names: list[str] = []
         self.values: np.ndarray | None = None
@@ -187,7 +200,8 @@ class DensityMap(QWidget):
     def set_events(self, values: np.ndarray, names: Sequence[str],
                    pairs: Sequence[tuple[int, int]], labels: Sequence[str] | None = None,
                    columns: int | None = None, colour_values: np.ndarray | None = None,
-                   colour_label: str = "") -> None:
+                   colour_label: str = "", specs: Sequence | None = None,
+                   levels: tuple[float, float] | None = None) -> None:
         """Show ``values`` (events x channels) as one plot per (x, y) channel pair,
         bins coloured by ``colour_values`` (see :meth:`set_colouring`).
 
@@ -195,12 +209,18 @@ class DensityMap(QWidget):
         Plot items are reused when the grid keeps its shape (creating them is
         the slow part of a redraw)."""
         values = np.asarray(values, dtype=np.float64)
+        # highlights and filters belong to the events they were made for: the
+        # caller shows the ones that apply to these events
+        self.highlight_mask = None
+        self.only = None
         self.values = values
+        self.level_range = levels
         self.names = list(names)
         labels = list(labels) if labels else [""] * len(self.names)
         self._cancel_polygon()
         for cell in self.cells:
             for roi in cell.rois.values():
+                cell.plot.removeItem(roi.label)
                 cell.plot.removeItem(roi)
             for item in cell.contours:
                 cell.plot.removeItem(item)
@@ -221,10 +241,15 @@ class DensityMap(QWidget):
             plot, img, hl = self._plots[k]
             plot.setLabel("bottom", _axis_label(self.names[ix], labels[ix]))
             plot.setLabel("left", _axis_label(self.names[iy], labels[iy]))
+            if specs is not None:
+                plot.getAxis("bottom").set_spec(specs[ix])
+                plot.getAxis("left").set_spec(specs[iy])
             img.setRect(QRectF(ext[0], ext[2], ext[1] - ext[0], ext[3] - ext[2]))
             plot.setRange(xRange=ext[:2], yRange=ext[2:], padding=0)
             idx = pair_index(chan_bins[ix], chan_bins[iy])
             inside = idx >= 0
+            if self.only is not None:
+                inside &= self.only
             counts = np.bincount(idx[inside], minlength=BINS * BINS).astype(np.float64)
             self.cells.append(PairCell(ix, iy, plot, img, hl, ext, idx, inside, counts))
         self.colour_values = None if colour_values is None else np.asarray(colour_values, dtype=np.float64)
@@ -240,7 +265,9 @@ class DensityMap(QWidget):
         self._columns = columns
         self.view.addItem(self.title, row=0, col=0, colspan=columns)
         for k in range(n):
-            plot = self.view.addPlot(row=1 + k // columns, col=k % columns)
+            plot = self.view.addPlot(row=1 + k // columns, col=k % columns,
+                                     axisItems={"bottom": TransformAxis("bottom"), "left": TransformAxis("left")},
+                                     viewBox=_DrawingViewBox(self))
             plot.setMenuEnabled(False)
             plot.hideButtons()
             plot.getViewBox().setBackgroundColor("#11161a")
@@ -262,6 +289,26 @@ class DensityMap(QWidget):
         self.colour_values = None if per_event is None else np.asarray(per_event, dtype=np.float64)
         self.colour_label = label or ("mean log density" if per_event is not None else "events per bin (log10)")
         self._redraw_images()
+
+    def set_colouring_levels(self, per_event, label: str, levels: tuple[float, float] | None) -> None:
+        """As :meth:`set_colouring`, with fixed colour levels (None: 1st-99.9th percentile)."""
+        self.level_range = levels
+        self.set_colouring(per_event, label)
+
+    def set_filter(self, mask: np.ndarray | None) -> None:
+        """Show only the events in ``mask`` (bool (n_events,)); None shows all."""
+        self.only = None if mask is None else np.asarray(mask, dtype=bool)
+        for cell in self.cells:
+            inside = cell.index >= 0
+            if self.only is not None:
+                inside &= self.only
+            cell.inside = inside
+            cell.counts = np.bincount(cell.index[inside], minlength=BINS * BINS).astype(np.float64)
+        self._redraw_images()
+        self._redraw_highlight()
+
+    def set_legend(self, html: str) -> None:
+        self.legend.setText(html)
 
     def set_highlight(self, mask: np.ndarray | None) -> None:
         """Draw the events in ``mask`` (bool, (n_events,)) on top of every plot."""
@@ -296,7 +343,9 @@ class DensityMap(QWidget):
             per_cell.append(val)
             finite_vals.append(val[np.isfinite(val)])
         allv = np.concatenate(finite_vals) if finite_vals else np.zeros(0)
-        if allv.size:
+        if self.colour_values is not None and self.level_range is not None:
+            lo, hi = self.level_range
+        elif allv.size:
             lo, hi = np.percentile(allv, [1.0, 99.9]) if self.colour_values is not None else (0.0, float(allv.max()))
             if not hi > lo:
                 hi = lo + 1.0
@@ -370,7 +419,8 @@ class DensityMap(QWidget):
 
     def add_roi(self, region_id: str, kind: str, x_name: str, y_name: str,
                 vertices: Sequence[tuple[float, float]], name: str = "") -> bool:
-        """Show a rectangle or polygon region on the plot of (x_name, y_name).
+        """Show a rectangle or polygon region on the plot of (x_name, y_name), with
+        a handle on every corner and its name inside the view.
 
         Returns False when that pair is not on the map (the region still counts)."""
         cell = self.cell_for(x_name, y_name)
@@ -382,19 +432,38 @@ class DensityMap(QWidget):
             x0, y0 = vs.min(axis=0)
             x1, y1 = vs.max(axis=0)
             roi = pg.RectROI([x0, y0], [x1 - x0, y1 - y0], pen=pen, removable=False)
+            # RectROI has one scale handle (top right); add the other three corners
+            for pos, centre in (([0, 0], [1, 1]), ([1, 0], [0, 1]), ([0, 1], [1, 0])):
+                roi.addScaleHandle(pos, centre)
         else:
             roi = pg.PolyLineROI([tuple(v) for v in vs], closed=True, pen=pen, removable=False)
         roi.kind = kind
         roi.name = name
         roi.setZValue(10)
-        label = pg.TextItem(name, color=style.REGION, anchor=(0, 1))
-        label.setParentItem(roi)
+        label = pg.TextItem(name, color=style.REGION, anchor=(0, 0), fill=pg.mkBrush(29, 35, 38, 170))
+        label.setZValue(11)
+        cell.plot.addItem(label)
         roi.label = label
         cell.plot.addItem(roi)
         cell.rois[region_id] = roi
-        roi.sigRegionChanged.connect(lambda r=roi, rid=region_id: self.roiChanged.emit(rid, roi_vertices(r)))
+        self._place_label(cell, roi)
+
+        def changed(r=roi, rid=region_id, c=cell):
+            self._place_label(c, r)
+            self.roiChanged.emit(rid, roi_vertices(r))
+
+        roi.sigRegionChanged.connect(changed)
         roi.sigRegionChangeFinished.connect(lambda r=roi, rid=region_id: self.roiFinished.emit(rid, roi_vertices(r)))
         return True
+
+    @staticmethod
+    def _place_label(cell: PairCell, roi) -> None:
+        """Put a region's name at its top-left corner, kept inside the plot's view."""
+        v = np.asarray(roi_vertices(roi), dtype=np.float64)
+        (vx0, vx1), (vy0, vy1) = cell.plot.vb.viewRange()
+        x = min(max(float(v[:, 0].min()), vx0), vx1 - 0.25 * (vx1 - vx0))
+        y = min(max(float(v[:, 1].max()), vy0 + 0.08 * (vy1 - vy0)), vy1)
+        roi.label.setPos(x, y)
 
     def rename_roi(self, region_id: str, name: str) -> None:
         for cell in self.cells:
@@ -407,11 +476,13 @@ class DensityMap(QWidget):
         for cell in self.cells:
             roi = cell.rois.pop(region_id, None)
             if roi is not None:
+                cell.plot.removeItem(roi.label)
                 cell.plot.removeItem(roi)
 
     def start_drawing(self, kind: str | None) -> None:
-        """Arm a drawing tool: "rectangle" (click a plot to place a box, then drag
-        its handles) or "polygon" (click the corners, double-click to close)."""
+        """Arm a drawing tool: "rectangle" (press and drag a box on a plot),
+        "interval" (press and drag across a plot: the x channel's band) or
+        "polygon" (click the corners, double-click to close)."""
         self._cancel_polygon()
         self.draw_mode = kind
 
@@ -430,12 +501,13 @@ class DensityMap(QWidget):
         p = cell.plot.vb.mapSceneToView(event.scenePos())
         x, y = float(p.x()), float(p.y())
         xn, yn = self.names_of(cell)
-        if self.draw_mode == "rectangle":
+        if self.draw_mode in ("rectangle", "interval"):
+            # a click without a drag: a box a fifth of the view around the point
             (vx0, vx1), (vy0, vy1) = cell.plot.vb.viewRange()
             w, h = 0.2 * (vx1 - vx0), 0.2 * (vy1 - vy0)
             verts = [(x - w / 2, y - h / 2), (x + w / 2, y + h / 2)]
-            self.draw_mode = None
-            self.roiDrawn.emit("rectangle", xn, yn, verts)
+            kind, self.draw_mode = self.draw_mode, None
+            self.roiDrawn.emit(kind, xn, yn, verts)
             event.accept()
             return
         # polygon
@@ -458,12 +530,62 @@ class DensityMap(QWidget):
         self._poly_preview.setData(xy[:, 0], xy[:, 1])
         event.accept()
 
+    def _show_drag(self, vb, a, b) -> None:
+        """Dashed outline of the box being dragged (None: remove it)."""
+        if self._drag_preview is not None:
+            self._drag_preview[0].removeItem(self._drag_preview[1])
+            self._drag_preview = None
+        if vb is None:
+            return
+        (x0, y0), (x1, y1) = a, b
+        item = pg.PlotDataItem([x0, x1, x1, x0, x0], [y0, y0, y1, y1, y0],
+                               pen=pg.mkPen(style.REGION, width=1.2, style=Qt.DashLine))
+        vb.addItem(item)
+        self._drag_preview = (vb, item)
+
     def _cancel_polygon(self) -> None:
         if self._poly_preview is not None and self._poly_cell is not None:
             self._poly_cell.plot.removeItem(self._poly_preview)
         self._poly_preview = None
         self._poly_cell = None
         self._poly_points = []
+
+
+class _DrawingViewBox(pg.ViewBox):
+    """A plot's view box that turns a left-button drag into a rectangle (or an
+    interval) while the map's drawing tool is armed; otherwise it pans as usual."""
+
+    def __init__(self, owner: "DensityMap") -> None:
+        super().__init__()
+        self._owner = owner
+        self._start = None
+
+    def mouseDragEvent(self, ev, axis=None):  # noqa: N802 - pyqtgraph's name
+        owner = self._owner
+        if owner.draw_mode not in ("rectangle", "interval") or ev.button() != Qt.LeftButton:
+            return super().mouseDragEvent(ev, axis)
+        ev.accept()
+        p = self.mapSceneToView(ev.scenePos())
+        if ev.isStart():
+            s = self.mapSceneToView(ev.buttonDownScenePos())
+            self._start = (float(s.x()), float(s.y()))
+        if self._start is None:
+            return
+        x0, y0 = self._start
+        x1, y1 = float(p.x()), float(p.y())
+        if owner.draw_mode == "interval":
+            (_, _), (vy0, vy1) = self.viewRange()
+            y0, y1 = vy0, vy1
+        owner._show_drag(self, (x0, y0), (x1, y1))
+        if ev.isFinish():
+            owner._show_drag(None, None, None)
+            self._start = None
+            cell = next((c for c in owner.cells if c.plot.vb is self), None)
+            if cell is None or x0 == x1 or (owner.draw_mode == "rectangle" and y0 == y1):
+                return
+            kind, owner.draw_mode = owner.draw_mode, None
+            xn, yn = owner.names_of(cell)
+            owner.roiDrawn.emit(kind, xn, yn, [(min(x0, x1), min(y0, y1)), (max(x0, x1), max(y0, y1))])
 
 
 def roi_vertices(roi) -> list[tuple[float, float]]:

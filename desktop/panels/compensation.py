@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
 
-import csv
 import os
 
 import numpy as np
@@ -19,20 +18,8 @@ from PySide6.QtGui import QColor
 from PySide6.QtWidgets import (QAbstractItemView, QComboBox, QHBoxLayout, QHeaderView, QLabel, QPushButton,
                                QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget)
 
-from core.atomic import atomic_write
 
 SOURCES = [("none", "No compensation"), ("file", "The file's spillover keyword"), ("csv", "A CSV file")]
-
-
-def save_matrix_csv(path: str, S, overwrite: bool = False) -> str:
-    """Write a SpilloverMatrix as CSV (header of detectors, one named row per
-    fluorochrome), the layout :func:`core.compensation.read_spillover_csv` reads."""
-    with atomic_write(path, "w", overwrite=overwrite, encoding="utf-8") as handle:
-        w = csv.writer(handle, lineterminator="\n")
-        w.writerow([""] + list(S.detectors))
-        for name, row in zip(S.detectors, np.asarray(S.matrix)):
-            w.writerow([name] + [repr(float(v)) for v in row])
-    return path
 
 
 class CompensationPanel(QWidget):

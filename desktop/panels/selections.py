@@ -1,8 +1,10 @@
 """The "Selections" panel: the regions of the current tube with live statistics.
 
 Statistics come from :meth:`core.regions.RegionSet.statistics`; the panel only
-shows them.  Rename by double-clicking a name; delete; combine two or more
-selected regions with and / or, or take the complement (not) of one.
+shows them.  The counts sit right after the name so they are visible at any
+width.  Rename by double-clicking a name; delete; combine two or more selected
+regions with and / or, or take the complement (not) of one; nest a region
+inside another; show only one region's events on the map.
 """
 
 from __future__ import annotations
@@ -27,8 +29,11 @@ class SelectionsPanel(QWidget):
     combineRequested = Signal(str, list)  # operator, names
     exportRequested = Signal()
     selectionChanged = Signal(list)
+    nestRequested = Signal(str)           # name: choose the region to nest it in
+    showOnlyRequested = Signal(str)       # name, or "" to show every event
 
-    COLUMNS = ("Name", "Kind", "Channels", "Events", "% of parent", "% of all")
+    COLUMNS = ("Name", "Events", "% of parent", "% of all", "What")
+    NUMBERS = (1, 2, 3)
 
     def __init__(self, parent: QWidget | None = None) -> None:
         super().__init__(parent)
@@ -36,8 +41,9 @@ class SelectionsPanel(QWidget):
         head = QLabel("Selections")
         head.setObjectName("Heading")
         lay.addWidget(head)
-        note = QLabel("Draw a rectangle (R) or polygon (P) on any plot of the density map. "
-                      "Counts update while you drag. Double-click a name to rename it.")
+        note = QLabel("Drag a box (R), a band (B) or click an outline (P) on any plot. Counts update "
+                      "while you drag. Double-click a name to rename it. While one region is shown "
+                      "alone, new shapes are drawn inside it.")
         note.setObjectName("Note")
         note.setWordWrap(True)
         lay.addWidget(note)
@@ -46,8 +52,12 @@ class SelectionsPanel(QWidget):
         self.table.verticalHeader().setVisible(False)
         self.table.setSelectionBehavior(QAbstractItemView.SelectRows)
         self.table.setEditTriggers(QAbstractItemView.DoubleClicked | QAbstractItemView.EditKeyPressed)
-        self.table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeToContents)
-        self.table.horizontalHeader().setStretchLastSection(True)
+        header = self.table.horizontalHeader()
+        header.setSectionResizeMode(QHeaderView.ResizeToContents)
+        header.setSectionResizeMode(0, QHeaderView.Stretch)
+        header.setSectionResizeMode(4, QHeaderView.Interactive)
+        header.setStretchLastSection(False)
+        self.table.setWordWrap(False)
         lay.addWidget(self.table, 1)
         row = QHBoxLayout()
         self.and_button = QPushButton("All of")
@@ -61,6 +71,15 @@ class SelectionsPanel(QWidget):
         for b in (self.and_button, self.or_button, self.not_button, self.delete_button):
             row.addWidget(b)
         lay.addLayout(row)
+        row2 = QHBoxLayout()
+        self.nest_button = QPushButton("Nest inside...")
+        self.nest_button.setToolTip("Count the selected region only among the events of another region")
+        self.only_button = QPushButton("Show only this")
+        self.only_button.setCheckable(True)
+        self.only_button.setToolTip("Show only the selected region's events on the map (click again for all)")
+        row2.addWidget(self.nest_button)
+        row2.addWidget(self.only_button)
+        lay.addLayout(row2)
         self.export_button = QPushButton("Export selected events...")
         self.export_button.setToolTip("Write the events of a region to FCS or CSV (Ctrl+E)")
         lay.addWidget(self.export_button)
@@ -71,6 +90,8 @@ class SelectionsPanel(QWidget):
         self.not_button.clicked.connect(lambda: self._combine("not"))
         self.delete_button.clicked.connect(lambda: self.deleteRequested.emit(self.selected_names()))
         self.export_button.clicked.connect(self.exportRequested)
+        self.nest_button.clicked.connect(self._nest)
+        self.only_button.toggled.connect(self._only)
         self.table.itemChanged.connect(self._item_changed)
         self.table.itemSelectionChanged.connect(lambda: self.selectionChanged.emit(self.selected_names()))
 
@@ -81,6 +102,15 @@ class SelectionsPanel(QWidget):
     def select(self, name: str) -> None:
         if name in self._names:
             self.table.selectRow(self._names.index(name))
+
+    def _nest(self) -> None:
+        names = self.selected_names()
+        if names:
+            self.nestRequested.emit(names[0])
+
+    def _only(self, on: bool) -> None:
+        names = self.selected_names()
+        self.showOnlyRequested.emit(names[0] if on and names else "")
 
     def _combine(self, operator: str) -> None:
         self.combineRequested.emit(operator, self.selected_names())
@@ -105,21 +135,22 @@ class SelectionsPanel(QWidget):
             for row, r in enumerate(regions):
                 s = by_name.get(r.name)
                 chans = ", ".join(r.channels_used()) or ", ".join(getattr(r, "operands", ()))
-                cells = [r.name, KIND_WORDS.get(r.kind, r.kind), chans,
-                         "" if s is None else f"{s.count:,}",
+                what = f"{KIND_WORDS.get(r.kind, r.kind)} · {chans}" + (f" · inside {r.parent}" if r.parent else "")
+                cells = [r.name, "" if s is None else f"{s.count:,}",
                          "" if s is None else _pct(s.percent_of_parent),
-                         "" if s is None else _pct(s.percent_of_all)]
+                         "" if s is None else _pct(s.percent_of_all), what]
                 for col, text in enumerate(cells):
                     item = self.table.item(row, col)
                     if item is None:
                         item = QTableWidgetItem()
                         self.table.setItem(row, col, item)
                     item.setText(text)
+                    item.setToolTip(what)
                     flags = Qt.ItemIsSelectable | Qt.ItemIsEnabled
                     if col == 0:
                         flags |= Qt.ItemIsEditable
                     item.setFlags(flags)
-                    if col >= 3:
+                    if col in self.NUMBERS:
                         item.setTextAlignment(Qt.AlignRight | Qt.AlignVCenter)
             for row, name in enumerate(self._names):
                 if name in selected:
@@ -135,7 +166,7 @@ class SelectionsPanel(QWidget):
                 if s.name not in self._names:
                     continue
                 row = self._names.index(s.name)
-                for col, text in ((3, f"{s.count:,}"), (4, _pct(s.percent_of_parent)), (5, _pct(s.percent_of_all))):
+                for col, text in ((1, f"{s.count:,}"), (2, _pct(s.percent_of_parent)), (3, _pct(s.percent_of_all))):
                     item = self.table.item(row, col)
                     if item is not None:
                         item.setText(text)
@@ -145,7 +176,7 @@ class SelectionsPanel(QWidget):
     def count_text(self, name: str) -> str:
         """The events count shown for ``name`` (tests read it)."""
         row = self._names.index(name)
-        return self.table.item(row, 3).text()
+        return self.table.item(row, 1).text()
 
 
 def _pct(v: float) -> str:
