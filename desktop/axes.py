@@ -44,12 +44,13 @@ def format_value(v: float, decades: bool = True) -> str:
     return f"{v:g}"
 
 
-def axis_ticks(spec: dict | None, lo: float, hi: float, target: int = 5):
+def axis_ticks(spec: dict | None, lo: float, hi: float, target: int = 5, min_gap: float = 1 / 25):
     """Ticks for the visible range [lo, hi] of transformed values of a channel
     with transform ``spec`` (None: untransformed).
 
     Returns (major, minor): major is [(position, label)], minor [position];
-    positions in transformed units, labels in original units."""
+    positions in transformed units, labels in original units; labelled ticks
+    are at least ``min_gap`` of the range apart (0 first, then the largest)."""
     from core.transforms import make_transform
 
     if not (np.isfinite(lo) and np.isfinite(hi)) or hi <= lo:
@@ -76,7 +77,7 @@ def axis_ticks(spec: dict | None, lo: float, hi: float, target: int = 5):
     pos = fwd(values) if values else np.zeros(0)
     # 0 first, then the decades from the largest down, each kept when it does
     # not crowd one already kept (decades squeezed into the linear part around 0)
-    min_gap = (hi - lo) / 25.0
+    min_gap = (hi - lo) * min_gap
     kept: list[tuple[float, float]] = []
     for v, p in sorted(zip(values, pos), key=lambda vp: (vp[0] != 0, -abs(vp[0]))):
         if all(abs(p - q) >= min_gap for _, q in kept):
@@ -106,7 +107,9 @@ class TransformAxis(pg.AxisItem):
         lo, hi = min(minVal, maxVal), max(minVal, maxVal)
         target = max(2, int(size / 70))
         try:
-            major, minor = axis_ticks(self.spec, lo, hi, target)
+            # labels need about 18 px (vertical axis) or 34 px (horizontal) each
+            gap = (18.0 if self.orientation in ("left", "right") else 34.0) / max(size, 1.0)
+            major, minor = axis_ticks(self.spec, lo, hi, target, min_gap=gap)
         except Exception:  # noqa: BLE001 - a scale being edited: fall back to plain ticks
             return super().tickValues(minVal, maxVal, size)
         self._labels = {round(p, 9): text for p, text in major}

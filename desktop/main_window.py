@@ -103,7 +103,7 @@ class MainWindow(QMainWindow):
         cl.addWidget(self.density_map, 1)
         self.setCentralWidget(centre)
         self.tubes_list = TubesList()
-        self._add_fixed_dock("TubesDock", self.tubes_list, Qt.LeftDockWidgetArea, 150, 240)
+        self._add_fixed_dock("TubesDock", self.tubes_list, Qt.LeftDockWidgetArea, 175, 240)
 
         # right: the notebook of side panels.  A panel added by another module
         # needs one line here (add_side_panel) and its signal hooks below.
@@ -111,12 +111,12 @@ class MainWindow(QMainWindow):
         self.notebook.setUsesScrollButtons(True)
         self.notebook.setDocumentMode(True)
         self.fit_panel = self.add_side_panel(FitPanel(), "Fit")
-        self.selections = self.add_side_panel(SelectionsPanel(), "Selections")
+        self.selections = self.add_side_panel(SelectionsPanel(), "Regions")
         self.channels_panel = self.add_side_panel(ChannelsPanel(), "Channels")
         self.comp_panel = self.add_side_panel(CompensationPanel(), "Spillover")
         self.contrast_panel = self.add_side_panel(ContrastPanel(), "Contrast")
         self.card = self.add_side_panel(TubeCard(), "Tube")
-        self._add_fixed_dock("PanelsDock", self.notebook, Qt.RightDockWidgetArea, 330, 440)
+        self._add_fixed_dock("PanelsDock", self.notebook, Qt.RightDockWidgetArea, 380, 450)
 
         self.note_label = QLabel(RESEARCH_USE_NOTE)
         self.note_label.setObjectName("Note")

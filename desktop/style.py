@@ -43,7 +43,7 @@ QListWidget, QTableWidget, QTableView, QTreeWidget, QPlainTextEdit, QLineEdit {{
     background: white; border: 1px solid {PAPER_DARK}; border-radius: 3px; selection-background-color: {MOSS}; selection-color: white; }}
 QHeaderView::section {{ background: {PAPER_DARK}; border: none; padding: 3px 6px; color: {INK}; }}
 QTabWidget::pane {{ border: 1px solid {PAPER_DARK}; background: {PAPER}; }}
-QTabBar::tab {{ background: {PAPER_DARK}; color: {INK_SOFT}; padding: 5px 12px; border-top-left-radius: 4px; border-top-right-radius: 4px; margin-right: 2px; }}
+QTabBar::tab {{ background: {PAPER_DARK}; color: {INK_SOFT}; padding: 5px 7px; border-top-left-radius: 4px; border-top-right-radius: 4px; margin-right: 2px; }}
 QTabBar::tab:selected {{ background: {PAPER}; color: {INK}; font-weight: 600; }}
 QProgressBar {{ border: 1px solid {PAPER_DARK}; border-radius: 3px; background: white; text-align: center; height: 14px; }}
 QProgressBar::chunk {{ background: {MOSS}; }}

@@ -108,7 +108,9 @@ def test_open_fit_rarity_regions_export(qtbot, window, tmp_path, messages):
     a = tube.analysis
     assert a is not None and np.isfinite(a.log_density[a.kept]).all()
     # the panel names the first map the engine chose
-    assert window.BASE_NAMES[a.model.base_] in window.fit_panel.status.text()
+    from desktop.fitting import BASE_NAMES
+
+    assert BASE_NAMES[a.model.base_] in window.fit_panel.status.text()
 
     # the rarity control: count equals core's, and is the definition of "lowest share"
     window.rarity_bar.set_share(0.02)
@@ -118,12 +120,12 @@ def test_open_fit_rarity_regions_export(qtbot, window, tmp_path, messages):
     rare = tube.rare_mask
     # reference: numpy ordering -- every rare event is no denser than every other kept event
     assert a.log_density[rare].max() <= a.log_density[a.kept & ~rare].min()
-    assert f"{expected:,} rare events" in window.rarity_bar.count.text()
+    assert f"{expected:,} rare" in window.rarity_bar.count.text()
     # "Keep as region": a rarity region holding exactly the highlighted events
     # (reference: core.rare.rare_by_share's mask, computed independently of the region code)
     window.rarity_bar.keep_button.click()
     kept_name = window.selections.selected_names()[0]
-    assert kept_name.startswith("rarest 2 %")
+    assert kept_name.startswith("rarest 2 pct")
     assert window.region_count(kept_name) == expected
     np.testing.assert_array_equal(tube.masks[kept_name], rare_by_share(a.log_density, 0.02).mask)
     window.rarity_bar.slider.setValue(window.rarity_bar.slider.value() + 100)  # drag the slider
@@ -163,7 +165,7 @@ def test_open_fit_rarity_regions_export(qtbot, window, tmp_path, messages):
     inside = Delaunay(tri).find_simplex(np.column_stack([v1, v2])) >= 0
     assert abs(window.region_count("tri") - int(inside.sum())) <= 2  # boundary points may differ
     # combine: "not tri" is the complement (reference: numpy logical not)
-    window.combine_regions("not", ["tri"])
+    window.regions.combine("not", ["tri"])
     assert window.region_count("not tri") == tube.n_events - window.region_count("tri")
 
     # export the rectangle's events to FCS and read them back with fcsparser (reference)
@@ -239,9 +241,9 @@ def test_broken_file_shows_message_and_app_carries_on(qtbot, window, tmp_path, m
 
 def test_slot_errors_become_message_boxes(qtbot, window, messages):
     window.start_fit()  # no tube open: a user error, not a crash
-    assert messages and "open a tube first" in messages[-1][1]
-    window.rarity_bar.keep_button.click()  # nothing to keep yet: a message, not a crash
-    assert len(messages) == 2 and "open a tube first" in messages[-1][1]
+    assert messages and "open a tube first" in messages[-1][1].lower()
+    # nothing to keep before a fit: the button is disabled instead of answering with an error
+    assert not window.rarity_bar.keep_button.isEnabled()
 
 
 def test_scale_and_compensation_edits_recompute_values(qtbot, window, tmp_path):
@@ -289,14 +291,14 @@ def test_recipe_round_trip_and_recent_files(qtbot, window, tmp_path, monkeypatch
     window.add_region({"name": "box", "kind": "rectangle", "channels": ["FSC-A", "SSC-A"],
                        "x": [0.1, 0.3], "y": [0.05, 0.2],
                        "transforms": {"FSC-A": spec["FSC-A"], "SSC-A": spec["SSC-A"]}})
-    saved = window.save_recipe_dialog(str(tmp_path / "r.json"))
+    saved = window.edits.save_recipe(str(tmp_path / "r.json"))
     with open(saved) as handle:  # reference: the json module reads what we wrote
         stored = json.load(handle)
     assert [r["name"] for r in stored["regions"]] == ["box"]
     assert not tube.dirty
-    window.delete_regions(["box"])
+    window.regions.delete(["box"])
     assert len(tube.regions) == 0
-    window.load_recipe_dialog(saved)
+    window.edits.load_recipe(saved)
     assert tube.regions.names == ["box"]
     # recent files persist in the settings file between launches
     assert os.path.abspath(path) in Settings().recent_paths()
@@ -325,7 +327,7 @@ def test_batch_dialog_runs_and_shows_summary(qtbot, window, tmp_path):
     make_fcs(folder / "a.fcs", n=600, seed=1)
     make_fcs(folder / "b.fcs", n=600, seed=2)
     window.open_paths([str(folder / "a.fcs")])
-    recipe = window._current_recipe(window.current)
+    recipe = window.fitting.recipe_for_fit(window.current)
     dlg = BatchDialog(window, recipe)
     qtbot.addWidget(dlg)
     dlg.input.setText(str(folder))
@@ -335,12 +337,16 @@ def test_batch_dialog_runs_and_shows_summary(qtbot, window, tmp_path):
     assert blocker.args == [True]
     assert dlg.table.rowCount() == 2
     header = [dlg.table.horizontalHeaderItem(j).text() for j in range(dlg.table.columnCount())]
-    status = [dlg.table.item(i, header.index("status")).text() for i in range(2)]
+    status = [dlg.table.item(i, header.index("Status")).text() for i in range(2)]
     assert status == ["ok", "ok"]
-    # reference: the csv module reads the summary the table shows
+    assert header[:2] == ["File", "Status"]  # the status is seen without scrolling
+    # reference: the csv module reads the summary the table shows (readable headers)
+    from desktop.dialogs import summary_header
+
     with open(dlg.result.summary_path, newline="") as handle:
         rows = [r for r in csv.reader(handle) if r and not r[0].startswith("#")]
-    assert len(rows) == 3 and rows[0] == header
+    assert len(rows) == 3 and sorted(map(summary_header, rows[0])) == sorted(header)
+    assert all("_" not in h for h in header)
     dlg.close()
 
 
