@@ -384,6 +384,19 @@ class Session:
         tube.discard_fit(reason)
         return reason
 
+    def apply_scale_to_all(self, channel: str) -> str:
+        """Give every fluorescence channel (not scatter or time, by
+        :func:`core.transforms.is_scatter_or_time`) the scale of ``channel``."""
+        from .transforms import is_scatter_or_time
+
+        tube = self.require()
+        spec = tube.spec(channel)
+        specs = dict(tube.recipe.transforms or {})
+        for c in tube.names:
+            if not is_scatter_or_time(c):
+                specs[c] = None if spec is None else dict(spec)
+        return self.set_scales(specs, tube.recipe.channels)
+
     def set_compensation(self, source: str, edited=None, csv_path: str | None = None,
                          matrix_folder: str | None = None) -> str:
         """Compensate the current tube from ``source`` ("none", "file" or "csv").
@@ -506,8 +519,8 @@ class Session:
         return r
 
     def move_region(self, name: str, vertices, final: bool = True) -> bool:
-        """New outline for a rectangle or polygon region (same channels, scales,
-        parent).  While dragging (``final`` False) only it and what it depends
+        """New outline for a rectangle, polygon or interval region (same
+        channels, scales, parent; an interval takes the x extent of ``vertices``).  While dragging (``final`` False) only it and what it depends
         on are recounted; returns True when only those were."""
         tube = self.require()
         r = tube.regions[name]
@@ -518,6 +531,8 @@ class Session:
             d["y"] = [float(v[:, 1].min()), float(v[:, 1].max())]
         elif r.kind == "polygon":
             d["vertices"] = v.tolist()
+        elif r.kind == "interval":
+            d["low"], d["high"] = float(v[:, 0].min()), float(v[:, 0].max())
         else:
             raise RegionError(f"region {name!r} has no outline to move")
         tube.regions.replace(region_from_dict(d))

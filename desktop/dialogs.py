@@ -6,13 +6,14 @@ import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
 
 import csv
 import os
+import re
 
 import numpy as np
-from PySide6.QtCore import Qt, QUrl, Signal
+from PySide6.QtCore import QStandardPaths, Qt, QUrl, Signal
 from PySide6.QtGui import QDesktopServices
 from PySide6.QtWidgets import (QComboBox, QDialog, QDialogButtonBox, QFileDialog, QFormLayout, QHBoxLayout,
                                QHeaderView, QLabel, QLineEdit, QProgressBar, QPushButton, QSpinBox,
-                               QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget, QCheckBox)
+                               QMessageBox, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget, QCheckBox)
 
 from core import RESEARCH_USE_NOTE
 from core.errors import ExportError
@@ -34,8 +35,6 @@ def summary_header(column: str) -> str:
 def file_stem(text: str) -> str:
     """A file-name part from free text: letters, digits, '-' and '_' only
     ('%' becomes 'pct', other runs of characters one '-')."""
-    import re
-
     text = text.replace("%", "pct")
     return re.sub(r"[^A-Za-z0-9_]+", "-", text).strip("-") or "events"
 
@@ -43,8 +42,6 @@ def file_stem(text: str) -> str:
 def default_folder(settings) -> str:
     """The last export folder, else the documents folder, else home (never
     beside the input file)."""
-    from PySide6.QtCore import QStandardPaths
-
     last = settings.value("folders/export", "") if settings is not None else ""
     if last and os.path.isdir(last):
         return last
@@ -161,8 +158,6 @@ class ExportDialog(QDialog):
             extra[f"region {name}"] = np.asarray(m, dtype=float)
         overwrite = getattr(self, "_overwrite", False)
         if not overwrite and os.path.exists(path):
-            from PySide6.QtWidgets import QMessageBox
-
             answer = QMessageBox.question(self, "Replace file?", f"{os.path.basename(path)} exists already in "
                                           f"{os.path.dirname(path)}. Replace it?",
                                           QMessageBox.Yes | QMessageBox.No, QMessageBox.No)

@@ -21,6 +21,7 @@ class EditsController(QObject):
         self.win = window
         window.channels_panel.changed.connect(self.scales_changed)
         window.channels_panel.pairsRequested.connect(self.choose_pairs)
+        window.channels_panel.applyAllRequested.connect(self.apply_scale_to_all)
         window.comp_panel.applyRequested.connect(self.apply_compensation)
         window.comp_panel.loadCsvRequested.connect(self.load_spillover_csv)
 
@@ -48,6 +49,14 @@ class EditsController(QObject):
         if reason:
             self._discarded(tube, reason)
             self.win.draw_map(tube)
+
+    @guarded("apply scale to all")
+    def apply_scale_to_all(self, channel: str) -> None:
+        tube = self.session.require()
+        reason = self.session.apply_scale_to_all(channel)
+        if reason:
+            self._discarded(tube, reason)
+        self.win.show_tube(tube)
 
     # -- compensation --------------------------------------------------------------
     @guarded("compensation")

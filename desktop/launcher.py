@@ -4,7 +4,7 @@
     boscage batch ...                  run a recipe over a folder (no window;
                                        see ``boscage batch --help``)
     boscage --screenshot OUT.png PATH  open PATH, fit with the default recipe,
-                                       render the window at 1400 x 900 to OUT.png
+                                       render the window (--size WxH, default 1400x900) to OUT.png
 
 Qt is imported lazily so ``boscage batch`` works on machines without a display.
 """
@@ -28,6 +28,8 @@ def _parse(argv: list[str]) -> argparse.Namespace:
     parser.add_argument("--screenshot", metavar="OUT.png",
                         help="open PATH, fit with the default recipe, save a 1400 x 900 "
                         "picture of the window to OUT.png and exit")
+    parser.add_argument("--size", default="1400x900", metavar="WxH",
+                        help="window size of the --screenshot picture (default 1400x900)")
     parser.add_argument("--version", action="version", version=f"boscage {__version__}")
     return parser.parse_args(argv)
 
@@ -50,7 +52,13 @@ def main(argv: list[str] | None = None) -> int:
         if not args.paths:
             print("boscage: --screenshot needs a PATH to open", file=sys.stderr)
             return 2
-        return run_screenshot(args.screenshot, args.paths)
+        try:
+            size = tuple(int(v) for v in args.size.lower().split("x"))
+            assert len(size) == 2 and min(size) > 0
+        except (ValueError, AssertionError):
+            print(f"boscage: --size must be WIDTHxHEIGHT, e.g. 1280x720; got {args.size}", file=sys.stderr)
+            return 2
+        return run_screenshot(args.screenshot, args.paths, size=size)
     return run_gui(args.paths)
 
 

@@ -338,7 +338,7 @@ class MainWindow(QMainWindow):
     def _recolour(self, tube) -> None:
         values, label, levels = self._colouring(tube)
         self.density_map.set_colouring_levels(values, label, levels)
-        self._legend(tube)
+        self.update_legend(tube)
 
     def draw_contours(self, tube) -> None:
         if tube.contours is None or tube.analysis is None:
@@ -347,9 +347,9 @@ class MainWindow(QMainWindow):
             by_pair = dict(tube.contours)
             self.density_map.set_contours([by_pair.get(p, []) for p in tube.pairs])
             self.density_map.show_contours(self.act_contours.isChecked())
-        self._legend(tube)
+        self.update_legend(tube)
 
-    def _legend(self, tube) -> None:
+    def update_legend(self, tube) -> None:
         sw = '<span style="color:{}">{}</span>'.format
         if tube.analysis is None:
             colour = "Colour: events per bin (log scale). Fit the density to rank events."
@@ -386,7 +386,7 @@ class MainWindow(QMainWindow):
         self.rarity_bar.spin.setEnabled(not tube.highlight_enriched)
         self.density_map.set_highlight(mask)
         self.update_title(tube)
-        self._legend(tube)
+        self.update_legend(tube)
 
     def update_title(self, tube) -> None:
         state = "fitted" if tube.analysis is not None else "not fitted — colour shows event counts"
@@ -415,7 +415,7 @@ class MainWindow(QMainWindow):
             self.fitting.start_contours()
         self.density_map.show_contours(on)
         if tube is not None:
-            self._legend(tube)
+            self.update_legend(tube)
 
     def _show_contrast_text(self, tube) -> None:
         a = tube.analysis

@@ -461,9 +461,49 @@ class DensityMap(QWidget):
         """Put a region's name at its top-left corner, kept inside the plot's view."""
         v = np.asarray(roi_vertices(roi), dtype=np.float64)
         (vx0, vx1), (vy0, vy1) = cell.plot.vb.viewRange()
-        x = min(max(float(v[:, 0].min()), vx0), vx1 - 0.25 * (vx1 - vx0))
-        y = min(max(float(v[:, 1].max()), vy0 + 0.08 * (vy1 - vy0)), vy1)
+        px, py = cell.plot.vb.viewPixelSize()
+        rect = roi.label.textItem.boundingRect()
+        w, h = (rect.width() + 6) * px, (rect.height() + 2) * py
+        if getattr(roi, "kind", "") == "interval":
+            top = vy1
+        else:
+            top = float(v[:, 1].max())
+        x = min(max(float(v[:, 0].min()), vx0), max(vx0, vx1 - w))
+        y = min(max(top, vy0 + h), vy1)
         roi.label.setPos(x, y)
+
+    def add_band(self, region_id: str, x_name: str, low, high, name: str = "") -> bool:
+        """Show an interval region as a band over every plot whose horizontal
+        channel is ``x_name`` (None bounds reach the view's edge)."""
+        shown = False
+        for cell in self.cells:
+            if self.names[cell.ix] != x_name:
+                continue
+            (vx0, vx1), _ = cell.plot.vb.viewRange()
+            lo = vx0 if low is None else float(low)
+            hi = vx1 if high is None else float(high)
+            band = pg.LinearRegionItem(values=(lo, hi), orientation="vertical",
+                                       brush=pg.mkBrush(245, 215, 110, 40),
+                                       pen=pg.mkPen(style.REGION, width=1.6))
+            band.kind = "interval"
+            band.name = name
+            band.setZValue(9)
+            label = pg.TextItem(name, color=style.REGION, anchor=(0, 0), fill=pg.mkBrush(29, 35, 38, 170))
+            label.setZValue(11)
+            cell.plot.addItem(label)
+            band.label = label
+            cell.plot.addItem(band)
+            cell.rois[region_id] = band
+            self._place_label(cell, band)
+
+            def changed(r=band, rid=region_id, c=cell):
+                self._place_label(c, r)
+                self.roiChanged.emit(rid, roi_vertices(r))
+
+            band.sigRegionChanged.connect(changed)
+            band.sigRegionChangeFinished.connect(lambda r=band, rid=region_id: self.roiFinished.emit(rid, roi_vertices(r)))
+            shown = True
+        return shown
 
     def rename_roi(self, region_id: str, name: str) -> None:
         for cell in self.cells:
@@ -591,6 +631,9 @@ class _DrawingViewBox(pg.ViewBox):
 def roi_vertices(roi) -> list[tuple[float, float]]:
     """Corners of a ROI in data coordinates: two opposite corners for a rectangle
     ((x0, y0), (x1, y1)), the vertex list for a polygon."""
+    if isinstance(roi, pg.LinearRegionItem):
+        lo, hi = roi.getRegion()
+        return [(float(lo), 0.0), (float(hi), 0.0)]
     if getattr(roi, "kind", "") == "rectangle" or isinstance(roi, pg.RectROI):
         pos, size = roi.pos(), roi.size()
         x0, y0 = float(pos.x()), float(pos.y())

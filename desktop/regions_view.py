@@ -70,6 +70,9 @@ class RegionsController(QObject):
             verts = [(r.x[0], r.y[0]), (r.x[1], r.y[1])]
         elif r.kind == "polygon":
             verts = list(r.vertices)
+        elif r.kind == "interval":
+            self.win.density_map.add_band(r.name, r.channels[0], r.low, r.high, r.name)
+            return
         else:
             return
         self.win.density_map.add_roi(r.name, r.kind, r.channels[0], r.channels[1], verts, r.name)
@@ -113,6 +116,7 @@ class RegionsController(QObject):
             return
         if full:
             self.win.selections.show_regions(list(tube.regions), tube.stats)
+            self.win.update_legend(tube)
         else:
             self.win.selections.update_counts(tube.stats)
 

@@ -83,6 +83,7 @@ class ChannelsPanel(QWidget):
 
     changed = Signal()
     pairsRequested = Signal()
+    applyAllRequested = Signal(str)  # channel whose scale goes to every fluorescence channel
 
     def __init__(self, parent: QWidget | None = None) -> None:
         super().__init__(parent)
@@ -127,6 +128,10 @@ class ChannelsPanel(QWidget):
         self.pairs_button = QPushButton("Plot pairs...")
         self.pairs_button.setToolTip("Choose which channel pairs the density map shows")
         row.addWidget(self.pairs_button)
+        self.apply_all_button = QPushButton("Apply to all fluorescence")
+        self.apply_all_button.setToolTip("Give every fluorescence channel (not scatter, not time) the scale "
+                                         "of the selected channel")
+        row.addWidget(self.apply_all_button)
         row.addStretch(1)
         ed.addLayout(row)
         lay.addWidget(editor)
@@ -152,6 +157,8 @@ class ChannelsPanel(QWidget):
         self.table.itemSelectionChanged.connect(self._row_chosen)
         self.kind.currentIndexChanged.connect(self._kind_changed)
         self.pairs_button.clicked.connect(self.pairsRequested)
+        self.apply_all_button.clicked.connect(
+            lambda: self.current_channel() and self.applyAllRequested.emit(self.current_channel()))
 
     # -- content ------------------------------------------------------------
     def show_channels(self, names, labels, specs: dict, fit_channels, values) -> None:

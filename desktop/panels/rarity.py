@@ -10,6 +10,8 @@ import numpy as np
 from PySide6.QtCore import Qt, Signal
 from PySide6.QtWidgets import QComboBox, QDoubleSpinBox, QHBoxLayout, QLabel, QPushButton, QSizePolicy, QSlider, QWidget
 
+from desktop.plots import COLOUR_MODES
+
 #: The rarity slider runs over shares from 0.01 % to 20 % on a log scale.
 SHARE_MIN, SHARE_MAX, SLIDER_STEPS = 1e-4, 0.2, 1000
 
@@ -57,10 +59,8 @@ class RarityBar(QWidget):
         self.keep_button.setEnabled(False)  # enabled once a fit has ranked the events
         self.keep_button.setToolTip("New region holding the events highlighted as rare now, so they can "
                                     "be counted, combined with other regions and exported")
-        from desktop.plots import COLOUR_MODES
-
         self.colour = QComboBox()
-        self.colour.addItem("Colour: density rank", "rank")
+        self.colour.addItem("Colour: rank", "rank")
         self.colour.addItem("Colour: log density", "log")
         self.colour.setToolTip("Density rank: for each bin, the share of all events that are less dense "
                                "(0 % = rarest, 100 % = most common). Log density: the fitted density itself "

@@ -32,7 +32,7 @@ class SelectionsPanel(QWidget):
     nestRequested = Signal(str)           # name: choose the region to nest it in
     showOnlyRequested = Signal(str)       # name, or "" to show every event
 
-    COLUMNS = ("Name", "Events", "% of parent", "% of all", "What")
+    COLUMNS = ("Name", "Events", "% of parent", "% of all")
     NUMBERS = (1, 2, 3)
 
     def __init__(self, parent: QWidget | None = None) -> None:
@@ -55,10 +55,14 @@ class SelectionsPanel(QWidget):
         header = self.table.horizontalHeader()
         header.setSectionResizeMode(QHeaderView.ResizeToContents)
         header.setSectionResizeMode(0, QHeaderView.Stretch)
-        header.setSectionResizeMode(4, QHeaderView.Interactive)
         header.setStretchLastSection(False)
         self.table.setWordWrap(False)
         lay.addWidget(self.table, 1)
+        self.detail = QLabel("")
+        self.detail.setObjectName("Note")
+        self.detail.setWordWrap(True)
+        lay.addWidget(self.detail)
+        self._details: dict[str, str] = {}
         row = QHBoxLayout()
         self.and_button = QPushButton("All of")
         self.and_button.setToolTip("New region: events inside every selected region (and)")
@@ -93,7 +97,12 @@ class SelectionsPanel(QWidget):
         self.nest_button.clicked.connect(self._nest)
         self.only_button.toggled.connect(self._only)
         self.table.itemChanged.connect(self._item_changed)
-        self.table.itemSelectionChanged.connect(lambda: self.selectionChanged.emit(self.selected_names()))
+        self.table.itemSelectionChanged.connect(self._selected)
+
+    def _selected(self) -> None:
+        names = self.selected_names()
+        self.detail.setText("; ".join(f"{n}: {self._details.get(n, '')}" for n in names[:3]))
+        self.selectionChanged.emit(names)
 
     def selected_names(self) -> list[str]:
         rows = sorted({i.row() for i in self.table.selectedIndexes()})
@@ -136,9 +145,10 @@ class SelectionsPanel(QWidget):
                 s = by_name.get(r.name)
                 chans = ", ".join(r.channels_used()) or ", ".join(getattr(r, "operands", ()))
                 what = f"{KIND_WORDS.get(r.kind, r.kind)} · {chans}" + (f" · inside {r.parent}" if r.parent else "")
+                self._details[r.name] = what
                 cells = [r.name, "" if s is None else f"{s.count:,}",
                          "" if s is None else _pct(s.percent_of_parent),
-                         "" if s is None else _pct(s.percent_of_all), what]
+                         "" if s is None else _pct(s.percent_of_all)]
                 for col, text in enumerate(cells):
                     item = self.table.item(row, col)
                     if item is None:
@@ -157,6 +167,7 @@ class SelectionsPanel(QWidget):
                     self.table.selectRow(row)
         finally:
             self._filling = False
+        self.detail.setText("; ".join(f"{n}: {self._details.get(n, '')}" for n in self.selected_names()[:3]))
 
     def update_counts(self, stats) -> None:
         """Refresh only the numbers (fast path while a region is dragged)."""

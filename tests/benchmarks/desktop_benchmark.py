@@ -67,7 +67,7 @@ def main(argv: list[str]) -> int:
     app = make_app()
     from core.fcs import read_fcs
     from desktop.main_window import MainWindow
-    from desktop.tube import Tube
+    from core.session import Tube
 
     rows = []
     for n in sizes:
@@ -122,8 +122,8 @@ def main(argv: list[str]) -> int:
 
         def region_step():
             d = next(dx)
-            win._roi_moving("box", [(x0 + d, y0), (x1 + d, y1)])
-            win._apply_pending_roi()  # what the drag timer does
+            win.regions.moving("box", [(x0 + d, y0), (x1 + d, y1)])
+            win.regions.apply_pending()  # what the drag timer does
             app.processEvents()
 
         t_region = timed(region_step, repeat=5)
@@ -131,7 +131,7 @@ def main(argv: list[str]) -> int:
 
         def region_end():
             d = next(dx2)
-            win._roi_moved("box", [(x0 + d, y0), (x1 + d, y1)])
+            win.regions.moved("box", [(x0 + d, y0), (x1 + d, y1)])
             app.processEvents()
 
         t_end = timed(region_end, repeat=5)
