@@ -48,7 +48,7 @@ class EditsController(QObject):
         reason = self.session.set_scales(panel.specs(), panel.fit_channels())
         if reason:
             self._discarded(tube, reason)
-            self.win.draw_map(tube)
+            self.win.map_view.draw_map(tube)
 
     @guarded("apply scale to all")
     def apply_scale_to_all(self, channel: str) -> None:
@@ -100,7 +100,7 @@ class EditsController(QObject):
         """Show these (x, y) pairs (channel names or labels); contours follow."""
         tube = self.session.current
         self.session.set_pairs(pairs)
-        self.win.draw_map(tube)
+        self.win.map_view.draw_map(tube)
         if tube.analysis is not None and self.win.act_contours.isChecked():
             self.win.fitting.start_contours()
 

@@ -118,14 +118,14 @@ class FitController(QObject):
         if tube is None or tube.analysis is None or self.running():
             return False
         pairs = list(tube.pairs)
-        extents = {p: self.win.pair_extent(p) for p in pairs}
+        extents = {p: self.win.map_view.pair_extent(p) for p in pairs}
         analysis = tube.analysis
 
         def done(contours):
             self._ended()
             tube.contours = contours
             if tube is self.win.session.current:
-                self.win.draw_contours(tube)
+                self.win.map_view.draw_contours(tube)
             self.win.fit_panel.ended(fit_text(analysis))
             self.contoursEnded.emit(True)
 

@@ -24,10 +24,10 @@ from core import RESEARCH_USE_NOTE, SOFTWARE_NAME, __version__
 from core.errors import BoscageError
 from core.session import Session
 
-from desktop import style
 from desktop.actions import build_actions
 from desktop.edits import EditsController
 from desktop.fitting import FitController, fit_text
+from desktop.map_view import MapPresenter
 from desktop.messages import guarded, icon, show_error
 from desktop.panels.channels import ChannelsPanel
 from desktop.panels.compensation import CompensationPanel
@@ -35,7 +35,7 @@ from desktop.panels.fit import FitPanel
 from desktop.panels.rarity import RarityBar
 from desktop.panels.selections import SelectionsPanel
 from desktop.panels.tubes import TubeCard, TubesList
-from desktop.plots import COLOUR_MODES, DensityMap
+from desktop.plots import DensityMap
 from desktop.regions_view import RegionsController
 from desktop.settings import Settings
 
@@ -86,7 +86,6 @@ class MainWindow(QMainWindow):
         self.settings = Settings()
         self.session = Session()
         self.discard_changes = False
-        self.colour_mode = "rank"
         self.setWindowTitle(f"{SOFTWARE_NAME} — research use only")
         self.setWindowIcon(icon("boscage"))
         self.setAcceptDrops(True)
@@ -122,6 +121,7 @@ class MainWindow(QMainWindow):
         self.note_label.setObjectName("Note")
         self.statusBar().addPermanentWidget(self.note_label)
 
+        self.map_view = MapPresenter(self)
         self.fitting = FitController(self)
         self.regions = RegionsController(self)
         self.edits = EditsController(self)
@@ -131,7 +131,7 @@ class MainWindow(QMainWindow):
         self.fitting.contoursEnded.connect(self.contoursEnded)
         self.tubes_list.tubeChosen.connect(self.show_tube_by_path)
         self.rarity_bar.shareChanged.connect(self.set_share)
-        self.rarity_bar.colourChanged.connect(self.set_colour_mode)
+        self.rarity_bar.colourChanged.connect(self.map_view.set_colour_mode)
         self.fit_panel.fitRequested.connect(self.start_fit)
         self.fit_panel.cancelRequested.connect(self.cancel_job)
         self.contrast_panel.chooseRequested.connect(self.choose_control)
@@ -287,10 +287,10 @@ class MainWindow(QMainWindow):
         self.channels_panel.ranges = {n: float(r) for n, r in zip(ef.channel_names, ef.channel_ranges)}
         self.channels_panel.show_channels(ef.channel_names, ef.channel_labels, tube.recipe.transforms,
                                           tube.recipe.channels, tube.compensated)
-        self._show_compensation(tube)
+        self.comp_panel.show_for_tube(tube)
         self.fit_panel.set_engine_settings(tube.recipe.engine or {})
         self.rarity_bar.set_share(tube.share, emit=False)
-        self.draw_map(tube)
+        self.map_view.draw_map(tube)
         a = tube.analysis
         self.fit_panel.show_curve(None if a is None else getattr(a.model, "learning_curve_", None))
         self.fit_panel.ended(fit_text(a) if a is not None else (tube.fit_note or "Not fitted: the map shows "
@@ -298,112 +298,12 @@ class MainWindow(QMainWindow):
         self._show_contrast_text(tube)
         self.setWindowTitle(f"{os.path.basename(tube.path)} — {SOFTWARE_NAME} (research use only)")
 
-    def _show_compensation(self, tube) -> None:
-        from core.compensation import read_spillover_csv, spillover_from_keywords
-
-        comp = tube.recipe.compensation or {"source": "none"}
-        source = comp.get("source", "none")
-        try:
-            S = (read_spillover_csv(tube.recipe.csv_path_resolved()) if source == "csv" and comp.get("csv_path")
-                 else spillover_from_keywords(tube.event_file.keywords, source=os.path.basename(tube.path))
-                 if source in ("file", "none") else None)
-        except BoscageError:
-            S = None
-        self.comp_panel.show_matrix(source, S, comp.get("csv_path"))
-        if source == "none" and S is not None:
-            self.comp_panel.info.setText("The file carries this matrix but it is not applied; "
-                                         "choose the file's keyword and Apply to use it.")
-
-    def draw_map(self, tube) -> None:
-        values, label, levels = self._colouring(tube)
-        self.density_map.set_events(tube.values, tube.names, tube.pairs, tube.labels, colour_values=values,
-                                    colour_label=label, specs=[tube.spec(n) for n in tube.names], levels=levels)
-        self.regions.show_all(tube)
-        self.update_highlight()
-        self.draw_contours(tube)
-
-    def _colouring(self, tube):
-        a = tube.analysis
-        if a is None:
-            return None, "", None
-        if self.colour_mode == "log":
-            return a.log_density, COLOUR_MODES["log"], None
-        return a.rarity, COLOUR_MODES["rank"], (0.0, 100.0)
-
-    def set_colour_mode(self, mode: str) -> None:
-        self.colour_mode = mode
-        if self.current is not None:
-            self._recolour(self.current)
-
-    def _recolour(self, tube) -> None:
-        values, label, levels = self._colouring(tube)
-        self.density_map.set_colouring_levels(values, label, levels)
-        self.update_legend(tube)
-
-    def draw_contours(self, tube) -> None:
-        if tube.contours is None or tube.analysis is None:
-            self.density_map.set_contours(None)
-        else:
-            by_pair = dict(tube.contours)
-            self.density_map.set_contours([by_pair.get(p, []) for p in tube.pairs])
-            self.density_map.show_contours(self.act_contours.isChecked())
-        self.update_legend(tube)
-
-    def update_legend(self, tube) -> None:
-        sw = '<span style="color:{}">{}</span>'.format
-        if tube.analysis is None:
-            colour = "Colour: events per bin (log scale). Fit the density to rank events."
-        elif self.colour_mode == "log":
-            colour = "Colour: the fitted density over all density channels (log, nats)."
-        else:
-            colour = ("Colour: how common each bin's events are under the density fitted to all density "
-                      "channels (0 % rarest, 100 % most common).")
-        parts = [colour]
-        if tube.contours and self.act_contours.isChecked():
-            parts.append("Lines " + " ".join(sw(c, "━") for c in style.CONTOUR) +
-                         ": 50 / 90 / 99 % of events, from a 2-D fit of each pair alone.")
-        if tube.analysis is not None:
-            parts.append(sw(style.RARE, "■") + (" enriched events" if tube.highlight_enriched else " rare events"))
-        if len(tube.regions):
-            parts.append(sw(style.REGION, "□") + " regions")
-        self.density_map.set_legend(" &nbsp; ".join(parts))
-
-    def update_highlight(self) -> None:
-        tube = self.current
-        if tube is None:
-            return
-        a = tube.analysis
-        mask = tube.highlight()
-        if a is None:
-            self.rarity_bar.show_count("Fit the density to rank events", False)
-        elif tube.highlight_enriched:
-            self.rarity_bar.show_count(f"{int(mask.sum()):,} enriched events highlighted (the Rarity "
-                                       "share does not apply; see Contrast)", False)
-        else:
-            n = int(mask.sum()) if mask is not None else 0
-            self.rarity_bar.show_count(f"{n:,} rare ({100.0 * n / max(a.n_kept, 1):.2f} % of {a.n_kept:,})", True)
-        self.rarity_bar.slider.setEnabled(not tube.highlight_enriched)
-        self.rarity_bar.spin.setEnabled(not tube.highlight_enriched)
-        self.density_map.set_highlight(mask)
-        self.update_title(tube)
-        self.update_legend(tube)
-
-    def update_title(self, tube) -> None:
-        state = "fitted" if tube.analysis is not None else "not fitted — colour shows event counts"
-        only = f" · showing only {self.regions.only}" if self.regions.only else ""
-        self.density_map.set_title(f"<b>{os.path.basename(tube.path)}</b> · {tube.n_events:,} events · {state}{only}")
-
-    def pair_extent(self, pair):
-        t = self.current
-        cell = self.density_map.cell_for(t.names[pair[0]], t.names[pair[1]])
-        return None if cell is None else cell.extent
-
     # -- rarity, contours, contrast --------------------------------------------------
     def set_share(self, share: float) -> None:
         if self.current is None:
             return
         self.session.set_share(share)
-        self.update_highlight()
+        self.map_view.update_highlight()
         self.regions.refresh()
 
     @guarded("contours")
@@ -415,7 +315,7 @@ class MainWindow(QMainWindow):
             self.fitting.start_contours()
         self.density_map.show_contours(on)
         if tube is not None:
-            self.update_legend(tube)
+            self.map_view.update_legend(tube)
 
     def _show_contrast_text(self, tube) -> None:
         a = tube.analysis
@@ -448,7 +348,7 @@ class MainWindow(QMainWindow):
     def set_highlight_enriched(self, on: bool) -> None:
         if self.current is not None:
             self.current.highlight_enriched = bool(on) and self.current.analysis is not None
-            self.update_highlight()
+            self.map_view.update_highlight()
 
     # -- closing ---------------------------------------------------------------------
     @guarded("about")

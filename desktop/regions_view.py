@@ -116,7 +116,7 @@ class RegionsController(QObject):
             return
         if full:
             self.win.selections.show_regions(list(tube.regions), tube.stats)
-            self.win.update_legend(tube)
+            self.win.map_view.update_legend(tube)
         else:
             self.win.selections.update_counts(tube.stats)
 
@@ -177,8 +177,9 @@ class RegionsController(QObject):
             return
         if self.only and self.only not in tube.masks:
             self.only = ""
-        self.win.density_map.set_filter(tube.masks[self.only] if self.only else None)
-        self.win.update_title(tube)
+        if self.only or self.win.density_map.only is not None:  # no redraw when nothing changes
+            self.win.density_map.set_filter(tube.masks[self.only] if self.only else None)
+        self.win.map_view.update_title(tube)
 
     @guarded("keep rare events")
     def keep_rare(self) -> None:

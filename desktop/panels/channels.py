@@ -136,7 +136,9 @@ class ChannelsPanel(QWidget):
         ed.addLayout(row)
         lay.addWidget(editor)
 
-        self.hist = pg.PlotWidget(background=style.PAPER)
+        from desktop.axes import TransformAxis  # histogram axis in original units
+
+        self.hist = pg.PlotWidget(background=style.PAPER, axisItems={"bottom": TransformAxis("bottom")})
         self.hist.setMinimumHeight(130)
         self.hist.setMenuEnabled(False)
         self.hist.hideButtons()
@@ -144,6 +146,7 @@ class ChannelsPanel(QWidget):
         for ax in ("bottom", "left"):
             self.hist.getAxis(ax).setTextPen(style.INK_SOFT)
             self.hist.getAxis(ax).setPen(style.INK_SOFT)
+            self.hist.getAxis(ax).enableAutoSIPrefix(False)
         self.hist_curve = self.hist.plot([0, 1], [0], stepMode="center", fillLevel=0,
                                          brush=pg.mkBrush(style.MOSS_LIGHT), pen=pg.mkPen(style.MOSS))
         self.hist.setToolTip("Histogram of the channel on the chosen scale (updates as you edit)")
@@ -293,6 +296,7 @@ class ChannelsPanel(QWidget):
             lo, hi = lo - 0.5, hi + 0.5
         counts, edges = np.histogram(shown, bins=120, range=(lo, hi))
         self.hist_curve.setData(edges, counts)
+        self.hist.getAxis("bottom").set_spec(spec)
         self.hist.setLabel("bottom", f"{name} ({describe(spec)})")
 
 

@@ -18,6 +18,8 @@ from PySide6.QtGui import QColor
 from PySide6.QtWidgets import (QAbstractItemView, QComboBox, QHBoxLayout, QHeaderView, QLabel, QPushButton,
                                QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget)
 
+from core.compensation import read_spillover_csv, spillover_from_keywords
+from core.errors import BoscageError
 
 SOURCES = [("none", "No compensation"), ("file", "The file's spillover keyword"), ("csv", "A CSV file")]
 
@@ -140,3 +142,18 @@ class CompensationPanel(QWidget):
     def _apply(self) -> None:
         source = self.source.currentData()
         self.applyRequested.emit(source, self.matrix() if (self._edited and self._detectors) else None)
+
+    def show_for_tube(self, tube) -> None:
+        """Show the matrix the tube's recipe uses (or the file's, not applied)."""
+        comp = tube.recipe.compensation or {"source": "none"}
+        source = comp.get("source", "none")
+        try:
+            S = (read_spillover_csv(tube.recipe.csv_path_resolved()) if source == "csv" and comp.get("csv_path")
+                 else spillover_from_keywords(tube.event_file.keywords, source=os.path.basename(tube.path))
+                 if source in ("file", "none") else None)
+        except BoscageError:
+            S = None
+        self.show_matrix(source, S, comp.get("csv_path"))
+        if source == "none" and S is not None:
+            self.info.setText("The file carries this matrix but it is not applied; "
+                              "choose the file's keyword and Apply to use it.")

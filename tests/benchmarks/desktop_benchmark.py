@@ -101,7 +101,7 @@ def main(argv: list[str]) -> int:
         tube.analysis = SimpleNamespace(log_density=log_density, rarity=rarity_percentile(log_density),
                                         kept=kept, n_kept=n, n_events=n, enriched=None, contrast=None,
                                         model=None, reason=np.full(n, ""), values=tube.values)
-        win._recolour(tube)
+        win.map_view.recolour(tube)
         shares = iter(np.geomspace(0.001, 0.05, 50))
 
         def rarity_step():
