@@ -344,7 +344,10 @@ class Session:
     def switch(self, path: str) -> Tube:
         """Make the tube at ``path`` current.  Each tube keeps its own fit,
         highlight, regions and pairs; nothing of the old tube carries over."""
-        tube = self.tubes[os.path.abspath(path)] if os.path.abspath(path) in self.tubes else self.tubes[path]
+        key = path if path in self.tubes else os.path.abspath(path)
+        if key not in self.tubes:
+            raise BoscageError(f"{os.path.basename(path)} is not open; open it first (Ctrl+O)")
+        tube = self.tubes[key]
         self.current = tube
         tube.update_rare()
         tube.update_regions()

@@ -178,7 +178,7 @@ class FitController(QObject):
             return
         self.win.tubes_list.mark(tube.path, "•")
         if tube is self.win.session.current:
-            self.win.show_tube(tube)
+            self.win.show_fit(tube)
         self.fitEnded.emit(True)
         if self.win.act_contours.isChecked() and tube is self.win.session.current:
             self.start_contours()

@@ -291,12 +291,21 @@ class MainWindow(QMainWindow):
         self.fit_panel.set_engine_settings(tube.recipe.engine or {})
         self.rarity_bar.set_share(tube.share, emit=False)
         self.map_view.draw_map(tube)
+        self.show_fit(tube, redraw=False)
+        self.setWindowTitle(f"{os.path.basename(tube.path)} — {SOFTWARE_NAME} (research use only)")
+
+    def show_fit(self, tube, redraw: bool = True) -> None:
+        """Show the tube's fit (or its absence) without re-binning the events."""
+        if redraw:
+            self.map_view.recolour(tube)
+            self.map_view.update_highlight()
+            self.map_view.draw_contours(tube)
+            self.regions.refresh(full=True)
         a = tube.analysis
         self.fit_panel.show_curve(None if a is None else getattr(a.model, "learning_curve_", None))
         self.fit_panel.ended(fit_text(a) if a is not None else (tube.fit_note or "Not fitted: the map shows "
                              "event counts. Press Fit density (Ctrl+F)."))
         self._show_contrast_text(tube)
-        self.setWindowTitle(f"{os.path.basename(tube.path)} — {SOFTWARE_NAME} (research use only)")
 
     # -- rarity, contours, contrast --------------------------------------------------
     def set_share(self, share: float) -> None:
