@@ -4,311 +4,33 @@ analyses and regions, and every operation on them.
 The desktop window only presents a :class:`Session` and connects signals;
 a notebook or a test drives the same object.  No Qt here.
 
-* :class:`Tube` -- one opened file: events, the recipe being edited, values
-  (events x channels, compensated and transformed), the fitted analysis,
-  regions with their masks and statistics, rare events at the current share.
+* :class:`Tube` (:mod:`core.tube`) -- one opened file: events, the recipe
+  being edited, values (events x channels), the fitted analysis, regions with
+  their masks and statistics, rare events at the current share.
 * :class:`Session` -- the opened tubes and the current one.  Every action on
   "the current tube" goes through :meth:`Session.require`; switching tubes
   (:meth:`Session.switch`) leaves each tube's state with that tube.
-* Pure helpers: :func:`rescale_region` (a region carried onto new scales),
-  :func:`region_closure` / :func:`uses_rarity` (what a region depends on),
-  :func:`default_pairs`, :func:`region_name` (names from channels).
+* Pure helpers (in :mod:`core.tube`): :func:`rescale_region`,
+  :func:`region_closure` / :func:`uses_rarity`, :func:`default_pairs`,
+  :func:`region_name`.
 """
 
 from __future__ import annotations
 
 import copy
 import os
-from dataclasses import dataclass, field
-from typing import Any, Iterable, Mapping, Sequence
+from typing import Mapping, Sequence
 
 import numpy as np
 
 from .errors import BoscageError, ChannelError, RegionError
 from .files import expand_paths
-from .rare import share_mask, share_order
-from .regions import Region, RegionSet, region_from_dict
+from .regions import Region, region_from_dict
+from .tube import (Tube, default_pairs, region_closure, region_name, rescale_region,  # noqa: F401 (re-exported)
+                   uses_rarity)
 
-#: Default share of events highlighted as rare (0.5 %).
-DEFAULT_SHARE = 0.005
 #: At most this many channel pairs on the density map.
 MAX_PAIRS = 9
-
-
-# --------------------------------------------------------------------- regions
-
-def region_closure(regions: RegionSet, name: str) -> set[str]:
-    """``name`` and every region it depends on (parents and operands, recursively)."""
-    needed, stack = {name}, [name]
-    while stack:
-        for ref in regions[stack.pop()].references():
-            if ref not in needed and ref in regions:
-                needed.add(ref)
-                stack.append(ref)
-    return needed
-
-
-def uses_rarity(region: Region, regions: RegionSet) -> bool:
-    """True when ``region`` or anything it depends on is a rarity region."""
-    if region.kind == "rarity":
-        return True
-    return any(regions[n].kind == "rarity" for n in region_closure(regions, region.name))
-
-
-def rescale_region(region: Region, old_specs: Mapping, new_specs: Mapping) -> Region:
-    """``region`` carried onto new scales: its bounds or vertices go back to
-    instrument units through the old transform and forward through the new
-    one (channels whose spec did not change are left as they are)."""
-    from .transforms import make_transform
-
-    chans = region.channels_used()
-    if not chans or all(old_specs.get(c) == new_specs.get(c) for c in chans):
-        return region
-
-    def mapper(c):
-        old, new = old_specs.get(c), new_specs.get(c)
-        inv = (lambda v: v) if old is None else make_transform(old).inverse
-        fwd = (lambda v: v) if new is None else make_transform(new).forward
-        return lambda v: np.asarray(fwd(inv(np.asarray(v, dtype=np.float64))), dtype=np.float64)
-
-    d = region.to_dict()
-    if d["kind"] == "rectangle":
-        d["x"] = sorted(mapper(chans[0])(d["x"]).tolist())
-        d["y"] = sorted(mapper(chans[1])(d["y"]).tolist())
-    elif d["kind"] == "polygon":
-        v = np.asarray(d["vertices"], dtype=np.float64)
-        d["vertices"] = np.column_stack([mapper(chans[0])(v[:, 0]), mapper(chans[1])(v[:, 1])]).tolist()
-    elif d["kind"] == "interval":
-        f = mapper(chans[0])
-        d["low"] = None if d["low"] is None else float(f([d["low"]])[0])
-        d["high"] = None if d["high"] is None else float(f([d["high"]])[0])
-    d["transforms"] = {c: new_specs.get(c) for c in chans}
-    return region_from_dict(d)
-
-
-def region_name(kind: str, channels: Sequence[str], taken: Iterable[str]) -> str:
-    """A free region name made from its channels, e.g. "CD3 x CD4 box",
-    "CD19 band"; a number is added only when the name is taken."""
-    word = {"rectangle": "box", "polygon": "outline", "interval": "band"}.get(kind, kind)
-    stem = f"{' x '.join(channels)} {word}".strip()
-    taken = set(taken)
-    if stem not in taken:
-        return stem
-    k = 2
-    while f"{stem} {k}" in taken:
-        k += 1
-    return f"{stem} {k}"
-
-
-def default_pairs(names: list, density_channels: list, limit: int = 6) -> list:
-    """Channel pairs (x index, y index) for the density map: forward against side
-    scatter when both exist, then the density channels two by two."""
-    pairs = []
-    upper = [n.upper() for n in names]
-
-    def find(prefix):
-        for suffix in ("-A", "-H", ""):
-            for i, n in enumerate(upper):
-                if n == prefix + suffix:
-                    return i
-        for i, n in enumerate(upper):
-            if n.startswith(prefix):
-                return i
-        return None
-
-    fsc, ssc = find("FSC"), find("SSC")
-    if fsc is not None and ssc is not None:
-        pairs.append((fsc, ssc))
-    chans = [names.index(c) for c in density_channels if c in names]
-    for k in range(0, len(chans) - 1, 2):
-        pairs.append((chans[k], chans[k + 1]))
-    if len(chans) % 2 == 1 and len(chans) > 1:
-        pairs.append((chans[-2], chans[-1]) if (chans[-2], chans[-1]) not in pairs else (chans[0], chans[-1]))
-    if not pairs:
-        if len(names) >= 2:
-            pairs.append((0, 1))
-        elif chans:
-            pairs.append((chans[0], chans[0]))
-    out = []
-    for p in pairs:
-        if p not in out and p[0] != p[1]:
-            out.append(p)
-    return out[:limit]
-
-
-# --------------------------------------------------------------------- one tube
-
-@dataclass
-class Tube:
-    """One opened file and everything the analyst did to it (see module docstring)."""
-
-    path: str
-    event_file: Any
-    recipe: Any
-    names: list = field(default_factory=list)
-    values: np.ndarray | None = None  # (n_events, n_channels) compensated + transformed
-    analysis: Any = None
-    regions: RegionSet = field(default_factory=RegionSet)
-    masks: dict = field(default_factory=dict)
-    stats: list = field(default_factory=list)
-    share: float = DEFAULT_SHARE
-    rare_mask: np.ndarray | None = None
-    contours: list | None = None
-    pairs: list = field(default_factory=list)
-    control_path: str | None = None
-    highlight_enriched: bool = False  # enriched events shown instead of rare ones
-    fit_note: str = ""  # why the last fit was discarded ("" when none was)
-    dirty: bool = False  # regions changed since the recipe was last saved
-    _compensated: np.ndarray | None = None
-    _rare_order: np.ndarray | None = None
-    _rare_for: Any = None
-
-    @classmethod
-    def open(cls, path: str) -> "Tube":
-        from .fcs import read_fcs
-        from .recipe import default_recipe
-
-        ef = read_fcs(path)
-        recipe = default_recipe(ef)
-        share = float((recipe.rare or {}).get("share", DEFAULT_SHARE))
-        tube = cls(path=os.path.abspath(path), event_file=ef, recipe=recipe, share=share)
-        tube.recompute_values()
-        tube.pairs = default_pairs(tube.names, recipe.channels)
-        return tube
-
-    @property
-    def n_events(self) -> int:
-        return int(self.event_file.n_events)
-
-    @property
-    def labels(self) -> list[str]:
-        """Channel labels ($PnS) in channel order ("" when a channel has none)."""
-        labels = list(self.event_file.channel_labels or [])
-        return [(labels[i] if i < len(labels) else "") or "" for i in range(len(self.names))]
-
-    def display_name(self, channel: str) -> str:
-        """What the analyst calls a channel: its label when it has one, else its name."""
-        i = self.names.index(channel)
-        return self.labels[i] or channel
-
-    def channel_index(self, text: str) -> int:
-        """Index of a channel given by name ($PnN) or label ($PnS)."""
-        text = str(text).strip()
-        if text in self.names:
-            return self.names.index(text)
-        for i, lab in enumerate(self.labels):
-            if lab and lab == text:
-                return i
-        raise ChannelError(f"{os.path.basename(self.path)}: no channel is named or labelled {text!r}; "
-                           f"the channels are {', '.join(self.names)}")
-
-    # -- values -----------------------------------------------------------
-    def recompute_values(self) -> None:
-        """Compensate and transform every channel as the recipe says (core.analysis)."""
-        from .analysis import compensated_and_transformed
-
-        self.names, self.values = compensated_and_transformed(self.event_file, self.recipe)
-        self._compensated = None
-
-    def compensated(self, channel: str) -> np.ndarray:
-        """Compensated, untransformed values of one channel (for scale previews)."""
-        if self._compensated is None:
-            from .analysis import compensated_and_transformed
-
-            bare = copy.copy(self.recipe)
-            bare.transforms = {}
-            _, self._compensated = compensated_and_transformed(self.event_file, bare)
-        return self._compensated[:, self.names.index(channel)]
-
-    def by_channel(self) -> dict:
-        return {name: self.values[:, j] for j, name in enumerate(self.names)}
-
-    def spec(self, channel: str):
-        return (self.recipe.transforms or {}).get(channel)
-
-    # -- fit ----------------------------------------------------------------
-    @property
-    def rarity(self):
-        return None if self.analysis is None else self.analysis.rarity
-
-    @property
-    def fitted(self) -> bool:
-        return self.analysis is not None
-
-    def discard_fit(self, reason: str) -> None:
-        """Forget the fit and everything drawn from it; ``reason`` says why."""
-        self.analysis = None
-        self.rare_mask = None
-        self.contours = None
-        self.highlight_enriched = False
-        self._rare_for = self._rare_order = None
-        self.fit_note = reason
-        self.update_regions()
-
-    def highlight(self) -> np.ndarray | None:
-        """The events drawn on top of the plots: enriched or rare ones (None before a fit)."""
-        a = self.analysis
-        if a is None:
-            return None
-        if self.highlight_enriched and getattr(a, "enriched", None) is not None:
-            return a.enriched
-        return self.rare_mask
-
-    def update_rare(self) -> None:
-        """Rare events at the current share (core.rare.rare_by_share's rule; the
-        ordering is sorted once per fit so moving the share costs no sort)."""
-        a = self.analysis
-        if a is None:
-            self.rare_mask = None
-            return
-        if self._rare_for is not a:
-            self._rare_order = share_order(a.log_density)
-            self._rare_for = a
-        self.rare_mask = share_mask(self._rare_order, self.share, self.n_events)
-
-    # -- regions ------------------------------------------------------------
-    def update_regions(self) -> None:
-        """Masks and statistics of every region (core.regions)."""
-        if len(self.regions) == 0:
-            self.masks, self.stats = {}, []
-            return
-        values = self.by_channel()
-        rarity = self.rarity
-        regions = self.regions
-        if rarity is None and any(r.kind == "rarity" for r in regions):
-            # a rarity region has no meaning before a fit: count only the others
-            regions = RegionSet([r for r in regions if not uses_rarity(r, self.regions)])
-        self.masks = regions.evaluate(values, rarity, self.n_events)
-        self.stats = regions.statistics(values, rarity, self.n_events, masks=self.masks)
-
-    def update_region(self, name: str) -> bool:
-        """Re-count one region (and what it refers to) without touching the others:
-        the fast path while its outline is dragged.  Returns False when a full
-        update is needed instead."""
-        if name not in self.regions or not self.stats:
-            return False
-        needed = region_closure(self.regions, name)
-        if self.rarity is None and any(uses_rarity(self.regions[n], self.regions) for n in needed):
-            return False
-        sub = RegionSet([r for r in self.regions if r.name in needed])
-        values = self.by_channel()
-        masks = sub.evaluate(values, self.rarity, self.n_events)
-        rows = {s.name: s for s in sub.statistics(values, self.rarity, self.n_events, masks=masks)}
-        self.masks.update(masks)
-        self.stats = [rows.get(s.name, s) for s in self.stats]
-        return True
-
-    def count(self, name: str) -> int:
-        for s in self.stats:
-            if s.name == name:
-                return int(s.count)
-        raise RegionError(f"there is no region named {name!r}")
-
-    def recipe_with_regions(self):
-        r = copy.deepcopy(self.recipe)
-        r.regions = self.regions.to_dict()
-        r.rare = {"rule": "share", "share": float(self.share)}
-        return r
 
 
 # --------------------------------------------------------------------- session

@@ -15,7 +15,7 @@ from PySide6.QtCore import QObject, Signal
 
 from desktop.messages import error_text, show_error
 from desktop.panels.fit import PANEL_KEYS
-from desktop.plots import contour_lines
+from desktop.plot_items import contour_lines
 from desktop.workers import Job
 
 #: Settings of the small 2-D densities behind the contour lines (per pair).
