@@ -40,11 +40,16 @@ def region_closure(regions: RegionSet, name: str) -> set[str]:
     return needed
 
 
+def uses_kind(region: Region, regions: RegionSet, kind: str) -> bool:
+    """True when ``region`` or anything it depends on is a region of ``kind``."""
+    if region.kind == kind:
+        return True
+    return any(regions[n].kind == kind for n in region_closure(regions, region.name))
+
+
 def uses_rarity(region: Region, regions: RegionSet) -> bool:
     """True when ``region`` or anything it depends on is a rarity region."""
-    if region.kind == "rarity":
-        return True
-    return any(regions[n].kind == "rarity" for n in region_closure(regions, region.name))
+    return uses_kind(region, regions, "rarity")
 
 
 def rescale_region(region: Region, old_specs: Mapping, new_specs: Mapping) -> Region:

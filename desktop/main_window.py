@@ -2,7 +2,8 @@
 
 Arrangement (ours): the "Tubes" list on the left; in the middle the "Rarity"
 bar over the "Density map" grid and its legend; on the right a notebook of
-side panels (Fit, Selections, Channels, Spillover, Contrast, Tube).  The
+side panels (Fit, Regions, Channels, Spillover, Contrast, Tube) with its tabs
+down its left edge.  The
 research-use note stays in the status bar.  Work is split by concern:
 :mod:`desktop.fitting` (background fits and contours), :mod:`desktop.regions_view`
 (regions), :mod:`desktop.edits` (scales, compensation, pairs, recipes, export,
@@ -106,7 +107,9 @@ class MainWindow(QMainWindow):
 
         # right: the notebook of side panels.  A panel added by another module
         # needs one line here (add_side_panel) and its signal hooks below.
+        # Tabs run down the notebook's left edge: room for eight or more panels at 720 px
         self.notebook = QTabWidget()
+        self.notebook.setTabPosition(QTabWidget.West)
         self.notebook.setUsesScrollButtons(True)
         self.notebook.setDocumentMode(True)
         self.fit_panel = self.add_side_panel(FitPanel(), "Fit")
@@ -115,7 +118,7 @@ class MainWindow(QMainWindow):
         self.comp_panel = self.add_side_panel(CompensationPanel(), "Spillover")
         self.contrast_panel = self.add_side_panel(ContrastPanel(), "Contrast")
         self.card = self.add_side_panel(TubeCard(), "Tube")
-        self._add_fixed_dock("PanelsDock", self.notebook, Qt.RightDockWidgetArea, 380, 450)
+        self._add_fixed_dock("PanelsDock", self.notebook, Qt.RightDockWidgetArea, 360, 460)
 
         self.note_label = QLabel(RESEARCH_USE_NOTE)
         self.note_label.setObjectName("Note")

@@ -45,6 +45,7 @@ QHeaderView::section {{ background: {PAPER_DARK}; border: none; padding: 3px 6px
 QTabWidget::pane {{ border: 1px solid {PAPER_DARK}; background: {PAPER}; }}
 QTabBar::tab {{ background: {PAPER_DARK}; color: {INK_SOFT}; padding: 5px 7px; border-top-left-radius: 4px; border-top-right-radius: 4px; margin-right: 2px; }}
 QTabBar::tab:selected {{ background: {PAPER}; color: {INK}; font-weight: 600; }}
+QTabBar::tab:left {{ padding: 9px 4px; margin-right: 0; margin-bottom: 2px; border-top-right-radius: 0; border-bottom-left-radius: 4px; }}
 QProgressBar {{ border: 1px solid {PAPER_DARK}; border-radius: 3px; background: white; text-align: center; height: 14px; }}
 QProgressBar::chunk {{ background: {MOSS}; }}
 QStatusBar {{ background: {PAPER_DARK}; color: {INK_SOFT}; }}

@@ -252,7 +252,13 @@ def test_layout_at_1280_x_720(qtbot, window, tmp_path):
     window.open_paths([make_fcs(tmp_path / "a.fcs", n=1500)])
     qtbot.wait(50)
     assert window.rarity_bar.slider.width() >= 100  # not a dot
+    # every tab reachable without scrolling, even with two more panels than today
+    from PySide6.QtWidgets import QLabel
+
+    for title in ("Populations", "Notes"):
+        window.add_side_panel(QLabel("another panel"), title)
+    qtbot.wait(50)
     bar = window.notebook.tabBar()
     last = bar.tabRect(bar.count() - 1)
-    assert last.right() <= bar.width()  # every tab reachable without scrolling
+    assert bar.count() == 8 and last.bottom() <= bar.height() and last.right() <= bar.width()
     assert not window.rarity_bar.keep_button.isEnabled()  # before a fit: nothing to keep

@@ -24,9 +24,11 @@ from desktop import style
 #: Engine keywords this panel owns (the rest of a recipe's engine is kept as is).
 PANEL_KEYS = ("max_fit_events", "base", "n_trees", "learning_rate", "max_depth", "random_state")
 #: How the panel names the engine's first maps (``base`` / ``base_``).
-BASE_WORDS = {"auto": "automatic (mixture, or per channel when channels have piles of equal values)",
-              "skewed": "mixture of skewed groups", "gmm": "mixture of Gaussian groups",
-              "logistic": "per channel"}
+BASE_WORDS = {"auto": ("Automatic", "a mixture of skewed groups, or per channel when it explains held-out "
+                                     "events better (channels with piles of equal values)"),
+              "skewed": ("Skewed groups", "a mixture of groups that may lean to one side"),
+              "gmm": ("Gaussian groups", "a mixture of symmetric (Gaussian) groups"),
+              "logistic": ("Per channel", "each channel on its own, then trees for what they share")}
 #: Share of the progress bar given to each stage (mixture search, skew, trees).
 STAGE_SPANS = {"mixture": (0, 30), "skew": (30, 45), "trees": (45, 100)}
 
@@ -97,9 +99,11 @@ class FitPanel(QWidget):
         self.max_events.setToolTip("Learn from at most this many events (a fixed random pick); every event "
                                    "is still scored. More events: finer detail, longer fit.")
         self.base = QComboBox()
-        for key, words in BASE_WORDS.items():
-            self.base.addItem(words.split(" (")[0].capitalize(), key)
-        self.base.setToolTip("How the fit starts. Automatic suits most tubes.")
+        for key, (label, words) in BASE_WORDS.items():
+            self.base.addItem(label, key)
+            self.base.setItemData(self.base.count() - 1, words, Qt.ToolTipRole)
+        self.base.setToolTip("How the fit starts: " + "; ".join(f"{label.lower()}: {words}" for label, words
+                                                                  in BASE_WORDS.values()) + ".")
         form.addRow("Learn from", self.max_events)
         form.addRow("Start", self.base)
         lay.addLayout(form)

@@ -62,9 +62,10 @@ class TubesList(QWidget):
         for i in range(self.list.count()):
             item = self.list.item(i)
             if item.data(Qt.UserRole) == path:
-                first = item.text().split("\n")[0].rstrip(" •")
+                # the mark goes before the name, so a wrapped long name never hides it
+                first = item.text().split("\n")[0].lstrip("• ").rstrip(" •")
                 rest = item.text().split("\n", 1)[1] if "\n" in item.text() else ""
-                item.setText(first + (f" {suffix}" if suffix else "") + ("\n" + rest if rest else ""))
+                item.setText((f"{suffix} " if suffix else "") + first + ("\n" + rest if rest else ""))
 
     def paths(self) -> list[str]:
         return [self.list.item(i).data(Qt.UserRole) for i in range(self.list.count())]
