@@ -133,3 +133,23 @@ def test_spillover_csv_written_beside_its_reader(tmp_path):
     with pytest.raises(Exception):
         write_spillover_csv(tmp_path / "m.csv", S)  # never replaced without being asked
     assert os.path.exists(path)
+
+
+def test_apply_scale_to_all_fluorescence_channels(tmp_path):
+    from core.session import Session
+    from core.transforms import make_transform
+
+    s = Session()
+    s.open([make_fcs(tmp_path / "a.fcs")])
+    t = s.current
+    spec = {"kind": "arcsinh", "cofactor": 150.0}
+    specs = dict(t.recipe.transforms)
+    specs["FL1-A"] = spec
+    s.set_scales(specs, t.recipe.channels)
+    scatter = {c: t.recipe.transforms[c] for c in ("FSC-A", "SSC-A")}
+    s.apply_scale_to_all("FL1-A")
+    assert t.recipe.transforms["FL2-A"] == spec and t.recipe.transforms["FL1-A"] == spec
+    assert {c: t.recipe.transforms[c] for c in ("FSC-A", "SSC-A")} == scatter  # scatter keeps its scale
+    # reference: numpy's arcsinh of the compensated values over the cofactor
+    np.testing.assert_allclose(t.values[:, 3], np.arcsinh(t.compensated("FL2-A") / 150.0), rtol=1e-12)
+    assert make_transform(spec).kind == "arcsinh"
