@@ -34,6 +34,8 @@ from desktop.plot_items import (BINS, DotsItem, DrawingViewBox, axis_label, chan
 #: most common; the default) or the fitted log density in nats.
 COLOUR_MODES = {"rank": "density rank: % of events less dense", "log": "log density (nats)"}
 MAX_HIGHLIGHT = 20000
+#: Plots built when the map is created (the default pairs' count).
+DEFAULT_PLOTS = 6
 
 
 @dataclass
@@ -98,6 +100,11 @@ class DensityMap(QWidget):
         self._plots: list = []  # (PlotItem, ImageItem, DotsItem) reused between redraws
         self.title = pg.LabelItem("", color="#c9d1cc", size="10pt")
         self.view.scene().sigMouseClicked.connect(self._scene_clicked)
+        # the usual grid (six pairs, three columns) is built now, hidden, so that
+        # opening a file only bins and colours (building plots is the slow part)
+        self._build_grid(DEFAULT_PLOTS, 3)
+        for plot, _img, _hl in self._plots:
+            plot.hide()
 
     # ------------------------------------------------------------------ data
     def set_events(self, values: np.ndarray, names: Sequence[str],
@@ -132,6 +139,8 @@ class DensityMap(QWidget):
             columns = 1 if n <= 1 else 2 if n <= 4 else 3
         if len(self._plots) != n or getattr(self, "_columns", None) != columns:
             self._build_grid(n, columns)
+        for plot, _img, _hl in self._plots:
+            plot.show()
         self.cells = []
         extents: dict[int, tuple[float, float]] = {}
         chan_bins: dict[int, np.ndarray] = {}
