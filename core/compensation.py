@@ -26,6 +26,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .atomic import atomic_write
 from .errors import CompensationError
 
 #: Keywords that may hold a spillover matrix, in order of preference
@@ -184,8 +185,6 @@ def write_spillover_csv(path: str | os.PathLike, S: "SpilloverMatrix", overwrite
     then one row per fluorochrome named by its detector (the layout
     :func:`read_spillover_csv` reads back exactly: values as ``repr`` floats).
     Written atomically; an existing file is replaced only with ``overwrite``."""
-    from .atomic import atomic_write
-
     path = os.fspath(path)
     with atomic_write(path, "w", overwrite=overwrite, encoding="utf-8") as handle:
         w = csv.writer(handle, lineterminator="\n")
