@@ -97,7 +97,8 @@ class DensityMap(QWidget):
         self._poly_cell: PairCell | None = None
         self._poly_preview: pg.PlotDataItem | None = None
         self.colourbar: pg.ColorBarItem | None = None
-        self._plots: list = []  # (PlotItem, ImageItem, DotsItem) reused between redraws
+        self._plots: list = []  # (PlotItem, ImageItem, DotsItem) of the grid shown now
+        self._pool: list = []   # every such triple made so far (reused between grids)
         self.title = pg.LabelItem("", color="#c9d1cc", size="10pt")
         self.view.scene().sigMouseClicked.connect(self._scene_clicked)
         # the usual grid (six pairs, three columns) is built now, hidden, so that
@@ -171,26 +172,27 @@ class DensityMap(QWidget):
         self._redraw_highlight()
 
     def _build_grid(self, n: int, columns: int) -> None:
+        """Lay out ``n`` plots in ``columns``; plots made before are reused
+        (making one is the slow part), new ones are added to the pool."""
         self.view.clear()
         self.colourbar = None
-        self._plots = []
         self._columns = columns
         self.view.addItem(self.title, row=0, col=0, colspan=columns)
-        for k in range(n):
-            plot = self.view.addPlot(row=1 + k // columns, col=k % columns,
-                                     axisItems={"bottom": TransformAxis("bottom"), "left": TransformAxis("left")},
-                                     viewBox=DrawingViewBox(self))
+        while len(self._pool) < n:
+            plot = pg.PlotItem(axisItems={"bottom": TransformAxis("bottom"), "left": TransformAxis("left")},
+                               viewBox=DrawingViewBox(self))
             plot.setMenuEnabled(False)
             plot.hideButtons()
             plot.getViewBox().setBackgroundColor("#11161a")
-            for ax in ("bottom", "left"):
-                plot.getAxis(ax).enableAutoSIPrefix(False)
             img = pg.ImageItem(np.zeros((BINS, BINS, 4), dtype=np.uint8), axisOrder="row-major")
             plot.addItem(img)
             hl = DotsItem(style.RARE, 3.5)
             hl.setZValue(5)
             plot.addItem(hl)
-            self._plots.append((plot, img, hl))
+            self._pool.append((plot, img, hl))
+        self._plots = self._pool[:n]
+        for k, (plot, _img, _hl) in enumerate(self._plots):
+            self.view.addItem(plot, row=1 + k // columns, col=k % columns)
 
     def names_of(self, cell: PairCell) -> tuple[str, str]:
         return self.names[cell.ix], self.names[cell.iy]

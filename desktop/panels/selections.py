@@ -22,7 +22,7 @@ KIND_WORDS = {"rectangle": "rectangle", "polygon": "polygon", "interval": "inter
 
 
 class SelectionsPanel(QWidget):
-    """Table of regions: name, kind, channels, events, % of parent, % of all."""
+    """Table of regions: name, events, % of the parent region, % of all events (kind and channels below)."""
 
     renameRequested = Signal(str, str)   # old, new
     deleteRequested = Signal(list)       # names
@@ -32,7 +32,7 @@ class SelectionsPanel(QWidget):
     nestRequested = Signal(str)           # name: choose the region to nest it in
     showOnlyRequested = Signal(str)       # name, or "" to show every event
 
-    COLUMNS = ("Name", "Events", "% of parent", "% of all")
+    COLUMNS = ("Name", "Events", "% parent", "% all")
     NUMBERS = (1, 2, 3)
 
     def __init__(self, parent: QWidget | None = None) -> None:
