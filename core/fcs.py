@@ -54,7 +54,7 @@ import numpy as np
 from .atomic import atomic_write
 from .errors import ChannelError, EventDataError, ExportError, FcsFileError
 
-__all__ = ["EventFile", "read_fcs", "write_fcs", "header_offset_fields"]
+__all__ = ["ChannelDecoding", "EventFile", "read_fcs", "write_fcs", "header_offset_fields"]
 
 #: Length of the FCS HEADER: version (6), 4 spaces, six 8-byte offsets (FCS 3.1 section 3.1).
 HEADER_LENGTH = 58
@@ -71,6 +71,48 @@ _STRUCTURAL_KEYS = frozenset({
 })
 # Delimiters the writer may use, in order of preference (any byte 1-126 is allowed by FCS 3.1).
 _DELIMITER_CHOICES = ("/", "|", "\\", "!", "~", "^", "\x0c")
+
+
+@dataclass(frozen=True)
+class ChannelDecoding:
+    """How one channel's stored values became the scale values in ``EventFile.data``.
+
+    FCS 3.1 ($PnE, $PnG, $PnR; section 3.2.20 for $PnE, number from memory):
+    a log-amplified integer channel decodes as ``f2 * 10 ** (f1 * stored / $PnR)``,
+    a linear channel with a gain as ``stored / $PnG``, everything else as stored.
+
+    ``integer``: the file stores whole numbers ($DATATYPE I).
+    ``decades`` (f1, 0 for linear), ``offset`` (f2, used when ``decades > 0``),
+    ``stored_range`` ($PnR as written, NaN when unusable), ``gain`` (the divisor
+    applied; 1.0 when none was).
+    """
+
+    integer: bool
+    decades: float = 0.0
+    offset: float = 1.0
+    stored_range: float = math.nan
+    gain: float = 1.0
+
+    @property
+    def log_amplified(self) -> bool:
+        return self.decades > 0
+
+    def decode(self, stored) -> np.ndarray:
+        """Scale values (float64) of stored values (any shape)."""
+        x = np.asarray(stored, dtype=np.float64)
+        if self.log_amplified:
+            return self.offset * np.power(10.0, self.decades * x / self.stored_range)
+        return x / self.gain if self.gain != 1.0 else x.copy()
+
+    def encode(self, values) -> np.ndarray:
+        """Stored values (float64, rounded to whole numbers for integer channels) of scale values."""
+        v = np.asarray(values, dtype=np.float64)
+        if self.log_amplified:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                x = np.log10(v / self.offset) * (self.stored_range / self.decades)
+        else:
+            x = v * self.gain if self.gain != 1.0 else v.copy()
+        return np.rint(x) if self.integer else x
 
 
 @dataclass
@@ -97,6 +139,9 @@ class EventFile:
     notes : list of str
         What the reader did that an analyst may want to know (Latin-1 text,
         renamed channels, values kept as stored, extra data sets, ...).
+    decoding : list of ChannelDecoding or None
+        Per channel, how stored values became ``data`` (``decoding[j].encode``
+        gives back the stored values); None for event files not read from disk.
     """
 
     path: str
@@ -107,6 +152,7 @@ class EventFile:
     keywords: dict
     version: str
     notes: list = field(default_factory=list)
+    decoding: list | None = None
 
     @property
     def n_events(self) -> int:
@@ -397,9 +443,19 @@ def _is_time(name: str, label: str) -> bool:
 
 
 def _decode_scale(kw: Mapping[str, str], datatype: str, data: np.ndarray,
-                  names: list, labels: list, notes: list) -> np.ndarray:
-    """Apply $PnE / $PnG in place; return channel ranges in the same units (float64)."""
+                  names: list, labels: list, notes: list,
+                  decoding: list | None = None) -> np.ndarray:
+    """Apply $PnE / $PnG in place; return channel ranges in the same units (float64).
+
+    ``decoding``: when a list, one :class:`ChannelDecoding` per channel is appended.
+    """
     n_par = data.shape[1]
+    integer = datatype == "I"
+
+    def record(**kwargs):
+        if decoding is not None:
+            decoding.append(ChannelDecoding(integer=integer, **kwargs))
+
     ranges = np.full(n_par, np.nan, dtype=np.float64)
     missing_range = []
     kept_log = []
@@ -423,19 +479,23 @@ def _decode_scale(kw: Mapping[str, str], datatype: str, data: np.ndarray,
             if datatype != "I":
                 kept_log.append(names[j])
                 ranges[j] = rng if rng is not None else np.nan
+                record(stored_range=ranges[j])
                 continue
             if f2 <= 0:
                 f2 = 1.0  # common practice: files writing f2 = 0 mean 1
             # FCS 3.1: scale value = f2 * 10^(f1 * channel / $PnR)
             data[:, j] = f2 * np.power(10.0, f1 * data[:, j] / rng)
             ranges[j] = f2 * 10.0 ** f1
+            record(decades=f1, offset=f2, stored_range=rng)
             continue
         gain = _float_or_none(kw.get(f"$P{n}G"))
         if gain is not None and gain > 0 and gain != 1.0 and not _is_time(names[j], labels[j]):
             data[:, j] /= gain  # FCS 3.1: linear scale value = channel / $PnG
             ranges[j] = rng / gain if rng is not None else np.nan
+            record(stored_range=rng if rng is not None else np.nan, gain=gain)
         else:
             ranges[j] = rng if rng is not None else np.nan
+            record(stored_range=ranges[j])
     if kept_log:
         notes.append("Channels " + ", ".join(kept_log) + " are floating point with a "
                      "logarithmic $PnE; FCS 3.1 requires $PnE 0,0 for float data, so the "
@@ -502,14 +562,15 @@ def read_fcs(path: str | os.PathLike) -> EventFile:
                      ", ".join(f"'{a}' -> '{b}'" for a, b in renames) +
                      " (original names kept in the keywords).")
 
-    ranges = _decode_scale(keywords, datatype, data, names, labels, notes)
+    decoding: list = []
+    ranges = _decode_scale(keywords, datatype, data, names, labels, notes, decoding)
     bad = ~np.isfinite(data)
     if bad.any():
         notes.append(f"{int(bad.any(axis=1).sum())} events hold non-finite values (NaN or "
                      "inf); they are kept here and set aside by the cleaning step.")
     return EventFile(path=path, data=data, channel_names=names, channel_labels=labels,
                      channel_ranges=ranges, keywords=keywords, version=header["version"],
-                     notes=notes)
+                     notes=notes, decoding=decoding)
 
 
 # --------------------------------------------------------------------------- writing
