@@ -317,8 +317,8 @@ class Analysis:
         if aside:
             text += " (set aside: " + ", ".join(aside) + ")"
         if self.atoms:
-            text += ". One value holds " + ", ".join(f"{100 * v:.2g} % of {c}" for c, v in self.atoms.items()) \
-                + " of the kept events: the density there fits an atom"
+            text += "; atoms left: " + ", ".join(f"{c} ({100 * v:.2g} % of the kept events on one value)"
+                                                 for c, v in self.atoms.items())
         return text
 
     def export_columns(self) -> dict:

@@ -13,7 +13,7 @@ the recipe's regions; then, in ``OUT_DIR/<file stem>/``:
 
 * ``<stem> rare.fcs`` -- the rare events, and ``<stem> region <name>.fcs`` per
   region: the ORIGINAL raw values plus added parameters ``log density``,
-  ``rarity percentile``, ``cleaning flag`` (0 kept, 1 saturated, 2 non-finite;
+  ``rarity percentile``, ``cleaning flag`` (0 kept, 1 saturated, 2 non-finite, 3 floor pile, 4 ceiling pile;
   removed events carry log density 0 and rarity -1 since FCS float data should
   hold no NaN), and with a control ``contrast score``/``enriched``
   (:func:`core.export.export_events_fcs`, with provenance keywords);
@@ -45,7 +45,7 @@ damaged, it is rebuilt.  If the control cannot be prepared (unreadable,
 missing channels) every file to do gets status ``error`` with the reason.
 
 ``OUT_DIR`` also gets ``summary.csv`` (one row per input file: file, events,
-events_kept, rare_events, rare_percent, ``region:<name>`` counts, enriched
+events_kept, set_aside_<reason> per cleaning reason, atoms, rare_events, rare_percent, ``region:<name>`` counts, enriched
 (with a control), heldout_loglik, seconds, status ``ok``/``error``/``cancelled``,
 message), ``recipe.json`` and a ``README.txt`` with the research-use caution.
 
@@ -88,7 +88,10 @@ from .progress import keep_going
 
 SUMMARY_NAME = "summary.csv"
 DONE_NAME = "done.json"
-BASE_COLUMNS = ["file", "events", "events_kept", "rare_events", "rare_percent"]
+#: Events set aside by cleaning, one column per reason (core.prepare.REASONS), and the atoms check.
+CLEANING_COLUMNS = ["set_aside_saturated", "set_aside_ceiling_pile", "set_aside_floor_pile",
+                    "set_aside_non_finite", "atoms"]
+BASE_COLUMNS = ["file", "events", "events_kept"] + CLEANING_COLUMNS + ["rare_events", "rare_percent"]
 TAIL_COLUMNS = ["heldout_loglik", "seconds", "status", "message"]
 
 
@@ -154,6 +157,9 @@ def process_file(task: dict) -> dict:
         row.update({"events": an.n_events, "events_kept": an.n_kept, "rare_events": an.n_rare,
                     "rare_percent": round(100.0 * an.n_rare / an.n_kept, 4) if an.n_kept else 0.0,
                     "heldout_loglik": round(an.heldout_loglik, 6)})
+        for reason, count in an.set_aside.items():
+            row["set_aside_" + reason.replace(" ", "_").replace("-", "_")] = count
+        row["atoms"] = "; ".join(f"{c} {100 * v:.3g} %" for c, v in an.atoms.items())
         for name, mask in an.region_masks.items():
             row[f"region:{name}"] = int(mask.sum())
         if an.contrast is not None:
@@ -492,14 +498,17 @@ Control file: {control or "none"}
 Written: {time.strftime("%Y-%m-%d %H:%M:%S %Z")}
 
 summary.csv     one row per input file: events, events kept after cleaning,
-                rare events and their percentage of kept events, events in
+                events set aside per reason (saturated, ceiling pile, floor
+                pile, non-finite), atoms (density channels where one value
+                still holds more than 0.1 % of the kept events), rare events and their percentage of kept events, events in
                 each region, enriched events (with a control), held-out
                 log-likelihood of the density fit (nats per event), seconds,
                 status (ok / error / cancelled) and the reason of an error.
 <stem>/         per input file: '<stem> rare.fcs' (the rare events) and
                 '<stem> region <name>.fcs' per region, with the ORIGINAL raw
                 values plus the parameters 'log density', 'rarity percentile'
-                and 'cleaning flag' (0 kept, 1 saturated, 2 non-finite;
+                and 'cleaning flag' (0 kept, 1 saturated, 2 non-finite,
+                3 floor pile, 4 ceiling pile;
                 removed events have log density 0 and rarity -1), and
                 'done.json' (lets a re-run skip the file).
 .prepared-control/  with a control: the control's density and held-out

@@ -427,6 +427,7 @@ class TransformParameter:
     low: float
     high: float
     optional: bool = False
+    from_data: str = ""   # where a default of None comes from, in words (for the docs)
 
 
 @dataclass(frozen=True)
@@ -440,7 +441,7 @@ class TransformKind:
 
 
 _T = TransformParameter("T", "Top (T)", "Largest data value of the scale (usually the channel range, $PnR).",
-                        None, 1e-9, 1e12)
+                        None, 1e-9, 1e12, from_data="the channel range ($PnR)")
 _M = TransformParameter("M", "Decades (M)", "Number of decades the scale covers.", DEFAULT_M, 1e-3, 10.0)
 
 #: The ONE registry of transform kinds: recipe validation, make_transform, the
@@ -461,7 +462,8 @@ TRANSFORM_KINDS: dict[str, TransformKind] = {k.name: k for k in (
     TransformKind("logicle", "logicle", "Gating-ML 2.0 logicle (biexponential)", (
         _T,
         TransformParameter("W", "Linear width (W)", "Width of the near-linear region around zero, in decades "
-                           "(0 <= W <= M/2).", None, 0.0, 5.0),
+                           "(0 <= W <= M/2).", None, 0.0, 5.0,
+                           from_data="from the negative values (logicle_auto_w)"),
         _M,
         TransformParameter("A", "Extra negative (A)", "Additional decades of negative values shown "
                            "(-W <= A <= M - 2W).", 0.0, -5.0, 10.0))),
@@ -477,8 +479,7 @@ def transform_kinds_markdown() -> str:
     lines = ["| kind | what | parameter | default | bounds |", "|---|---|---|---|---|"]
     for k in TRANSFORM_KINDS.values():
         for i, p in enumerate(k.parameters):
-            default = ("optional" if p.optional else "from the channel (T: $PnR)") if p.default is None \
-                else f"{p.default:g}"
+            default = ("optional" if p.optional else p.from_data) if p.default is None else f"{p.default:g}"
             lines.append(f"| {k.name if i == 0 else ''} | {k.help if i == 0 else ''} | {p.key} | {default} "
                          f"| {p.low:g} .. {p.high:g} |")
     return "\n".join(lines)
