@@ -16,6 +16,14 @@ surrounding spaces ignored), checked in this order:
 4. **fluorescence**: every other channel (marker detectors such as ``FL1-H``,
    ``FITC-A``, ``V2-A``, ``YEL-HLog``; their pulse widths and heights too).
 
+Pulse measures: a detector often gives several channels named ``<detector>-A``
+(area), ``-H`` (height) and ``-W`` (width); the width is computed from the other
+two (width = area / height up to a constant in the files fcsparser ships), so a
+density over all three lies on a surface.  :func:`pulse_measure` splits the name;
+:func:`one_measure_per_detector` keeps the area, else the height, else the width
+of each detector (common practice: areas for analysis, heights and widths for
+doublet discrimination).
+
 Who uses it: :func:`core.recipe.default_recipe` (density channels are the
 fluorescence channels; when a file has none, scatter and fluorescence),
 :func:`core.transforms.default_transform_spec` (linear for scatter, time and
@@ -54,6 +62,28 @@ def scatter_direction(name: str) -> str | None:
     if channel_kind(n) != SCATTER:
         return None
     return "forward" if n[:1].upper() == "F" else "side"
+
+
+_PULSE = re.compile(r"^(.*\S)-([AHW])$", re.IGNORECASE)
+
+
+def pulse_measure(name: str) -> tuple[str, str]:
+    """``(detector, "A" | "H" | "W")`` for names ending in -A/-H/-W, else ``(name, "")``."""
+    n = str(name or "").strip()
+    m = _PULSE.match(n)
+    return (m.group(1), m.group(2).upper()) if m else (n, "")
+
+
+def one_measure_per_detector(names) -> list:
+    """``names`` (in order) keeping, per detector, its area, else its height, else its width."""
+    best: dict = {}
+    for n in names:
+        det, m = pulse_measure(n)
+        rank = {"A": 0, "H": 1, "W": 2}.get(m, 0)
+        if det not in best or rank < best[det][0]:
+            best[det] = (rank, n)
+    keep = {n for _, n in best.values()}
+    return [n for n in names if n in keep]
 
 
 def is_fluorescence(name: str, label: str | None = None) -> bool:

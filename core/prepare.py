@@ -33,8 +33,8 @@ explicitly and seeded (all randomness comes from ``random_state``):
    * float channels with many ties but no regular grid (fewer distinct values
      than 90 % of the events; seen in files whose values are computed from
      several digitised signals): each distinct value is spread over a cell as
-     wide as the smaller of its gaps to the neighbouring distinct values
-     (``"cells"``; on a regular grid this is the grid step);
+     wide as its events would cover at the local spacing of the neighbouring
+     values (``"cells"``; on a regular grid with even counts, the grid step);
    * continuous channels: untouched.
 
    Jitter goes on the values the density sees, never on what plots show or
@@ -270,21 +270,44 @@ def plan_jitter(raw_col, decoding=None, max_unique_fraction: float = MAX_UNIQUE_
     """
     if decoding is not None and getattr(decoding, "integer", False):
         return ChannelJitter(GRID_STORED, 1.0, decoding)
-    grid, step = detect_grid(raw_col, max_unique_fraction)
+    col = np.asarray(raw_col, dtype=np.float64).ravel()
+    # the grid shows in an evenly strided share of at most GRID_SAMPLE values
+    # (sorting a million values per channel would dominate the preparation)
+    sample = col[::-(-col.size // GRID_SAMPLE)] if col.size > GRID_SAMPLE else col
+    grid, step = detect_grid(sample, max_unique_fraction)
     if step > 0:
         return ChannelJitter(grid, step)
-    return _cells(raw_col, max_unique_fraction)
+    if sample is not col and _cells(sample, max_unique_fraction) is None:
+        return None
+    return _cells(col, max_unique_fraction)
+
+
+#: Values examined for a grid (an evenly strided share of a longer channel).
+GRID_SAMPLE = 200_000
+#: Distinct values either side that estimate the local spacing of a "cells" channel.
+CELL_NEIGHBOURS = 10
 
 
 def _cells(raw_col, max_unique_fraction: float):
-    """The "cells" plan (see the module notes), or None for a continuous channel."""
+    """The "cells" plan (see the module notes), or None for a continuous channel.
+
+    A distinct value holding c events gets a cell c times the local spacing per
+    event (the span of ``CELL_NEIGHBOURS`` distinct values either side divided by
+    the events they hold), so a tied value is spread over the width its events
+    would cover in the surrounding data; on a regular grid with even counts this
+    is the grid step.
+    """
     v = np.asarray(raw_col, dtype=np.float64).ravel()
     v = v[np.isfinite(v)]
-    u = np.unique(v)
+    u, cnt = np.unique(v, return_counts=True)
     if u.size < 3 or u.size > max_unique_fraction * v.size:
         return None
-    gaps = np.diff(u)
-    widths = np.minimum(np.concatenate([[gaps[0]], gaps]), np.concatenate([gaps, [gaps[-1]]]))
+    i = np.arange(u.size)
+    lo = np.maximum(i - CELL_NEIGHBOURS, 0)
+    hi = np.minimum(i + CELL_NEIGHBOURS, u.size - 1)
+    cs = np.concatenate([[0], np.cumsum(cnt)])
+    around = cs[hi + 1] - cs[lo] - cnt
+    widths = np.where(around > 0, cnt * (u[hi] - u[lo]) / np.maximum(around, 1), 0.0)
     return ChannelJitter(GRID_CELLS, float(np.median(widths)), values=u, widths=widths)
 
 

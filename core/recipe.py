@@ -60,7 +60,7 @@ from typing import Any, Mapping
 from . import SOFTWARE_NAME, __version__
 from .atomic import atomic_write
 from .errors import BoscageError, CompensationError, RecipeError, RegionError
-from .channel_kinds import FLUORESCENCE, SCATTER, channel_kind, is_fluorescence
+from .channel_kinds import FLUORESCENCE, SCATTER, channel_kind, is_fluorescence, one_measure_per_detector
 from .regions import RegionSet
 from .transforms import TRANSFORM_KINDS
 
@@ -431,7 +431,9 @@ def default_recipe(event_file: Any) -> Recipe:
     """A starting recipe for ``event_file`` (a :class:`core.fcs.EventFile`).
 
     * channels: the fluorescence channels (:mod:`core.channel_kinds`); when
-      there is none, the scatter channels.  A channel whose lowest or highest
+      there is none, the scatter channels; one pulse measure per detector (its
+      area, else height, else width: the width is computed from the other two,
+      see :func:`core.channel_kinds.one_measure_per_detector`).  A channel whose lowest or highest
       value holds more than :data:`MAX_PILE_SHARE` of the events (mostly below
       detection, or clipped) is left out and ``notes`` says so: its piles would
       be set aside from the fit (core.prepare) and take most events with them.
@@ -474,6 +476,12 @@ def default_recipe(event_file: Any) -> Recipe:
         notes.append("Left out of the density: " + ", ".join(f"{c} ({100 * v:.0f} % of the events on its "
                                                              "lowest or highest value)" for c, v in piled.items())
                      + ".")
+    single = one_measure_per_detector(channels)
+    if len(single) < len(channels):
+        notes.append("One pulse measure per detector (area, else height, else width): left out "
+                     + ", ".join(c for c in channels if c not in single) + ".")
+        channels = single
+
     data = np.asarray(event_file.data, dtype=np.float64)
     comp = "none"
     try:
