@@ -323,3 +323,39 @@ def test_bundled_files_leave_no_atom_after_the_default_recipe():
         assert worst <= ATOM_SHARE, (f["version"], f["datatype"], f["events"], worst)
         checked += 1
     assert checked >= 12
+
+
+def test_one_pass_equals_the_pipeline_form_on_a_demo_tube():
+    # Our demo tube A (float, whole units, compensated): density_input's one pass gives what the
+    # pipeline form gives -- jitter the raw matrix, compensate, transform (numpy, by hand) -- with
+    # the same per-channel draws, and sets aside exactly the generator's saturated events.
+    from core.analysis import density_channel_indices, density_input
+    from core.compensation import spillover_from_keywords
+    from core.fcs import read_fcs
+    from core.prepare import channel_uniforms
+    from core.recipe import default_recipe
+    from core.scenario import load_truth
+    from core.transforms import make_transform
+
+    root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    path = os.path.join(root, "sample_events", "tube_A_control.fcs")
+    ef = read_fcs(path)
+    recipe = default_recipe(ef)
+    prepared, values = density_input(ef, recipe)
+    truth = load_truth(os.path.join(root, "sample_events"), "tube_A_control")
+    idx = density_channel_indices(ef, recipe)
+    S = spillover_from_keywords(ef.keywords)
+    judged = sorted(set(idx) | {ef.channel_names.index(d) for d in S.detectors})
+    # the generator's saturated events that are saturated in a judged channel (value >= $PnR)
+    expected = truth["saturated"] & np.any(ef.data[:, judged] >= ef.channel_ranges[judged], axis=1)
+    np.testing.assert_array_equal(prepared.reason == REASON_SATURATED, expected)
+    assert prepared.set_aside()["floor pile"] == prepared.set_aside()["ceiling pile"] == 0
+    raw = ef.data.copy()
+    for j in set(idx) | {ef.channel_names.index(d) for d in S.detectors}:
+        assert prepared.grids[j] == "linear" and prepared.steps[j] == pytest.approx(1.0, rel=1e-6)
+        raw[:, j] += channel_uniforms(0, j, ef.n_events) * prepared.steps[j]
+    det = [ef.channel_names.index(d) for d in S.detectors]
+    raw[:, det] = raw[:, det] @ np.linalg.inv(S.matrix)          # reference: numpy.linalg
+    by_hand = np.column_stack([make_transform(recipe.transforms[ef.channel_names[j]]).forward(raw[:, j])
+                               for j in idx])[prepared.kept]
+    np.testing.assert_allclose(prepared.matrix, by_hand, rtol=1e-9, atol=1e-12)
