@@ -359,3 +359,20 @@ def test_one_pass_equals_the_pipeline_form_on_a_demo_tube():
     by_hand = np.column_stack([make_transform(recipe.transforms[ef.channel_names[j]]).forward(raw[:, j])
                                for j in idx])[prepared.kept]
     np.testing.assert_allclose(prepared.matrix, by_hand, rtol=1e-9, atol=1e-12)
+
+
+def test_analysis_counts_reasons_for_the_app_and_exports():
+    # the app's fit line and the exports' cleaning flag read the reasons of every event
+    from core.analysis import Analysis
+
+    reason = np.array(["", "floor pile", "ceiling pile", "saturated", "non-finite", "", "floor pile"])
+    n = reason.size
+    an = Analysis(path="x.fcs", channel_names=["A"], values=np.zeros((n, 1)), density_channels=["A"],
+                  prepared=None, model=None, log_density=np.where(reason == "", -1.0, np.nan),
+                  rarity=np.where(reason == "", 50.0, np.nan), rare=np.zeros(n, bool), rare_level=0.0,
+                  reason=reason, region_masks={}, heldout_loglik=0.0, timing={}, atoms={"A": 0.004})
+    assert an.set_aside == {"saturated": 1, "ceiling pile": 1, "floor pile": 2, "non-finite": 1}
+    text = an.cleaning_text()
+    assert text.startswith("2 of 7 events kept") and "2 floor pile" in text and "1 ceiling pile" in text
+    assert "A (0.4 % of the kept events on one value)" in text
+    np.testing.assert_array_equal(an.export_columns()["cleaning flag"], [0, 3, 4, 1, 2, 0, 3])
