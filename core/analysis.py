@@ -188,27 +188,29 @@ def density_input(event_file: Any, recipe: Any):
     plans = {}
     if do_jitter:
         for j in feeders:
-            plan = plan_jitter(raw[kept, j], None if decoding is None else decoding[j], MAX_UNIQUE_FRACTION)
+            plan = plan_jitter(raw[:, j] if kept.all() else raw[kept, j], None if decoding is None else decoding[j],
+                               MAX_UNIQUE_FRACTION)
             if plan is not None:
                 plans[j] = plan
     spread = set() if drop_piles else {j for j in feeders
                                        if floor_cells[j][kept].any() or ceiling_cells[j][kept].any()}
     changed = set(plans) | spread
 
+    all_kept = bool(kept.all())
+
     def column(j: int) -> np.ndarray:
         """Raw channel j over the kept events, jittered / piles spread as planned."""
-        col = raw[kept, j]
         if j not in changed:
-            return col
+            return raw[:, j] if all_kept else raw[kept, j]
         fl = floor_cells.get(j)
         ce = ceiling_cells.get(j)
         # uniforms are drawn for every event of the file, then the kept ones taken
-        full = np.empty(n)
-        full[kept] = col
-        full[~kept] = 0.0
+        full = raw[:, j].copy()
+        if not all_kept:
+            full[~kept] = 0.0
         out = jittered_column(full, j, plans.get(j), seed, None if fl is None else fl & kept,
                               None if ce is None else ce & kept, spread_piles=j in spread)
-        return out[kept]
+        return out if all_kept else out[kept]
 
     transforms = _get(recipe, "transforms", None) or {}
     matrix = np.empty((int(kept.sum()), len(idx)))
@@ -219,7 +221,7 @@ def density_input(event_file: Any, recipe: Any):
         compensated = compensate(sub, [names[d] for d in detectors], S, source=where)
     for c, j in enumerate(idx):
         if c not in redo:
-            matrix[:, c] = values[kept, j]
+            matrix[:, c] = values[:, j] if all_kept else values[kept, j]
             continue
         col = compensated[:, detectors.index(j)] if (compensated is not None and j in detectors) else column(j)
         spec = transforms.get(names[j])

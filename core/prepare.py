@@ -385,15 +385,23 @@ def saturation_mask(raw, channel_ranges) -> np.ndarray:
 
 
 def _saturated_column(col: np.ndarray, rng: float) -> np.ndarray:
-    finite = np.isfinite(col)
     with np.errstate(invalid="ignore"):
-        sat = (col >= rng) & finite
-    below = finite & ~sat
-    if below.any():
-        top = col[below].max()
+        sat = col >= rng                       # NaN compares False; +inf is non-finite, not saturated
+        hi = col.max() if col.size else np.nan
+        if not np.isfinite(hi) or hi >= rng:   # the usual case skips the masks below
+            finite = np.isfinite(col)
+            sat &= finite
+            below = finite & ~sat
+            if not below.any():
+                return sat
+            top = col[below].max()
+        else:
+            below, top = None, hi
         if top >= PILE_FRACTION * rng:
-            at_top = below & (col == top)
-            if at_top.sum() >= PILE_MIN_EVENTS:
+            at_top = col == top
+            if below is not None:
+                at_top &= below
+            if np.count_nonzero(at_top) >= PILE_MIN_EVENTS:
                 sat |= at_top
     return sat
 
@@ -406,18 +414,24 @@ def pile_masks(col, pile_share: float = PILE_SHARE) -> tuple[np.ndarray, np.ndar
     and the channel holds more than one value.
     """
     col = np.asarray(col, dtype=np.float64)
-    finite = np.isfinite(col)
-    n = int(finite.sum())
     none = np.zeros(col.shape, dtype=bool)
-    if n == 0:
+    if col.size == 0:
         return none, none.copy()
-    lo, hi = float(col[finite].min()), float(col[finite].max())
+    lo, hi = float(col.min()), float(col.max())
+    n = col.size
+    if not (np.isfinite(lo) and np.isfinite(hi)):      # the rare case: NaN or inf present
+        finite = np.isfinite(col)
+        n = int(finite.sum())
+        if n == 0:
+            return none, none.copy()
+        lo, hi = float(col[finite].min()), float(col[finite].max())
     if lo == hi:
         return none, none.copy()
     need = max(PILE_MIN_EVENTS, pile_share * n)
     floor = col == lo
     ceiling = col == hi
-    return (floor if floor.sum() >= need else none), (ceiling if ceiling.sum() >= need else none.copy())
+    return (floor if np.count_nonzero(floor) >= need else none), \
+        (ceiling if np.count_nonzero(ceiling) >= need else none.copy())
 
 
 def _spread_pile(col: np.ndarray, pile: np.ndarray, u: np.ndarray, upward: bool) -> np.ndarray:
@@ -469,14 +483,16 @@ def clean_events(raw, judged: Sequence[int], channel_ranges=None, *, drop_satura
         floor_any |= fl
         ceiling_any |= ce
     saturated &= ~non_finite
-    reason = np.full(n, REASON_KEPT, dtype=object)
+    # small codes first, strings once at the end (a million-entry object array is slow)
+    names = np.array([REASON_KEPT, REASON_FLOOR_PILE, REASON_CEILING_PILE, REASON_SATURATED, REASON_NON_FINITE])
+    code = np.zeros(n, dtype=np.int8)
     if drop_piles:
-        reason[floor_any] = REASON_FLOOR_PILE
-        reason[ceiling_any] = REASON_CEILING_PILE
+        code[floor_any] = 1
+        code[ceiling_any] = 2
     if drop_saturated:
-        reason[saturated] = REASON_SATURATED
-    reason[non_finite] = REASON_NON_FINITE
-    return reason.astype(str), saturated, sat_cells, floor_cells, ceiling_cells
+        code[saturated] = 3
+    code[non_finite] = 4
+    return names[code], saturated, sat_cells, floor_cells, ceiling_cells
 
 
 def jittered_column(raw_col: np.ndarray, j: int, plan, random_state, floor=None, ceiling=None,
