@@ -56,6 +56,7 @@ from dataclasses import dataclass, field
 from typing import Any, Mapping
 
 from . import SOFTWARE_NAME, __version__
+from . import safe_json
 from .atomic import atomic_write
 from .errors import BoscageError, CompensationError, RecipeError, RegionError
 from .regions import RegionSet
@@ -416,7 +417,7 @@ def load_recipe(path: str | os.PathLike) -> Recipe:
     except OSError as exc:
         raise RecipeError(f"{where}cannot read the file ({exc.strerror or exc}) (file: {path})") from exc
     try:
-        d = json.loads(text, parse_constant=_reject_constant)
+        d = safe_json.loads(text, parse_constant=_reject_constant)  # bounded nesting: no RecursionError
     except json.JSONDecodeError as exc:
         raise RecipeError(f"{where}not valid JSON at line {exc.lineno}, column {exc.colno}: {exc.msg} "
                           f"(file: {path})") from None
