@@ -394,7 +394,8 @@ def _read_raw_events(path: str, handle, layout: dict, notes: list) -> np.ndarray
     try:
         if datatype in ("F", "D"):
             raw = np.frombuffer(buf, dtype=f"{endian}{'f4' if datatype == 'F' else 'f8'}")
-            return raw.astype(np.float64).reshape(n_tot, n_par)
+            with np.errstate(invalid="ignore"):  # signalling NaN bit patterns stay NaN
+                return raw.astype(np.float64).reshape(n_tot, n_par)
         data = np.empty((n_tot, n_par), dtype=np.float64)
         widths = [b // 8 for b in layout["bits"]]
         uniform = len(set(widths)) == 1 and widths[0] in (1, 2, 4, 8)
