@@ -9,7 +9,7 @@ Every ``*.fcs`` file directly in INPUT_DIR (sorted by name, case-insensitive
 extension) goes through the same recipe -- the given one, or the default recipe
 of the first readable file (:func:`core.recipe.default_recipe`).  For each file
 :func:`core.analysis.analyse` fits the density, flags rare events and evaluates
-the recipe's regions; then, in ``OUT_DIR/<file stem>/``:
+the recipe's regions; then, in ``OUT_DIR/<file stem>/`` (see :func:`output_folder_names`):
 
 * ``<stem> rare.fcs`` -- the rare events, and ``<stem> region <name>.fcs`` per
   region: the ORIGINAL raw values plus added parameters ``log density``,
@@ -51,8 +51,18 @@ message), ``recipe.json`` and a ``README.txt`` with the research-use caution.
 
 A broken file gets status ``error`` and the reason; the others carry on.
 Exit code: 0 when every file succeeded, 1 when any failed, 2 for bad
-arguments, 130 when stopped with Ctrl-C (finished files are kept; the summary
+arguments (an output folder that cannot be created, that is or contains an
+input folder, or that no batch wrote and that holds names the batch writes,
+included), 130 when stopped with Ctrl-C (finished files are kept; the summary
 lists the rest as ``cancelled``).
+
+Safety (:mod:`core.write_guard`): inputs and the control are registered so no
+write replaces them; per-file folder names come from
+:func:`output_folder_names` (safe, stable, distinct; ``<stem> #<hash>`` when a
+stem is changed by cleaning, collides ignoring case or is a name the batch
+writes); the temporary files of an earlier, killed run are removed at the start;
+worker processes end with the batch process and never write after it
+(:func:`_die_with_parent`).
 
 Parallelism: ``--workers N`` worker processes (``concurrent.futures``; the
 "forkserver" start method where the platform has it -- workers fork from a

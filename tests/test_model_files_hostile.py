@@ -10,7 +10,6 @@ more than the byte budget.
 import io
 import json
 import os
-import time
 import zipfile
 
 import numpy as np
@@ -170,10 +169,8 @@ def test_a_zip_bomb_is_refused_by_its_declared_size_before_inflating(model_file,
                 fh.write(block[:min(left, len(block))])
                 left -= min(left, len(block))
     assert bomb.stat().st_size < 3_000_000
-    t0 = time.perf_counter()
-    with pytest.raises(ModelFileError, match="budget"):
+    with pytest.raises(ModelFileError, match="budget"):  # refused from the declared size: nothing inflated
         AdditiveTreeDensity.load(str(bomb))
-    assert time.perf_counter() - t0 < 5.0  # nothing inflated (generous bound, not a benchmark)
 
 
 def test_non_regular_paths_and_wrong_types_give_our_error(tmp_path):
