@@ -118,3 +118,33 @@ def test_safe_unique_names_keep_plain_names_and_separate_the_rest():
     assert names["plain"] == "plain" and names["Plain2"] == "Plain2"
     assert len({v.casefold() for v in names.values()}) == len(names)
     assert all("/" not in v and not v.startswith(".") for v in names.values())
+
+
+def test_the_app_refuses_to_write_over_any_open_tube(qtbot, tmp_path, monkeypatch):
+    # finding: the app passed overwrite=True after its file dialog and protected only the current tube
+    from PySide6.QtWidgets import QMessageBox
+
+    from desktop.app import make_app
+    from desktop.dialogs import ExportDialog
+    from desktop.main_window import MainWindow
+
+    shown = []
+    monkeypatch.setattr(QMessageBox, "critical", staticmethod(lambda p, t, text, *a, **k: shown.append(text)
+                                                              or QMessageBox.Ok))
+    monkeypatch.setattr(QMessageBox, "question", staticmethod(lambda *a, **k: QMessageBox.Discard))
+    monkeypatch.setenv("BOSCAGE_SETTINGS", str(tmp_path / "settings.ini"))
+    make_app()
+    a, b = ours(tmp_path / "tube a.fcs", 6), ours(tmp_path / "tube b.fcs", 7)
+    win = MainWindow()
+    qtbot.addWidget(win)
+    win.open_paths([a, b], raise_errors=True)
+    before = {p: open(p, "rb").read() for p in (a, b)}
+    win.discard_changes = True
+    for target in (a, b):
+        assert win.save_recipe_dialog(target) is None  # the dialog "asked before replacing"
+        dlg = ExportDialog(win, win.current)
+        dlg.path.setText(target)
+        dlg._overwrite = True
+        dlg.export()
+    assert {p: open(p, "rb").read() for p in (a, b)} == before
+    assert len(shown) == 4 and all("input file" in t or "never" in t for t in shown), shown
