@@ -84,21 +84,25 @@ def test_a_foreign_folder_holding_files_the_batch_would_replace_is_refused(tmp_p
     assert (out / "README.txt").read_text() == "kept by the user"
 
 
-@pytest.mark.parametrize("make", ["file", "no permission"])
+@pytest.mark.parametrize("make", ["file", "under a file", "no permission"])
 def test_out_folder_that_cannot_be_created_gives_exit_2_and_a_sentence(tmp_path, capsys, make):
     # finding: an --out that cannot be created ended in a raw traceback and exit 1
     inp = tmp_path / "in"
     inp.mkdir()
     write_events(inp / "a.fcs")
-    if make == "file":
+    if make in ("file", "under a file"):
         out = tmp_path / "taken"
         out.write_text("a file, not a folder")
-    else:
-        if os.geteuid() == 0:
-            pytest.skip("root may write anywhere")
+        if make == "under a file":
+            out = out / "out"
+    elif os.geteuid() != 0:
         locked = tmp_path / "locked"
         locked.mkdir(mode=0o500)
         out = locked / "out"
+    elif os.path.isdir("/proc/self"):
+        out = "/proc/boscage-out"  # root may write anywhere but in /proc (Linux)
+    else:
+        pytest.skip("no folder this user cannot write in")
     code = main([str(inp), "--out", str(out), "--workers", "1"])
     err = capsys.readouterr().err
     assert code == 2

@@ -119,6 +119,7 @@ def test_paths_that_are_not_paths_give_our_error(bad):
         read_fcs(bad)
 
 
+@pytest.mark.skipif(not hasattr(os, "mkfifo"), reason="named pipes need a POSIX system")
 def test_folder_and_named_pipe_are_refused_before_opening(tmp_path):
     # finding: a named pipe as the path blocked forever
     fifo = tmp_path / "pipe.fcs"
