@@ -330,6 +330,7 @@ def _check_layout(path: str, header: dict, kw: Mapping[str, str], file_size: int
                                      f"{name}s (byte {h} in the HEADER, ${'BEGIN' if name == 'start' else 'END'}DATA "
                                      f"{k}); the file is damaged")
     needed = n_tot * row_bytes
+    _check_decoding(path, kw, n_par)
     layout = {"n_tot": n_tot, "n_par": n_par, "datatype": datatype, "bits": bits, "ranges": ranges,
               "byteorder": _BYTE_ORDERS[byteord], "start": start, "row_bytes": row_bytes}
     if needed == 0:
@@ -366,6 +367,35 @@ def _check_layout(path: str, header: dict, kw: Mapping[str, str], file_size: int
         raise FcsFileError(path, f"the file is truncated: the DATA segment should end at byte "
                                  f"{end} but the file has only {file_size} bytes")
     return layout
+
+
+def _check_decoding(path: str, kw: Mapping[str, str], n_par: int) -> None:
+    """Bound the decoding keywords before any value is decoded (FcsFileError naming the keyword).
+
+    The same parsing as :func:`_decode_scale`: ``$PnR`` (when a positive number) up to
+    1e30; ``$PnE f1,f2`` with ``f1 > 0`` up to 30 decades and offsets 0..1e30; ``$PnG``
+    (when a positive number other than 1) within 1e-6..1e6.  Beyond, float64 decoding
+    overflows, underflows or divides every value into inf.
+    """
+    for n in range(1, n_par + 1):
+        name = kw.get(f"$P{n}N", "").strip() or f"P{n}"
+        rng = _float_or_none(kw.get(f"$P{n}R"))
+        if rng is not None and rng > _MAX_RANGE:
+            raise FcsFileError(path, f"$P{n}R (range of channel {name}) is {kw.get(f'$P{n}R')!r}; ranges "
+                                     f"above {_MAX_RANGE:g} are not plausible (damaged keyword)")
+        pne = kw.get(f"$P{n}E")
+        if pne is not None:
+            vals = [_float_or_none(p.strip()) for p in pne.split(",")]
+            if len(vals) == 2 and None not in vals and vals[0] > 0 and not (
+                    vals[0] <= _MAX_DECADES and 0 <= vals[1] <= _MAX_LOG_OFFSET):
+                raise FcsFileError(path, f"$P{n}E (log amplification of channel {name}) is {pne!r}; FCS "
+                                         f"3.1 gives 'decades,offset' and this program reads up to "
+                                         f"{_MAX_DECADES:g} decades and offsets up to {_MAX_LOG_OFFSET:g}")
+        gain = _float_or_none(kw.get(f"$P{n}G"))
+        if gain is not None and gain > 0 and gain != 1.0 and not _GAIN_BOUNDS[0] <= gain <= _GAIN_BOUNDS[1]:
+            raise FcsFileError(path, f"$P{n}G (amplifier gain of channel {name}) is {kw.get(f'$P{n}G')!r}; "
+                                     f"gains between {_GAIN_BOUNDS[0]:g} and {_GAIN_BOUNDS[1]:g} are read "
+                                     "(dividing by it would make the values meaningless)")
 
 
 def _read_raw_events(path: str, handle, layout: dict, notes: list) -> np.ndarray:
@@ -459,10 +489,8 @@ def _is_time(name: str, label: str) -> bool:
 
 
 def _decode_scale(kw: Mapping[str, str], datatype: str, data: np.ndarray,
-                  names: list, labels: list, notes: list, path: str = "") -> np.ndarray:
-    """Apply $PnE / $PnG in place; return channel ranges in the same units (float64).
-
-    Raises FcsFileError for decoding keywords beyond :func:`_check_decoding` bounds."""
+                  names: list, labels: list, notes: list) -> np.ndarray:
+    """Apply $PnE / $PnG in place; return channel ranges in the same units (float64)."""
     n_par = data.shape[1]
     ranges = np.full(n_par, np.nan, dtype=np.float64)
     missing_range = []
@@ -473,9 +501,6 @@ def _decode_scale(kw: Mapping[str, str], datatype: str, data: np.ndarray,
         if rng is None or rng <= 0:
             missing_range.append(names[j])
             rng = None
-        elif rng > _MAX_RANGE:
-            raise FcsFileError(path or None, f"$P{n}R (range of channel {names[j]}) is {kw.get(f'$P{n}R')!r}; "
-                                             f"ranges above {_MAX_RANGE:g} are not plausible (damaged keyword)")
         f1 = f2 = 0.0
         pne = kw.get(f"$P{n}E")
         if pne is not None:
@@ -483,11 +508,6 @@ def _decode_scale(kw: Mapping[str, str], datatype: str, data: np.ndarray,
             vals = [_float_or_none(p) for p in parts]
             if len(vals) == 2 and None not in vals and vals[0] >= 0:
                 f1, f2 = vals
-                if f1 > 0 and not (f1 <= _MAX_DECADES and 0 <= f2 <= _MAX_LOG_OFFSET):
-                    raise FcsFileError(path or None, f"$P{n}E (log amplification of channel {names[j]}) is "
-                                                     f"{pne!r}; FCS 3.1 gives 'decades,offset' and this "
-                                                     f"program reads up to {_MAX_DECADES:g} decades and "
-                                                     f"offsets up to {_MAX_LOG_OFFSET:g}")
             else:
                 notes.append(f"Channel {names[j]}: $P{n}E '{pne}' is not 'decades,offset'; "
                              "treated as linear.")
@@ -503,11 +523,6 @@ def _decode_scale(kw: Mapping[str, str], datatype: str, data: np.ndarray,
             ranges[j] = f2 * 10.0 ** f1
             continue
         gain = _float_or_none(kw.get(f"$P{n}G"))
-        if gain is not None and gain > 0 and gain != 1.0 and not _GAIN_BOUNDS[0] <= gain <= _GAIN_BOUNDS[1]:
-            raise FcsFileError(path or None, f"$P{n}G (amplifier gain of channel {names[j]}) is "
-                                             f"{kw.get(f'$P{n}G')!r}; gains between {_GAIN_BOUNDS[0]:g} and "
-                                             f"{_GAIN_BOUNDS[1]:g} are read (dividing by it would make the "
-                                             "values meaningless)")
         if gain is not None and gain > 0 and gain != 1.0 and not _is_time(names[j], labels[j]):
             data[:, j] /= gain  # FCS 3.1: linear scale value = channel / $PnG
             ranges[j] = rng / gain if rng is not None else np.nan
@@ -642,7 +657,7 @@ def _read_checked(path: str) -> EventFile:
                      ", ".join(f"'{a}' -> '{b}'" for a, b in renames) +
                      " (original names kept in the keywords).")
 
-    ranges = _decode_scale(keywords, datatype, data, names, labels, notes, path)
+    ranges = _decode_scale(keywords, datatype, data, names, labels, notes)
     bad = ~np.isfinite(data)
     if bad.any():
         notes.append(f"{int(bad.any(axis=1).sum())} events hold non-finite values (NaN or "
