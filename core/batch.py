@@ -99,8 +99,6 @@ from .progress import keep_going
 
 SUMMARY_NAME = "summary.csv"
 DONE_NAME = "done.json"
-#: Marks OUT_DIR as a batch output folder (its summary, README and recipe may be replaced).
-OUT_MARK = ".boscage-batch"
 BASE_COLUMNS = ["file", "events", "events_kept", "rare_events", "rare_percent"]
 TAIL_COLUMNS = ["heldout_loglik", "seconds", "status", "message"]
 
@@ -113,6 +111,8 @@ def _safe_name(text: str) -> str:
     return write_guard.clean_name(text, "region")
 
 
+#: Marks OUT_DIR as a batch output folder (its summary, README and recipe may be replaced).
+OUT_MARK = ".boscage-batch"
 #: Names the batch writes directly in OUT_DIR: no input's folder may take one.
 RESERVED_NAMES = (SUMMARY_NAME, "README.txt", "recipe.json", DONE_NAME, ".prepared-control", OUT_MARK)
 
@@ -141,6 +141,16 @@ def file_out_dir(out_dir: str, path: str, names: dict | None = None) -> str:
         raise ExportError(f"{base}: no output folder name distinct from the other inputs' can be made; "
                           "rename the file")
     return os.path.join(out_dir, name)
+
+
+def _region_file_names(names: Sequence[str], where: str) -> dict:
+    """File-name part of each region: safe, stable, distinct (``a/b`` and ``a_b`` never share a file)."""
+    out = write_guard.safe_unique_names(list(names), (), "region")
+    for name, part in out.items():
+        if part is None:
+            raise ExportError(f"{where}: region {name!r} cannot be given a file name distinct from the other "
+                              "regions'; rename it")
+    return out
 
 
 def _source_stamp(path: str) -> dict:
@@ -184,16 +194,12 @@ def process_file(task: dict) -> dict:
         _make_folder(folder)
         stem = os.path.basename(folder)
         extra = an.export_columns()
+        region_files = _region_file_names(list(an.region_masks), row["file"])
         export_events_fcs(os.path.join(folder, f"{stem} rare.fcs"), ef, an.rare, extra, task["digest"],
                           overwrite=True)
-        # region names that clean to one file name (a/b and a_b) get distinct, stable names
-        region_files = write_guard.safe_unique_names(list(an.region_masks), (), "region")
         for name, mask in an.region_masks.items():
-            if region_files[name] is None:
-                raise ExportError(f"{row['file']}: region {name!r} cannot be given a file name distinct from "
-                                  "the other regions'; rename it")
-            export_events_fcs(os.path.join(folder, f"{stem} region {region_files[name]}.fcs"), ef, mask,
-                              extra, task["digest"], overwrite=True)
+            export_events_fcs(os.path.join(folder, f"{stem} region {region_files[name]}.fcs"), ef, mask, extra,
+                              task["digest"], overwrite=True)
         row.update({"events": an.n_events, "events_kept": an.n_kept, "rare_events": an.n_rare,
                     "rare_percent": round(100.0 * an.n_rare / an.n_kept, 4) if an.n_kept else 0.0,
                     "heldout_loglik": round(an.heldout_loglik, 6)})
