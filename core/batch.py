@@ -814,10 +814,11 @@ def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, p
               "recipe_source": getattr(recipe_obj, "source", None), "digest": digest,
               "inputs_digest": key_digest, "control": control,
               "control_prepared": os.path.abspath(control_dir) if control_dir else None, "control_key": key,
-              "names": {os.path.basename(p): names[os.path.basename(p)]}, "protected": protected,
               "numba_threads": threads if (workers > 1 or numba_threads) and not scheduler else None}
              for p in todo]
     by_path = {t["path"]: p for t, p in zip(tasks, todo)}
+    for t, p in zip(tasks, todo):  # the file's output folder name and the run's inputs (never written)
+        t.update(names={os.path.basename(p): names[os.path.basename(p)]}, protected=protected)
 
     try:
         if not tasks or stop:

@@ -322,17 +322,26 @@ def _check_layout(path: str, header: dict, kw: Mapping[str, str], file_size: int
     k_end = _int_keyword(path, kw, "$ENDDATA") if "$ENDDATA" in kw else None
     start = h_start if h_start else (k_start or 0)
     end = h_end if h_end else (k_end or 0)
-    # Both places state the DATA segment: they must agree exactly (FCS 3.1 section 3.1),
-    # otherwise one of them is damaged and values would be read from the wrong byte.
-    for name, h, k in (("start", h_start, k_start), ("end", h_end, k_end)):
-        if h and k and h != k:
-            raise FcsFileError(path, f"the HEADER and the TEXT segment disagree on where the DATA segment "
-                                     f"{name}s (byte {h} in the HEADER, ${'BEGIN' if name == 'start' else 'END'}DATA "
-                                     f"{k}); the file is damaged")
     needed = n_tot * row_bytes
     _check_decoding(path, kw, n_par)
+    # Both places state the DATA segment (FCS 3.1 section 3.1).  The start decides where
+    # values are read: two different starts mean one is damaged, and the file is refused
+    # rather than read from a wrong byte.  With one start confirmed by both, two different
+    # ends are accepted when one of them fits $TOT events (that end is used; a note says so).
+    note = ""
+    if h_start and k_start and h_start != k_start:
+        raise FcsFileError(path, f"the HEADER and the TEXT segment disagree on where the DATA segment starts "
+                                 f"(byte {h_start} in the HEADER, $BEGINDATA {k_start}); the file is damaged")
+    if h_end and k_end and h_end != k_end:
+        fits = [e for e in (h_end, k_end) if needed and start and e - start + 1 in (needed, needed + 1)]
+        if len(fits) != 1:
+            raise FcsFileError(path, f"the HEADER and the TEXT segment disagree on where the DATA segment ends "
+                                     f"(byte {h_end} in the HEADER, $ENDDATA {k_end}); the file is damaged")
+        end = fits[0]
+        note = (f"The HEADER and $ENDDATA disagree on where the DATA segment ends ({h_end} and {k_end}); "
+                f"byte {end}, which fits $TOT events, was used.")
     layout = {"n_tot": n_tot, "n_par": n_par, "datatype": datatype, "bits": bits, "ranges": ranges,
-              "byteorder": _BYTE_ORDERS[byteord], "start": start, "row_bytes": row_bytes}
+              "byteorder": _BYTE_ORDERS[byteord], "start": start, "row_bytes": row_bytes, "note": note}
     if needed == 0:
         # $TOT 0: an empty file is fine, but a DATA segment holding events is not (FCS 3.1: $TOT
         # is the number of events in the data set; reading 0 events would lose them silently)
@@ -409,6 +418,8 @@ def _read_raw_events(path: str, handle, layout: dict, notes: list) -> np.ndarray
     keeps every stored bit (a note says so).
     """
     n_tot, n_par, row = layout["n_tot"], layout["n_par"], layout["row_bytes"]
+    if layout.get("note"):
+        notes.append(layout["note"])
     if n_tot == 0:
         return np.zeros((0, n_par), dtype=np.float64)
     needed = n_tot * row

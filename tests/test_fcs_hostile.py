@@ -92,6 +92,20 @@ def test_a_data_start_a_few_bytes_early_is_an_error_not_a_shift(tmp_path, early,
         read_fcs(p)
 
 
+def test_an_end_offset_that_disagrees_is_resolved_only_by_a_confirmed_start(tmp_path):
+    n = VALUES.size * 2
+    # same start in HEADER and TEXT, HEADER end damaged: the $ENDDATA that fits $TOT is used
+    p = int16_file(tmp_path / "end.fcs", VALUES, header_data=(DATA_START, DATA_START + n + 40))
+    ef = read_fcs(p)
+    np.testing.assert_array_equal(ef.data, VALUES)
+    assert any("disagree" in note for note in ef.notes)
+    # neither end fits $TOT: refused
+    p = int16_file(tmp_path / "end2.fcs", VALUES, header_data=(DATA_START, DATA_START + n + 40),
+                   extra=[("$TOT", "3")])
+    with pytest.raises(FcsFileError, match="disagree"):
+        read_fcs(p)
+
+
 def test_a_range_beyond_the_stored_bits_keeps_every_bit_with_a_note(tmp_path):
     # finding: $PnR 4294967296 on a 16-bit channel gave all zeros with only a cast warning
     p = int16_file(tmp_path / "bigrange.fcs", VALUES, extra=[("$P1R", "4294967296")])
