@@ -31,8 +31,15 @@ data set as a float64 matrix of shape (events x channels), in *scale* units:
 
 The HEADER, TEXT offsets and ``$TOT x $PAR x $PnB`` are checked against the
 file size *before* any event is read, so a damaged header cannot make the
-reader allocate memory the file cannot fill.  Everything broken raises
-:class:`~core.errors.FcsFileError` naming the file and the problem.
+reader allocate memory the file cannot fill.  The DATA segment is located
+exactly: the HEADER and ``$BEGINDATA`` must give the same start, it may not
+overlap the HEADER or TEXT, and it must hold exactly ``$TOT`` events (one byte
+more only with a start confirmed by both; some writers end one byte late), so
+no tolerance can shift values.  The decoding keywords are bounded
+(:func:`_check_decoding`).  The path is checked before opening (non-regular
+files are never opened).  Everything broken raises
+:class:`~core.errors.FcsFileError` naming the file and the problem; no other
+exception type leaves :func:`read_fcs`.
 
 Writing
 -------
