@@ -34,7 +34,7 @@ from typing import Callable, Iterable, Sequence
 from .errors import ExportError
 
 _LOCK = threading.Lock()
-_INPUT_IDS: set = set()       # (st_dev, st_ino) of inputs
+_INPUT_IDS: dict = {}         # (st_dev, st_ino) of inputs -> (size, mtime_ns) when registered
 _INPUT_NAMES: set = set()     # casefolded real paths of inputs
 _ABORT_CHECK: list = [None]   # callable() -> None, raises (or exits) when writing must stop
 
@@ -62,7 +62,7 @@ def protect(paths: str | os.PathLike | Iterable) -> None:
             _INPUT_NAMES.add(_folded(p))
             try:
                 st = os.stat(p)
-                _INPUT_IDS.add((st.st_dev, st.st_ino))
+                _INPUT_IDS[(st.st_dev, st.st_ino)] = (st.st_size, st.st_mtime_ns)
             except OSError:
                 pass
 
@@ -77,7 +77,9 @@ def is_input(path: str | os.PathLike) -> bool:
             st = os.stat(path)
         except OSError:
             return False
-        return (st.st_dev, st.st_ino) in _INPUT_IDS
+        # the same inode with the same size and time: the input itself or a hard link to it
+        # (an inode reused after the input was deleted has another time, and is not refused)
+        return _INPUT_IDS.get((st.st_dev, st.st_ino)) == (st.st_size, st.st_mtime_ns)
 
 
 def set_abort_check(check: Callable[[], None] | None) -> None:
