@@ -1082,6 +1082,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     except BoscageError as exc:
         print(f"boscage batch: {exc}", file=sys.stderr)
         return 2
+    except OSError as exc:  # a failing disk or folder mid-run: a sentence, not a traceback
+        print(f"boscage batch: {exc.filename or args.out}: {exc.strerror or exc}; finished files are kept "
+              "and a re-run completes the rest", file=sys.stderr)
+        return 1
     print(f"\n{result.n_ok} of {len(result.rows)} files ok, {result.n_failed} failed"
           + (f", {result.n_skipped} finished earlier and skipped" if result.n_skipped else "")
           + (" (stopped by the user)" if result.interrupted else "")

@@ -259,3 +259,20 @@ def test_kill_9_of_the_batch_leaves_no_process_and_no_later_write(tmp_path):
     assert res.n_ok == 6
     assert not [f for f in _snapshot(out) if f.endswith(".part")]
     assert os.path.isfile(out / OUT_MARK)
+
+
+def test_names_that_cannot_be_made_distinct_are_reported_per_file(tmp_path, monkeypatch):
+    # two hashed names can only meet if their 8 hex digits collide; force that to see the report
+    from core import write_guard
+
+    monkeypatch.setattr(write_guard, "short_hash", lambda text: "00000000")
+    inp, out = tmp_path / "in", tmp_path / "out"
+    inp.mkdir()
+    for k, name in enumerate(["a:b.fcs", "a;b.fcs", "plain.fcs"]):
+        write_events(inp / name, seed=k)
+    res = run_batch(str(inp), str(out), recipe=tiny_recipe(), workers=1)
+    status = {r["file"]: r["status"] for r in res.rows}
+    assert status == {"a:b.fcs": "error", "a;b.fcs": "error", "plain.fcs": "ok"}
+    assert all("rename the file" in r["message"] for r in res.rows if r["status"] == "error")
+    assert sorted(os.listdir(out)) == sorted([".boscage-batch", "README.txt", "plain", "recipe.json",
+                                              SUMMARY_NAME])
