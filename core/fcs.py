@@ -849,8 +849,9 @@ def write_fcs(path: str | os.PathLike, data, channel_names: Sequence[str],
     if not any(str(k).strip().upper() == "BOSCAGE_VERSION" for k in keywords):
         # marks the file as written here: core.write_guard lets only such FCS files be replaced
         from . import __version__
-        keywords["BOSCAGE_VERSION"] = __version__
-    for key, value in keywords.items():
+        keywords = {"BOSCAGE_VERSION": __version__, **keywords}
+    # the mark first, so a reader of the first bytes finds it whatever follows
+    for key, value in sorted(keywords.items(), key=lambda kv: str(kv[0]).strip().upper() != "BOSCAGE_VERSION"):
         key = str(key).strip()
         value = "" if value is None else str(value)
         if not key or not value:

@@ -37,6 +37,7 @@ _LOCK = threading.Lock()
 _INPUT_IDS: dict = {}         # (st_dev, st_ino) of inputs -> (size, mtime_ns) when registered
 _INPUT_NAMES: set = set()     # casefolded real paths of inputs
 _ABORT_CHECK: list = [None]   # callable() -> None, raises (or exits) when writing must stop
+_SEEN: set = set()            # paths already given to protect() (skips repeated work)
 
 #: Bytes of an existing FCS file looked at to decide whether this program wrote it.
 _OWN_MARK_BYTES = 1 << 16
@@ -58,7 +59,10 @@ def protect(paths: str | os.PathLike | Iterable) -> None:
             continue
         if isinstance(p, bytes):
             p = os.fsdecode(p)
+        if p in _SEEN:
+            continue
         with _LOCK:
+            _SEEN.add(p)
             _INPUT_NAMES.add(_folded(p))
             try:
                 st = os.stat(p)
@@ -88,13 +92,24 @@ def set_abort_check(check: Callable[[], None] | None) -> None:
 
 
 def _is_foreign_fcs(path: str) -> bool:
-    """True for an existing FCS file whose first 64 kB carry no mark of this program."""
+    """True for an existing FCS file whose TEXT segment carries no mark of this program."""
     try:
         with open(path, "rb") as fh:
             head = fh.read(_OWN_MARK_BYTES)
+            if not (head[:3] == b"FCS" and head[3:6].replace(b".", b"").isdigit()):
+                return False
+            if _OWN_MARK in head:
+                return False
+            try:  # a long TEXT segment (a large spillover matrix): read it whole, up to 16 MB
+                t0, t1 = int(head[10:18]), int(head[18:26])
+            except ValueError:
+                return True
+            if t1 < len(head) or t1 <= t0:
+                return True
+            fh.seek(t0)
+            return _OWN_MARK not in fh.read(min(t1 - t0 + 1, 1 << 24))
     except OSError:
         return False
-    return head[:3] == b"FCS" and head[3:6].replace(b".", b"").isdigit() and _OWN_MARK not in head
 
 
 def check_target(path: str | os.PathLike, overwrite: bool = False, sources: Sequence = ()) -> str:
@@ -187,8 +202,16 @@ def check_output_folder(out_dir: str, input_dirs: Sequence[str], what: str = "--
 
 # --------------------------------------------------------------------------- names
 
-#: Longest name part kept from an input stem or region name (characters).
-_MAX_NAME = 120
+#: Longest name part kept from an input stem or region name (UTF-8 bytes): a batch file
+#: name holds two of them plus about 30 bytes, within the usual 255-byte limit.
+_MAX_NAME = 100
+
+
+def _shorten(text: str, limit: int = _MAX_NAME) -> str:
+    """``text`` cut to at most ``limit`` UTF-8 bytes (whole characters)."""
+    while len(text.encode("utf-8", "surrogatepass")) > limit:
+        text = text[:-1]
+    return text
 
 
 def clean_name(text: str, fallback: str = "unnamed") -> str:
@@ -209,7 +232,7 @@ def safe_unique_names(originals: Sequence[str], reserved: Iterable[str] = (), fa
 
     Each name is made from ``bases[i]`` (default: the original itself; for
     input files the stem of the file name) and kept as it is when
-    :func:`clean_name` leaves it unchanged, it is at most 120 characters long,
+    :func:`clean_name` leaves it unchanged, it is at most 100 UTF-8 bytes long,
     it is not one of ``reserved`` and no other base of the list equals it
     ignoring case.  Otherwise it becomes ``<cleaned, shortened> #<8 hex
     digits>`` (hash of the original), so the same original always gets the
@@ -226,9 +249,9 @@ def safe_unique_names(originals: Sequence[str], reserved: Iterable[str] = (), fa
         counts[c.casefold()] = counts.get(c.casefold(), 0) + 1
     out: dict = {}
     for o, c, b in zip(originals, cleaned, bases):
-        plain = (c == b and len(c) <= _MAX_NAME and c.casefold() not in taken_reserved
-                 and counts[c.casefold()] == 1)
-        out[o] = c if plain else f"{c[:_MAX_NAME].rstrip(' .') or fallback} #{short_hash(o)}"
+        plain = (c == b and len(c.encode("utf-8", "surrogatepass")) <= _MAX_NAME
+                 and c.casefold() not in taken_reserved and counts[c.casefold()] == 1)
+        out[o] = c if plain else f"{_shorten(c).rstrip(' .') or fallback} #{short_hash(o)}"
     seen: dict = {}
     for o, n in out.items():
         seen.setdefault(n.casefold(), []).append(o)
