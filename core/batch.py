@@ -412,11 +412,13 @@ def _die_with_parent(parent_pid: int) -> None:
     On Linux the kernel sends SIGKILL when the worker's parent (the fork server)
     exits (``prctl(PR_SET_PDEATHSIG)``); everywhere a watchdog thread checks the
     batch process every 0.2 s and ends the worker, and the write guard checks it
-    before every rename, so an orphaned worker never writes.
+    before every rename, so an orphaned worker never writes (POSIX systems).
     """
     import signal
     import threading
 
+    if os.name != "posix":
+        return  # os.kill(pid, 0) would end the process on Windows; spawned workers are not orphaned there
     if sys.platform.startswith("linux"):
         try:
             import ctypes
