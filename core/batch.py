@@ -410,9 +410,9 @@ def _die_with_parent(parent_pid: int) -> None:
     """Make this worker end when the batch's process ``parent_pid`` ends, even by ``kill -9``.
 
     On Linux the kernel sends SIGKILL when the worker's parent (the fork server)
-    exits (``prctl(PR_SET_PDEATHSIG)``); everywhere a watchdog thread checks the
+    exits (``prctl(PR_SET_PDEATHSIG)``); on every POSIX system a watchdog thread checks the
     batch process every 0.2 s and ends the worker, and the write guard checks it
-    before every rename, so an orphaned worker never writes (POSIX systems).
+    before every rename, so an orphaned worker never writes.
     """
     import signal
     import threading
