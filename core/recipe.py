@@ -407,6 +407,8 @@ def load_recipe(path: str | os.PathLike) -> Recipe:
     """Read and check a recipe file; RecipeError naming the file for anything wrong."""
     path = os.fspath(path)
     where = _where(path)
+    if os.path.exists(path) and not os.path.isfile(path):  # a folder or a named pipe (would block)
+        raise RecipeError(f"{where}not a regular file (a folder, named pipe or device) (file: {path})")
     try:
         with open(path, "r", encoding="utf-8") as handle:
             text = handle.read()

@@ -191,3 +191,12 @@ def test_deeply_nested_recipe_is_our_error(tmp_path):
     p.write_text("[" * 100_000 + "]" * 100_000)
     with pytest.raises(RecipeError, match="nested"):
         load_recipe(str(p))
+
+
+@pytest.mark.skipif(not hasattr(os, "mkfifo"), reason="named pipes need a POSIX system")
+def test_a_named_pipe_or_folder_as_recipe_is_our_error(tmp_path):
+    fifo = tmp_path / "r.json"
+    os.mkfifo(fifo)
+    for p in (fifo, tmp_path):
+        with pytest.raises(RecipeError, match="regular file"):
+            load_recipe(str(p))
