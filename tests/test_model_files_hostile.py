@@ -78,6 +78,10 @@ def test_settings_and_sample_counts_raise_our_errors(events, model_file):
         AdditiveTreeDensity(learning_rate=2.0).fit(events)
     with pytest.raises(EventDataError):
         AdditiveTreeDensity().fit(np.zeros((100, 0)))
+    with pytest.raises(ParameterError):
+        AdditiveTreeDensity().set_params(no_such_setting=1)
+    with pytest.raises(ParameterError):
+        AdditiveTreeDensity(n_trees="many").fit(events)
 
 
 def _rewrite(src, dst, change):

@@ -325,7 +325,7 @@ class AdditiveTreeDensity:
     def set_params(self, **params) -> "AdditiveTreeDensity":
         for k, v in params.items():
             if k not in self._PARAMS:
-                raise ValueError(f"unknown parameter {k!r}")
+                raise ParameterError(f"unknown density engine setting {k!r}; settings: {', '.join(self._PARAMS)}")
             setattr(self, k, v)
         return self
 
