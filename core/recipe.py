@@ -58,6 +58,7 @@ from dataclasses import dataclass, field
 from typing import Any, Mapping
 
 from . import SOFTWARE_NAME, __version__
+from . import safe_json
 from .atomic import atomic_write
 from .errors import BoscageError, CompensationError, RecipeError, RegionError
 from .channel_kinds import FLUORESCENCE, SCATTER, channel_kind, is_fluorescence, one_measure_per_detector
@@ -404,6 +405,8 @@ def load_recipe(path: str | os.PathLike) -> Recipe:
     """Read and check a recipe file; RecipeError naming the file for anything wrong."""
     path = os.fspath(path)
     where = _where(path)
+    if os.path.exists(path) and not os.path.isfile(path):  # a folder or a named pipe (would block)
+        raise RecipeError(f"{where}not a regular file (a folder, named pipe or device) (file: {path})")
     try:
         with open(path, "r", encoding="utf-8") as handle:
             text = handle.read()
@@ -414,7 +417,7 @@ def load_recipe(path: str | os.PathLike) -> Recipe:
     except OSError as exc:
         raise RecipeError(f"{where}cannot read the file ({exc.strerror or exc}) (file: {path})") from exc
     try:
-        d = json.loads(text, parse_constant=_reject_constant)
+        d = safe_json.loads(text, parse_constant=_reject_constant)  # bounded nesting: no RecursionError
     except json.JSONDecodeError as exc:
         raise RecipeError(f"{where}not valid JSON at line {exc.lineno}, column {exc.colno}: {exc.msg} "
                           f"(file: {path})") from None
