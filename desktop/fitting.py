@@ -37,7 +37,7 @@ def fit_text(a) -> str:
     else:
         how = f"{start + ' + ' if start else ''}{n_trees if n_trees is not None else '?'} trees"
     return (f"Fitted: {how}. Held-out score {a.heldout_loglik:.3f} nats per event; "
-            f"{a.n_kept:,} of {a.n_events:,} events kept; {secs:.1f} s.")
+            f"{a.cleaning_text()}; {secs:.1f} s.")
 
 
 def compute_contours(analysis, pairs, extents, progress=None) -> list:

@@ -23,7 +23,8 @@ def _fake_fit(tube, enriched=None):
     ld = np.random.default_rng(n).normal(size=n)
     return SimpleNamespace(log_density=ld, rarity=rarity_percentile(ld), kept=np.ones(n, bool), n_kept=n,
                            n_events=n, enriched=enriched, contrast=None, model=None, reason=np.full(n, ""),
-                           values=tube.values, heldout_loglik=0.0, timing={"total": 0.0}, info={})
+                           values=tube.values, heldout_loglik=0.0, timing={"total": 0.0}, info={},
+                           cleaning_text=lambda: f"{n:,} of {n:,} events kept")
 
 
 def test_switch_tubes_after_fit_contrast_and_region_edit(qtbot, window, tmp_path, messages):
