@@ -16,6 +16,7 @@ from PySide6.QtWidgets import (QComboBox, QDialog, QDialogButtonBox, QFileDialog
                                QMessageBox, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget, QCheckBox)
 
 from core import RESEARCH_USE_NOTE
+from core.batch import output_folder_names
 from core.errors import ExportError
 from core.files import list_fcs_files
 
@@ -266,6 +267,13 @@ class BatchDialog(QDialog):
         if control and control in files:
             text += (f". The control {os.path.basename(control)} is in this folder: it is the reference every "
                      "file is compared with, so it is not analysed itself.")
+        if runs:
+            # the batch's own naming rule (core.batch.output_folder_names), not one of ours
+            name = output_folder_names(runs).get(os.path.basename(runs[0]))
+            if name:
+                text += ("" if text.endswith(".") else ".") + (
+                    f" Each file gets a folder of results named by the batch, e.g. {name}/ with "
+                    f"'{name} rare.fcs' and one file per region.")
         self.files_label.setText(text if files else ("No FCS files in this folder." if folder else ""))
         self._n_files = len(runs)
 

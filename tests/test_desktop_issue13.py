@@ -225,6 +225,11 @@ def test_batch_dialog_defaults_and_control(qtbot, window, tmp_path):
     assert dlg.workers.value() == (os.cpu_count() or 1)
     text = dlg.files_label.text()
     assert text.startswith("2 FCS file(s)") and "ctrl.fcs is in this folder" in text and "not analysed" in text
+    # output names are the batch's (core.batch.output_folder_names), shown before the run
+    from core.batch import output_folder_names
+
+    first = output_folder_names([str(folder / "s1.fcs")])["s1.fcs"]
+    assert f"{first}/" in text and f"'{first} rare.fcs'" in text
 
 
 def test_pairs_from_lists_scales_apply_and_fitted_mark(qtbot, window, tmp_path):
