@@ -250,12 +250,15 @@ def assign_parts(n: int, folds: int, seed) -> np.ndarray:
 
 
 def _staged(progress, stage: str):
-    """Relay progress reports with ``{"stage": stage, "heldout_loglik": info}`` as info."""
+    """Relay a fit's progress with ``info = {"stage": "<stage>[ -- <the fit's own stage>]",
+    "heldout_loglik": ...}``: which model is being fitted, and how far."""
     if progress is None:
         return None
 
     def relay(step, total, info=None):
-        return progress(step, total, {"stage": stage, "heldout_loglik": info})
+        inner = info.get("stage") if isinstance(info, dict) else None
+        ll = info.get("heldout_loglik") if isinstance(info, dict) else info
+        return progress(step, total, {"stage": f"{stage} -- {inner}" if inner else stage, "heldout_loglik": ll})
     return relay
 
 

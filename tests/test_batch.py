@@ -227,13 +227,22 @@ def write_control(path, n=3000, seed=50):
     write_fcs(str(path), data, list(CHANNELS), channel_ranges=[RANGE] * len(CHANNELS))
 
 
+def write_treated(path, n, seed):
+    """Events like make_events with a new CD8-bright population of 2.5 % (big enough to be found at a
+    false discovery rate of 5 % against a 2,000-event control: see core.contrast)."""
+    data = make_events(n, seed)
+    rng = np.random.default_rng(seed + 2)
+    data[: n // 40, 4] = np.round(rng.lognormal(10.5, 0.1, n // 40))
+    write_fcs(str(path), data, list(CHANNELS), channel_ranges=[RANGE] * len(CHANNELS))
+
+
 @pytest.fixture(scope="module")
 def control_folder(tmp_path_factory):
     base = tmp_path_factory.mktemp("batch_control")
     inp = base / "in"
     inp.mkdir()
-    write_events(inp / "p1.fcs", n=1500, seed=21)
-    write_events(inp / "p2.fcs", n=2000, seed=22)
+    write_treated(inp / "p1.fcs", n=1500, seed=21)
+    write_treated(inp / "p2.fcs", n=2000, seed=22)
     write_control(base / "control one.fcs", n=2000, seed=50)
     write_control(base / "control two.fcs", n=2000, seed=60)
     recipe = small_recipe(regions=[])
@@ -263,7 +272,7 @@ def test_contrast_with_a_prepared_control_equals_the_contrast_with_the_control_v
     assert shared.threshold == direct.threshold and shared.count == direct.count > 0
     # every finite control event is in the reference, scored by the part model that did not see it
     assert shared.n_control == direct.n_control == pc.n_events == 1499
-    assert not shared.info["control_prepared"] and direct.info["control_prepared"] is False
+    assert shared.info["control_prepared"] is True and direct.info["control_prepared"] is False
     with pytest.raises(EventDataError, match="prepared control"):   # split settings must match
         contrast(T, None, engine=engine, prepared_control=pc, folds=4)
 
@@ -435,3 +444,45 @@ def test_a_changed_spillover_csv_redoes_finished_files(tmp_path):
     assert (out / "a" / "done.json").read_text(encoding="utf-8") != marker_before
     assert redone.rows[0]["heldout_loglik"] != first.rows[0]["heldout_loglik"]
     assert os.path.isfile(out / "a" / "a rare.fcs")
+
+
+def test_batch_writes_the_enriched_events_with_p_and_q_and_the_shift_warning(control_folder, tmp_path):
+    # reference: fcsparser reads the exported FCS 3.1 files back (its own parser, not ours)
+    from core.contrast import shift_check
+
+    base, inp, recipe, reference = control_folder
+    # a control whose CD4 detector ran 30 % hotter: an instrument-like difference on one channel
+    shifted = read_fcs(str(base / "control one.fcs"))
+    data = shifted.data.copy()
+    data[:, CHANNELS.index("CD4")] *= 1.3
+    write_fcs(str(tmp_path / "control hot.fcs"), data, list(CHANNELS), channel_ranges=[RANGE] * len(CHANNELS))
+    out = tmp_path / "o"
+    res = run_batch(str(inp), str(out), recipe=recipe, control=str(tmp_path / "control hot.fcs"), workers=1,
+                    csv=True)
+    assert [r["status"] for r in res.rows] == ["ok", "ok"], res.rows
+    summary = pd.read_csv(out / "summary.csv").set_index("file")
+    for col in ("enriched", "enriched_percent", "expected_false", "false_discovery_rate", "min_fold",
+                "shift_warning"):
+        assert col in summary.columns
+    for name in ("p1.fcs", "p2.fcs"):
+        row = summary.loc[name]
+        assert row["false_discovery_rate"] == 0.05 and row["min_fold"] == 2.0
+        assert "CD4" in row["shift_warning"] and "CD3" not in row["shift_warning"].split(":")[1][:20]
+        stem = os.path.splitext(name)[0]
+        folder = file_out_dir(str(out), name)
+        meta, df = fcsparser.parse(os.path.join(folder, f"{stem} enriched.fcs"), reformat_meta=True)
+        assert len(df) == int(row["enriched"])
+        assert {"contrast score", "contrast p", "contrast q"} <= set(df.columns)
+        assert (df["contrast q"] <= 0.05).all() and (df["contrast p"] <= df["contrast q"] + 1e-12).all()
+        assert (df["contrast score"] >= np.log(2.0) - 1e-6).all() and (df["enriched"] == 1).all()
+        assert meta["BOSCAGE_CONTROL"] == "control hot.fcs" and float(meta["BOSCAGE_FDR"]) == 0.05
+        assert "CD4" in meta["BOSCAGE_SHIFT_WARNING"]
+        # the CSV copy holds the same events (transformed values) after the caution line
+        table = pd.read_csv(os.path.join(folder, f"{stem} enriched.csv"), comment="#")
+        assert len(table) == len(df) and "contrast q" in table.columns
+    # the warning is the core shift check on the two files' density inputs
+    from core.analysis import density_input
+
+    t = density_input(read_fcs(str(inp / "p1.fcs")), recipe)[0].matrix
+    c = density_input(read_fcs(str(tmp_path / "control hot.fcs")), recipe)[0].matrix
+    assert shift_check(t, c, recipe.channels).moved[0] == "CD4"

@@ -162,7 +162,7 @@ def test_prepared_control_holds_every_control_event_scored_out_of_part():
     assert pc.n_events == 1499 and pc.folds == 3 and len(pc.models) == 3
     for k in range(3):
         np.testing.assert_allclose(pc.log_control[pc.part == k], pc.models[k].score_samples(pc.events[pc.part == k]))
-    assert calls[0] == "Control model, part 1 of 3" and calls[-1] == "Control model, part 3 of 3"
+    assert calls[0].startswith("Control model, part 1 of 3") and calls[-1].startswith("Control model, part 3 of 3")
 
 
 def test_nan_rows_are_never_enriched_and_cancel_stops():
