@@ -696,6 +696,7 @@ class MainWindow(QMainWindow):
         self.fit_panel.started()
         if control:
             self.contrast_panel.started(control)
+            self.fit_panel.status.setText("Contrasting with a control: progress in the Contrast panel")
             self.notebook.setCurrentWidget(self.contrast_panel)
         self._fit_t0 = time.perf_counter()
 
