@@ -198,32 +198,22 @@ def enriched_summary(res: Any) -> dict:
             "min_fold": res.min_fold, "shift_warning": res.shift.text if res.shift is not None else ""}
 
 
-def enriched_keywords(an: Any) -> dict:
-    """Provenance keywords of an enriched-events export: control file, rate, minimum fold, shift warning."""
-    res = an.contrast
-    kw = {"BOSCAGE_CONTROL": os.path.basename(str(an.info.get("control") or "")) or "unknown",
-          "BOSCAGE_FDR": repr(float(res.rate)), "BOSCAGE_MIN_FOLD": repr(float(res.min_fold)),
-          "BOSCAGE_ENRICHED": f"{res.count} of {res.info.get('n_test', '')} kept events; about "
-                              f"{res.expected_false:.1f} expected false discoveries"}
-    if res.shift is not None and res.shift.warn:
-        kw["BOSCAGE_SHIFT_WARNING"] = res.shift.text
-    return kw
-
-
 def export_enriched(folder: str, stem: str, event_file: Any, an: Any, digest: str, csv: bool = False) -> list:
     """Write ``<stem> enriched.fcs`` (and ``<stem> enriched.csv`` when ``csv``) in ``folder``.
 
     The enriched events of ``an`` (a contrasted :class:`core.analysis.Analysis`)
     with the added columns of :meth:`~core.analysis.Analysis.export_columns`
     (``contrast score``, ``contrast p``, ``contrast q`` among them); the FCS
-    file carries :func:`enriched_keywords`.  The CSV holds the transformed
+    file carries :func:`core.contrast.contrast_keywords`.  The CSV holds the transformed
     values as the analysis saw them.  Returns the paths written.
     """
+    from .contrast import contrast_keywords
     from .export import export_events_csv, export_events_fcs
 
     extra = an.export_columns()
+    kw = contrast_keywords(an.contrast, an.info.get("control"))
     paths = [export_events_fcs(os.path.join(folder, f"{stem} enriched.fcs"), event_file, an.enriched, extra,
-                               digest, overwrite=True, extra_keywords=enriched_keywords(an))]
+                               digest, overwrite=True, extra_keywords=kw)]
     if csv:
         paths.append(export_events_csv(os.path.join(folder, f"{stem} enriched.csv"), an.channel_names, an.values,
                                        an.enriched, extra, overwrite=True, source_paths=[an.path]))

@@ -233,6 +233,21 @@ class ContrastResult:
                 "shift_warning": self.shift.text if self.shift is not None else ""}
 
 
+def contrast_keywords(res: ContrastResult, control: str | None) -> dict:
+    """FCS TEXT keywords recording a contrast in an export: ``BOSCAGE_CONTROL`` (the control's
+    file name), ``BOSCAGE_FDR``, ``BOSCAGE_MIN_FOLD``, ``BOSCAGE_ENRICHED`` and, when raised,
+    ``BOSCAGE_SHIFT_WARNING``."""
+    import os
+
+    kw = {"BOSCAGE_CONTROL": os.path.basename(str(control or "")) or "unknown",
+          "BOSCAGE_FDR": repr(float(res.rate)), "BOSCAGE_MIN_FOLD": repr(float(res.min_fold)),
+          "BOSCAGE_ENRICHED": f"{res.count} of {res.info.get('n_test', '')} kept events; about "
+                              f"{res.expected_false:.1f} expected false discoveries"}
+    if res.shift is not None and res.shift.warn:
+        kw["BOSCAGE_SHIFT_WARNING"] = res.shift.text
+    return kw
+
+
 def _default_factory(engine: Mapping | None, random_state: int) -> Callable:
     def fit(X, progress=None):
         from .density import AdditiveTreeDensity

@@ -508,6 +508,7 @@ def test_contrast_with_control_highlights_enriched(qtbot, window, tmp_path):
     assert len(df) == int(a.enriched.sum())
     assert (df["contrast q"] <= 0.05).all() and (df["contrast p"] > 0).all()
     assert (df[f"region {name}"] == 1).all()
+    assert meta["BOSCAGE_CONTROL"] == "control.fcs" and float(meta["BOSCAGE_FDR"]) == 0.05
 
 
 def test_scale_editor_keeps_small_factors(qtbot, window, tmp_path):
