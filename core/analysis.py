@@ -344,7 +344,9 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
     the recipe's ``comparison`` section).  ``control`` may also be a
     :class:`core.contrast.PreparedControl` from :func:`prepare_control_file`
     with the same recipe: the control is then not refitted (same result).
-    Enriched regions (``core.regions``) are evaluated after the contrast.
+    Enriched regions (``core.regions``) are evaluated after the contrast; without
+    a control they, and regions built on them, are left out of ``region_masks``
+    (named in ``info["regions_without_control"]``).
     """
     from .density import AdditiveTreeDensity
     from .rare import rare_events, rarity_percentile
@@ -386,8 +388,13 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
     if region_dicts:
         regions = recipe.region_set() if hasattr(recipe, "region_set") else RegionSet.from_dict(region_dicts)
         by_channel = {name: values[:, j] for j, name in enumerate(event_file.channel_names)}
-        if control is None or not any(r.kind == "enriched" for r in regions):
-            masks = regions.evaluate(by_channel, rarity, n_events=n)  # enriched regions: after the contrast
+        needs_control = regions.depending_on("enriched")
+        if not needs_control:
+            masks = regions.evaluate(by_channel, rarity, n_events=n)
+        elif control is None:  # regions of new events mean nothing without a control: left out
+            masks = RegionSet([r for r in regions if r.name not in needs_control]).evaluate(by_channel, rarity,
+                                                                                            n_events=n)
+        # with a control, regions of new events are evaluated after the contrast
     timing["regions"] = time.perf_counter() - t3
 
     result = Analysis(path=os.fspath(event_file.path), channel_names=list(event_file.channel_names),
@@ -396,6 +403,8 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
                       rare_level=rare_res.log_level, reason=np.asarray(prepared.reason).astype(str),
                       region_masks=masks, heldout_loglik=float(getattr(model, "heldout_loglik_", np.nan)),
                       timing=timing, recipe=recipe, cancelled=bool(stopped))
+    if regions is not None and control is None and regions.depending_on("enriched"):
+        result.info["regions_without_control"] = regions.depending_on("enriched")
 
     if control is not None and not stopped:
         t4 = time.perf_counter()
@@ -423,7 +432,7 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
         result.enriched = np.zeros(n, dtype=bool)
         result.enriched[prepared.kept] = res.enriched
         result.info["control"] = control_path
-        if regions is not None and any(r.kind == "enriched" for r in regions):
+        if regions is not None and regions.depending_on("enriched"):
             result.region_masks = regions.evaluate(by_channel, rarity, n_events=n, enriched=result.enriched)
         timing["contrast"] = time.perf_counter() - t4
     timing["total"] = time.perf_counter() - t0

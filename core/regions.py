@@ -628,6 +628,15 @@ class RegionSet:
                     stack.append((nxt, iter(self._regions[nxt].references())))
         return order
 
+    def depending_on(self, kind: str) -> list[str]:
+        """Names of the regions of ``kind`` and of those referring to one (through parents or operands)."""
+        out: list[str] = []
+        for name in self._order():  # references first
+            r = self._regions[name]
+            if r.kind == kind or any(ref in out for ref in r.references()):
+                out.append(name)
+        return [n for n in self._regions if n in out]
+
     def channels_used(self) -> list[str]:
         """Channels the geometric regions use, in first-use order."""
         seen: dict[str, None] = {}

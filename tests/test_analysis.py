@@ -13,7 +13,7 @@ from scipy import stats
 
 from core.analysis import analyse, compensated_and_transformed
 from core.compensation import spillover_to_keyword, SpilloverMatrix
-from core.errors import RecipeError, RegionError
+from core.errors import RecipeError
 from core.fcs import EventFile, read_fcs, write_fcs
 from core.recipe import Recipe
 
@@ -179,5 +179,10 @@ def test_enriched_region_is_evaluated_after_the_contrast(tmp_path):
     an = analyse(str(tmp_path / "treated.fcs"), r, control=str(tmp_path / "control.fcs"))
     np.testing.assert_array_equal(an.region_masks["new"], an.enriched)
     assert an.enriched.sum() > 0
-    with pytest.raises(RegionError, match="control"):   # no control: the region cannot be evaluated
-        analyse(str(tmp_path / "treated.fcs"), r)
+    # without a control the region (and those built on it) is left out; the others are evaluated
+    r.regions.append({"name": "not new", "kind": "not", "operands": ["new"]})
+    r.regions.append({"name": "CD3 any", "kind": "interval", "channels": ["CD3"], "low": -100.0, "high": None,
+                      "transforms": {"CD3": dict(ARCSINH)}})
+    plain = analyse(str(tmp_path / "treated.fcs"), r)
+    assert list(plain.region_masks) == ["CD3 any"]
+    assert plain.info["regions_without_control"] == ["new", "not new"]

@@ -297,6 +297,7 @@ def test_enriched_region_takes_the_contrast_mask():
     rs = RegionSet.from_dict([{"name": "new", "kind": "enriched", "control": "ctrl.fcs"},
                               {"name": "not new", "kind": "not", "operands": ["new"]}])
     assert isinstance(rs["new"], EnrichedRegion)
+    assert rs.depending_on("enriched") == ["new", "not new"] and rs.depending_on("rarity") == []
     masks = rs.evaluate({}, None, 4, enriched=enriched)
     np.testing.assert_array_equal(masks["new"], enriched)
     np.testing.assert_array_equal(masks["not new"], ~enriched)
