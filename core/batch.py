@@ -9,11 +9,11 @@ Every ``*.fcs`` file directly in INPUT_DIR (sorted by name, case-insensitive
 extension) goes through the same recipe -- the given one, or the default recipe
 of the first readable file (:func:`core.recipe.default_recipe`).  For each file
 :func:`core.analysis.analyse` fits the density, flags rare events and evaluates
-the recipe's regions; then, in ``OUT_DIR/<file stem>/``:
+the recipe's regions; then, in ``OUT_DIR/<file stem>/`` (see :func:`output_folder_names`):
 
 * ``<stem> rare.fcs`` -- the rare events, and ``<stem> region <name>.fcs`` per
   region: the ORIGINAL raw values plus added parameters ``log density``,
-  ``rarity percentile``, ``cleaning flag`` (0 kept, 1 saturated, 2 non-finite;
+  ``rarity percentile``, ``cleaning flag`` (0 kept, 1 saturated, 2 non-finite, 3 floor pile, 4 ceiling pile;
   removed events carry log density 0 and rarity -1 since FCS float data should
   hold no NaN), and with a control ``contrast score``/``enriched``
   (:func:`core.export.export_events_fcs`, with provenance keywords);
@@ -48,15 +48,26 @@ damaged, it is rebuilt.  If the control cannot be prepared (unreadable,
 missing channels) every file to do gets status ``error`` with the reason.
 
 ``OUT_DIR`` also gets ``summary.csv`` (one row per input file: file, events,
-events_kept, rare_events, rare_percent, ``region:<name>`` counts, with a
-control the :data:`ENRICHED_COLUMNS` (enriched count, percent and 95 % interval,
-expected false discoveries, rate, minimum fold, shift warning), heldout_loglik, seconds, status ``ok``/``error``/``cancelled``,
+events_kept, set_aside_<reason> per cleaning reason, atoms, rare_events, rare_percent, ``region:<name>``
+counts, with a control the :data:`ENRICHED_COLUMNS` (enriched count, percent and 95 % interval,
+expected false discoveries, rate, minimum fold, shift warning), heldout_loglik, seconds, status
+``ok``/``error``/``cancelled``,
 message), ``recipe.json`` and a ``README.txt`` with the research-use caution.
 
 A broken file gets status ``error`` and the reason; the others carry on.
 Exit code: 0 when every file succeeded, 1 when any failed, 2 for bad
-arguments, 130 when stopped with Ctrl-C (finished files are kept; the summary
+arguments (an output folder that cannot be created, that is or contains an
+input folder, or that no batch wrote and that holds names the batch writes,
+included), 130 when stopped with Ctrl-C (finished files are kept; the summary
 lists the rest as ``cancelled``).
+
+Safety (:mod:`core.write_guard`): inputs and the control are registered so no
+write replaces them; per-file folder names come from
+:func:`output_folder_names` (safe, stable, distinct; ``<stem> #<hash>`` when a
+stem is changed by cleaning, collides ignoring case or is a name the batch
+writes); the temporary files of an earlier, killed run are removed at the start;
+worker processes end with the batch process and never write after it
+(:func:`_die_with_parent`).
 
 Parallelism: ``--workers N`` worker processes (``concurrent.futures``; the
 "forkserver" start method where the platform has it -- workers fork from a
@@ -86,13 +97,17 @@ from dataclasses import dataclass, field
 from typing import Any, Callable, Sequence
 
 from . import RESEARCH_USE_NOTE, SOFTWARE_NAME, __version__
-from .atomic import atomic_write
-from .errors import BoscageError, Cancelled, ModelFileError, RecipeError
+from . import write_guard
+from .atomic import atomic_write, remove_stale_parts
+from .errors import BoscageError, Cancelled, ExportError, ModelFileError, RecipeError
 from .progress import keep_going
 
 SUMMARY_NAME = "summary.csv"
 DONE_NAME = "done.json"
-BASE_COLUMNS = ["file", "events", "events_kept", "rare_events", "rare_percent"]
+#: Events set aside by cleaning, one column per reason (core.prepare.REASONS), and the atoms check.
+CLEANING_COLUMNS = ["set_aside_saturated", "set_aside_ceiling_pile", "set_aside_floor_pile",
+                    "set_aside_non_finite", "atoms"]
+BASE_COLUMNS = ["file", "events", "events_kept"] + CLEANING_COLUMNS + ["rare_events", "rare_percent"]
 TAIL_COLUMNS = ["heldout_loglik", "seconds", "status", "message"]
 
 
@@ -101,13 +116,49 @@ TAIL_COLUMNS = ["heldout_loglik", "seconds", "status", "message"]
 # ---------------------------------------------------------------------------
 
 def _safe_name(text: str) -> str:
-    keep = "".join(c if (c.isalnum() or c in " -_.+") else "_" for c in str(text)).strip(" .")
-    return keep or "region"
+    return write_guard.clean_name(text, "region")
 
 
-def file_out_dir(out_dir: str, path: str) -> str:
-    """The output folder of one input file: ``OUT_DIR/<file stem>``."""
-    return os.path.join(out_dir, _safe_name(os.path.splitext(os.path.basename(path))[0]))
+#: Marks OUT_DIR as a batch output folder (its summary, README and recipe may be replaced).
+OUT_MARK = ".boscage-batch"
+#: Names the batch writes directly in OUT_DIR: no input's folder may take one.
+RESERVED_NAMES = (SUMMARY_NAME, "README.txt", "recipe.json", DONE_NAME, ".prepared-control", OUT_MARK)
+
+
+def output_folder_names(paths: Sequence[str]) -> dict:
+    """Folder name (inside OUT_DIR) of each input file: ``{basename: name or None}``.
+
+    The file's stem when it is safe as it is and no other input's stem equals it
+    ignoring case; otherwise the cleaned stem plus ``#`` and 8 hex digits of the
+    file name (:func:`core.write_guard.safe_unique_names`).  The same input gets
+    the same folder on every run, and two inputs never share one (``x.fcs`` /
+    ``x.FCS``, ``a:b.fcs`` / ``a_b.fcs``, ``summary.csv.fcs`` / the summary).
+    None: no distinct name could be made (the file is reported with status error).
+    """
+    bases = [os.path.basename(os.fspath(p)) for p in paths]
+    return write_guard.safe_unique_names(bases, RESERVED_NAMES, "file",
+                                         bases=[os.path.splitext(b)[0] for b in bases])
+
+
+def file_out_dir(out_dir: str, path: str, names: dict | None = None) -> str:
+    """The output folder of one input file: ``OUT_DIR/<name>`` (see :func:`output_folder_names`;
+    ``names`` is its result for all files of the run, default: this file alone)."""
+    base = os.path.basename(os.fspath(path))
+    name = (names if names is not None else output_folder_names([path])).get(base)
+    if name is None:
+        raise ExportError(f"{base}: no output folder name distinct from the other inputs' can be made; "
+                          "rename the file")
+    return os.path.join(out_dir, name)
+
+
+def _region_file_names(names: Sequence[str], where: str) -> dict:
+    """File-name part of each region: safe, stable, distinct (``a/b`` and ``a_b`` never share a file)."""
+    out = write_guard.safe_unique_names(list(names), (), "region")
+    for name, part in out.items():
+        if part is None:
+            raise ExportError(f"{where}: region {name!r} cannot be given a file name distinct from the other "
+                              "regions'; rename it")
+    return out
 
 
 def _source_stamp(path: str) -> dict:
@@ -138,6 +189,8 @@ def process_file(task: dict) -> dict:
         from .fcs import read_fcs
         from .recipe import Recipe
 
+        write_guard.protect(task.get("protected") or [])
+        folder = file_out_dir(task["out_dir"], path, task.get("names"))
         recipe = Recipe.from_dict(task["recipe"], source=task.get("recipe_source"))
         ef = read_fcs(path)
         control = task.get("control")
@@ -146,20 +199,23 @@ def process_file(task: dict) -> dict:
             control = load_prepared_control(task["control_prepared"], task.get("control_key"))
             used = control.info
         an = analyse(ef, recipe, control=control)
-        folder = file_out_dir(task["out_dir"], path)
-        os.makedirs(folder, exist_ok=True)
+        _make_folder(folder)
         stem = os.path.basename(folder)
         extra = an.export_columns()
+        region_files = _region_file_names(list(an.region_masks), row["file"])
         export_events_fcs(os.path.join(folder, f"{stem} rare.fcs"), ef, an.rare, extra, task["digest"],
                           overwrite=True)
         if an.contrast is not None:
             export_enriched(folder, stem, ef, an, task["digest"], csv=bool(task.get("csv")))
         for name, mask in an.region_masks.items():
-            export_events_fcs(os.path.join(folder, f"{stem} region {_safe_name(name)}.fcs"), ef, mask, extra,
+            export_events_fcs(os.path.join(folder, f"{stem} region {region_files[name]}.fcs"), ef, mask, extra,
                               task["digest"], overwrite=True)
         row.update({"events": an.n_events, "events_kept": an.n_kept, "rare_events": an.n_rare,
                     "rare_percent": round(100.0 * an.n_rare / an.n_kept, 4) if an.n_kept else 0.0,
                     "heldout_loglik": round(an.heldout_loglik, 6)})
+        for reason, count in an.set_aside.items():
+            row["set_aside_" + reason.replace(" ", "_").replace("-", "_")] = count
+        row["atoms"] = "; ".join(f"{c} {100 * v:.3g} %" for c, v in an.atoms.items())
         for name, mask in an.region_masks.items():
             row[f"region:{name}"] = int(mask.sum())
         if an.contrast is not None:
@@ -176,6 +232,8 @@ def process_file(task: dict) -> dict:
         raise
     except BoscageError as exc:
         row["message"] = str(exc)
+    except OSError as exc:
+        row["message"] = f"{row['file']}: cannot write its outputs ({exc.strerror or exc})"
     except MemoryError:
         row["message"] = f"{row['file']}: not enough memory to analyse this file"
     except Exception as exc:  # an unexpected failure must not stop the batch
@@ -393,11 +451,68 @@ def _limit_numba_threads(threads: int) -> None:
         pass
 
 
-def _init_worker(threads: int) -> None:
-    """Worker start-up: ignore Ctrl-C (the parent stops the batch) and limit numba threads."""
+def _parent_alive(pid: int) -> bool:
+    """True while process ``pid`` runs (a zombie, killed but not yet reaped, counts as gone)."""
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except OSError:
+        return True  # exists, owned by someone else
+    try:
+        with open(f"/proc/{pid}/stat", encoding="ascii", errors="replace") as fh:
+            return fh.read().rsplit(")", 1)[1].split()[0] not in ("Z", "X")
+    except (OSError, IndexError):
+        return True
+
+
+def _die_with_parent(parent_pid: int) -> None:
+    """Make this worker end when the batch's process ``parent_pid`` ends, even by ``kill -9``.
+
+    On Linux the kernel sends SIGKILL when the worker's parent (the fork server)
+    exits (``prctl(PR_SET_PDEATHSIG)``); on every POSIX system a watchdog thread checks the
+    batch process every 0.2 s and ends the worker, and the write guard checks it
+    before every rename, so an orphaned worker never writes.
+    """
+    import signal
+    import threading
+
+    if os.name != "posix":
+        return  # os.kill(pid, 0) would end the process on Windows; spawned workers are not orphaned there
+    if sys.platform.startswith("linux"):
+        try:
+            import ctypes
+
+            libc = ctypes.CDLL(None, use_errno=True)
+            libc.prctl(1, signal.SIGKILL, 0, 0, 0)  # PR_SET_PDEATHSIG = 1
+        except Exception:  # no libc prctl: the watchdog below still works
+            pass
+
+    def orphaned() -> bool:
+        return not _parent_alive(parent_pid)
+
+    def check() -> None:
+        if orphaned():
+            os._exit(70)
+
+    def watch() -> None:
+        while True:
+            time.sleep(0.2)
+            check()
+
+    write_guard.set_abort_check(check)
+    threading.Thread(target=watch, name="boscage-parent-watch", daemon=True).start()
+    check()
+
+
+def _init_worker(threads: int, parent_pid: int | None = None) -> None:
+    """Worker start-up: ignore Ctrl-C (the parent stops the batch), end with the batch's
+    process ``parent_pid`` (:func:`_die_with_parent`) and limit numba threads."""
     import signal
 
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    if parent_pid:
+        _die_with_parent(int(parent_pid))
     if "numba" not in sys.modules:
         # a spawned worker: size numba's pool before numba is imported.  A worker
         # forked from the fork server has numba loaded already; changing the
@@ -490,9 +605,10 @@ def inputs_digest(recipe: Any, digest: str) -> str:
     return hashlib.sha256(f"{digest}:{_sha256(path)}".encode("ascii")).hexdigest()[:16]
 
 
-def _finished_row(out_dir: str, path: str, key: str, control: str | None, csv: bool = False) -> dict | None:
-    marker = os.path.join(file_out_dir(out_dir, path), DONE_NAME)
+def _finished_row(out_dir: str, path: str, key: str, control: str | None,
+                  names: dict | None = None, csv: bool = False) -> dict | None:
     try:
+        marker = os.path.join(file_out_dir(out_dir, path, names), DONE_NAME)
         with open(marker, encoding="utf-8") as fh:
             done = json.load(fh)
         if (done.get("inputs_digest") == key and done.get("control") == control
@@ -500,9 +616,60 @@ def _finished_row(out_dir: str, path: str, key: str, control: str | None, csv: b
                 and done.get("source") == _source_stamp(path) and done["row"].get("status") == "ok"
                 and (not csv or not control or done.get("csv"))):
             return dict(done["row"])
-    except (OSError, ValueError, KeyError, TypeError, AttributeError):
+    except (OSError, ValueError, KeyError, TypeError, AttributeError, RecursionError, ExportError):
         pass
     return None
+
+
+def _make_folder(folder: str) -> None:
+    """Create ``folder`` (and parents); ExportError with a sentence when it cannot be."""
+    if os.path.lexists(folder) and not os.path.isdir(folder):
+        raise ExportError(f"{folder}: a file of that name exists, so the output folder cannot be created "
+                          "there; choose another output folder")
+    try:
+        os.makedirs(folder, exist_ok=True)
+    except OSError as exc:
+        raise ExportError(f"{folder}: the output folder cannot be created ({exc.strerror or exc}); choose "
+                          "a folder you can write in") from None
+
+
+def _is_batch_folder(out_dir: str) -> bool:
+    """True when ``out_dir`` was written by a batch (its mark, or the README of earlier versions)."""
+    if os.path.isfile(os.path.join(out_dir, OUT_MARK)):
+        return True
+    try:
+        with open(os.path.join(out_dir, "README.txt"), encoding="utf-8") as fh:
+            first = fh.readline()
+    except (OSError, UnicodeDecodeError):
+        return False
+    return first.startswith(f"{SOFTWARE_NAME} ") and "batch output" in first
+
+
+def prepare_out_dir(out_dir: str, folder_names: Sequence[str]) -> None:
+    """Create OUT_DIR, or check that an existing one may receive this batch's files.
+
+    A folder no batch wrote (no ``.boscage-batch`` mark) is refused when it holds
+    a file or folder the batch would replace (``summary.csv``, ``README.txt``,
+    ``recipe.json``, a per-file folder...): those are the user's files.  Then the
+    mark is written and the temporary files of an earlier, killed run removed.
+    Raises ExportError with a sentence (exit code 2 on the command line).
+    """
+    if os.path.isdir(out_dir) and not _is_batch_folder(out_dir):
+        ours = {n.casefold() for n in list(RESERVED_NAMES) + [n for n in folder_names if n]}
+        try:
+            clash = sorted(n for n in os.listdir(out_dir) if n.casefold() in ours)
+        except OSError as exc:
+            raise ExportError(f"{out_dir}: the output folder cannot be read ({exc.strerror or exc})") from None
+        if clash:
+            raise ExportError(f"{out_dir}: this folder was not written by a batch and holds "
+                              f"{', '.join(clash[:5])}, which the batch would replace; choose a new or "
+                              "empty output folder")
+    _make_folder(out_dir)
+    mark = os.path.join(out_dir, OUT_MARK)
+    if not os.path.isfile(mark):
+        with atomic_write(mark, "w", overwrite=True, encoding="utf-8") as fh:
+            fh.write(f"{SOFTWARE_NAME} {__version__} batch output folder\n")
+    remove_stale_parts(out_dir)
 
 
 def _cleanup_partial(out_dir: str) -> None:
@@ -546,7 +713,9 @@ Control file: {control or "none"}
 Written: {time.strftime("%Y-%m-%d %H:%M:%S %Z")}
 
 summary.csv     one row per input file: events, events kept after cleaning,
-                rare events and their percentage of kept events, events in
+                events set aside per reason (saturated, ceiling pile, floor
+                pile, non-finite), atoms (density channels where one value
+                still holds more than 0.1 % of the kept events), rare events and their percentage of kept events, events in
                 each region, with a control the enriched (new) events:
                 count, percent of kept events with its 95 % interval, the
                 expected number of false discoveries, the false discovery
@@ -557,7 +726,8 @@ summary.csv     one row per input file: events, events kept after cleaning,
 <stem>/         per input file: '<stem> rare.fcs' (the rare events) and
                 '<stem> region <name>.fcs' per region, with the ORIGINAL raw
                 values plus the parameters 'log density', 'rarity percentile'
-                and 'cleaning flag' (0 kept, 1 saturated, 2 non-finite;
+                and 'cleaning flag' (0 kept, 1 saturated, 2 non-finite,
+                3 floor pile, 4 ceiling pile;
                 removed events have log density 0 and rarity -1), and
                 'done.json' (lets a re-run skip the file).  With a control
                 also '<stem> enriched.fcs' (and '.csv' with --csv): the
@@ -620,11 +790,14 @@ def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, p
         if not os.path.isfile(control):
             raise RecipeError(f"{control}: the control file does not exist")
         files = [p for p in files if os.path.abspath(p) != control]
-    if os.path.abspath(out_dir) == os.path.abspath(input_dir):
-        raise RecipeError(f"{out_dir}: choose an output folder other than the input folder")
+    # outputs never go among the inputs (links resolved, case ignored): core.write_guard
+    write_guard.check_output_folder(out_dir, [input_dir] + ([os.path.dirname(control)] if control else []))
     if not files:
         raise RecipeError(f"{input_dir}: the folder holds no *.fcs files")
-    os.makedirs(out_dir, exist_ok=True)
+    protected = [os.path.abspath(p) for p in files] + ([control] if control else [])
+    write_guard.protect(protected)
+    names = output_folder_names(files)
+    prepare_out_dir(out_dir, list(names.values()))
     cores = os.cpu_count() or 1
     try:
         recipe_obj, recipe_source = _resolve_recipe(recipe, files)
@@ -643,12 +816,17 @@ def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, p
     rows: dict[str, dict] = {}
     todo: list[str] = []
     for p in files:
-        done = None if force else _finished_row(out_dir, p, key_digest, control, csv)
+        if names.get(os.path.basename(p)) is None:
+            rows[p] = {"file": os.path.basename(p), "status": "error", "seconds": "",
+                       "message": f"{os.path.basename(p)}: no output folder name distinct from the other "
+                                  "inputs' can be made; rename the file"}
+            continue
+        done = None if force else _finished_row(out_dir, p, key_digest, control, names, csv)
         if done is not None:
             rows[p] = done
         else:
             todo.append(p)
-    n_skipped = len(files) - len(todo)
+    n_skipped = sum(1 for r in rows.values() if r.get("status") == "ok")
     total = len(files)
     if workers is None:
         workers = max(1, min(cores, len(todo)))
@@ -672,7 +850,7 @@ def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, p
     for p in files:  # report the skipped ones first
         if p in rows:
             step += 1
-            keep_going(progress, step, total, dict(rows[p], skipped=True))
+            keep_going(progress, step, total, dict(rows[p], skipped=rows[p].get("status") == "ok"))
 
     # the control's part of the contrast: once for the whole batch, before dispatching
     control_dir = key = None
@@ -718,6 +896,8 @@ def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, p
               "csv": bool(csv)}
              for p in todo]
     by_path = {t["path"]: p for t, p in zip(tasks, todo)}
+    for t, p in zip(tasks, todo):  # the file's output folder name and the run's inputs (never written)
+        t.update(names={os.path.basename(p): names[os.path.basename(p)]}, protected=protected)
 
     try:
         if not tasks or stop:
@@ -772,7 +952,7 @@ def _start_pool(workers: int, threads: int):
     os.environ.update({var: str(threads) for var in _BLAS_THREAD_VARS})
     try:
         pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init_worker,
-                                   initargs=(threads,))
+                                   initargs=(threads, os.getpid()))
         for _ in range(workers):
             pool.submit(_warm_up)
     finally:
@@ -984,6 +1164,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     except BoscageError as exc:
         print(f"boscage batch: {exc}", file=sys.stderr)
         return 2
+    except OSError as exc:  # a failing disk or folder mid-run: a sentence, not a traceback
+        print(f"boscage batch: {exc.filename or args.out}: {exc.strerror or exc}; finished files are kept "
+              "and a re-run completes the rest", file=sys.stderr)
+        return 1
     print(f"\n{result.n_ok} of {len(result.rows)} files ok, {result.n_failed} failed"
           + (f", {result.n_skipped} finished earlier and skipped" if result.n_skipped else "")
           + (" (stopped by the user)" if result.interrupted else "")

@@ -785,7 +785,7 @@ class MainWindow(QMainWindow):
         secs = a.timing.get("total", float("nan")) if isinstance(a.timing, dict) else float("nan")
         return (f"Fitted: {start + ' + ' if start else ''}{n_trees} trees, held-out log-likelihood "
                 f"{a.heldout_loglik:.3f} nats per event, "
-                f"{a.n_kept:,} of {a.n_events:,} events kept, {secs:.1f} s.")
+                f"{a.cleaning_text()}, {secs:.1f} s.")
 
     def _fit_stopped(self) -> None:
         self._job_ended()

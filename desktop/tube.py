@@ -181,20 +181,20 @@ def _uses_kind(region, regions, kind: str) -> bool:
 def default_pairs(names: list, density_channels: list, limit: int = 6) -> list:
     """Channel pairs (x index, y index) for the density map: forward against side
     scatter when both exist, then the density channels two by two."""
+    from core.channel_kinds import scatter_direction
+
     pairs = []
-    upper = [n.upper() for n in names]
 
-    def find(prefix):
-        for suffix in ("-A", "-H", ""):
-            for i, n in enumerate(upper):
-                if n == prefix + suffix:
+    def find(direction):
+        """The area, else height, else any scatter channel of that direction (core.channel_kinds)."""
+        hits = [i for i, n in enumerate(names) if scatter_direction(n) == direction]
+        for suffix in ("-A", "-H"):
+            for i in hits:
+                if names[i].strip().upper().endswith(suffix):
                     return i
-        for i, n in enumerate(upper):
-            if n.startswith(prefix):
-                return i
-        return None
+        return hits[0] if hits else None
 
-    fsc, ssc = find("FSC"), find("SSC")
+    fsc, ssc = find("forward"), find("side")
     if fsc is not None and ssc is not None:
         pairs.append((fsc, ssc))
     chans = [names.index(c) for c in density_channels if c in names]

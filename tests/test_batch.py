@@ -104,6 +104,10 @@ def test_summary_rows_statuses_and_exit_code(first_run):
     good = by.loc["a good.fcs"]
     assert int(good["events"]) == 3000
     assert int(good["events_kept"]) == 2995  # the 5 saturated events are removed
+    # ... and counted by reason in summary.csv (core.prepare.REASONS)
+    assert int(good["set_aside_saturated"]) == 5
+    assert int(good["set_aside_floor_pile"]) == int(good["set_aside_ceiling_pile"]) == 0
+    assert int(good["set_aside_non_finite"]) == 0
     assert int(good["rare_events"]) == round(0.005 * 2995)
     assert "ETA" in err and "1 of 4 files ok" in err
 
