@@ -317,6 +317,19 @@ class Session:
         name = region_name("", [f"rarest {tube.share * 100:.3g} pct"], tube.regions.names)
         return self.add_region({"name": name, "kind": "rarity", "percentile": percentile})
 
+    def keep_enriched_region(self) -> Region:
+        """An "enriched" region holding the events new against the control
+        (the contrast's enriched mask), named after the control."""
+        tube = self.require()
+        a = tube.analysis
+        if a is None or getattr(a, "enriched", None) is None:
+            raise BoscageError("contrast the tube with a control first (Ctrl+K)")
+        info = getattr(a, "info", None) or {}
+        control = os.path.basename(tube.control_path or info.get("control", "") or "") or None
+        stem = os.path.splitext(control)[0] if control else "control"
+        name = region_name("", [f"new vs {stem}"], tube.regions.names)
+        return self.add_region({"name": name, "kind": "enriched", "control": control})
+
     def close(self, path: str) -> None:
         tube = self.tubes.pop(path)
         if tube is self.current:

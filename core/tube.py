@@ -228,6 +228,11 @@ class Tube:
         return None if self.analysis is None else self.analysis.rarity
 
     @property
+    def enriched(self):
+        """The contrast's enriched mask (n_events,), or None without a contrast."""
+        return None if self.analysis is None else getattr(self.analysis, "enriched", None)
+
+    @property
     def fitted(self) -> bool:
         return self.analysis is not None
 
@@ -269,12 +274,15 @@ class Tube:
             self.masks, self.stats = {}, []
             return
         values = self.by_channel()
-        rarity = self.rarity
+        rarity, enriched = self.rarity, self.enriched
         regions = self.regions
+        # a rarity region has no meaning before a fit, an enriched one before a
+        # contrast: count only the others
         if rarity is None and any(r.kind == "rarity" for r in regions):
-            # a rarity region has no meaning before a fit: count only the others
             regions = RegionSet([r for r in regions if not uses_rarity(r, self.regions)])
-        self.masks = regions.evaluate(values, rarity, self.n_events)
+        if enriched is None and any(r.kind == "enriched" for r in regions):
+            regions = RegionSet([r for r in regions if not uses_kind(r, self.regions, "enriched")])
+        self.masks = regions.evaluate(values, rarity, self.n_events, enriched=enriched)
         self.stats = regions.statistics(values, rarity, self.n_events, masks=self.masks)
 
     def update_region(self, name: str) -> bool:
@@ -286,9 +294,11 @@ class Tube:
         needed = region_closure(self.regions, name)
         if self.rarity is None and any(uses_rarity(self.regions[n], self.regions) for n in needed):
             return False
+        if self.enriched is None and any(uses_kind(self.regions[n], self.regions, "enriched") for n in needed):
+            return False
         sub = RegionSet([r for r in self.regions if r.name in needed])
         values = self.by_channel()
-        masks = sub.evaluate(values, self.rarity, self.n_events)
+        masks = sub.evaluate(values, self.rarity, self.n_events, enriched=self.enriched)
         rows = {s.name: s for s in sub.statistics(values, self.rarity, self.n_events, masks=masks)}
         self.masks.update(masks)
         self.stats = [rows.get(s.name, s) for s in self.stats]

@@ -108,8 +108,10 @@ class FitController(QObject):
         self._start("contrast" if control else "fit", work,
                     lambda result: self._fit_done(tube, recipe, result, control), self._fit_stopped)
         self.win.fit_panel.started()
-        if control:
-            self.win.fit_panel.stage.setText("Fitting this tube, then the control...")
+        if control:  # a contrast shows its progress where the analyst is looking: the Contrast panel
+            self.win.contrast_panel.started(control)
+            self.win.fit_panel.status.setText("Contrasting with a control: progress in the Contrast panel")
+            self.win.show_panel(self.win.contrast_panel)
         return True
 
     def start_contours(self) -> bool:
@@ -156,10 +158,10 @@ class FitController(QObject):
         job.start()
 
     def _progress(self, step, total, info) -> None:
-        if self.kind in ("fit", "contrast"):
+        if self.kind == "contrast":
+            self.win.contrast_panel.step(step, total, info)
+        elif self.kind == "fit":
             self.win.fit_panel.step(step, total, info)
-            if self.kind == "contrast":
-                self.win.statusBar().showMessage(f"Contrast: {self.win.fit_panel.stage.text()}", 2000)
         elif self.kind == "contours" and isinstance(info, dict):
             self.win.fit_panel.status.setText(str(info.get("stage", "")))
 
@@ -189,6 +191,8 @@ class FitController(QObject):
         tube = self.win.session.current
         self.win.fit_panel.ended("Cancelled: the previous state is kept." if tube and tube.analysis is not None
                                  else "Cancelled: not fitted.")
+        if self.kind == "contrast":
+            self.win.contrast_panel.ended("Contrast cancelled.")
         self.fitEnded.emit(False)
 
     def _failed(self, exc, tb) -> None:
@@ -197,6 +201,8 @@ class FitController(QObject):
         self.last_problem = error_text(exc)
         if kind in ("fit", "contrast"):
             self.win.fit_panel.ended(f"The fit stopped: {self.last_problem}")
+            if kind == "contrast":
+                self.win.contrast_panel.ended(f"The contrast stopped: {self.last_problem}")
             show_error(self.win, "fit", exc, tb)
             self.fitEnded.emit(False)
         elif kind == "contours":

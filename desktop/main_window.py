@@ -18,8 +18,8 @@ import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
 import os
 
 from PySide6.QtCore import Qt, QTimer, Signal
-from PySide6.QtWidgets import (QDockWidget, QFileDialog, QLabel, QMainWindow, QMessageBox, QPushButton,
-                               QTabWidget, QVBoxLayout, QWidget)
+from PySide6.QtWidgets import (QDockWidget, QFileDialog, QLabel, QMainWindow, QMessageBox, QTabWidget,
+                               QVBoxLayout, QWidget)
 
 from core import RESEARCH_USE_NOTE, SOFTWARE_NAME, __version__
 from core.errors import BoscageError
@@ -32,6 +32,7 @@ from desktop.map_view import MapPresenter
 from desktop.messages import guarded, icon, show_error
 from desktop.panels.channels import ChannelsPanel
 from desktop.panels.compensation import CompensationPanel
+from desktop.panels.contrast import ContrastPanel
 from desktop.panels.fit import FitPanel
 from desktop.panels.rarity import RarityBar
 from desktop.panels.selections import SelectionsPanel
@@ -39,39 +40,6 @@ from desktop.panels.tubes import TubeCard, TubesList
 from desktop.plots import DensityMap
 from desktop.regions_view import RegionsController
 from desktop.settings import Settings
-
-
-class ContrastPanel(QWidget):
-    """Contrast with a control file: events more frequent here than in the control."""
-
-    chooseRequested = Signal()
-    showRequested = Signal(bool)
-
-    def __init__(self, parent=None) -> None:
-        super().__init__(parent)
-        lay = QVBoxLayout(self)
-        head = QLabel("Contrast with a control")
-        head.setObjectName("Heading")
-        lay.addWidget(head)
-        note = QLabel("Fits a density to a control tube too and marks the events of this tube whose "
-                      "density is much higher here than in the control (enriched events). "
-                      "The threshold lets about 0.1 % of held-out control events pass.")
-        note.setObjectName("Note")
-        note.setWordWrap(True)
-        lay.addWidget(note)
-        self.choose = QPushButton("Choose control tube and contrast...")
-        self.choose.setToolTip("Pick the control FCS file; the fit and the contrast run in the background (Ctrl+K)")
-        lay.addWidget(self.choose)
-        self.result = QLabel("No control chosen")
-        self.result.setWordWrap(True)
-        lay.addWidget(self.result)
-        self.show_enriched = QPushButton("Highlight enriched events instead of rare ones")
-        self.show_enriched.setCheckable(True)
-        self.show_enriched.setEnabled(False)
-        lay.addWidget(self.show_enriched)
-        lay.addStretch(1)
-        self.choose.clicked.connect(self.chooseRequested)
-        self.show_enriched.toggled.connect(self.showRequested)
 
 
 class MainWindow(QMainWindow):
@@ -139,6 +107,7 @@ class MainWindow(QMainWindow):
         self.fit_panel.cancelRequested.connect(self.cancel_job)
         self.contrast_panel.chooseRequested.connect(self.choose_control)
         self.contrast_panel.showRequested.connect(self.set_highlight_enriched)
+        self.contrast_panel.keepRequested.connect(self.regions.keep_enriched)
         self.rarity_bar.set_share(0.005, emit=False)
         self.density_map.set_title("Open an FCS file or a folder (Ctrl+O), or drop one here")
         geometry = self.settings.value("window/geometry")
@@ -330,18 +299,8 @@ class MainWindow(QMainWindow):
             self.map_view.update_legend(tube)
 
     def _show_contrast_text(self, tube) -> None:
-        a = tube.analysis
         p = self.contrast_panel
-        if a is None or a.contrast is None:
-            p.result.setText("No control chosen" if not tube.control_path else "Fit again to contrast")
-            p.show_enriched.setEnabled(False)
-            return
-        c = a.contrast
-        p.result.setText(f"Control: {os.path.basename(tube.control_path or a.info.get('control', ''))}\n"
-                         f"{c.count:,} enriched events ({100 * c.share:.3f} %, 95 % interval "
-                         f"{100 * c.share_ci[0]:.3f}–{100 * c.share_ci[1]:.3f} %); about "
-                         f"{c.expected_false:.1f} expected by chance.")
-        p.show_enriched.setEnabled(True)
+        p.show_result(tube.analysis, tube.control_path)
         p.show_enriched.blockSignals(True)
         p.show_enriched.setChecked(tube.highlight_enriched)
         p.show_enriched.blockSignals(False)
@@ -353,8 +312,6 @@ class MainWindow(QMainWindow):
             path, _ = QFileDialog.getOpenFileName(self, "Control tube", os.path.dirname(tube.path),
                                                   "FCS files (*.fcs *.FCS *.lmd *.LMD);;All files (*)")
         if path:
-            self.contrast_panel.result.setText(f"Contrasting with {os.path.basename(path)}: fitting this tube, "
-                                               "then the control (progress on the Fit tab)...")
             self.fitting.start_fit(control=path)
 
     def set_highlight_enriched(self, on: bool) -> None:

@@ -69,30 +69,43 @@ class MapPresenter(QObject):
             parts.append("Lines " + " ".join(sw(c, "━") for c in style.CONTOUR) +
                          ": 50 / 90 / 99 % of events, from a 2-D fit of each pair alone.")
         if tube.analysis is not None:
-            parts.append(sw(style.RARE, "■") + (" enriched events" if tube.highlight_enriched else " rare events"))
+            parts.append(sw(style.RARE, "■") + (" new events (vs control)" if tube.highlight_enriched
+                                                 else " rare events"))
         if len(tube.regions):
             parts.append(sw(style.REGION, "□") + " regions")
         self.win.density_map.set_legend(" &nbsp; ".join(parts))
 
     def update_highlight(self) -> None:
-        tube = self.win.session.current
+        win = self.win
+        tube = win.session.current
         if tube is None:
             return
         a = tube.analysis
         mask = tube.highlight()
+        bar = win.rarity_bar
         if a is None:
-            self.win.rarity_bar.show_count("Fit the density to rank events", False)
+            bar.show_count("Fit the density to rank events", False)
         elif tube.highlight_enriched:
-            self.win.rarity_bar.show_count(f"{int(mask.sum()):,} enriched events highlighted (the Rarity "
-                                       "share does not apply; see Contrast)", False)
+            bar.show_count(f"{int(mask.sum()):,} new events (vs control) highlighted", False)
         else:
             n = int(mask.sum()) if mask is not None else 0
-            self.win.rarity_bar.show_count(f"{n:,} rare ({100.0 * n / max(a.n_kept, 1):.2f} % of {a.n_kept:,})", True)
-        self.win.rarity_bar.slider.setEnabled(not tube.highlight_enriched)
-        self.win.rarity_bar.spin.setEnabled(not tube.highlight_enriched)
-        self.win.density_map.set_highlight(mask)
+            bar.show_count(f"{n:,} rare events ({100.0 * n / max(a.n_kept, 1):.2f} % of {a.n_kept:,})", True)
+        self._rarity_controls_active(not tube.highlight_enriched)
+        win.density_map.set_highlight(mask)
         self.update_title(tube)
         self.update_legend(tube)
+
+    def _rarity_controls_active(self, on: bool) -> None:
+        """The Rarity share means nothing while the new events of a contrast are shown: grey it out."""
+        bar, win = self.win.rarity_bar, self.win
+        for w in (bar.slider, bar.spin):
+            w.setEnabled(on)
+        bar.slider.setToolTip("Share of events, counted from the lowest fitted density up, to highlight as rare "
+                              "on every plot. Keys [ and ] step it." if on else
+                              "Not in use: the plots show the new events of the contrast. Switch off "
+                              "'Highlight the new events' in the Contrast panel to rank by rarity again.")
+        win.act_rarer.setEnabled(on)
+        win.act_more.setEnabled(on)
 
     def update_title(self, tube) -> None:
         state = "fitted" if tube.analysis is not None else "not fitted — colour shows event counts"

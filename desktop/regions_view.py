@@ -181,6 +181,13 @@ class RegionsController(QObject):
             self.win.density_map.set_filter(tube.masks[self.only] if self.only else None)
         self.win.map_view.update_title(tube)
 
+    @guarded("keep new events")
+    def keep_enriched(self) -> None:
+        r = self.session.keep_enriched_region()
+        self.refresh(full=True)
+        self.win.selections.select(r.name)
+        self.win.show_panel(self.win.selections)
+
     @guarded("keep rare events")
     def keep_rare(self) -> None:
         r = self.session.keep_rare_region()
