@@ -84,6 +84,7 @@ DEFAULT_SETTINGS = {
     "caution_events": 20,     # fewer events than this: caution
     "mode_events": 200_000,   # events (seeded subsample) used to start the mode search
     "segment_points": 33,     # points on each segment between two modes
+    "starts_per_component": 8,  # hill climbs started from each component's events
     "random_state": 0,
 }
 #: Profile positions (see the module docstring).
@@ -119,7 +120,7 @@ def check_settings(settings: Mapping | None, where: str = "") -> dict:
                           f"(0.01 = 1 %); got {out['rare_share']!r}")
     if not 0.0 < out["merge_ratio"] < 1.0:
         raise RecipeError(f"{where}populations 'merge_ratio' must lie between 0 and 1; got {out['merge_ratio']!r}")
-    for k in ("caution_events", "mode_events", "segment_points", "random_state"):
+    for k in ("caution_events", "mode_events", "segment_points", "random_state", "starts_per_component"):
         if int(out[k]) != out[k] or out[k] < (3 if k == "segment_points" else 0):
             raise RecipeError(f"{where}populations {k!r} must be a whole number; got {out[k]!r}")
         out[k] = int(out[k])
@@ -146,6 +147,8 @@ class PopulationDefinition:
     groups: list
     modes: list
     names: list
+    split: dict = field(default_factory=dict)
+    scale: list = field(default_factory=list)
     version: int = DEFINITION_VERSION
     _mix: Any = field(default=None, repr=False, compare=False)
 
@@ -157,7 +160,8 @@ class PopulationDefinition:
         """The JSON-able stored form (deep copy)."""
         return {"version": self.version, "channels": list(self.channels), "columns": list(self.columns),
                 "mixture": copy.deepcopy(self.mixture), "groups": list(self.groups),
-                "modes": copy.deepcopy(self.modes), "names": list(self.names)}
+                "modes": copy.deepcopy(self.modes), "names": list(self.names),
+                "split": copy.deepcopy(self.split), "scale": list(self.scale)}
 
     @classmethod
     def from_dict(cls, d: Mapping) -> "PopulationDefinition":
@@ -176,7 +180,9 @@ class PopulationDefinition:
             raise RecipeError(f"the population definition lacks {', '.join(missing)}")
         out = cls(channels=list(d["channels"]), columns=[int(c) for c in d["columns"]],
                   mixture=copy.deepcopy(dict(d["mixture"])), groups=[int(g) for g in d["groups"]],
-                  modes=copy.deepcopy(list(d["modes"])), names=[str(s) for s in d["names"]], version=v)
+                  modes=copy.deepcopy(list(d["modes"])), names=[str(s) for s in d["names"]],
+                  split=copy.deepcopy(dict(d.get("split") or {})), scale=[float(x) for x in d.get("scale") or []],
+                  version=v)
         try:
             mix = out.mixture_model()
         except (KeyError, TypeError, ValueError) as exc:
@@ -184,6 +190,14 @@ class PopulationDefinition:
         if len(out.groups) != mix.n_components or (out.groups and not 0 <= min(out.groups)) \
                 or (out.groups and max(out.groups) >= len(out.modes)) or len(out.names) != len(out.modes):
             raise RecipeError("the population definition's groups, modes and names do not agree")
+        d_ch = len(out.channels)
+        for k, sp in out.split.items():
+            ok = (str(k).isdigit() and int(k) < mix.n_components and isinstance(sp, Mapping)
+                  and len(sp.get("starts", [])) == len(sp.get("populations", [])) > 0
+                  and all(len(x) == d_ch for x in sp["starts"])
+                  and all(0 <= int(q) < len(out.modes) for q in sp["populations"]))
+            if not ok or len(out.scale) != d_ch:
+                raise RecipeError("the population definition's split components are malformed")
         return out
 
     def mixture_model(self):
@@ -236,8 +250,19 @@ def component_posteriors(mix, X) -> np.ndarray:
     return R
 
 
-def _labels_from_posteriors(R: np.ndarray, G: np.ndarray) -> np.ndarray:
+def _labels_from_posteriors(R: np.ndarray, G: np.ndarray, X: np.ndarray | None = None,
+                            split: Mapping | None = None, scale=None) -> np.ndarray:
     P = R[:, 1:] @ G                            # (n, n_pop) population posteriors
+    for k, sp in (split or {}).items():
+        # a split component's share goes to the population of the nearest start (its basin)
+        k = int(k)
+        starts = np.asarray(sp["starts"], float) / scale
+        Z = X / scale
+        d2 = (Z * Z).sum(axis=1)[:, None] - 2.0 * Z @ starts.T + (starts * starts).sum(axis=1)[None, :]
+        pop = np.asarray(sp["populations"], int)[np.argmin(d2, axis=1)]
+        rows = np.arange(P.shape[0])
+        P[:, int(np.argmax(G[k]))] -= R[:, k + 1]
+        P[rows, pop] += R[:, k + 1]
     lab = np.argmax(P, axis=1).astype(np.int64)
     lab[R[:, 0] >= P[np.arange(P.shape[0]), lab]] = -1
     return lab
@@ -269,7 +294,9 @@ def assign_populations(definition: PopulationDefinition | Mapping, values) -> np
     for a in range(0, X.shape[0], _CHUNK):
         sel = np.flatnonzero(ok[a:a + _CHUNK]) + a
         if sel.size:
-            out[sel] = _labels_from_posteriors(component_posteriors(mix, X[sel][:, cols]), G)
+            Xc = X[sel]
+            out[sel] = _labels_from_posteriors(component_posteriors(mix, Xc[:, cols]), G, Xc,
+                                               definition.split, np.asarray(definition.scale, float))
     return out
 
 
@@ -304,6 +331,43 @@ def _hill_climb(score, starts: np.ndarray, f0: np.ndarray, step0: np.ndarray, it
         if (step < 1e-3).all():
             break
     return x, f
+
+
+def _spread_starts(Z: np.ndarray, f: np.ndarray, m: int, rng) -> list:
+    """Up to ``m`` row indices of Z (events of one component, scaled): the
+    highest-density one, then farthest-point picks (each the event farthest
+    from those picked so far), on a seeded subsample of at most 4,000."""
+    n = Z.shape[0]
+    pool = np.arange(n) if n <= 4000 else np.sort(rng.choice(n, 4000, replace=False))
+    first = int(np.argmax(f))
+    if first not in set(pool.tolist()):
+        pool = np.r_[first, pool]
+    picked = [first]
+    d = ((Z[pool] - Z[first]) ** 2).sum(axis=1)
+    while len(picked) < min(m, pool.size):
+        j = int(np.argmax(d))
+        if d[j] <= 0:
+            break
+        picked.append(int(pool[j]))
+        d = np.minimum(d, ((Z[pool] - Z[pool[j]]) ** 2).sum(axis=1))
+    return picked
+
+
+def _same_place(E: np.ndarray, f: np.ndarray, tol: float = 0.05) -> np.ndarray:
+    """Node id per climb end (rows of E, scaled units): ends closer than ``tol``
+    to a higher end already kept share its node."""
+    order = np.lexsort((np.arange(f.size), -f))
+    node = np.full(f.size, -1, dtype=np.int64)
+    kept = []
+    for i in order:
+        for q, j in enumerate(kept):
+            if np.sqrt(((E[i] - E[j]) ** 2).sum()) < tol:
+                node[i] = q
+                break
+        else:
+            node[i] = len(kept)
+            kept.append(i)
+    return node
 
 
 def _saddles(score, modes: np.ndarray, n_points: int) -> np.ndarray:
@@ -564,43 +628,57 @@ def find_populations(model, values, channel_names, channel_labels=None, transfor
     R = component_posteriors(mix, Xs[:, cols])
     hard = np.argmax(R, axis=1) - 1                     # -1 background
     going(1, "Populations: modes of the density")
-    starts, f0, keep = [], [], []
+    scale = np.maximum(np.percentile(X, 75, axis=0) - np.percentile(X, 25, axis=0), 1e-9)
+    starts, owner = [], []
     for k in range(K):
         idx = np.flatnonzero(hard == k)
         if idx.size == 0:
             continue
-        i = idx[np.argmax(ld[idx])]
-        starts.append(Xs[i])
-        f0.append(ld[i])
-        keep.append(k)
-    if not keep:
+        for i in _spread_starts(Xs[idx] / scale, ld[idx], st["starts_per_component"], rng):
+            starts.append(idx[i])
+            owner.append(k)
+    if not starts:
         raise EventDataError("populations: no event belongs to any mixture component")
-    starts = np.array(starts)
-    step0 = np.maximum(np.percentile(X, 75, axis=0) - np.percentile(X, 25, axis=0), 1e-9)
-    modes, peaks = _hill_climb(score, starts, np.array(f0), step0)
+    starts = np.asarray(starts)
+    owner = np.asarray(owner)
+    ends, peaks = _hill_climb(score, Xs[starts], ld[starts], scale)
+    # climbs that ended at the same place found the same mode
+    node = _same_place(ends / scale, peaks)
+    n_nodes = int(node.max()) + 1
+    top = np.array([np.flatnonzero(node == q)[np.argmax(peaks[node == q])] for q in range(n_nodes)])
+    modes, node_peaks = ends[top], peaks[top]
     going(2, "Populations: saddles between modes")
     S = _saddles(score, modes, st["segment_points"])
-    group_kept = _merge(peaks, S, st["merge_ratio"])
-    n_pop = int(group_kept.max()) + 1
-    # components without events join the population whose components they overlap most
+    node_group = _merge(node_peaks, S, st["merge_ratio"])
+    start_pop = node_group[node]
+    n_pop = int(node_group.max()) + 1
+    # each component goes to the population its starts reached; a component whose
+    # starts reached several populations is split into the basins of its starts
     groups = np.full(K, -1, dtype=np.int64)
-    groups[keep] = group_kept
+    split = {}
+    for k in np.unique(owner):
+        sel = owner == k
+        pops_k = np.unique(start_pop[sel])
+        groups[k] = np.bincount(start_pop[sel]).argmax()
+        if pops_k.size > 1:
+            split[str(int(k))] = {"starts": Xs[starts[sel]].tolist(), "populations": start_pop[sel].tolist()}
     if (groups < 0).any():
+        # components holding no event join the population of the component they overlap most
         Pk = R[:, 1:]
+        has = np.flatnonzero(groups >= 0)
         for k in np.flatnonzero(groups < 0):
-            w = Pk[:, k]
-            best = np.argmax(Pk[np.argmax(w)][keep]) if w.sum() > 0 else 0
-            groups[k] = group_kept[best]
+            i = int(np.argmax(Pk[:, k]))
+            groups[k] = groups[has[np.argmax(Pk[i, has])]]
     pop_modes, pop_peaks = [], []
     for p in range(n_pop):
-        members = np.flatnonzero(group_kept == p)
-        top = members[np.argmax(peaks[members])]
-        pop_modes.append(modes[top])
-        pop_peaks.append(float(peaks[top]))
+        members = np.flatnonzero(node_group == p)
+        best = members[np.argmax(node_peaks[members])]
+        pop_modes.append(modes[best])
+        pop_peaks.append(float(node_peaks[best]))
     definition = PopulationDefinition(channels=list(channel_names), columns=[int(c) for c in cols],
                                       mixture=_mixture_dict(mix), groups=[int(g) for g in groups],
                                       modes=[[float(v) for v in m] for m in pop_modes],
-                                      names=[""] * n_pop)
+                                      names=[""] * n_pop, split=split, scale=[float(v) for v in scale])
     definition._mix = mix
     going(3, "Populations: assigning events")
     labels = assign_populations(definition, X)
@@ -609,7 +687,9 @@ def find_populations(model, values, channel_names, channel_labels=None, transfor
         definition.names[r["id"]] = r["profile"]
     going(4, "Populations: done")
     return Populations(labels=labels, table=table, definition=definition,
-                       info={"components": K, "components_with_events": len(keep), "mixture": origin,
+                       info={"components": K, "components_with_events": int(np.unique(owner).size),
+                             "mixture": origin, "starts": int(starts.size), "modes": n_nodes,
+                             "split_components": len(split),
                              "peaks": pop_peaks, "merge_ratio": st["merge_ratio"]})
 
 
