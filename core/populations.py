@@ -11,11 +11,15 @@ Method (mode clustering on the fitted density; the choice is argued in DEVELOPER
    start at the highest-density event among the events the component holds
    (a seeded subsample of at most ``mode_events``), then hill-climb (finite-
    difference gradient ascent with step halving; a step is kept only when the
-   log density rises).
-3. **Merging by the level-set (cluster-tree) criterion.**  For every pair of
-   components, the fitted log density is evaluated at ``segment_points``
-   evenly spaced points of the straight segment between their modes; its
-   minimum is the pair's *saddle*.  Pairs are visited from the highest saddle
+   log density rises).  Up to ``starts_per_component`` (8) climbs start from
+   each component: its highest-density event, then farthest-point picks among
+   its events, so a component that spans two hills finds both.
+3. **Merging by the level-set (cluster-tree) criterion.**  Climbs that end
+   within 0.05 (channel inter-quartile ranges) of a higher end found the same
+   mode.  Each mode is joined to its 12 nearest modes (a neighbourhood graph);
+   along each join, the fitted log density is evaluated at ``segment_points``
+   evenly spaced points of the straight segment between the two modes; its
+   minimum is the join's *saddle*.  Pairs are visited from the highest saddle
    down (Kruskal order, a maximum spanning tree of the saddles) and two groups
    merge when the saddle lies less than ``log(1 / merge_ratio)`` below the
    *smaller* of the two groups' peaks, i.e. when
@@ -31,6 +35,9 @@ Method (mode clustering on the fitted density; the choice is argued in DEVELOPER
    posterior is the background component's gets -1 (no population).  This is
    also how :func:`assign_populations` assigns another file's events with a
    stored :class:`PopulationDefinition`, so equal events get equal labels.
+   A component whose climbs reached different populations is split: its
+   share of an event goes to the population reached from the nearest of its
+   starts (channel-scaled distance), i.e. the starts' basins.
 
 Per population (:class:`Populations.table`, one dict per population):
 count, share of all the events passed (events with label -1 count in the
@@ -370,24 +377,30 @@ def _same_place(E: np.ndarray, f: np.ndarray, tol: float = 0.05) -> np.ndarray:
     return node
 
 
-def _saddles(score, modes: np.ndarray, n_points: int) -> np.ndarray:
-    """(m, m) lowest log density on each straight segment between two modes."""
+def _saddles(score, modes: np.ndarray, n_points: int, scale: np.ndarray, neighbours: int = 12):
+    """Edges (i, j, saddle) between each mode and its ``neighbours`` nearest modes
+    (scaled distance; a neighbourhood graph): the lowest log density at
+    ``n_points`` points of the straight segment between the two."""
     m, d = modes.shape
+    Z = modes / scale
+    D = ((Z[:, None, :] - Z[None, :, :]) ** 2).sum(axis=2)
+    np.fill_diagonal(D, np.inf)
+    near = np.argsort(D, axis=1, kind="stable")[:, :min(neighbours, m - 1)]
+    pairs = sorted({(min(i, int(j)), max(i, int(j))) for i in range(m) for j in near[i]})
+    if not pairs:
+        return np.zeros(0, int), np.zeros(0, int), np.zeros(0)
+    iu = np.array([p[0] for p in pairs])
+    ju = np.array([p[1] for p in pairs])
     t = np.linspace(0.0, 1.0, n_points)[1:-1]
-    iu, ju = np.triu_indices(m, 1)
-    S = np.full((m, m), np.inf)
-    if iu.size == 0:
-        return S
     pts = modes[iu][:, None, :] * (1 - t)[None, :, None] + modes[ju][:, None, :] * t[None, :, None]
     vals = score(pts.reshape(-1, d)).reshape(iu.size, t.size)
-    low = vals.min(axis=1)
-    S[iu, ju] = low
-    S[ju, iu] = low
-    return S
+    return iu, ju, vals.min(axis=1)
 
 
-def _merge(peaks: np.ndarray, saddles: np.ndarray, ratio: float) -> np.ndarray:
-    """Group per component by the persistence rule (see module docstring)."""
+def _merge(peaks: np.ndarray, edges, ratio: float) -> np.ndarray:
+    """Group per mode by the persistence rule (see module docstring); ``edges``
+    (i, j, saddle) from :func:`_saddles`."""
+    iu, ju, saddle = edges
     m = peaks.size
     parent = list(range(m))
     top = peaks.astype(float).copy()   # best peak of each root's group
@@ -398,8 +411,7 @@ def _merge(peaks: np.ndarray, saddles: np.ndarray, ratio: float) -> np.ndarray:
             i = parent[i]
         return i
 
-    iu, ju = np.triu_indices(m, 1)
-    s = np.minimum(saddles[iu, ju], np.minimum(peaks[iu], peaks[ju]))
+    s = np.minimum(saddle, np.minimum(peaks[iu], peaks[ju]))
     order = np.lexsort((ju, iu, -s))      # highest saddle first, ties by index (deterministic)
     depth = math.log(1.0 / ratio)
     for e in order:
@@ -648,8 +660,8 @@ def find_populations(model, values, channel_names, channel_labels=None, transfor
     top = np.array([np.flatnonzero(node == q)[np.argmax(peaks[node == q])] for q in range(n_nodes)])
     modes, node_peaks = ends[top], peaks[top]
     going(2, "Populations: saddles between modes")
-    S = _saddles(score, modes, st["segment_points"])
-    node_group = _merge(node_peaks, S, st["merge_ratio"])
+    edges = _saddles(score, modes, st["segment_points"], scale)
+    node_group = _merge(node_peaks, edges, st["merge_ratio"])
     start_pop = node_group[node]
     n_pop = int(node_group.max()) + 1
     # each component goes to the population its starts reached; a component whose
