@@ -37,7 +37,11 @@ Method (mode clustering on the fitted density; the choice is argued in DEVELOPER
    stored :class:`PopulationDefinition`, so equal events get equal labels.
    A component whose climbs reached different populations is split: its
    share of an event goes to the population reached from the nearest of its
-   starts (channel-scaled distance), i.e. the starts' basins.
+   starts (channel-scaled distance), i.e. the starts' basins.  Climbs also
+   start from the events the background component holds; a hill reached
+   only from there (a cluster the mixture gave no component) becomes a
+   population, and the background's share of an event nearest such a start
+   goes to it (other background events stay -1).
 
 Per population (:class:`Populations.table`, one dict per population):
 count, share of all the events passed (events with label -1 count in the
@@ -199,10 +203,11 @@ class PopulationDefinition:
             raise RecipeError("the population definition's groups, modes and names do not agree")
         d_ch = len(out.channels)
         for k, sp in out.split.items():
-            ok = (str(k).isdigit() and int(k) < mix.n_components and isinstance(sp, Mapping)
+            ok = ((k == "background" or (str(k).isdigit() and int(k) < mix.n_components))
+                  and isinstance(sp, Mapping)
                   and len(sp.get("starts", [])) == len(sp.get("populations", [])) > 0
                   and all(len(x) == d_ch for x in sp["starts"])
-                  and all(0 <= int(q) < len(out.modes) for q in sp["populations"]))
+                  and all(-1 <= int(q) < len(out.modes) for q in sp["populations"]))
             if not ok or len(out.scale) != d_ch:
                 raise RecipeError("the population definition's split components are malformed")
         return out
@@ -260,18 +265,23 @@ def component_posteriors(mix, X) -> np.ndarray:
 def _labels_from_posteriors(R: np.ndarray, G: np.ndarray, X: np.ndarray | None = None,
                             split: Mapping | None = None, scale=None) -> np.ndarray:
     P = R[:, 1:] @ G                            # (n, n_pop) population posteriors
+    none = R[:, 0].copy()
     for k, sp in (split or {}).items():
         # a split component's share goes to the population of the nearest start (its basin)
-        k = int(k)
         starts = np.asarray(sp["starts"], float) / scale
         Z = X / scale
         d2 = (Z * Z).sum(axis=1)[:, None] - 2.0 * Z @ starts.T + (starts * starts).sum(axis=1)[None, :]
         pop = np.asarray(sp["populations"], int)[np.argmin(d2, axis=1)]
-        rows = np.arange(P.shape[0])
+        rows = np.flatnonzero(pop >= 0)
+        if k == "background":
+            P[rows, pop[rows]] += none[rows]
+            none[rows] = 0.0
+            continue
+        k = int(k)
         P[:, int(np.argmax(G[k]))] -= R[:, k + 1]
-        P[rows, pop] += R[:, k + 1]
+        P[rows, pop[rows]] += R[rows, k + 1]
     lab = np.argmax(P, axis=1).astype(np.int64)
-    lab[R[:, 0] >= P[np.arange(P.shape[0]), lab]] = -1
+    lab[none >= P[np.arange(P.shape[0]), lab]] = -1
     return lab
 
 
@@ -574,7 +584,8 @@ def count_populations(definition: PopulationDefinition | Mapping, values, channe
         definition = PopulationDefinition.from_dict(definition)
     labels = assign_populations(definition, values)
     table = population_table(values, labels, definition, channel_names, channel_labels, transforms, settings)
-    return Populations(labels=labels, table=table, definition=definition, info={"matched": True})
+    return Populations(labels=labels, table=table, definition=definition,
+                       info={"matched": True, "settings": check_settings(settings)})
 
 
 # ---------------------------------------------------------------------------
@@ -642,7 +653,7 @@ def find_populations(model, values, channel_names, channel_labels=None, transfor
     going(1, "Populations: modes of the density")
     scale = np.maximum(np.percentile(X, 75, axis=0) - np.percentile(X, 25, axis=0), 1e-9)
     starts, owner = [], []
-    for k in range(K):
+    for k in range(-1, K):          # -1: the events the background holds
         idx = np.flatnonzero(hard == k)
         if idx.size == 0:
             continue
@@ -667,8 +678,14 @@ def find_populations(model, values, channel_names, channel_labels=None, transfor
     # each component goes to the population its starts reached; a component whose
     # starts reached several populations is split into the basins of its starts
     groups = np.full(K, -1, dtype=np.int64)
-    split = {}
-    for k in np.unique(owner):
+    split: dict = {}
+    comp_pops = set(start_pop[owner >= 0].tolist())
+    bg = owner < 0
+    bg_only = [int(q) if q not in comp_pops else -1 for q in start_pop[bg]]
+    if any(q >= 0 for q in bg_only):
+        # hills reached only from the background's events: populations the mixture has no component for
+        split["background"] = {"starts": Xs[starts[bg]].tolist(), "populations": bg_only}
+    for k in np.unique(owner[owner >= 0]):
         sel = owner == k
         pops_k = np.unique(start_pop[sel])
         groups[k] = np.bincount(start_pop[sel]).argmax()
@@ -699,10 +716,10 @@ def find_populations(model, values, channel_names, channel_labels=None, transfor
         definition.names[r["id"]] = r["profile"]
     going(4, "Populations: done")
     return Populations(labels=labels, table=table, definition=definition,
-                       info={"components": K, "components_with_events": int(np.unique(owner).size),
+                       info={"components": K, "components_with_events": int(np.unique(owner[owner >= 0]).size),
                              "mixture": origin, "starts": int(starts.size), "modes": n_nodes,
                              "split_components": len(split),
-                             "peaks": pop_peaks, "merge_ratio": st["merge_ratio"]})
+                             "peaks": pop_peaks, "settings": st})
 
 
 # ---------------------------------------------------------------------------
