@@ -311,7 +311,8 @@ def _population_change_stage(result, event_file, recipe, res, control) -> None:
     found on the control's model and events) counted in the control and in the
     test file; :func:`core.populations.population_changes`.  ``control`` is the
     control's prepared matrix or a PreparedControl (its held-out events are
-    then the control's counted events; the definition is cached in its ``info``)."""
+    then the control's counted events; the definition found is kept on it as
+    ``populations_definition`` for the next file)."""
     from .populations import (PopulationDefinition, assign_populations, count_populations,
                               find_populations, population_changes)
 
@@ -326,15 +327,18 @@ def _population_change_stage(result, event_file, recipe, res, control) -> None:
         c_model = getattr(res, "control_model", None)
     if c_events is None or (stored is None and c_model is None):
         return
-    cache = getattr(control, "info", None) if not isinstance(control, np.ndarray) else None
+    cached = None if isinstance(control, np.ndarray) else getattr(control, "populations_definition", None)
     if stored is not None:
         definition = PopulationDefinition.from_dict(stored)
-    elif isinstance(cache, dict) and "populations_definition" in cache:
-        definition = cache["populations_definition"]
+    elif cached is not None:
+        definition = cached
     else:
         definition = find_populations(c_model, c_events, chans, labels, transforms, settings).definition
-        if isinstance(cache, dict):
-            cache["populations_definition"] = definition
+        if not isinstance(control, np.ndarray):
+            try:   # found once per prepared control, reused for every file contrasted with it
+                control.populations_definition = definition
+            except AttributeError:
+                pass
     result.control_populations = count_populations(definition, c_events, chans, labels, transforms, settings)
     test_labels = assign_populations(definition, result.prepared.matrix)
     result.population_changes = population_changes(result.control_populations.labels, test_labels, definition)
