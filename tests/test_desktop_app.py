@@ -538,3 +538,7 @@ def test_populations_list_highlight_keep_as_region_and_export(qtbot, window, tmp
     np.testing.assert_array_equal(df["population"].to_numpy(), np.full(len(df), small["id"], dtype=np.float32))
     panel.clear_choice()
     assert np.array_equal(window.density_map.highlight_mask, tube.rare_mask)
+    # keep the populations in the recipe: the saved recipe carries the definition (core's JSON form)
+    window.populations_panel.store_button.click()
+    saved = window._current_recipe(tube)
+    assert saved.populations["definition"] == a.populations.definition.to_dict()

@@ -41,6 +41,7 @@ class PopulationsPanel(QWidget):
 
     populationChosen = Signal(object)   # population id or None
     keepRequested = Signal(int)          # population id
+    storeRequested = Signal()            # keep these populations in the recipe
     exportRequested = Signal()
 
     COLUMNS = ("", "Profile", "Events", "% of kept", "95 % interval")
@@ -79,6 +80,11 @@ class PopulationsPanel(QWidget):
         for b in (self.keep_button, self.export_button, self.clear_button):
             row.addWidget(b)
         lay.addLayout(row)
+        self.store_button = QPushButton("Count these populations in every file")
+        self.store_button.setProperty("flat", True)
+        self.store_button.setToolTip("Save these populations with the recipe: other files and the batch are then "
+                                     "counted with the same populations instead of finding their own")
+        lay.addWidget(self.store_button)
         self.change_head = QLabel("Grown and shrunk against the control")
         self.change_head.setObjectName("Heading")
         lay.addWidget(self.change_head)
@@ -99,6 +105,7 @@ class PopulationsPanel(QWidget):
         self._ids: list[int] = []
         self.keep_button.clicked.connect(self._keep)
         self.export_button.clicked.connect(self.exportRequested)
+        self.store_button.clicked.connect(self.storeRequested)
         self.clear_button.clicked.connect(self.clear_choice)
         self.table.itemSelectionChanged.connect(self._chosen)
         self.show_populations(None)
@@ -138,6 +145,9 @@ class PopulationsPanel(QWidget):
                               f"{100 * _rare_share(populations):g} % of kept events, listed first). "
                               "Choose one to light its events on every plot.")
         self.keep_button.setEnabled(False)
+        self.store_button.setEnabled(populations is not None)
+        if populations is not None and populations.info.get("matched"):
+            self.note.setText(self.note.text() + " Counted with the populations kept in the recipe.")
         self._show_changes(changes)
 
     def _show_changes(self, changes) -> None:
@@ -236,6 +246,18 @@ def attach(window) -> PopulationsPanel:
         window.add_region(population_region(tube, pid, name))
         window.notebook.setCurrentWidget(window.selections)
 
+    def store() -> None:
+        tube = window.current
+        if tube is None or tube.analysis is None or tube.analysis.populations is None:
+            return
+        settings = dict(tube.recipe.populations or {})
+        settings["definition"] = tube.analysis.populations.definition.to_dict()
+        tube.recipe.populations = settings
+        tube.dirty = True
+        window.statusBar().showMessage("The populations are kept in the recipe: save it to count them in "
+                                       "other files and in a batch", 8000)
+
+    panel.storeRequested.connect(store)
     panel.populationChosen.connect(chosen)
     panel.keepRequested.connect(keep)
     panel.exportRequested.connect(window.export_dialog)
