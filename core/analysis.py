@@ -342,8 +342,10 @@ def _population_change_stage(result, event_file, recipe, res, control) -> None:
     result.control_populations = count_populations(definition, c_events, chans, labels, transforms, settings)
     test_labels = assign_populations(definition, result.prepared.matrix)
     result.population_changes = population_changes(result.control_populations.labels, test_labels, definition)
+    short = {r["id"]: r["short_profile"] for r in result.control_populations.table}
     for row in result.population_changes:
         row["profile"] = definition.names[row["id"]]
+        row["short_profile"] = short[row["id"]]
 
 
 def _as_event_file(obj: Any):

@@ -64,6 +64,9 @@ medians; a positive population at ``r = (m - N) / (P - N)`` is ``dim`` when
 populations' autofluorescence and misses a rare positive population.)  Names come from the channel labels ($PnS) when
 given, else the channel names.
 
+Each record also has ``short_profile``: the positive (+, dim, bright)
+markers only, or "no marker +" when every reported channel is negative.
+
 Rare populations: share below ``rare_share`` (default 1 %, the recipe's
 ``populations.rare_share``); each is a population of its own by construction
 (it survived step 3).  They are listed first (smallest first), then the
@@ -565,7 +568,11 @@ def population_table(values: np.ndarray, labels: np.ndarray, definition: Populat
         levels = [marker_level(float(med[j]), splits[j]) for j in range(X.shape[1])]
         share = c / n if n else float("nan")
         lo, hi = _share_ci(c, n)
+        positive = [(lv, nm) for lv, nm in zip(levels, names) if lv not in (None, "-")]
         rows.append({"id": p, "profile": profile_text(levels, names) or f"population {p + 1}",
+                     "short_profile": (profile_text([lv for lv, _ in positive], [nm for _, nm in positive])
+                                       or ("no marker +" if any(lv == "-" for lv in levels)
+                                           else f"population {p + 1}")),
                      "count": c, "share": share, "share_low": lo, "share_high": hi,
                      "rare": bool(c > 0 and share < st["rare_share"]),
                      "caution": bool(c < st["caution_events"]),

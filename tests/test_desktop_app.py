@@ -513,7 +513,8 @@ def test_populations_list_highlight_keep_as_region_and_export(qtbot, window, tmp
     assert panel.table.rowCount() == len(a.populations.table) >= 2
     # rows in the table's order, rare first; profile and count as core computed them
     for i, r in enumerate(a.populations.table):
-        assert panel.table.item(i, 1).text() == r["profile"]
+        assert panel.table.item(i, 1).text() == r["short_profile"]
+        assert r["profile"] in panel.table.item(i, 1).toolTip()
         assert panel.table.item(i, 2).text() == f"{r['count']:,}"
     small = min(a.populations.table, key=lambda r: r["count"])
     panel.choose(small["id"])

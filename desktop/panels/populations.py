@@ -44,8 +44,8 @@ class PopulationsPanel(QWidget):
     storeRequested = Signal()            # keep these populations in the recipe
     exportRequested = Signal()
 
-    COLUMNS = ("", "Profile", "Events", "% of kept", "95 % interval")
-    CHANGE_COLUMNS = ("Profile", "Control %", "This tube %", "Fold (95 %)", "q", "")
+    COLUMNS = ("", "Markers", "Events", "% of kept", "95 % interval")
+    CHANGE_COLUMNS = ("Markers", "Control %", "This tube %", "Fold (95 %)", "q", "")
 
     def __init__(self, parent: QWidget | None = None) -> None:
         super().__init__(parent)
@@ -63,7 +63,7 @@ class PopulationsPanel(QWidget):
         self.table.setSelectionBehavior(QAbstractItemView.SelectRows)
         self.table.setSelectionMode(QAbstractItemView.SingleSelection)
         self.table.setEditTriggers(QAbstractItemView.NoEditTriggers)
-        self.table.setWordWrap(True)
+        self.table.setWordWrap(False)
         hh = self.table.horizontalHeader()
         hh.setSectionResizeMode(QHeaderView.ResizeToContents)
         hh.setSectionResizeMode(1, QHeaderView.Stretch)
@@ -123,7 +123,7 @@ class PopulationsPanel(QWidget):
             mark = "rare" if r["rare"] else ""
             if r["caution"]:
                 mark = (mark + " · few").strip(" ·")
-            cells = [mark, r["profile"], f"{r['count']:,}", _pct(r["share"]),
+            cells = [mark, r.get("short_profile", r["profile"]), f"{r['count']:,}", _pct(r["share"]),
                      f"{_pct(r['share_low'])}–{_pct(r['share_high'])}"]
             for col, text in enumerate(cells):
                 item = QTableWidgetItem(text)
@@ -131,8 +131,10 @@ class PopulationsPanel(QWidget):
                     item.setTextAlignment(Qt.AlignRight | Qt.AlignVCenter)
                 if r["rare"]:
                     item.setBackground(QColor(RARE_TINT))
+                tip = f"Population {r['id'] + 1}: {r['profile']}"
                 if r["caution"]:
-                    item.setToolTip("Fewer than about 20 events: share and profile rest on few cells")
+                    tip += "\nFewer than about 20 events: share and profile rest on few cells"
+                item.setToolTip(tip)
                 self.table.setItem(i, col, item)
             self._ids.append(int(r["id"]))
         self.table.resizeRowsToContents()
@@ -158,7 +160,7 @@ class PopulationsPanel(QWidget):
         for c in changes or []:
             i = self.changes.rowCount()
             self.changes.insertRow(i)
-            cells = [c.get("profile", ""), _pct(c["control_share"]), _pct(c["test_share"]),
+            cells = [c.get("short_profile", c.get("profile", "")), _pct(c["control_share"]), _pct(c["test_share"]),
                      f"{_fold(c['fold'])} ({_fold(c['fold_low'])}–{_fold(c['fold_high'])})",
                      f"{c['q']:.2g}", c["change"]]
             for col, text in enumerate(cells):
@@ -232,7 +234,8 @@ def attach(window) -> PopulationsPanel:
         mask = a.population_labels == pid
         row = next(r for r in a.populations.table if r["id"] == pid)
         window.density_map.set_highlight(mask)
-        window.rarity_bar.count.setText(f"{int(mask.sum()):,} events of population {row['profile']}")
+        window.rarity_bar.count.setText(f"{int(mask.sum()):,} events of population {pid + 1} "
+                                        f"({row.get('short_profile', row['profile'])})")
 
     def keep(pid: int) -> None:
         tube = window.current
