@@ -426,8 +426,13 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
     t_pop = time.perf_counter()
     populations = population_labels = None
     if not stopped:
-        populations, population_labels = _populations_stage(event_file, recipe, model, prepared,
-                                                            log_density, relay)
+        from .errors import Cancelled
+
+        try:
+            populations, population_labels = _populations_stage(event_file, recipe, model, prepared,
+                                                                log_density, relay)
+        except Cancelled:
+            pass   # stopped while finding populations: the rest of the analysis stands
     timing["populations"] = time.perf_counter() - t_pop
 
     t3 = time.perf_counter()

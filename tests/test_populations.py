@@ -175,3 +175,26 @@ def test_grown_and_shrunk_statistics_follow_scipy():
     assert rows[2]["change"] == "grown" and rows[2]["fold_low"] > 5
     assert rows[1]["change"] == "shrunk"
     assert rows[0]["change"] == ""
+
+
+def test_a_recipe_with_kept_populations_counts_another_file_with_them(tmp_path):
+    """analyse() on file 1, populations kept in the recipe (saved, loaded), analyse() on
+    file 2 counts file 2 with them: same labels as assign_populations on its events."""
+    from core.analysis import analyse
+    from core.fcs import read_fcs
+    from tests.test_analysis import make_file, recipe
+
+    make_file(tmp_path / "one.fcs", n=3000, seed=1, spike=40)
+    make_file(tmp_path / "two.fcs", n=3000, seed=2, spike=60)
+    rec = recipe(regions=[], engine={"n_trees": 30, "random_state": 0})
+    first = analyse(read_fcs(str(tmp_path / "one.fcs")), rec)
+    rec.populations = {"definition": first.populations.definition.to_dict()}
+    back = load_recipe(save_recipe(rec, tmp_path / "kept.json"))
+    second = analyse(read_fcs(str(tmp_path / "two.fcs")), back)
+    assert second.populations.info["matched"]
+    expected = assign_populations(first.populations.definition, second.prepared.matrix)
+    assert np.array_equal(second.populations.labels, expected)
+    assert np.array_equal(second.population_labels[second.kept], expected)
+    assert (second.population_labels[~second.kept] == -1).all()       # removed events belong to none
+    assert [r["id"] for r in second.populations.table] != [] and \
+        sorted(r["id"] for r in second.populations.table) == list(range(first.populations.definition.n_populations))
