@@ -6,14 +6,14 @@ Method (mode clustering on the fitted density; the choice is argued in DEVELOPER
    components plus a background, :mod:`core.density.gaussian_base`) is taken
    as it is.  When the model has no mixture (the logistic base), the same
    mixture fitter is run here on the events (seeded), so every model has one.
-2. **Modes.**  For each component, its *mode* is found on the model's own
-   fitted log density (``model.score_samples``: base, marginals and trees):
-   start at the highest-density event among the events the component holds
-   (a seeded subsample of at most ``mode_events``), then hill-climb (finite-
-   difference gradient ascent with step halving; a step is kept only when the
-   log density rises).  Up to ``starts_per_component`` (8) climbs start from
-   each component: its highest-density event, then farthest-point picks among
-   its events, so a component that spans two hills finds both.
+2. **Modes.**  Modes are found on the model's own fitted log density
+   (``model.score_samples``: base, marginals and trees) by hill climbing
+   (finite-difference gradient ascent; a step is kept only when the log
+   density rises, else it halves).  Up to ``starts_per_component`` (8) climbs
+   start from the events each component holds (hard assignment, in a seeded
+   subsample of at most ``mode_events``): its highest-density event, then
+   farthest-point picks among its events, so a component that spans two hills
+   finds both.
 3. **Merging by the level-set (cluster-tree) criterion.**  Climbs that end
    within 0.05 (channel inter-quartile ranges) of a higher end found the same
    mode.  Each mode is joined to its 12 nearest modes (a neighbourhood graph);
@@ -61,8 +61,8 @@ count-weighted medians of the negative and of the positive populations'
 medians; a positive population at ``r = (m - N) / (P - N)`` is ``dim`` when
 ``r < DIM_BELOW`` (0.75), ``bright`` when ``r > BRIGHT_ABOVE`` (1.25), else
 ``+``.  (A split of all events' values, e.g. Otsu's, follows the big
-populations' autofluorescence and misses a rare positive population.)  Names come from the channel labels ($PnS) when
-given, else the channel names.
+populations' autofluorescence and misses a rare positive population.)
+Names come from the channel labels ($PnS) when given, else the channel names.
 
 Each record also has ``short_profile``: the positive (+, dim, bright)
 markers only, or "no marker +" when every reported channel is negative.
@@ -105,6 +105,8 @@ DEFAULT_SETTINGS = {
 DIM_BELOW = 0.75
 BRIGHT_ABOVE = 1.25
 MIN_GAP = 1.0
+#: q-value at or below which a population counts as grown or shrunk (``change``).
+CHANGE_RATE = 0.05
 _CHUNK = 1 << 16
 _MINUS = "\u2212"
 
@@ -752,7 +754,8 @@ def population_changes(control_labels, test_labels, definition: PopulationDefini
     ``theta = n_test R / (n_control + n_test R)`` (R the fold; exact for Poisson
     counts, close for shares well below 1); the Clopper-Pearson interval of
     theta (``scipy.stats.binomtest``) mapped to R.  ``q``: Benjamini-Hochberg
-    across the populations (:func:`core.fdr.bh_qvalues`).
+    across the populations (:func:`core.fdr.bh_qvalues`); ``change`` is
+    "grown" / "shrunk" when q <= :data:`CHANGE_RATE` (5 %), else "".
     """
     from scipy import stats
 
@@ -786,5 +789,5 @@ def population_changes(control_labels, test_labels, definition: PopulationDefini
     q = bh_qvalues(np.array(ps)) if ps else np.array([])
     for r, qq in zip(rows, q):
         r["q"] = float(qq)
-        r["change"] = ("grown" if r["fold"] > 1 else "shrunk") if r["q"] <= 0.05 else ""
+        r["change"] = ("grown" if r["fold"] > 1 else "shrunk") if r["q"] <= CHANGE_RATE else ""
     return rows
