@@ -236,8 +236,9 @@ class Analysis:
 
         FCS float data should hold no NaN, so removed events carry log density
         0 and rarity percentile -1, and ``cleaning flag`` says why (0 kept,
-        1 saturated, 2 non-finite).  ``population``: the event's population id
-        (-1 none or removed) when populations were found.  With a control: ``contrast score`` and
+        1 saturated, 2 non-finite).  ``population``: the event's population
+        number as users see it (id + 1; 0 for none or removed) when populations
+        were found.  With a control: ``contrast score`` and
         ``enriched`` (0/1).
         """
         kept = self.kept
@@ -246,7 +247,7 @@ class Analysis:
                 "rarity percentile": np.where(kept, self.rarity, -1.0),
                 "cleaning flag": flag}
         if self.population_labels is not None:
-            cols["population"] = self.population_labels.astype(float)
+            cols["population"] = self.population_labels.astype(float) + 1.0   # 1, 2, ...; 0 none
         if self.contrast_score is not None:
             cols["contrast score"] = np.where(np.isfinite(self.contrast_score), self.contrast_score, 0.0)
             cols["enriched"] = self.enriched.astype(float)

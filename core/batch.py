@@ -19,8 +19,9 @@ the recipe's regions; then, in ``OUT_DIR/<file stem>/``:
   (:func:`core.export.export_events_fcs`, with provenance keywords);
   with ``--control`` every file is contrasted with the control
   (:mod:`core.contrast`);
-* ``<stem> rare population <id>.fcs`` -- the events of each rare population
-  (:mod:`core.populations`), with the added ``population`` column;
+* ``<stem> rare population <number>.fcs`` -- the events of each rare population
+  (:mod:`core.populations`), with the added ``population`` column (population
+  numbers as the app shows them: id + 1; 0 for none);
 * ``done.json`` -- the file's summary row, the recipe digest (extended by the
   contents of a spillover CSV the recipe names: :func:`inputs_digest`) and the
   input file's size and modification time (and the control file's path, size
@@ -200,7 +201,7 @@ def _population_outputs(an: Any, ef: Any, folder: str, stem: str, extra: dict, d
     if pops is None:
         return
     matched = "yes" if pops.info.get("matched") else "no"
-    row["populations"] = [{"population": r["id"], "profile": r["profile"], "count": r["count"],
+    row["populations"] = [{"population": r["id"] + 1, "profile": r["profile"], "count": r["count"],
                            "share_percent": round(100 * r["share"], 4),
                            "share_low_percent": round(100 * r["share_low"], 4),
                            "share_high_percent": round(100 * r["share_high"], 4),
@@ -209,11 +210,11 @@ def _population_outputs(an: Any, ef: Any, folder: str, stem: str, extra: dict, d
     row["rare_populations"] = sum(1 for r in pops.table if r["rare"])
     for r in pops.table:
         if r["rare"] and r["count"]:
-            export_events_fcs(os.path.join(folder, f"{stem} rare population {r['id']}.fcs"), ef,
+            export_events_fcs(os.path.join(folder, f"{stem} rare population {r['id'] + 1}.fcs"), ef,
                               an.population_labels == r["id"], extra, digest, overwrite=True)
     if getattr(an, "population_changes", None):
         row["population_changes"] = [
-            {"population": c["id"], "profile": c.get("profile", ""), "control_count": c["control_count"],
+            {"population": c["id"] + 1, "profile": c.get("profile", ""), "control_count": c["control_count"],
              "control_percent": round(100 * c["control_share"], 4), "test_count": c["test_count"],
              "test_percent": round(100 * c["test_share"], 4), "fold": round(c["fold"], 4),
              "fold_low": round(c["fold_low"], 4), "fold_high": round(c["fold_high"], 4),
@@ -563,7 +564,7 @@ populations.csv one row per input file and population (modes of the fitted
 population changes.csv  with a control: one row per file and population of
                 the control, counted in both: shares, fold with its 95 %
                 interval, exact test p, Benjamini-Hochberg q, grown/shrunk.
-<stem>/         per input file: '<stem> rare population <id>.fcs' per rare
+<stem>/         per input file: '<stem> rare population <number>.fcs' per rare
                 population (with a 'population' column), '<stem> rare.fcs' (the rare events) and
                 '<stem> region <name>.fcs' per region, with the ORIGINAL raw
                 values plus the parameters 'log density', 'rarity percentile'

@@ -536,7 +536,8 @@ def test_populations_list_highlight_keep_as_region_and_export(qtbot, window, tmp
     assert not messages, messages
     meta, df = fcsparser.parse(str(out), reformat_meta=True, channel_naming="$PnN")
     assert len(df) == int(expected.sum())
-    np.testing.assert_array_equal(df["population"].to_numpy(), np.full(len(df), small["id"], dtype=np.float32))
+    # the exported column holds the population number the panel shows (id + 1)
+    np.testing.assert_array_equal(df["population"].to_numpy(), np.full(len(df), small["id"] + 1, dtype=np.float32))
     panel.clear_choice()
     assert np.array_equal(window.density_map.highlight_mask, tube.rare_mask)
     # keep the populations in the recipe: the saved recipe carries the definition (core's JSON form)

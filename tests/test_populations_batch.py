@@ -30,16 +30,16 @@ def test_batch_writes_populations_csv_and_rare_population_files(tmp_path):
     assert list(rows[0]) == POPULATION_COLUMNS
     assert len(rows) == len(an.populations.table)
     for row, r in zip(rows, an.populations.table):
-        assert row["file"] == "one.fcs" and int(row["population"]) == r["id"]
+        assert row["file"] == "one.fcs" and int(row["population"]) == r["id"] + 1   # numbers from 1
         assert int(row["count"]) == int(np.count_nonzero(an.population_labels == r["id"]))
     rare = [r for r in an.populations.table if r["rare"]]
     assert rare, "the spiked group should be a rare population"
     folder = file_out_dir(str(tmp_path / "out"), str(inp / "one.fcs"))
     for r in rare:
-        path = os.path.join(folder, f"one rare population {r['id']}.fcs")
+        path = os.path.join(folder, f"one rare population {r['id'] + 1}.fcs")
         meta, df = fcsparser.parse(path, reformat_meta=True, channel_naming="$PnN")
         assert len(df) == r["count"]
-        assert set(df["population"].to_numpy()) == {float(r["id"])}
+        assert set(df["population"].to_numpy()) == {float(r["id"] + 1)}
     spiked = np.zeros(an.n_events, bool)
     spiked[:30] = True
     best = max(rare, key=lambda r: np.count_nonzero(spiked & (an.population_labels == r["id"])))

@@ -44,7 +44,7 @@ class PopulationsPanel(QWidget):
     storeRequested = Signal()            # keep these populations in the recipe
     exportRequested = Signal()
 
-    COLUMNS = ("", "Markers", "Events", "% of kept", "95 % interval")
+    COLUMNS = ("#", "Markers", "Events", "% of kept", "95 % interval")
     CHANGE_COLUMNS = ("Markers", "Control %", "This tube %", "Fold (95 %)", "q", "")
 
     def __init__(self, parent: QWidget | None = None) -> None:
@@ -120,9 +120,7 @@ class PopulationsPanel(QWidget):
         for r in rows:
             i = self.table.rowCount()
             self.table.insertRow(i)
-            mark = "rare" if r["rare"] else ""
-            if r["caution"]:
-                mark = (mark + " · few").strip(" ·")
+            mark = f"{r['id'] + 1}" + (" rare" if r["rare"] else "") + (" · few" if r["caution"] else "")
             cells = [mark, r.get("short_profile", r["profile"]), f"{r['count']:,}", _pct(r["share"]),
                      f"{_pct(r['share_low'])}–{_pct(r['share_high'])}"]
             for col, text in enumerate(cells):
