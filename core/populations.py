@@ -105,6 +105,8 @@ DEFAULT_SETTINGS = {
 DIM_BELOW = 0.75
 BRIGHT_ABOVE = 1.25
 MIN_GAP = 1.0
+#: Longest hill-climbing step, in channel inter-quartile ranges.
+MAX_STEP = 0.2
 #: q-value at or below which a population counts as grown or shrunk (``change``).
 CHANGE_RATE = 0.05
 _CHUNK = 1 << 16
@@ -326,31 +328,43 @@ def assign_populations(definition: PopulationDefinition | Mapping, values) -> np
 # modes and merging
 # ---------------------------------------------------------------------------
 
-def _hill_climb(score, starts: np.ndarray, f0: np.ndarray, step0: np.ndarray, iters: int = 40):
-    """Finite-difference gradient ascent of ``score`` (log density) from each row
-    of ``starts`` (m, d); a move is kept only when the log density rises, else
-    the step halves.  ``step0`` (d,) the first step per channel.  Returns (x, f)."""
+def _hill_climb(score, starts: np.ndarray, f0: np.ndarray, step0: np.ndarray, iters: int = 60):
+    """Gradient ascent of ``score`` (log density) from each row of ``starts`` (m, d).
+
+    Each round probes x +- h e_j on every channel (2 d points per row, one
+    ``score`` call for all rows) with h half the row's current step: central
+    differences give the gradient at the scale of the move, so the piecewise
+    constant cells of a tree density (zero gradient inside a cell) do not stall
+    it.  The row moves one step along the gradient, or to its best probe (a
+    compass move) when that is higher; a move is kept only when the log
+    density rises, and the step grows by 1.5 after a rise (up to
+    :data:`MAX_STEP` of the channel scales, so a climb does not leap over a
+    valley) and halves otherwise.  ``step0`` (d,) is a channel's scale; the
+    first step is 0.05 of it.  Returns (x (m, d), log density (m,))."""
     x = starts.copy()
     f = f0.copy()
     m, d = x.shape
-    h = 1e-3 * step0
-    step = np.ones(m)
+    step = np.full(m, 0.05)
+    rows = np.arange(m)
     for _ in range(iters):
-        # central differences: 2 d points per row, scored in one call
-        P = np.repeat(x, 2 * d, axis=0)
-        E = np.concatenate([np.diag(h), -np.diag(h)])
-        P += np.tile(E, (m, 1))
-        s = score(P).reshape(m, 2, d)
-        g = (s[:, 0] - s[:, 1]) / (2 * h)                 # (m, d)
+        h = (0.5 * step)[:, None] * step0[None, :]             # (m, d)
+        P = np.repeat(x, 2 * d, axis=0).reshape(m, 2 * d, d)
+        P[:, np.arange(d), np.arange(d)] += h
+        P[:, d + np.arange(d), np.arange(d)] -= h
+        s = score(P.reshape(-1, d)).reshape(m, 2 * d)
+        g = (s[:, :d] - s[:, d:]) / (2 * h)                     # (m, d)
         gn = np.sqrt(((g * step0) ** 2).sum(axis=1))
         gn[gn == 0] = 1.0
-        direction = g * step0 ** 2 / gn[:, None]          # unit move in channel-scale units
-        trial = x + (0.1 * step)[:, None] * direction
+        trial = x + step[:, None] * g * step0 ** 2 / gn[:, None]
         ft = score(trial)
+        best = np.argmax(s, axis=1)
+        probe_better = s[rows, best] > ft
+        trial[probe_better] = P[rows, best][probe_better]
+        ft[probe_better] = s[rows, best][probe_better]
         up = ft > f
         x[up], f[up] = trial[up], ft[up]
-        step = np.where(up, np.minimum(step * 1.5, 4.0), step * 0.5)
-        if (step < 1e-3).all():
+        step = np.where(up, np.minimum(step * 1.5, MAX_STEP), step * 0.5)
+        if (step < 1e-4).all():
             break
     return x, f
 

@@ -198,3 +198,14 @@ def test_a_recipe_with_kept_populations_counts_another_file_with_them(tmp_path):
     assert (second.population_labels[~second.kept] == -1).all()       # removed events belong to none
     assert [r["id"] for r in second.populations.table] != [] and \
         sorted(r["id"] for r in second.populations.table) == list(range(first.populations.definition.n_populations))
+
+
+def test_a_model_without_a_mixture_gets_one_fitted_for_the_populations():
+    X, lab = two_normals(2.5, n=4000)
+    model = AdditiveTreeDensity(base="logistic", n_trees=40, random_state=0).fit(X)
+    assert getattr(model, "_gmm", None) is None
+    P = find_populations(model, X, ["a", "b"])
+    assert P.info["mixture"] == "fitted here"
+    assert len(P.table) == 2 and adjusted_rand_score(lab, P.labels) > 0.9
+    again = find_populations(model, X, ["a", "b"])           # deterministic for the seed
+    assert np.array_equal(again.labels, P.labels)
