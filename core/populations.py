@@ -458,22 +458,42 @@ def _merge(peaks: np.ndarray, edges, ratio: float) -> np.ndarray:
 # profiles
 # ---------------------------------------------------------------------------
 
-def channel_splits(values: np.ndarray, labels: np.ndarray, n_populations: int) -> list[dict]:
+def population_stats(values: np.ndarray, labels: np.ndarray, n_populations: int):
+    """Per population: counts (P,), channel medians (P, d) and robust standard
+    deviations 1.4826 MAD (P, d); NaN rows for empty populations.  One sort of
+    the events by label, then contiguous slices."""
+    X = np.asarray(values, dtype=np.float64)
+    ok = labels >= 0
+    counts = np.bincount(labels[ok], minlength=n_populations)
+    order = np.argsort(labels[ok], kind="stable")
+    Xs = X[ok][order]
+    bounds = np.concatenate([[0], np.cumsum(counts)])
+    med = np.full((n_populations, X.shape[1]), np.nan)
+    sd = np.full((n_populations, X.shape[1]), np.nan)
+    for p in range(n_populations):
+        if counts[p]:
+            block = Xs[bounds[p]:bounds[p + 1]]
+            med[p] = np.median(block, axis=0)
+            sd[p] = 1.4826 * np.median(np.abs(block - med[p]), axis=0)
+    return counts, med, sd
+
+
+def channel_splits(values: np.ndarray, labels: np.ndarray, n_populations: int, stats=None) -> list[dict]:
     """Per channel the profile rule's split (module docstring): ``threshold`` (None
     when no gap is wide enough), the levels ``neg`` and ``pos``, and ``gap`` in
-    units of the two neighbouring populations' summed spread."""
-    X = np.asarray(values, dtype=np.float64)
-    counts = np.bincount(labels[labels >= 0], minlength=n_populations)
+    units of the two neighbouring populations' summed spread.  ``stats``:
+    :func:`population_stats` of the same events when already computed."""
+    counts, med, sd = stats if stats is not None else population_stats(values, labels, n_populations)
     pops = np.flatnonzero(counts >= 3)
     out = []
-    for j in range(X.shape[1]):
+    for j in range(med.shape[1]):
         if pops.size < 2:
             out.append({"threshold": None, "neg": np.nan, "pos": np.nan, "gap": 0.0})
             continue
-        meds = np.array([np.median(X[labels == p, j]) for p in pops])
-        spread = np.array([1.4826 * np.median(np.abs(X[labels == p, j] - m)) for p, m in zip(pops, meds)])
+        meds = med[pops, j]
+        spread = sd[pops, j]
         w = counts[pops].astype(float)
-        order = np.argsort(meds)
+        order = np.argsort(meds, kind="stable")
         gaps = np.diff(meds[order])
         k = int(np.argmax(gaps))
         pair = spread[order[k]] + spread[order[k + 1]]
@@ -564,8 +584,9 @@ def population_table(values: np.ndarray, labels: np.ndarray, definition: Populat
     n = X.shape[0]
     names = [(lab or "").strip() or nm for nm, lab in
              zip(channel_names, channel_labels or [""] * len(channel_names))]
+    stats = population_stats(X, labels, definition.n_populations)
     if splits is None:
-        splits = channel_splits(X, labels, definition.n_populations)
+        splits = channel_splits(X, labels, definition.n_populations, stats)
     inv = []
     for nm in channel_names:
         spec = (transforms or {}).get(nm)
@@ -573,12 +594,11 @@ def population_table(values: np.ndarray, labels: np.ndarray, definition: Populat
             inv.append(None)
         else:
             inv.append(spec if isinstance(spec, Transform) else make_transform(dict(spec)))
-    counts = np.bincount(labels[labels >= 0], minlength=definition.n_populations)
+    counts, medians, _ = stats
     rows = []
     for p in range(definition.n_populations):
-        sel = labels == p
         c = int(counts[p])
-        med = np.median(X[sel], axis=0) if c else np.full(X.shape[1], np.nan)
+        med = medians[p]
         orig = np.array([float(t.inverse(np.array([v]))[0]) if (t is not None and np.isfinite(v)) else float(v)
                          for v, t in zip(med, inv)])
         levels = [marker_level(float(med[j]), splits[j]) for j in range(X.shape[1])]
