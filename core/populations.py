@@ -4,8 +4,13 @@ Method (mode clustering on the fitted density; the choice is argued in DEVELOPER
 ---------------------------------------------------------------------------------------
 1. **Components.**  The density model's mixture base (Gaussian or skewed
    components plus a background, :mod:`core.density.gaussian_base`) is taken
-   as it is.  When the model has no mixture (the logistic base), the same
-   mixture fitter is run here on the events (seeded), so every model has one.
+   as it is.  When the model has no mixture (the logistic base, which the
+   engine keeps for channels with atoms), the same mixture fitter is run here
+   on the events (seeded), and modes and saddles below are taken on that
+   mixture's density: the model's density is then a tree density on the
+   per-channel map, piecewise constant on cells, with a local maximum in
+   nearly every cell (measured on a real 7-channel file with atoms: 264
+   climbs, 264 different ends, 249 "populations" on the model's density).
 2. **Modes.**  Modes are found on the model's own fitted log density
    (``model.score_samples``: base, marginals and trees) by hill climbing
    (finite-difference gradient ascent; a step is kept only when the log
@@ -685,7 +690,15 @@ def find_populations(model, values, channel_names, channel_labels=None, transfor
     going(0, "Populations: mixture components")
     mix, cols, origin = _mixture_for(model, X, st["random_state"])
     K = mix.n_components
-    score = model.score_samples
+    if origin == "model":
+        score = model.score_samples
+    else:
+        # a tree density on the per-channel map is piecewise constant: nearly every
+        # cell is a local maximum, so modes and saddles are taken on the smooth
+        # mixture fitted to the same events (module docstring)
+        def score(Z):
+            return mix.logpdf(np.ascontiguousarray(Z[:, cols]))
+        log_density = None
 
     # a seeded subsample starts the mode search
     sub = np.arange(n) if n <= st["mode_events"] else np.sort(rng.choice(n, st["mode_events"], replace=False))
