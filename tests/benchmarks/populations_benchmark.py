@@ -214,6 +214,7 @@ def real_files():
         rows.append([f"FCS {version}", M.shape[0], M.shape[1], model.base_, len(P.table),
                      sum(r["rare"] for r in P.table), f"{100 * shares[0]:.1f}",
                      f"{100 * float(np.mean(P.labels < 0)):.2f}", f"{fit_s:.1f}", f"{find_s:.1f}"])
+        print("  ".join(map(str, rows[-1])), flush=True)
     return rows
 
 
