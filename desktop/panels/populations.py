@@ -44,7 +44,7 @@ class PopulationsPanel(QWidget):
     storeRequested = Signal()            # keep these populations in the recipe
     exportRequested = Signal()
 
-    COLUMNS = ("#", "Markers", "Events", "% of kept", "95 % interval")
+    COLUMNS = ("#", "Markers", "Events", "% of kept (95 % interval)")
     CHANGE_COLUMNS = ("Markers", "Control %", "This tube %", "Fold (95 %)", "q", "")
 
     def __init__(self, parent: QWidget | None = None) -> None:
@@ -63,7 +63,7 @@ class PopulationsPanel(QWidget):
         self.table.setSelectionBehavior(QAbstractItemView.SelectRows)
         self.table.setSelectionMode(QAbstractItemView.SingleSelection)
         self.table.setEditTriggers(QAbstractItemView.NoEditTriggers)
-        self.table.setWordWrap(False)
+        self.table.setWordWrap(True)
         hh = self.table.horizontalHeader()
         hh.setSectionResizeMode(QHeaderView.ResizeToContents)
         hh.setSectionResizeMode(1, QHeaderView.Stretch)
@@ -120,16 +120,16 @@ class PopulationsPanel(QWidget):
         for r in rows:
             i = self.table.rowCount()
             self.table.insertRow(i)
-            mark = f"{r['id'] + 1}" + (" rare" if r["rare"] else "") + (" · few" if r["caution"] else "")
-            cells = [mark, r.get("short_profile", r["profile"]), f"{r['count']:,}", _pct(r["share"]),
-                     f"{_pct(r['share_low'])}–{_pct(r['share_high'])}"]
+            mark = f"{r['id'] + 1}" + (" !" if r["caution"] else "")
+            cells = [mark, r.get("short_profile", r["profile"]), f"{r['count']:,}",
+                     f"{_pct(r['share'])} ({_pct(r['share_low'])}–{_pct(r['share_high'])})"]
             for col, text in enumerate(cells):
                 item = QTableWidgetItem(text)
                 if col >= 2:
                     item.setTextAlignment(Qt.AlignRight | Qt.AlignVCenter)
                 if r["rare"]:
                     item.setBackground(QColor(RARE_TINT))
-                tip = f"Population {r['id'] + 1}: {r['profile']}"
+                tip = f"Population {r['id'] + 1}" + (" (rare)" if r["rare"] else "") + f": {r['profile']}"
                 if r["caution"]:
                     tip += "\nFewer than about 20 events: share and profile rest on few cells"
                 item.setToolTip(tip)
@@ -142,8 +142,9 @@ class PopulationsPanel(QWidget):
             self.note.setText("Fit the density (Ctrl+F): each hill of the fitted density becomes a population.")
         else:
             self.note.setText(f"{len(rows)} populations, {n_rare} rare (below "
-                              f"{100 * _rare_share(populations):g} % of kept events, listed first). "
-                              "Choose one to light its events on every plot.")
+                              f"{100 * _rare_share(populations):g} % of kept events: tinted, listed first; "
+                              "! marks fewer than about 20 events). Choose one to light its events on "
+                              "every plot.")
         self.keep_button.setEnabled(False)
         self.store_button.setEnabled(populations is not None)
         if populations is not None and populations.info.get("matched"):
