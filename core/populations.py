@@ -110,6 +110,9 @@ DEFAULT_SETTINGS = {
 DIM_BELOW = 0.75
 BRIGHT_ABOVE = 1.25
 MIN_GAP = 1.0
+#: Density whose modes and saddles define the populations: "model" (the fitted
+#: model's exact log density) or "mixture" (its mixture base alone).
+MODES_ON = "model"
 #: Longest hill-climbing step, in channel inter-quartile ranges.
 MAX_STEP = 0.2
 #: q-value at or below which a population counts as grown or shrunk (``change``).
@@ -690,7 +693,7 @@ def find_populations(model, values, channel_names, channel_labels=None, transfor
     going(0, "Populations: mixture components")
     mix, cols, origin = _mixture_for(model, X, st["random_state"])
     K = mix.n_components
-    if origin == "model":
+    if origin == "model" and MODES_ON == "model":
         score = model.score_samples
     else:
         # a tree density on the per-channel map is piecewise constant: nearly every
