@@ -211,7 +211,7 @@ def real_files():
         P = find_populations(model, M, [f"c{j}" for j in range(M.shape[1])])
         find_s = time.perf_counter() - t
         shares = sorted((r["share"] for r in P.table), reverse=True)
-        rows.append([f"FCS {version}", M.shape[0], M.shape[1], model.base_, len(P.table),
+        rows.append([str(version).replace("FCS", "FCS "), M.shape[0], M.shape[1], model.base_, len(P.table),
                      sum(r["rare"] for r in P.table), f"{100 * shares[0]:.1f}",
                      f"{100 * float(np.mean(P.labels < 0)):.2f}", f"{fit_s:.1f}", f"{find_s:.1f}"])
         print("  ".join(map(str, rows[-1])), flush=True)
