@@ -128,6 +128,10 @@ def _safe_name(text: str) -> str:
 OUT_MARK = ".boscage-batch"
 #: Names the batch writes directly in OUT_DIR: no input's folder may take one.
 RESERVED_NAMES = (SUMMARY_NAME, "README.txt", "recipe.json", DONE_NAME, ".prepared-control", OUT_MARK)
+#: The population tables (:func:`write_population_tables`), written beside the summary.
+POPULATIONS_NAME = "populations.csv"
+POPULATION_CHANGES_NAME = "population changes.csv"
+RESERVED_NAMES = RESERVED_NAMES + (POPULATIONS_NAME, POPULATION_CHANGES_NAME)
 
 
 def output_folder_names(paths: Sequence[str]) -> dict:
@@ -248,8 +252,6 @@ def process_file(task: dict) -> dict:
     return row
 
 
-POPULATIONS_NAME = "populations.csv"
-POPULATION_CHANGES_NAME = "population changes.csv"
 POPULATION_COLUMNS = ["file", "population", "profile", "count", "share_percent", "share_low_percent",
                       "share_high_percent", "rare", "caution", "matched"]
 CHANGE_COLUMNS = ["file", "control", "population", "profile", "control_count", "control_percent",
