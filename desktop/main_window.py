@@ -34,6 +34,7 @@ from desktop.panels.channels import ChannelsPanel
 from desktop.panels.compensation import CompensationPanel
 from desktop.panels.contrast import ContrastPanel
 from desktop.panels.fit import FitPanel
+from desktop.panels.populations import attach as attach_populations  # the panel wires itself
 from desktop.panels.rarity import RarityBar
 from desktop.panels.selections import SelectionsPanel
 from desktop.panels.tubes import TubeCard, TubesList
@@ -108,6 +109,7 @@ class MainWindow(QMainWindow):
         self.contrast_panel.chooseRequested.connect(self.choose_control)
         self.contrast_panel.showRequested.connect(self.set_highlight_enriched)
         self.contrast_panel.keepRequested.connect(self.regions.keep_enriched)
+        self.populations_panel = attach_populations(self)
         self.rarity_bar.set_share(0.005, emit=False)
         self.density_map.set_title("Open an FCS file or a folder (Ctrl+O), or drop one here")
         geometry = self.settings.value("window/geometry")

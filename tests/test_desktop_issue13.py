@@ -261,10 +261,11 @@ def test_layout_at_1280_x_720(qtbot, window, tmp_path):
     # every tab reachable without scrolling, even with two more panels than today
     from PySide6.QtWidgets import QLabel
 
-    for title in ("Populations", "Notes"):
+    before = window.notebook.count()
+    for title in ("Notes", "More"):
         window.add_side_panel(QLabel("another panel"), title)
     qtbot.wait(50)
     bar = window.notebook.tabBar()
     last = bar.tabRect(bar.count() - 1)
-    assert bar.count() == 8 and last.bottom() <= bar.height() and last.right() <= bar.width()
+    assert bar.count() == before + 2 >= 8 and last.bottom() <= bar.height() and last.right() <= bar.width()
     assert not window.rarity_bar.keep_button.isEnabled()  # before a fit: nothing to keep
