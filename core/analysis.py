@@ -20,7 +20,9 @@ the batch and :func:`analyse` all call it.
    (:mod:`core.rare`);
 4. evaluates the recipe's regions on the transformed values (not jittered:
    what the plots show) with the rarity;
-5. with a ``control`` file, contrasts the file with it (:mod:`core.contrast`).
+5. with a ``control`` file, contrasts the file with it (:mod:`core.contrast`:
+   conformal p-values, Benjamini-Hochberg q-values, enriched events at the
+   recipe's ``comparison`` rate and minimum fold, the whole-sample shift check).
    :func:`prepare_control_file` fits the control's part once
    (:class:`core.contrast.PreparedControl`); passing that as ``control``
    contrasts many files with one control without refitting it (the batch
@@ -284,6 +286,8 @@ class Analysis:
     contrast: Any = None          # core.contrast.ContrastResult over kept events, or None
     enriched: np.ndarray | None = None         # (n_events,) bool when contrasted
     contrast_score: np.ndarray | None = None   # (n_events,) NaN for removed events
+    contrast_p: np.ndarray | None = None       # (n_events,) conformal p-value; NaN for removed events
+    contrast_q: np.ndarray | None = None       # (n_events,) Benjamini-Hochberg q-value; NaN for removed
     info: dict = field(default_factory=dict)
     #: density channel -> share of the kept events on its most frequent value, for the
     #: channels above core.prepare.ATOM_SHARE (the atoms check before fitting)
@@ -329,8 +333,9 @@ class Analysis:
         FCS float data should hold no NaN, so removed events carry log density
         0 and rarity percentile -1, and ``cleaning flag`` says why
         (``core.prepare.CLEANING_FLAGS``: 0 kept, 1 saturated, 2 non-finite,
-        3 floor pile, 4 ceiling pile).  With a control: ``contrast score`` and
-        ``enriched`` (0/1).
+        3 floor pile, 4 ceiling pile).  With a control: ``contrast score``
+        (nats; 0 for removed events), ``contrast p`` and ``contrast q``
+        (1 for removed events) and ``enriched`` (0/1).
         """
         from .prepare import CLEANING_FLAGS
 
@@ -344,6 +349,9 @@ class Analysis:
                 "cleaning flag": flag}
         if self.contrast_score is not None:
             cols["contrast score"] = np.where(np.isfinite(self.contrast_score), self.contrast_score, 0.0)
+            if self.contrast_p is not None:
+                cols["contrast p"] = np.where(np.isfinite(self.contrast_p), self.contrast_p, 1.0)
+                cols["contrast q"] = np.where(np.isfinite(self.contrast_q), self.contrast_q, 1.0)
             cols["enriched"] = self.enriched.astype(float)
         return cols
 
@@ -353,7 +361,7 @@ class Analysis:
         Columns: ``event`` (0-based index in the file), every channel's
         transformed value, ``log density``, ``rarity percentile``, ``rare``,
         ``reason``, one bool column per region (``region: NAME``) and, when
-        contrasted, ``contrast score`` and ``enriched``.
+        contrasted, ``contrast score``, ``contrast p``, ``contrast q`` and ``enriched``.
         """
         import pandas as pd
 
@@ -368,6 +376,9 @@ class Analysis:
             cols[f"region: {name}"] = m
         if self.contrast_score is not None:
             cols["contrast score"] = self.contrast_score
+            if self.contrast_p is not None:
+                cols["contrast p"] = self.contrast_p
+                cols["contrast q"] = self.contrast_q
             cols["enriched"] = self.enriched
         return pd.DataFrame(cols)
 
@@ -401,18 +412,48 @@ def prepare_control_file(control: Any, recipe: Any, progress=None):
                            progress=progress, source=os.fspath(control_file.path))
 
 
+def comparison_settings(recipe: Any, rate: float | None = None, min_fold: float | None = None) -> dict:
+    """``{"rate", "min_fold"}`` of a contrast: the given values, else the recipe's ``comparison`` section,
+    else the defaults of :mod:`core.contrast`."""
+    from .contrast import DEFAULT_MIN_FOLD, DEFAULT_RATE
+
+    cmp = dict(_get(recipe, "comparison", None) or {})
+    return {"rate": float(rate if rate is not None else cmp.get("rate", DEFAULT_RATE)),
+            "min_fold": float(min_fold if min_fold is not None else cmp.get("min_fold", DEFAULT_MIN_FOLD))}
+
+
+def _inverse_transforms(recipe: Any, channels: list) -> list:
+    """Per density channel, the inverse of its transform (None when untransformed): instrument units."""
+    from .transforms import make_transform
+
+    specs = _get(recipe, "transforms", None) or {}
+    out = []
+    for c in channels:
+        spec = specs.get(c)
+        try:
+            out.append(None if spec is None else make_transform(spec).inverse)
+        except Exception:  # a transform without an inverse: report medians in plotted units
+            out.append(None)
+    return out
+
+
 def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
-            alpha: float | None = None) -> Analysis:
+            rate: float | None = None, min_fold: float | None = None) -> Analysis:
     """Fit the recipe's density to ``event_file`` and derive rarity, rare events and regions.
 
     ``event_file``: a :class:`core.fcs.EventFile` (or a path to read).
     ``recipe``: a :class:`core.recipe.Recipe`; validated against the file first.
-    ``progress(step, total, heldout_loglik) -> bool``: passed to the fit(s).
+    ``progress(step, total, info) -> bool``: passed to the fit(s); during the
+    contrast ``info`` is a dict naming the model being fitted (``"stage"``).
     ``control``: optional control EventFile or path; the file is then contrasted
-    with it (``alpha`` the share of held-out control events allowed to pass,
-    default 0.1 %).  ``control`` may also be a :class:`core.contrast.PreparedControl`
-    from :func:`prepare_control_file` with the same recipe: the control is then
-    not refitted (same result).
+    with it (:func:`core.contrast.contrast`; ``rate`` the false discovery rate
+    and ``min_fold`` the smallest density ratio of an enriched event, default
+    the recipe's ``comparison`` section).  ``control`` may also be a
+    :class:`core.contrast.PreparedControl` from :func:`prepare_control_file`
+    with the same recipe: the control is then not refitted (same result).
+    Enriched regions (``core.regions``) are evaluated after the contrast; without
+    a control they, and regions built on them, are left out of ``region_masks``
+    (named in ``info["regions_without_control"]``).
     """
     from .density import AdditiveTreeDensity
     from .rare import rare_events, rarity_percentile
@@ -453,10 +494,17 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
     t3 = time.perf_counter()
     region_dicts = _get(recipe, "regions", None) or []
     masks: dict = {}
+    regions = None
     if region_dicts:
         regions = recipe.region_set() if hasattr(recipe, "region_set") else RegionSet.from_dict(region_dicts)
         by_channel = {name: values[:, j] for j, name in enumerate(event_file.channel_names)}
-        masks = regions.evaluate(by_channel, rarity, n_events=n)
+        needs_control = regions.depending_on("enriched")
+        if not needs_control:
+            masks = regions.evaluate(by_channel, rarity, n_events=n)
+        elif control is None:  # regions of new events mean nothing without a control: left out
+            masks = RegionSet([r for r in regions if r.name not in needs_control]).evaluate(by_channel, rarity,
+                                                                                            n_events=n)
+        # with a control, regions of new events are evaluated after the contrast
     timing["regions"] = time.perf_counter() - t3
 
     result = Analysis(path=os.fspath(event_file.path), channel_names=list(event_file.channel_names),
@@ -465,10 +513,12 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
                       rare_level=rare_res.log_level, reason=np.asarray(prepared.reason).astype(str),
                       region_masks=masks, heldout_loglik=float(getattr(model, "heldout_loglik_", np.nan)),
                       timing=timing, recipe=recipe, cancelled=bool(stopped), atoms=atoms)
+    if regions is not None and control is None and regions.depending_on("enriched"):
+        result.info["regions_without_control"] = regions.depending_on("enriched")
 
     if control is not None and not stopped:
         t4 = time.perf_counter()
-        from .contrast import DEFAULT_ALPHA, PreparedControl, contrast
+        from .contrast import PreparedControl, contrast
 
         if isinstance(control, PreparedControl):
             pc, c_matrix, control_path = control, None, control.source
@@ -477,15 +527,23 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
             validate_recipe(recipe, control_file)
             c_matrix = density_input(control_file, recipe)[0].matrix
             pc, control_path = None, os.fspath(control_file.path)
-        res = contrast(prepared.matrix, c_matrix, alpha=DEFAULT_ALPHA if alpha is None else alpha,
+        settings = comparison_settings(recipe, rate, min_fold)
+        chans = list(_get(recipe, "channels"))
+        res = contrast(prepared.matrix, c_matrix, rate=settings["rate"], min_fold=settings["min_fold"],
                        engine=engine, random_state=engine["random_state"], progress=progress,
-                       test_model=model, prepared_control=pc)
+                       prepared_control=pc, channel_names=chans, to_units=_inverse_transforms(recipe, chans))
         result.contrast = res
         result.contrast_score = np.full(n, np.nan)
         result.contrast_score[prepared.kept] = res.score
+        result.contrast_p = np.full(n, np.nan)
+        result.contrast_p[prepared.kept] = res.pvalue
+        result.contrast_q = np.full(n, np.nan)
+        result.contrast_q[prepared.kept] = res.qvalue
         result.enriched = np.zeros(n, dtype=bool)
         result.enriched[prepared.kept] = res.enriched
         result.info["control"] = control_path
+        if regions is not None and regions.depending_on("enriched"):
+            result.region_masks = regions.evaluate(by_channel, rarity, n_events=n, enriched=result.enriched)
         timing["contrast"] = time.perf_counter() - t4
     timing["total"] = time.perf_counter() - t0
     return result

@@ -2,7 +2,7 @@
 
 Command line (the ``boscage`` launcher delegates ``batch`` here without Qt)::
 
-    boscage batch INPUT_DIR --out OUT_DIR [--recipe R.json] [--control FILE]
+    boscage batch INPUT_DIR --out OUT_DIR [--recipe R.json] [--control FILE] [--csv]
                   [--workers N] [--scheduler ADDRESS] [--force]
 
 Every ``*.fcs`` file directly in INPUT_DIR (sorted by name, case-insensitive
@@ -18,24 +18,27 @@ the recipe's regions; then, in ``OUT_DIR/<file stem>/`` (see :func:`output_folde
   hold no NaN), and with a control ``contrast score``/``enriched``
   (:func:`core.export.export_events_fcs`, with provenance keywords);
   with ``--control`` every file is contrasted with the control
-  (:mod:`core.contrast`);
+  (:mod:`core.contrast`) and ``<stem> enriched.fcs`` holds the events new
+  against it (columns ``contrast score``, ``contrast p``, ``contrast q``;
+  keywords naming the control, the false discovery rate and any shift
+  warning: :func:`export_enriched`), with ``--csv`` also as CSV;
 * ``done.json`` -- the file's summary row, the recipe digest (extended by the
   contents of a spillover CSV the recipe names: :func:`inputs_digest`) and the
   input file's size and modification time (and the control file's path, size
   and modification time): a re-run skips files whose marker matches (unless
   ``--force``); changed inputs, recipes, spillover CSVs or controls are redone.
 
-With ``--control`` the control's part of the contrast (its density fitted
-on the fit share, its held-out events and their log density under it) is
+With ``--control`` the control's part of the contrast (its K part densities,
+its events and their log density under the part model that did not see them) is
 computed ONCE per batch, in this process before the files are dispatched,
-and saved in ``OUT_DIR/.prepared-control/``: ``model.npz`` (the engine's own
-``save()``), ``heldout.npz`` (plain arrays, read with ``allow_pickle=False``)
+and saved in ``OUT_DIR/.prepared-control/``: ``model-<k>.npz`` (the engine's own
+``save()``), ``events.npz`` (plain arrays, read with ``allow_pickle=False``)
 and ``control.json`` (written last: recipe digest, control path, size and
-modification time, software version, split settings and SHA-256 of the two
-arrays files).  Every file's task loads it by path (worker processes and Dask
+modification time, software version, split settings and SHA-256 of the
+model and arrays files).  Every file's task loads it by path (worker processes and Dask
 workers alike) and fits only its own densities: the file's model and the
 three cross-fitted test densities (on 2/3 of its events each), about three
-full-size fits per file instead of four, with the same results as analysing
+full-size fits per file instead of five, with the same results as analysing
 each file with the control file.  The control's fit runs before any file
 starts (``BatchResult.info["control_seconds"]``); a caller's ``progress``
 is called at most every 5 s meanwhile and may stop it.  A
@@ -45,8 +48,10 @@ damaged, it is rebuilt.  If the control cannot be prepared (unreadable,
 missing channels) every file to do gets status ``error`` with the reason.
 
 ``OUT_DIR`` also gets ``summary.csv`` (one row per input file: file, events,
-events_kept, set_aside_<reason> per cleaning reason, atoms, rare_events, rare_percent, ``region:<name>`` counts, enriched
-(with a control), heldout_loglik, seconds, status ``ok``/``error``/``cancelled``,
+events_kept, set_aside_<reason> per cleaning reason, atoms, rare_events, rare_percent, ``region:<name>``
+counts, with a control the :data:`ENRICHED_COLUMNS` (enriched count, percent and 95 % interval,
+expected false discoveries, rate, minimum fold, shift warning), heldout_loglik, seconds, status
+``ok``/``error``/``cancelled``,
 message), ``recipe.json`` and a ``README.txt`` with the research-use caution.
 
 A broken file gets status ``error`` and the reason; the others carry on.
@@ -200,6 +205,8 @@ def process_file(task: dict) -> dict:
         region_files = _region_file_names(list(an.region_masks), row["file"])
         export_events_fcs(os.path.join(folder, f"{stem} rare.fcs"), ef, an.rare, extra, task["digest"],
                           overwrite=True)
+        if an.contrast is not None:
+            export_enriched(folder, stem, ef, an, task["digest"], csv=bool(task.get("csv")))
         for name, mask in an.region_masks.items():
             export_events_fcs(os.path.join(folder, f"{stem} region {region_files[name]}.fcs"), ef, mask, extra,
                               task["digest"], overwrite=True)
@@ -212,14 +219,15 @@ def process_file(task: dict) -> dict:
         for name, mask in an.region_masks.items():
             row[f"region:{name}"] = int(mask.sum())
         if an.contrast is not None:
-            row["enriched"] = an.contrast.count
+            row.update(enriched_summary(an.contrast))
         row["status"] = "ok"
         row["seconds"] = round(time.perf_counter() - t0, 3)
         with atomic_write(os.path.join(folder, DONE_NAME), "w", overwrite=True, encoding="utf-8") as fh:
             json.dump({"row": row, "recipe_digest": task["digest"],
                        "inputs_digest": task.get("inputs_digest", task["digest"]), "control": task.get("control"),
                        "control_source": _source_stamp(task["control"]) if task.get("control") else None,
-                       "control_prepared": used, "source": _source_stamp(path)}, fh, indent=1)
+                       "control_prepared": used, "source": _source_stamp(path),
+                       "csv": bool(task.get("csv"))}, fh, indent=1)
     except KeyboardInterrupt:
         raise
     except BoscageError as exc:
@@ -234,16 +242,52 @@ def process_file(task: dict) -> dict:
     return row
 
 
+#: summary.csv columns of a batch with a control (see :func:`enriched_summary`).
+ENRICHED_COLUMNS = ["enriched", "enriched_percent", "enriched_ci_low_percent", "enriched_ci_high_percent",
+                    "expected_false", "false_discovery_rate", "min_fold", "shift_warning"]
+
+
+def enriched_summary(res: Any) -> dict:
+    """The summary row's comparison entries from a :class:`core.contrast.ContrastResult`."""
+    return {"enriched": res.count, "enriched_percent": round(100.0 * res.share, 4),
+            "enriched_ci_low_percent": round(100.0 * res.share_ci[0], 4),
+            "enriched_ci_high_percent": round(100.0 * res.share_ci[1], 4),
+            "expected_false": round(res.expected_false, 2), "false_discovery_rate": res.rate,
+            "min_fold": res.min_fold, "shift_warning": res.shift.text if res.shift is not None else ""}
+
+
+def export_enriched(folder: str, stem: str, event_file: Any, an: Any, digest: str, csv: bool = False) -> list:
+    """Write ``<stem> enriched.fcs`` (and ``<stem> enriched.csv`` when ``csv``) in ``folder``.
+
+    The enriched events of ``an`` (a contrasted :class:`core.analysis.Analysis`)
+    with the added columns of :meth:`~core.analysis.Analysis.export_columns`
+    (``contrast score``, ``contrast p``, ``contrast q`` among them); the FCS
+    file carries :func:`core.contrast.contrast_keywords`.  The CSV holds the transformed
+    values as the analysis saw them.  Returns the paths written.
+    """
+    from .contrast import contrast_keywords
+    from .export import export_events_csv, export_events_fcs
+
+    extra = an.export_columns()
+    kw = contrast_keywords(an.contrast, an.info.get("control"))
+    paths = [export_events_fcs(os.path.join(folder, f"{stem} enriched.fcs"), event_file, an.enriched, extra,
+                               digest, overwrite=True, extra_keywords=kw)]
+    if csv:
+        paths.append(export_events_csv(os.path.join(folder, f"{stem} enriched.csv"), an.channel_names, an.values,
+                                       an.enriched, extra, overwrite=True, source_paths=[an.path]))
+    return paths
+
+
 # ---------------------------------------------------------------------------
 # the control's part of the contrast, prepared once per batch
 # ---------------------------------------------------------------------------
 
 CONTROL_DIR = ".prepared-control"
 CONTROL_META = "control.json"
-CONTROL_MODEL = "model.npz"
-CONTROL_ARRAYS = "heldout.npz"
+CONTROL_MODEL = "model-{k}.npz"
+CONTROL_ARRAYS = "events.npz"
 CONTROL_FORMAT = "boscage-batch-prepared-control"
-CONTROL_FORMAT_VERSION = 1
+CONTROL_FORMAT_VERSION = 2
 
 
 def control_key(control: str, digest: str) -> dict:
@@ -267,10 +311,11 @@ def _sha256(path: str) -> str:
 def save_prepared_control(prepared: Any, folder: str, key: dict) -> None:
     """Write a :class:`core.contrast.PreparedControl` to ``folder`` (created if missing).
 
-    The model goes through the engine's own ``save()``; the held-out events
-    and their control log density through ``np.savez``; ``control.json``
-    (``key``, split settings, checksums) is written last, every file atomically,
-    so a folder whose writing was interrupted is never taken as valid.
+    Each part model goes through the engine's own ``save()`` (``model-<k>.npz``);
+    the control events, their parts and log densities through ``np.savez``
+    (``events.npz``); ``control.json`` (``key``, split settings, checksums) is
+    written last, every file atomically, so a folder whose writing was
+    interrupted is never taken as valid.
     """
     import numpy as np
 
@@ -278,16 +323,17 @@ def save_prepared_control(prepared: Any, folder: str, key: dict) -> None:
     meta_path = os.path.join(folder, CONTROL_META)
     if os.path.exists(meta_path):  # what follows replaces the files it describes
         os.unlink(meta_path)
-    model_path = os.path.join(folder, CONTROL_MODEL)
+    names = [CONTROL_MODEL.format(k=k) for k in range(len(prepared.models))]
+    for name, model in zip(names, prepared.models):
+        model.save(os.path.join(folder, name))
     arrays_path = os.path.join(folder, CONTROL_ARRAYS)
-    prepared.model.save(model_path)
     with atomic_write(arrays_path, "wb", overwrite=True) as fh:
-        np.savez(fh, heldout=np.asarray(prepared.heldout, dtype=np.float64),
-                 heldout_log_control=np.asarray(prepared.heldout_log_control, dtype=np.float64))
-    meta = dict(key, n_fit=int(prepared.n_fit), n_heldout=int(prepared.heldout.shape[0]),
-                n_channels=int(prepared.heldout.shape[1]), heldout_fraction=float(prepared.heldout_fraction),
-                random_state=int(prepared.random_state), note=RESEARCH_USE_NOTE,
-                sha256={CONTROL_MODEL: _sha256(model_path), CONTROL_ARRAYS: _sha256(arrays_path)})
+        np.savez(fh, events=np.asarray(prepared.events, dtype=np.float64),
+                 part=np.asarray(prepared.part, dtype=np.int64),
+                 log_control=np.asarray(prepared.log_control, dtype=np.float64))
+    meta = dict(key, n_events=int(prepared.events.shape[0]), n_channels=int(prepared.events.shape[1]),
+                folds=int(prepared.folds), random_state=int(prepared.random_state), note=RESEARCH_USE_NOTE,
+                sha256={name: _sha256(os.path.join(folder, name)) for name in names + [CONTROL_ARRAYS]})
     with atomic_write(meta_path, "w", overwrite=True, encoding="utf-8") as fh:
         json.dump(meta, fh, indent=1)
 
@@ -325,8 +371,16 @@ def load_prepared_control(folder: str, key: dict | None = None):
         changed = [k for k in key if meta.get(k) != key[k]]
         if changed:
             raise fail(f"it was prepared for another {', '.join(changed)}")
+    try:
+        folds = int(meta["folds"])
+        seed = int(meta["random_state"])
+    except (KeyError, TypeError, ValueError) as exc:
+        raise fail(f"control.json lacks the split settings ({type(exc).__name__}: {exc})") from exc
+    if not 2 <= folds <= 100:
+        raise fail(f"control.json gives {folds} parts")
+    names = [CONTROL_MODEL.format(k=k) for k in range(folds)]
     sums = meta.get("sha256")
-    for name in (CONTROL_MODEL, CONTROL_ARRAYS):
+    for name in names + [CONTROL_ARRAYS]:
         path = os.path.join(folder, name)
         try:
             digest = _sha256(path)
@@ -334,24 +388,24 @@ def load_prepared_control(folder: str, key: dict | None = None):
             raise fail(f"{name} cannot be read ({exc.strerror or exc})") from exc
         if not isinstance(sums, dict) or sums.get(name) != digest:
             raise fail(f"{name} does not match its checksum in control.json (damaged or replaced)")
-    model = AdditiveTreeDensity.load(os.path.join(folder, CONTROL_MODEL))
+    models = [AdditiveTreeDensity.load(os.path.join(folder, name)) for name in names]
     try:
         with np.load(os.path.join(folder, CONTROL_ARRAYS), allow_pickle=False) as z:
-            held = np.asarray(z["heldout"])
-            held_log = np.asarray(z["heldout_log_control"])
-        n_fit = int(meta["n_fit"])
-        fraction = float(meta["heldout_fraction"])
-        seed = int(meta["random_state"])
+            events = np.asarray(z["events"])
+            part = np.asarray(z["part"])
+            log_control = np.asarray(z["log_control"])
     except (OSError, ValueError, KeyError, TypeError, EOFError, zipfile.BadZipFile) as exc:
-        raise fail(f"{CONTROL_ARRAYS} or control.json is damaged ({type(exc).__name__}: {exc})") from exc
-    if (held.ndim != 2 or held.dtype.kind != "f" or held_log.shape != (held.shape[0],)
-            or held.shape[1] != int(model.n_features_in_) or not np.all(np.isfinite(held))
-            or held.shape[0] == 0 or n_fit < 1):
-        raise fail(f"{CONTROL_ARRAYS} does not hold the held-out events the model expects "
-                   f"(shapes {held.shape} and {held_log.shape}, model of {model.n_features_in_} channels)")
-    return PreparedControl(model=model, heldout=held.astype(np.float64),
-                           heldout_log_control=held_log.astype(np.float64), n_fit=n_fit,
-                           heldout_fraction=fraction, random_state=seed, source=str(meta.get("control", "")),
+        raise fail(f"{CONTROL_ARRAYS} is damaged ({type(exc).__name__}: {exc})") from exc
+    n = events.shape[0] if events.ndim == 2 else -1
+    if (n <= 0 or events.dtype.kind != "f" or part.shape != (n,) or part.dtype.kind not in "iu"
+            or log_control.shape != (n,) or not np.all(np.isfinite(events))
+            or np.any((part < 0) | (part >= folds))
+            or any(events.shape[1] != int(m.n_features_in_) for m in models)):
+        raise fail(f"{CONTROL_ARRAYS} does not hold the control events the models expect "
+                   f"(shapes {events.shape}, {part.shape}, {log_control.shape}; {folds} parts)")
+    return PreparedControl(models=models, events=events.astype(np.float64), part=part.astype(np.int64),
+                           log_control=log_control.astype(np.float64), folds=folds, random_state=seed,
+                           source=str(meta.get("control", "")),
                            info={"folder": os.path.abspath(folder), "sha256": dict(sums)})
 
 
@@ -552,14 +606,15 @@ def inputs_digest(recipe: Any, digest: str) -> str:
 
 
 def _finished_row(out_dir: str, path: str, key: str, control: str | None,
-                  names: dict | None = None) -> dict | None:
+                  names: dict | None = None, csv: bool = False) -> dict | None:
     try:
         marker = os.path.join(file_out_dir(out_dir, path, names), DONE_NAME)
         with open(marker, encoding="utf-8") as fh:
             done = json.load(fh)
         if (done.get("inputs_digest") == key and done.get("control") == control
                 and done.get("control_source") == (_source_stamp(control) if control else None)
-                and done.get("source") == _source_stamp(path) and done["row"].get("status") == "ok"):
+                and done.get("source") == _source_stamp(path) and done["row"].get("status") == "ok"
+                and (not csv or not control or done.get("csv"))):
             return dict(done["row"])
     except (OSError, ValueError, KeyError, TypeError, AttributeError, RecursionError, ExportError):
         pass
@@ -633,7 +688,7 @@ def _summary_columns(rows: list, recipe: Any, control: bool) -> list[str]:
     extra = [k for row in rows for k in row if k.startswith("region:") and k not in regions]
     cols = BASE_COLUMNS + regions + sorted(set(extra))
     if control:
-        cols.append("enriched")
+        cols += ENRICHED_COLUMNS
     return cols + TAIL_COLUMNS
 
 
@@ -661,7 +716,11 @@ summary.csv     one row per input file: events, events kept after cleaning,
                 events set aside per reason (saturated, ceiling pile, floor
                 pile, non-finite), atoms (density channels where one value
                 still holds more than 0.1 % of the kept events), rare events and their percentage of kept events, events in
-                each region, enriched events (with a control), held-out
+                each region, with a control the enriched (new) events:
+                count, percent of kept events with its 95 % interval, the
+                expected number of false discoveries, the false discovery
+                rate, the minimum fold and the whole-sample shift warning
+                (empty when none); held-out
                 log-likelihood of the density fit (nats per event), seconds,
                 status (ok / error / cancelled) and the reason of an error.
 <stem>/         per input file: '<stem> rare.fcs' (the rare events) and
@@ -670,10 +729,16 @@ summary.csv     one row per input file: events, events kept after cleaning,
                 and 'cleaning flag' (0 kept, 1 saturated, 2 non-finite,
                 3 floor pile, 4 ceiling pile;
                 removed events have log density 0 and rarity -1), and
-                'done.json' (lets a re-run skip the file).
-.prepared-control/  with a control: the control's density and held-out
-                events, fitted once for all files; rebuilt when the recipe
-                or the control file changes.
+                'done.json' (lets a re-run skip the file).  With a control
+                also '<stem> enriched.fcs' (and '.csv' with --csv): the
+                events new against the control, with 'contrast score'
+                (log density ratio, nats), 'contrast p' (conformal p-value)
+                and 'contrast q' (Benjamini-Hochberg q-value); keywords
+                BOSCAGE_CONTROL, BOSCAGE_FDR, BOSCAGE_MIN_FOLD and, when
+                raised, BOSCAGE_SHIFT_WARNING.
+.prepared-control/  with a control: the control's part densities and
+                its events, fitted once for all files; rebuilt when the
+                recipe or the control file changes.
 
 Recipe used:
 {json.dumps(recipe.to_dict(), indent=2, sort_keys=True)}
@@ -684,7 +749,8 @@ Recipe used:
 
 def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | None = None,
               workers: int | None = None, scheduler: str | None = None, force: bool = False,
-              progress: Callable | None = None, numba_threads: int | None = None) -> BatchResult:
+              progress: Callable | None = None, numba_threads: int | None = None,
+              csv: bool = False) -> BatchResult:
     """Run one recipe over every ``*.fcs`` in ``input_dir``; see the module docstring.
 
     ``recipe``: a Recipe, a recipe dict, a path to a recipe JSON, or None
@@ -692,6 +758,7 @@ def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | N
     row)`` is called after each file (``row`` the file's summary row);
     returning False stops the batch like Ctrl-C.  ``numba_threads``: numba
     threads per worker process (default cores // workers, at least 1).
+    ``csv``: with a control, also write each file's enriched events as CSV.
 
     Worker processes are started (and load the compiled kernels) as soon as the
     files to do are known, while this process reports the skipped ones and
@@ -701,14 +768,14 @@ def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | N
     box: dict = {"pool": None}
     try:
         return _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, progress,
-                          numba_threads, box)
+                          numba_threads, box, csv=csv)
     finally:
         if box["pool"] is not None:
             _stop_pool(box["pool"])
 
 
 def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, progress, numba_threads,
-               box) -> BatchResult:
+               box, csv=False) -> BatchResult:
     """The body of :func:`run_batch`; ``box["pool"]`` holds an early-started worker pool."""
     from .recipe import recipe_digest, save_recipe
 
@@ -754,7 +821,7 @@ def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, p
                        "message": f"{os.path.basename(p)}: no output folder name distinct from the other "
                                   "inputs' can be made; rename the file"}
             continue
-        done = None if force else _finished_row(out_dir, p, key_digest, control, names)
+        done = None if force else _finished_row(out_dir, p, key_digest, control, names, csv)
         if done is not None:
             rows[p] = done
         else:
@@ -825,7 +892,8 @@ def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, p
               "recipe_source": getattr(recipe_obj, "source", None), "digest": digest,
               "inputs_digest": key_digest, "control": control,
               "control_prepared": os.path.abspath(control_dir) if control_dir else None, "control_key": key,
-              "numba_threads": threads if (workers > 1 or numba_threads) and not scheduler else None}
+              "numba_threads": threads if (workers > 1 or numba_threads) and not scheduler else None,
+              "csv": bool(csv)}
              for p in todo]
     by_path = {t["path"]: p for t, p in zip(tasks, todo)}
     for t, p in zip(tasks, todo):  # the file's output folder name and the run's inputs (never written)
@@ -1070,6 +1138,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--workers", type=int, metavar="N", help="worker processes (default: CPU cores)")
     p.add_argument("--scheduler", metavar="ADDRESS", help="address of a Dask distributed scheduler")
     p.add_argument("--force", action="store_true", help="redo files already finished in an earlier run")
+    p.add_argument("--csv", action="store_true",
+                   help="with --control, also write each file's enriched events as CSV (transformed values)")
     return p
 
 
@@ -1086,7 +1156,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     bar = TerminalProgress(sys.stderr)
     try:
         result = run_batch(args.input_dir, args.out, recipe=args.recipe, control=args.control,
-                           workers=args.workers, scheduler=args.scheduler, force=args.force, progress=bar)
+                           workers=args.workers, scheduler=args.scheduler, force=args.force, progress=bar,
+                           csv=args.csv)
     except KeyboardInterrupt:
         print("\nboscage batch: stopped; finished files are kept", file=sys.stderr)
         return 130

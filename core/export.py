@@ -123,7 +123,8 @@ def _spillover_keyword(keywords: Mapping[str, str], source: str) -> dict[str, st
 
 def export_events_fcs(path: str | os.PathLike, event_file: Any, mask: Any,
                       extra_columns: Mapping[str, Any] | None, recipe_digest: str,
-                      overwrite: bool = False, missing_value: float | None = None) -> str:
+                      overwrite: bool = False, missing_value: float | None = None,
+                      extra_keywords: Mapping[str, str] | None = None) -> str:
     """Write the selected events of ``event_file`` to an FCS 3.1 file; return the path.
 
     ``event_file``: a :class:`core.fcs.EventFile`; its ``data`` (events x
@@ -135,6 +136,8 @@ def export_events_fcs(path: str | os.PathLike, event_file: Any, mask: Any,
     or infinite values (FCS cannot store them) are left out and counted in
     the keyword ``BOSCAGE_NONFINITE`` and in ``$COM``.
     ``recipe_digest``: :func:`core.recipe.recipe_digest` of the recipe used.
+    ``extra_keywords``: more TEXT keywords (e.g. ``BOSCAGE_CONTROL``), added
+    after the provenance keywords.
     ``missing_value``: FCS holds no NaN; NaN in an added column (e.g. the log
     density of an event removed by cleaning) is written as this number, or
     refused (ExportError) when it is None.
@@ -203,6 +206,7 @@ def export_events_fcs(path: str | os.PathLike, event_file: Any, mask: Any,
         "BOSCAGE_CAUTION": RESEARCH_USE_NOTE,
         "BOSCAGE_EVENTS": f"{n_sel} of {n_events}",
     })
+    keywords.update({str(k): str(v) for k, v in (extra_keywords or {}).items()})
     if n_nonfinite:
         keywords["BOSCAGE_NONFINITE"] = str(n_nonfinite)
         keywords["$COM"] += (f" {n_nonfinite} selected events holding NaN or infinite values were "

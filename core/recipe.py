@@ -14,6 +14,7 @@ colleague.  Stored form (schema version 1)::
       "engine": {"random_state": 0},                   # AdditiveTreeDensity keyword arguments
       "rare": {"rule": "share", "share": 0.005},       # or {"rule": "mass", "mass": 0.995}
       "regions": [ ...region dicts, see core.regions... ],
+      "comparison": {"rate": 0.05, "min_fold": 2.0},    # contrast with a control (core.contrast)
       "software": "Boscage 0.1.0"                      # written on save, informational
     }
 
@@ -40,6 +41,10 @@ Meaning of the entries:
   whose outside counts as rare (0.995 = 99.5 %).
 * ``regions``: regions in transformed channel units with the transform of
   each channel recorded (see :mod:`core.regions`).
+* ``comparison``: how a file is contrasted with a control (:mod:`core.contrast`):
+  ``rate`` is the false discovery rate of the enriched events (0.05 = 5 %,
+  strictly between 0 and 1), ``min_fold`` the smallest density ratio
+  test / control of an enriched event (at least 1; default 2).
 
 The default choice of channels (:func:`default_recipe`) takes the
 fluorescence channels of :mod:`core.channel_kinds` (the one place where the
@@ -75,11 +80,12 @@ DEFAULT_COMPENSATION = {"source": "none", "csv_path": None}
 DEFAULT_CLEANING = {"drop_saturated": True, "drop_piles": True, "dequantise": True}
 DEFAULT_RARE = {"rule": "share", "share": 0.005}
 DEFAULT_RANDOM_STATE = 0
+DEFAULT_COMPARISON = {"rate": 0.05, "min_fold": 2.0}
 #: default_recipe leaves out a channel whose floor or ceiling pile holds more than this share.
 MAX_PILE_SHARE = 0.25
 
 _FIELDS = ("schema_version", "name", "notes", "channels", "compensation", "transforms",
-           "cleaning", "engine", "rare", "regions")
+           "cleaning", "engine", "rare", "regions", "comparison")
 _INFORMATIONAL = ("software",)
 
 
@@ -104,6 +110,7 @@ class Recipe:
     engine: dict = field(default_factory=dict)
     rare: dict = field(default_factory=lambda: dict(DEFAULT_RARE))
     regions: list = field(default_factory=list)
+    comparison: dict = field(default_factory=lambda: dict(DEFAULT_COMPARISON))
     name: str = ""
     notes: str = ""
     schema_version: int = SCHEMA_VERSION
@@ -322,6 +329,27 @@ def _normalise(d: Mapping[str, Any], source: str | None) -> dict:
     except RegionError as exc:
         raise RecipeError(f"{where}{exc}") from exc
     out["regions"] = rset.to_dict()
+    out["comparison"] = _check_comparison(d.get("comparison", DEFAULT_COMPARISON), where)
+    return out
+
+
+def _check_comparison(cmp: Any, where: str) -> dict:
+    """The recipe's ``comparison`` section, defaults filled in (RecipeError if invalid)."""
+    if not isinstance(cmp, Mapping):
+        raise RecipeError(f"{where}'comparison' must be an object like {json.dumps(DEFAULT_COMPARISON)}; "
+                          f"got {_typename(cmp)}")
+    _check_keys(cmp, tuple(DEFAULT_COMPARISON), "'comparison'", where)
+    out = dict(DEFAULT_COMPARISON)
+    for k, v in cmp.items():
+        if not _is_number(v) or not math.isfinite(v):
+            raise RecipeError(f"{where}comparison '{k}' must be a number; got {v!r}")
+        out[k] = float(v)
+    if not 0.0 < out["rate"] < 1.0:
+        raise RecipeError(f"{where}comparison 'rate' is the false discovery rate, a fraction strictly between "
+                          f"0 and 1 (0.05 = 5 %); got {out['rate']}")
+    if out["min_fold"] < 1.0:
+        raise RecipeError(f"{where}comparison 'min_fold' is the smallest density ratio test / control of an "
+                          f"enriched event, at least 1 (default 2); got {out['min_fold']}")
     return out
 
 
