@@ -14,6 +14,8 @@ colleague.  Stored form (schema version 1)::
       "engine": {"random_state": 0},                   # AdditiveTreeDensity keyword arguments
       "rare": {"rule": "share", "share": 0.005},       # or {"rule": "mass", "mass": 0.995}
       "regions": [ ...region dicts, see core.regions... ],
+      "populations": {"rare_share": 0.01, "definition": {...}},   # optional, see core.populations
+      "comparison": {"rate": 0.05, "min_fold": 2.0},    # contrast with a control (core.contrast)
       "software": "Boscage 0.1.0"                      # written on save, informational
     }
 
@@ -40,6 +42,14 @@ Meaning of the entries:
   whose outside counts as rare (0.995 = 99.5 %).
 * ``regions``: regions in transformed channel units with the transform of
   each channel recorded (see :mod:`core.regions`).
+* ``populations``: settings of the population search (:mod:`core.populations`:
+  ``rare_share``, ``merge_ratio``, ...) and, once kept, the ``definition`` of
+  the populations found, so every file of the recipe is counted with the same
+  populations.
+* ``comparison``: how a file is contrasted with a control (:mod:`core.contrast`):
+  ``rate`` is the false discovery rate of the enriched events (0.05 = 5 %,
+  strictly between 0 and 1), ``min_fold`` the smallest density ratio
+  test / control of an enriched event (at least 1; default 2).
 
 The default choice of channels (:func:`default_recipe`) takes the
 fluorescence channels of :mod:`core.channel_kinds` (the one place where the
@@ -58,6 +68,7 @@ from dataclasses import dataclass, field
 from typing import Any, Mapping
 
 from . import SOFTWARE_NAME, __version__
+from . import safe_json
 from .atomic import atomic_write
 from .errors import BoscageError, CompensationError, RecipeError, RegionError
 from .channel_kinds import FLUORESCENCE, SCATTER, channel_kind, is_fluorescence, one_measure_per_detector
@@ -74,11 +85,12 @@ DEFAULT_COMPENSATION = {"source": "none", "csv_path": None}
 DEFAULT_CLEANING = {"drop_saturated": True, "drop_piles": True, "dequantise": True}
 DEFAULT_RARE = {"rule": "share", "share": 0.005}
 DEFAULT_RANDOM_STATE = 0
+DEFAULT_COMPARISON = {"rate": 0.05, "min_fold": 2.0}
 #: default_recipe leaves out a channel whose floor or ceiling pile holds more than this share.
 MAX_PILE_SHARE = 0.25
 
 _FIELDS = ("schema_version", "name", "notes", "channels", "compensation", "transforms",
-           "cleaning", "engine", "rare", "regions")
+           "cleaning", "engine", "rare", "regions", "comparison", "populations")
 _INFORMATIONAL = ("software",)
 
 
@@ -103,14 +115,16 @@ class Recipe:
     engine: dict = field(default_factory=dict)
     rare: dict = field(default_factory=lambda: dict(DEFAULT_RARE))
     regions: list = field(default_factory=list)
+    populations: dict = field(default_factory=dict)
+    comparison: dict = field(default_factory=lambda: dict(DEFAULT_COMPARISON))
     name: str = ""
     notes: str = ""
     schema_version: int = SCHEMA_VERSION
     source: str | None = field(default=None, compare=False, repr=False)
 
     def to_dict(self) -> dict:
-        """The stored form: a JSON-able dict (deep copy)."""
-        return {k: copy.deepcopy(getattr(self, k)) for k in _FIELDS}
+        """The stored form: a JSON-able dict (deep copy); an empty ``populations`` is left out."""
+        return {k: copy.deepcopy(getattr(self, k)) for k in _FIELDS if k != "populations" or self.populations}
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any], source: str | os.PathLike | None = None) -> "Recipe":
@@ -321,6 +335,50 @@ def _normalise(d: Mapping[str, Any], source: str | None) -> dict:
     except RegionError as exc:
         raise RecipeError(f"{where}{exc}") from exc
     out["regions"] = rset.to_dict()
+    out["comparison"] = _check_comparison(d.get("comparison", DEFAULT_COMPARISON), where)
+    out["populations"] = _normalise_populations(d.get("populations", {}), out["channels"], where)
+    return out
+
+
+def _normalise_populations(pops: Any, channels: list, where: str) -> dict:
+    """The recipe's ``populations`` entry: settings of :mod:`core.populations`
+    (only those given are kept) and an optional stored ``definition``."""
+    from .populations import PopulationDefinition, check_settings
+
+    if not isinstance(pops, Mapping):
+        raise RecipeError(f"{where}'populations' must be an object like {{\"rare_share\": 0.01}}; "
+                          f"got {_typename(pops)}")
+    check_settings(pops, where)
+    out = {k: v for k, v in pops.items() if k != "definition"}
+    if pops.get("definition") is not None:
+        try:
+            definition = PopulationDefinition.from_dict(pops["definition"])
+        except RecipeError as exc:
+            raise RecipeError(f"{where}{exc}") from exc
+        if list(definition.channels) != list(channels):
+            raise RecipeError(f"{where}the stored populations were found on channels "
+                              f"{', '.join(definition.channels)}, not the recipe's {', '.join(channels)}")
+        out["definition"] = definition.to_dict()
+    return out
+
+
+def _check_comparison(cmp: Any, where: str) -> dict:
+    """The recipe's ``comparison`` section, defaults filled in (RecipeError if invalid)."""
+    if not isinstance(cmp, Mapping):
+        raise RecipeError(f"{where}'comparison' must be an object like {json.dumps(DEFAULT_COMPARISON)}; "
+                          f"got {_typename(cmp)}")
+    _check_keys(cmp, tuple(DEFAULT_COMPARISON), "'comparison'", where)
+    out = dict(DEFAULT_COMPARISON)
+    for k, v in cmp.items():
+        if not _is_number(v) or not math.isfinite(v):
+            raise RecipeError(f"{where}comparison '{k}' must be a number; got {v!r}")
+        out[k] = float(v)
+    if not 0.0 < out["rate"] < 1.0:
+        raise RecipeError(f"{where}comparison 'rate' is the false discovery rate, a fraction strictly between "
+                          f"0 and 1 (0.05 = 5 %); got {out['rate']}")
+    if out["min_fold"] < 1.0:
+        raise RecipeError(f"{where}comparison 'min_fold' is the smallest density ratio test / control of an "
+                          f"enriched event, at least 1 (default 2); got {out['min_fold']}")
     return out
 
 
@@ -404,6 +462,8 @@ def load_recipe(path: str | os.PathLike) -> Recipe:
     """Read and check a recipe file; RecipeError naming the file for anything wrong."""
     path = os.fspath(path)
     where = _where(path)
+    if os.path.exists(path) and not os.path.isfile(path):  # a folder or a named pipe (would block)
+        raise RecipeError(f"{where}not a regular file (a folder, named pipe or device) (file: {path})")
     try:
         with open(path, "r", encoding="utf-8") as handle:
             text = handle.read()
@@ -414,7 +474,7 @@ def load_recipe(path: str | os.PathLike) -> Recipe:
     except OSError as exc:
         raise RecipeError(f"{where}cannot read the file ({exc.strerror or exc}) (file: {path})") from exc
     try:
-        d = json.loads(text, parse_constant=_reject_constant)
+        d = safe_json.loads(text, parse_constant=_reject_constant)  # bounded nesting: no RecursionError
     except json.JSONDecodeError as exc:
         raise RecipeError(f"{where}not valid JSON at line {exc.lineno}, column {exc.colno}: {exc.msg} "
                           f"(file: {path})") from None

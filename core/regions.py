@@ -15,6 +15,19 @@ Kinds (``kind`` in the stored dict):
     ``percentile`` p in [0, 100]: the events whose rarity percentile is <= p,
     i.e. the rarest p % (see :func:`core.rare.rarity_percentile`; removed
     events have NaN rarity and are never inside).
+``population``
+    ``population`` (an id) of a stored population ``definition``
+    (:class:`core.populations.PopulationDefinition`, over its density
+    channels): the events the definition assigns to that population
+    (:func:`core.populations.assign_populations` on the transformed values;
+    removed events, NaN rarity, are outside when rarity is given).
+    ``transforms`` records each density channel's transform spec.
+``enriched``
+    the events found enriched over a control (:mod:`core.contrast`: new
+    events at the recipe's false discovery rate); optional ``control``
+    records the control file's name (informational).  Evaluated only when a
+    contrast's enriched mask is given (``RegionSet.evaluate(..., enriched=)``);
+    otherwise a RegionError says a control is needed.
 ``and`` / ``or`` / ``not``
     boolean combinations of other regions, named in ``operands``
     (``not`` takes exactly one).
@@ -49,7 +62,8 @@ from .errors import RegionError
 
 GEOMETRIC_KINDS = ("rectangle", "polygon", "interval")
 COMBINATION_KINDS = ("and", "or", "not")
-KINDS = GEOMETRIC_KINDS + ("rarity",) + COMBINATION_KINDS
+KINDS = GEOMETRIC_KINDS + ("rarity", "enriched") + COMBINATION_KINDS
+KINDS = KINDS + ("population",)
 
 _COMMON_KEYS = {"name", "kind", "parent"}
 _KEYS = {
@@ -57,6 +71,8 @@ _KEYS = {
     "polygon": _COMMON_KEYS | {"channels", "vertices", "transforms"},
     "interval": _COMMON_KEYS | {"channels", "low", "high", "transforms"},
     "rarity": _COMMON_KEYS | {"percentile"},
+    "population": _COMMON_KEYS | {"population", "definition", "transforms"},
+    "enriched": _COMMON_KEYS | {"control"},
     "and": _COMMON_KEYS | {"operands"},
     "or": _COMMON_KEYS | {"operands"},
     "not": _COMMON_KEYS | {"operands"},
@@ -365,6 +381,38 @@ class RarityRegion(Region):
 
 
 @dataclass(frozen=True)
+class EnrichedRegion(Region):
+    """Events enriched over a control (the contrast's enriched mask); ``control``: the control's file name."""
+
+    control: str | None = None
+
+    kind = "enriched"
+
+    def __post_init__(self):
+        self._check_common()
+        if self.control is not None and not isinstance(self.control, str):
+            raise RegionError(f"region {self.name!r}: control must be a file name or null; got {self.control!r}")
+
+    def select(self, enriched: np.ndarray | None, n: int) -> np.ndarray:
+        """The region's own mask from the contrast's ``enriched`` mask (bool, n events)."""
+        if enriched is None:
+            raise RegionError(f"region {self.name!r} selects events enriched over a control, but no control "
+                              "was contrasted with this file; contrast it with a control first")
+        m = np.asarray(enriched, dtype=bool).ravel()
+        if m.shape[0] != n:
+            raise RegionError(f"region {self.name!r}: {m.shape[0]} enriched flags for {n} events")
+        return m
+
+    def own_mask(self, values, rarity, masks, n):
+        return self.select(None, n)
+
+    def to_dict(self):
+        d = self._base_dict()
+        d["control"] = self.control
+        return d
+
+
+@dataclass(frozen=True)
 class CombinationRegion(Region):
     """``and`` / ``or`` of two or more regions, or ``not`` of one, by name."""
 
@@ -409,6 +457,58 @@ class CombinationRegion(Region):
         return d
 
 
+@dataclass(frozen=True)
+class PopulationRegion(Region):
+    """The events a stored population definition assigns to population ``population``."""
+
+    population: int = 0
+    definition: Mapping[str, Any] = field(default_factory=dict)
+    transforms: Mapping[str, Any] = field(default_factory=dict)
+
+    kind = "population"
+
+    def __post_init__(self):
+        from .errors import RecipeError
+        from .populations import PopulationDefinition
+
+        self._check_common()
+        try:
+            pd = PopulationDefinition.from_dict(self.definition)
+        except RecipeError as exc:
+            raise RegionError(f"region {self.name!r}: {exc}") from exc
+        p = self.population
+        if isinstance(p, bool) or not isinstance(p, (int, np.integer)) or not 0 <= int(p) < pd.n_populations:
+            raise RegionError(f"region {self.name!r}: population must be an id from 0 to "
+                              f"{pd.n_populations - 1}; got {p!r}")
+        if not isinstance(self.transforms, Mapping) or set(self.transforms) != set(pd.channels):
+            raise RegionError(f"region {self.name!r}: the transforms of channels {', '.join(pd.channels)} "
+                              "must be recorded")
+        object.__setattr__(self, "population", int(p))
+        object.__setattr__(self, "definition", pd.to_dict())
+        object.__setattr__(self, "transforms", {c: (None if s is None else dict(s))
+                                                for c, s in self.transforms.items()})
+        object.__setattr__(self, "_pd", pd)
+
+    def channels_used(self) -> tuple[str, ...]:
+        return tuple(self._pd.channels)
+
+    def own_mask(self, values, rarity, masks, n):
+        from .populations import assign_populations
+
+        X = np.column_stack([_channel_values(values, c, self.name, n) for c in self._pd.channels])
+        m = assign_populations(self._pd, X) == self.population
+        if rarity is not None:
+            m &= np.isfinite(np.asarray(rarity, dtype=np.float64).ravel())
+        return m
+
+    def to_dict(self):
+        d = self._base_dict()
+        d["population"] = self.population
+        d["transforms"] = {c: (None if s is None else dict(s)) for c, s in self.transforms.items()}
+        d["definition"] = self._pd.to_dict()
+        return d
+
+
 def region_from_dict(d: Mapping[str, Any]) -> Region:
     """Build one region from its stored dict (see the module docstring); RegionError if invalid."""
     if not isinstance(d, Mapping):
@@ -433,6 +533,11 @@ def region_from_dict(d: Mapping[str, Any]) -> Region:
         return IntervalRegion(low=d.get("low"), high=d.get("high"), **common)
     if kind == "rarity":
         return RarityRegion(percentile=d.get("percentile"), **common)
+    if kind == "population":
+        return PopulationRegion(population=d.get("population"), definition=d.get("definition") or {},
+                                transforms=d.get("transforms") or {}, **common)
+    if kind == "enriched":
+        return EnrichedRegion(control=d.get("control"), **common)
     return CombinationRegion(operator=kind, operands=d.get("operands"), **common)
 
 
@@ -587,6 +692,15 @@ class RegionSet:
                     stack.append((nxt, iter(self._regions[nxt].references())))
         return order
 
+    def depending_on(self, kind: str) -> list[str]:
+        """Names of the regions of ``kind`` and of those referring to one (through parents or operands)."""
+        out: list[str] = []
+        for name in self._order():  # references first
+            r = self._regions[name]
+            if r.kind == kind or any(ref in out for ref in r.references()):
+                out.append(name)
+        return [n for n in self._regions if n in out]
+
     def channels_used(self) -> list[str]:
         """Channels the geometric regions use, in first-use order."""
         seen: dict[str, None] = {}
@@ -604,9 +718,9 @@ class RegionSet:
         """
         problems = []
         for r in self._regions.values():
-            if not isinstance(r, _GeometricRegion):
+            if not isinstance(r, (_GeometricRegion, PopulationRegion)):
                 continue
-            for c in r.channels:
+            for c in r.channels_used():
                 drawn = r.transforms.get(c)
                 now = recipe_transforms.get(c) if recipe_transforms else None
                 if _spec_key(drawn) != _spec_key(now):
@@ -617,19 +731,24 @@ class RegionSet:
 
     # -- evaluation --------------------------------------------------------
     def evaluate(self, values: Mapping[str, np.ndarray], rarity: np.ndarray | None = None,
-                 n_events: int | None = None) -> dict[str, np.ndarray]:
+                 n_events: int | None = None, enriched: np.ndarray | None = None) -> dict[str, np.ndarray]:
         """Masks of every region: name -> bool (n_events,), nested regions ANDed with their parent.
 
         ``values``: channel -> transformed values (n_events,); ``rarity``: rarity
         percentile per event (n_events,), NaN for removed events, or None when no
         density is fitted (a rarity region then raises RegionError).
+        ``enriched``: bool (n_events,) from a contrast with a control, or None
+        (an enriched region then raises RegionError).
         ``n_events`` is taken from the arrays when not given.
         """
         n = self._n_events(values, rarity, n_events)
         masks: dict[str, np.ndarray] = {}
         for name in self._order():
             r = self._regions[name]
-            m = np.asarray(r.own_mask(values, rarity, masks, n), dtype=bool)
+            if isinstance(r, EnrichedRegion):
+                m = r.select(enriched, n)
+            else:
+                m = np.asarray(r.own_mask(values, rarity, masks, n), dtype=bool)
             if r.parent is not None:
                 m = m & masks[r.parent]
             masks[name] = m
@@ -647,7 +766,8 @@ class RegionSet:
 
     def statistics(self, values: Mapping[str, np.ndarray], rarity: np.ndarray | None = None,
                    n_events: int | None = None,
-                   masks: Mapping[str, np.ndarray] | None = None) -> list[RegionStatistics]:
+                   masks: Mapping[str, np.ndarray] | None = None,
+                   enriched: np.ndarray | None = None) -> list[RegionStatistics]:
         """One row per region: (name, count, % of parent, % of all events).
 
         "% of parent" is relative to the parent's count, or to all events for a
@@ -656,7 +776,7 @@ class RegionSet:
         """
         n = self._n_events(values, rarity, n_events)
         if masks is None:
-            masks = self.evaluate(values, rarity, n)
+            masks = self.evaluate(values, rarity, n, enriched=enriched)
         rows = []
         for name, r in self._regions.items():
             count = int(np.count_nonzero(masks[name]))

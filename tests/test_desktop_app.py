@@ -448,7 +448,7 @@ def test_drawing_tools_rename_and_drop(qtbot, window, tmp_path):
 
 
 def test_contrast_with_control_highlights_enriched(qtbot, window, tmp_path):
-    from core.contrast import DEFAULT_ALPHA
+    import fcsparser
 
     test_path = make_fcs(tmp_path / "test.fcs", n=2000, seed=3)
     # control: events of the same generator without the bright FL1 population
@@ -462,15 +462,53 @@ def test_contrast_with_control_highlights_enriched(qtbot, window, tmp_path):
     write_fcs(tmp_path / "control.fcs", data, CHANNELS, keywords={"$SPILLOVER": ef.keywords["$SPILLOVER"]},
               channel_labels=["", "", "CD3", "CD4"], channel_ranges=[262144] * 4)
     window.open_paths([test_path])
+    panel = window.contrast_panel
+    stages = []
+    real_step = panel.step
+    panel.step = lambda step, total, info: (stages.append(panel.stage.text()), real_step(step, total, info))
     with qtbot.waitSignal(window.fitEnded, timeout=120_000) as blocker:
         window.choose_control(str(tmp_path / "control.fcs"))
+        # during the run the panel itself says what is happening, not "No control chosen"
+        assert not panel.progress.isHidden() and "Contrasting with control.fcs" in panel.result.text()
+        assert window.notebook.currentWidget() is panel
     assert blocker.args == [True], window.last_fit_problem
+    assert panel.progress.isHidden()
+    # the stage text named the models being fitted: control parts, then test parts
+    seen = " | ".join(stages)
+    assert "Control model, part 1 of 3" in seen and "Test model, part 3 of 3" in seen, seen[-300:]
     a = window.current.analysis
-    assert a.enriched is not None and a.contrast.alpha == DEFAULT_ALPHA
+    assert a.enriched is not None and a.contrast.rate == 0.05
     assert window.highlight_enriched
-    assert f"{int(a.enriched.sum()):,} enriched" in window.rarity_bar.count.text()
+    assert f"{int(a.enriched.sum()):,} new events" in window.rarity_bar.count.text()
+    assert f"{a.contrast.count:,} new events" in panel.result.text() and "false discovery rate of 5 %" in panel.result.text()
     # the enriched events lie mostly in the population the control lacks (the first 50 events)
     assert a.enriched[:k].mean() > 0.5 > 10 * a.enriched[k:].mean()
+    # the Rarity controls do nothing while the new events are shown: they are greyed out
+    assert not window.rarity_bar.slider.isEnabled() and not window.rarity_bar.spin.isEnabled()
+    panel.show_enriched.setChecked(False)
+    assert window.rarity_bar.slider.isEnabled() and "rare events" in window.rarity_bar.count.text()
+    panel.show_enriched.setChecked(True)
+    # keep the new events as a region (kind "enriched"), counted like any region
+    assert panel.keep_button.isEnabled()
+    panel.keep_button.click()
+    tube = window.current
+    name = "new vs control"
+    assert tube.regions[name].kind == "enriched" and tube.regions[name].control == "control.fcs"
+    assert window.region_count(name) == int(a.enriched.sum())
+    assert tube.recipe_with_regions().regions[-1] == {"name": name, "kind": "enriched", "parent": None,
+                                                       "control": "control.fcs"}
+    # and exported like any region: read back with fcsparser, p and q columns included
+    from desktop.dialogs import ExportDialog
+
+    dlg = ExportDialog(window, tube, [name])
+    out = tmp_path / "new-events.fcs"
+    dlg.path.setText(str(out))
+    dlg.export()
+    meta, df = fcsparser.parse(str(out), reformat_meta=True)
+    assert len(df) == int(a.enriched.sum())
+    assert (df["contrast q"] <= 0.05).all() and (df["contrast p"] > 0).all()
+    assert (df[f"region {name}"] == 1).all()
+    assert meta["BOSCAGE_CONTROL"] == "control.fcs" and float(meta["BOSCAGE_FDR"]) == 0.05
 
 
 def test_scale_editor_keeps_small_factors(qtbot, window, tmp_path):
@@ -491,3 +529,56 @@ def test_scale_editor_keeps_small_factors(qtbot, window, tmp_path):
                     timeout=3000)
     scale = tube.recipe.transforms["FSC-A"]["scale"]
     np.testing.assert_allclose(tube.values[:, 0], tube.event_file.data[:, 0] * scale, rtol=1e-12)
+
+
+def test_populations_list_highlight_keep_as_region_and_export(qtbot, window, tmp_path, messages):
+    """The Populations panel shows core.populations' table; choosing a row lights
+    exactly that population's events; keeping it makes a population region whose
+    exported events are read back with fcsparser (reference)."""
+    import fcsparser
+
+    from desktop.dialogs import ExportDialog
+
+    path = make_fcs(tmp_path / "pops.fcs", n=4000, seed=3)
+    window.open_paths([path], raise_errors=True)
+    # with 4 trees the bright 2.5 % group is a plateau of the fitted density, not a hill of its own
+    window.fit_panel.set_engine_settings({"n_trees": 20, "max_depth": 14, "max_fit_events": 3000})
+    fit(qtbot, window)
+    tube = window.current
+    a = tube.analysis
+    panel = window.populations_panel
+    assert a.populations is not None
+    assert panel.table.rowCount() == len(a.populations.table) >= 2
+    # rows in the table's order, rare first; profile and count as core computed them
+    for i, r in enumerate(a.populations.table):
+        assert panel.table.item(i, 1).text() == r["short_profile"]
+        assert r["profile"] in panel.table.item(i, 1).toolTip()
+        assert panel.table.item(i, 2).text() == f"{r['count']:,}"
+    small = min(a.populations.table, key=lambda r: r["count"])
+    panel.choose(small["id"])
+    expected = a.population_labels == small["id"]
+    assert np.array_equal(window.density_map.highlight_mask, expected)
+    assert int(expected.sum()) == small["count"]     # numpy count of the labels
+    panel.keep_button.click()
+    regions = [r for r in tube.regions if r.kind == "population"]
+    assert len(regions) == 1
+    name = regions[0].name
+    assert np.array_equal(tube.masks[name], expected)
+    # the region is stored in the recipe with its definition
+    assert any(d["kind"] == "population" and d["population"] == small["id"] and d["definition"]
+               for d in tube.recipe_with_regions().regions)
+    dlg = ExportDialog(window, tube, [name])
+    out = tmp_path / "population.fcs"
+    dlg.path.setText(str(out))
+    dlg.export()
+    assert not messages, messages
+    meta, df = fcsparser.parse(str(out), reformat_meta=True, channel_naming="$PnN")
+    assert len(df) == int(expected.sum())
+    # the exported column holds the population number the panel shows (id + 1)
+    np.testing.assert_array_equal(df["population"].to_numpy(), np.full(len(df), small["id"] + 1, dtype=np.float32))
+    panel.clear_choice()
+    assert np.array_equal(window.density_map.highlight_mask, tube.rare_mask)
+    # keep the populations in the recipe: the saved recipe carries the definition (core's JSON form)
+    window.populations_panel.store_button.click()
+    saved = window._current_recipe(tube)
+    assert saved.populations["definition"] == a.populations.definition.to_dict()

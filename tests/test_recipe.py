@@ -100,6 +100,7 @@ def test_defaults_filled_and_engine_arguments():
     assert r.cleaning == {"drop_saturated": True, "drop_piles": True, "dequantise": True}
     assert r.rare == {"rule": "share", "share": 0.005}
     assert r.engine == {} and r.engine_arguments() == {"random_state": 0}
+    assert r.comparison == {"rate": 0.05, "min_fold": 2.0}
     r2 = Recipe.from_dict({"schema_version": 1, "channels": ["A"], "engine": {"random_state": 3}})
     assert r2.engine_arguments() == {"random_state": 3}
 
@@ -108,6 +109,7 @@ def test_digest_definition_and_sensitivity():
     minimal = Recipe.from_dict({"schema_version": 1, "channels": ["A"], "name": "x", "notes": "y"})
     # canonical JSON written out by hand: sorted keys, no spaces, name/notes left out
     canonical = ('{"channels":["A"],"cleaning":{"dequantise":true,"drop_piles":true,"drop_saturated":true},'
+                 '"comparison":{"min_fold":2,"rate":0.05},'
                  '"compensation":{"csv_path":null,"source":"none"},"engine":{},'
                  '"rare":{"rule":"share","share":0.005},"regions":[],"schema_version":1,"transforms":{}}')
     # reference: hashlib.sha256 (FIPS 180-4)
@@ -328,3 +330,14 @@ def test_default_recipe_synthetic():
     assert scatter_only.channels == ["FSC-A", "SSC-A"]
     with pytest.raises(RecipeError, match="Time"):
         default_recipe(_synthetic_event_file(["Time"]))
+
+
+def test_comparison_section_is_checked():
+    base = {"schema_version": 1, "channels": ["A"]}
+    r = Recipe.from_dict({**base, "comparison": {"rate": 0.01}})
+    assert r.comparison == {"rate": 0.01, "min_fold": 2.0}
+    for bad, words in [({"rate": 0}, "false discovery rate"), ({"rate": 1.5}, "false discovery rate"),
+                       ({"min_fold": 0.5}, "min_fold"), ({"rate": "5 %"}, "must be a number"),
+                       ({"alpha": 0.001}, "alpha"), ([], "comparison")]:
+        with pytest.raises(RecipeError, match=words):
+            Recipe.from_dict({**base, "comparison": bad})
