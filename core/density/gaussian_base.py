@@ -508,10 +508,11 @@ def _em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going):
     ll = -np.inf
     X = np.ascontiguousarray(X)
     bg = np.ascontiguousarray(bg)
+    hint = np.zeros(n, np.int64)
     for _ in range(max_iter):
         chol = np.ascontiguousarray(np.linalg.cholesky(cov))
         log_det = np.log(np.diagonal(chol, axis1=1, axis2=2)).sum(axis=1)
-        total, N, S, M = kernels.em_stats(X, bg, np.log(w), np.ascontiguousarray(mu), chol, log_det)
+        total, N, S, M = kernels.em_stats(X, bg, np.log(w), np.ascontiguousarray(mu), chol, log_det, hint=hint)
         ll = total / n
         # M step (moments were taken about the current means)
         Nk = N + 1e-12
