@@ -85,7 +85,11 @@ U_CLIP = 1e-15
 #: Smallest weight of the broad background component.
 MIN_BACKGROUND = 1e-4
 #: Component counts tried in turn (held-out log-likelihood picks one).
-DEFAULT_COMPONENTS = (1, 2, 4, 8, 16, 32)
+DEFAULT_COMPONENTS = (1, 2, 4, 8, 16, 32, 64)
+#: From this count on, a doubled count always starts from the split of the
+#: previous mixture, even a split one (a fresh k-means++ start costs more
+#: EM iterations there and was no better: EXPERIMENTS.md section 22).
+SPLIT_SPLIT_FROM = 64
 _Z_MAX = 1e100
 #: Largest |skew| of a component's sinh-arcsinh transform.
 MAX_SKEW = 2.0
@@ -252,7 +256,8 @@ class GaussianMixtureBase:
         component split in two along its principal axis (1, 4, 16 start from
         k-means++, 2, 8, 32 from the split): better and faster than a fresh
         start, while splitting a split compounds poor starts (EXPERIMENTS.md
-        section 17).  EM stops
+        section 17); from ``SPLIT_SPLIT_FROM`` (64) on a count starts from the
+        split of the previous one whichever way that one started.  EM stops
         when the training mean log-likelihood rises by less than ``tol`` nats
         per event (or after ``max_iter`` steps).  ``n_init`` seeded
         k-means++ restarts per count (best training log-likelihood kept).
@@ -306,7 +311,8 @@ class GaussianMixtureBase:
                 break
             fit_k = None
             parent = None  # split a k-means++-started mixture, never a split one
-            if prev_fit is not None and prev_fresh and k == 2 * prev_fit[2].shape[0]:
+            if prev_fit is not None and (prev_fresh or k >= SPLIT_SPLIT_FROM) \
+                    and k == 2 * prev_fit[2].shape[0]:
                 parent = _split_components(prev_fit[1], prev_fit[2], prev_fit[3])
             for attempt in range(max(1, int(n_init))):
                 split_start = parent is not None and attempt == 0
