@@ -574,10 +574,14 @@ def _component_shape(T, rs, eps, reg):
     B = np.zeros((2 * d, d))
     B[diag, diag] = np.cosh(eps)
     B[d + diag, diag] = -np.sinh(eps)
+    # every channel's weighted histogram in one pass (bin j * nb + b)
+    flat = (idx + nb * diag[None, :]).ravel()
+    HW = np.bincount(flat, weights=np.repeat(rs, d), minlength=nb * d).reshape(d, nb)
+    HU = np.bincount(flat, weights=(Uq * rs[:, None]).ravel(), minlength=nb * d).reshape(d, nb)
     for j in range(d):
-        hw = np.bincount(idx[:, j], weights=rs, minlength=nb)
+        hw = HW[j]
         keep = hw > 0
-        hu = np.bincount(idx[:, j], weights=rs * Uq[:, j], minlength=nb)[keep] / hw[keep]
+        hu = HU[j][keep] / hw[keep]
         hw = hw[keep]
         cand = np.unique(np.clip(np.concatenate([_SKEW_GRID, eps[j] + _SKEW_MOVES]), -MAX_SKEW, MAX_SKEW))
         ch, sh = np.cosh(cand), np.sinh(cand)
