@@ -264,7 +264,10 @@ class GaussianMixtureBase:
         Covariances get ``1e-6 x`` the channel variance added on the diagonal
         (floor).  With ``skew``, the chosen mixture is then refitted with a
         sinh-arcsinh transform per component and channel (:func:`_skew_em`),
-        kept only if it beats it on the held-out events by ``min_gain``.
+        kept only if it beats it on the held-out events by ``min_gain``; when
+        the chosen count is ``SPLIT_SPLIT_FROM`` (64) or more, the count before
+        it is refitted with skewed components too and the better skewed
+        mixture on the held-out events is the candidate.
         With ``flat_background`` the background component is a flat top with
         soft edges per channel (:func:`_initial_flat_background`), whose
         edges and softness the skewed-component fit also updates
@@ -295,7 +298,7 @@ class GaussianMixtureBase:
         reg = 1e-6 * np.where(var > 0, var, scale ** 2)
         bgr = _initial_flat_background(X) if flat_background else None
         bg = _background_logpdf(X, loc, scale, bgr)
-        best, best_ll = None, -np.inf
+        best, best_ll, runner_up = None, -np.inf, None
         prev_fit, prev_fresh = None, False
         stopped = [False]
         for step, k in enumerate(components):
@@ -332,20 +335,33 @@ class GaussianMixtureBase:
             ll = float(model.logpdf(Xva).mean())
             if best is not None and ll <= best_ll + min_gain:
                 break
+            runner_up = best
             best, best_ll = model, ll
             if stopped[0]:
                 break
         if skew and not stopped[0] and best.n_components:
-            stage = {"stage": f"Fitting the mixture base: skewed components ({best.n_components})"}
+            # from SPLIT_SPLIT_FROM components on, the Gaussian count's gain may be
+            # skew that fewer skewed components capture better: skew both, keep the
+            # better on the held-out events (EXPERIMENTS.md section 22)
+            starts = [best]
+            if best.n_components >= SPLIT_SPLIT_FROM and runner_up is not None and runner_up.n_components:
+                starts.append(runner_up)
+            chosen, chosen_ll = best, best_ll + min_gain
+            for start in starts:
+                stage = {"stage": f"Fitting the mixture base: skewed components ({start.n_components})"}
 
-            def going_skew(stage=stage):
-                stopped[0] = stopped[0] or not keep_going(progress, len(components) - 1, len(components), stage)
-                return not stopped[0]
+                def going_skew(stage=stage):
+                    stopped[0] = stopped[0] or not keep_going(progress, len(components) - 1, len(components), stage)
+                    return not stopped[0]
 
-            if going_skew():
-                skewed = _skew_em(X, best, reg, max_iter, tol, going_skew)
-                if skewed is not None and float(skewed.logpdf(Xva).mean()) > best_ll + min_gain:
-                    best = skewed
+                if not going_skew():
+                    break
+                skewed = _skew_em(X, start, reg, max_iter, tol, going_skew)
+                if skewed is not None:
+                    ll = float(skewed.logpdf(Xva).mean())
+                    if ll > chosen_ll:
+                        chosen, chosen_ll = skewed, ll
+            best = chosen
         best.cancelled = stopped[0]
         return best
 

@@ -220,7 +220,7 @@ def main(argv=None):
         out.append(format_analyse(rows, markdown=True))
     if a.markdown:
         from core.atomic import atomic_write
-        with atomic_write(a.markdown, "w") as fh:
+        with atomic_write(a.markdown, "w", overwrite=True) as fh:
             fh.write("\n\n".join(out) + "\n")
     return 0
 
