@@ -266,8 +266,10 @@ class GaussianMixtureBase:
         sinh-arcsinh transform per component and channel (:func:`_skew_em`),
         kept only if it beats it on the held-out events by ``min_gain``; when
         the chosen count is ``SPLIT_SPLIT_FROM`` (64) or more, the count before
-        it is refitted with skewed components too and the better skewed
-        mixture on the held-out events is the candidate.
+        it is refitted with skewed components too and the larger skewed
+        mixture is the candidate only when it beats the smaller clearly
+        (:func:`_clearly_better`; counts from 64 on must also beat the one
+        before by ``COUNT_SE`` standard errors of the held-out difference).
         With ``flat_background`` the background component is a flat top with
         soft edges per channel (:func:`_initial_flat_background`), whose
         edges and softness the skewed-component fit also updates
@@ -298,7 +300,7 @@ class GaussianMixtureBase:
         reg = 1e-6 * np.where(var > 0, var, scale ** 2)
         bgr = _initial_flat_background(X) if flat_background else None
         bg = _background_logpdf(X, loc, scale, bgr)
-        best, best_ll, runner_up = None, -np.inf, None
+        best, best_ll, best_scores, runner_up = None, -np.inf, None, None
         prev_fit, prev_fresh = None, False
         stopped = [False]
         for step, k in enumerate(components):
@@ -332,11 +334,12 @@ class GaussianMixtureBase:
             prev_fit, prev_fresh = fit_k, fit_fresh
             _, w, mu, cov = fit_k
             model = cls(w, mu, cov, loc, scale, background=bgr)
-            ll = float(model.logpdf(Xva).mean())
-            if best is not None and ll <= best_ll + min_gain:
+            scores = model.logpdf(Xva)
+            ll = float(scores.mean())
+            if best is not None and not _clearly_better(scores, best_scores, min_gain, k >= SPLIT_SPLIT_FROM):
                 break
             runner_up = best
-            best, best_ll = model, ll
+            best, best_ll, best_scores = model, ll, scores
             if stopped[0]:
                 break
         if skew and not stopped[0] and best.n_components:
@@ -346,7 +349,7 @@ class GaussianMixtureBase:
             starts = [best]
             if best.n_components >= SPLIT_SPLIT_FROM and runner_up is not None and runner_up.n_components:
                 starts.append(runner_up)
-            chosen, chosen_ll = best, best_ll + min_gain
+            fits = []
             for start in starts:
                 stage = {"stage": f"Fitting the mixture base: skewed components ({start.n_components})"}
 
@@ -358,12 +361,30 @@ class GaussianMixtureBase:
                     break
                 skewed = _skew_em(X, start, reg, max_iter, tol, going_skew)
                 if skewed is not None:
-                    ll = float(skewed.logpdf(Xva).mean())
-                    if ll > chosen_ll:
-                        chosen, chosen_ll = skewed, ll
-            best = chosen
+                    fits.append((skewed, skewed.logpdf(Xva)))
+            if len(fits) == 2 and not _clearly_better(fits[0][1], fits[1][1], min_gain, True):
+                fits = fits[1:]   # the larger count must beat the smaller clearly
+            if fits and float(fits[0][1].mean()) > best_ll + min_gain:
+                best = fits[0][0]
         best.cancelled = stopped[0]
         return best
+
+
+#: From ``SPLIT_SPLIT_FROM`` components on, a larger count must beat the
+#: smaller by this many standard errors of the paired held-out difference.
+COUNT_SE = 2.0
+
+
+def _clearly_better(new, old, min_gain, strict):
+    """True when per-event held-out log densities ``new`` (m,) beat ``old`` (m,) by
+    more than ``min_gain`` nats per event on average; with ``strict`` also by more
+    than ``COUNT_SE`` standard errors of the paired difference (a count with many
+    parameters per held-out event can win on noise: EXPERIMENTS.md section 22)."""
+    diff = new - old
+    gain = float(diff.mean())
+    if strict and diff.size > 1:
+        return gain > max(min_gain, COUNT_SE * float(diff.std(ddof=1)) / math.sqrt(diff.size))
+    return gain > min_gain
 
 
 def _flat_top_log_norm(a, b, soft):
