@@ -82,8 +82,11 @@ LOOKAHEAD_PAIR_BUDGET = 1200
 #: on 1,000,000 x 10): the first layer of trees after a mixture base must gain
 #: ``layer_tol`` x this (nats per event) on the held-out share to be kept.
 MAP_COST_RATIO = 4.0
-#: A layer whose first this-many trees have not reached its required held-out
-#: gain is abandoned at once (no patience run, nothing to roll back).
+#: After a mixture base, a layer whose first this-many trees have not reached
+#: its required held-out gain is abandoned at once (no patience run, nothing
+#: to roll back).  After the logistic base later layers keep their patience:
+#: there slow starters paid (fcsparser's files with atoms lost 0.6-2 nats per
+#: event when they were cut; EXPERIMENTS.md section 22).
 EARLY_TREES = 3
 _LOGISTIC_IQR = 2.0 * math.log(3.0)
 
@@ -210,8 +213,9 @@ class AdditiveTreeDensity:
         this (nats) is dropped and fitting ends.  The first layer after a
         mixture base must gain ``MAP_COST_RATIO`` (4) times as much, because
         keeping any tree makes scoring run the full map (about 4x the
-        mixture's density alone); a layer whose first ``EARLY_TREES`` (3)
-        trees fall short of its required gain is abandoned at once.
+        mixture's density alone); after a mixture base, a layer whose first
+        ``EARLY_TREES`` (3) trees fall short of its required gain is abandoned
+        at once.
     base : "auto", "logistic", "gmm" or "skewed"
         The first map into the cube: per-channel logistic of robust
         location/scale, or the Rosenblatt map of a Gaussian mixture fitted
@@ -481,7 +485,8 @@ class AdditiveTreeDensity:
                 if not keep_going(progress, done + k, total, ll):
                     self.stopped_by_ = "cancelled"
                     break
-                if k - best_k >= int(self.patience) or (k >= EARLY_TREES and best_ll - start_ll < needed):
+                if k - best_k >= int(self.patience) or (self._gmm is not None and k >= EARLY_TREES
+                                                         and best_ll - start_ll < needed):
                     # no patience run for a layer whose first trees do not pay
                     self.stopped_by_ = "early stopping"
                     break
