@@ -84,9 +84,8 @@ LOOKAHEAD_PAIR_BUDGET = 1200
 MAP_COST_RATIO = 4.0
 #: After a mixture base, a layer whose first this-many trees have not reached
 #: its required held-out gain is abandoned at once (no patience run, nothing
-#: to roll back).  After the logistic base later layers keep their patience:
-#: there slow starters paid (fcsparser's files with atoms lost 0.6-2 nats per
-#: event when they were cut; EXPERIMENTS.md section 22).
+#: to roll back).  After the logistic base later layers keep their patience
+#: (slow starters may pay there; EXPERIMENTS.md section 22).
 EARLY_TREES = 3
 _LOGISTIC_IQR = 2.0 * math.log(3.0)
 
