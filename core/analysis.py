@@ -6,11 +6,10 @@ the batch and :func:`analyse` all call it.
 
 :func:`analyse` then
 
-1. takes the recipe's density channels, de-quantises their raw values
-   (jitter within each channel's recording step, seeded; see :mod:`core.prepare`),
-   compensates and transforms them the same way, and cleans them
-   (:func:`core.prepare.prepare_events`: saturation judged on RAW values,
-   non-finite values always removed);
+1. takes the recipe's density channels and cleans and de-quantises them in
+   one pass (:func:`density_input`; rules in :mod:`core.prepare`: reasons judged
+   on RAW values, jitter in the units the file stores, seeded), then runs
+   the atoms check;
 2. fits an :class:`~core.density.AdditiveTreeDensity` with the recipe's engine
    settings (``random_state`` 0 unless the recipe sets it), passing
    ``progress`` through: returning False from it stops the fit cleanly and the
@@ -21,15 +20,20 @@ the batch and :func:`analyse` all call it.
    (:mod:`core.rare`);
 4. evaluates the recipe's regions on the transformed values (not jittered:
    what the plots show) with the rarity;
-5. with a ``control`` file, contrasts the file with it (:mod:`core.contrast`).
+5. with a ``control`` file, contrasts the file with it (:mod:`core.contrast`:
+   conformal p-values, Benjamini-Hochberg q-values, enriched events at the
+   recipe's ``comparison`` rate and minimum fold, the whole-sample shift check).
    :func:`prepare_control_file` fits the control's part once
    (:class:`core.contrast.PreparedControl`); passing that as ``control``
    contrasts many files with one control without refitting it (the batch
    does so), with the same result as passing the control file.
 
 Removed events stay in every per-event array with their ``reason``
-("saturated" / "non-finite"; "" for kept events), NaN log density and NaN
-rarity; they are never rare and never enriched.
+("saturated", "ceiling pile", "floor pile", "non-finite"; "" for kept
+events), NaN log density and NaN rarity; they are never rare and never
+enriched.  ``Analysis.atoms`` names the density channels where one value
+still holds more than 0.1 % of the kept events (the atoms check before
+fitting; the fit goes on, and the app and the batch say so).
 
 Shapes: per-event arrays have length n_events of the file; ``values`` is
 (n_events, n_channels) over ALL the file's channels (transformed where the
@@ -144,36 +148,114 @@ def density_input(event_file: Any, recipe: Any):
     Returns ``(prepared, values)``: ``prepared`` a :class:`core.prepare.PreparedEvents`
     over the recipe's density channels (``matrix`` n_kept x d, ``kept``,
     ``reason`` per event) and ``values`` the transformed values of all
-    channels without jitter (for plots and regions).  Jitter goes on the raw
-    values, then compensation and transforms (``core.prepare``'s pipeline
-    form).  Saturation is judged on the raw values of the density channels and,
-    when compensating, of the spillover matrix's detectors (they feed the
-    compensated density channels); an event with a non-finite raw value in any
-    channel is removed as "non-finite".
+    channels without jitter (for plots and regions).
+
+    One pass (see :mod:`core.prepare` for each rule):
+
+    1. ``values``: every channel compensated and transformed once
+       (:func:`compensated_and_transformed`; the one full-size copy).
+    2. Reasons from the raw values: non-finite in any channel; saturation and
+       floor/ceiling piles of the density channels and, when compensating, of
+       the spillover detectors that feed them (recipe ``cleaning``).
+    3. Only the raw channels that feed the density and sit on a grid are
+       jittered (integers in stored units before $PnE/$PnG decoding, float
+       grids by half their step), on the kept events only; their density
+       columns are compensated (when compensating) and transformed again.
+       Every other density column is taken from ``values``.
     """
-    from .prepare import prepare_events
+    from .compensation import compensate
+    from .prepare import (MAX_UNIQUE_FRACTION, PreparedEvents, REASON_KEPT, REASON_NON_FINITE,
+                          clean_events, jittered_column, plan_jitter)
+    from .transforms import make_transform
 
     cleaning = dict(_get(recipe, "cleaning", None) or {})
+    drop_piles = bool(cleaning.get("drop_piles", True))
+    do_jitter = bool(cleaning.get("dequantise", True))
     seed = _engine_kwargs(recipe)["random_state"]
+    where = os.path.basename(event_file.path)
     idx = density_channel_indices(event_file, recipe)
     names, values = compensated_and_transformed(event_file, recipe)
     raw = np.asarray(event_file.data, dtype=np.float64)
-    ranges = np.full(len(names), np.nan)
-    file_ranges = np.asarray(event_file.channel_ranges, dtype=np.float64)
-    judged = set(idx)
+    n, k = raw.shape
     S = _spillover(event_file, recipe)
-    if S is not None:
-        judged.update(names.index(d) for d in S.detectors if d in names)
-    for j in judged:
-        ranges[j] = file_ranges[j]
+    detectors = [names.index(d) for d in S.detectors if d in names] if S is not None else []
+    # raw channels that feed the density: a compensated density channel mixes every detector
+    mixes = S is not None and any(j in detectors for j in idx)
+    feeders = sorted(set(idx) | (set(detectors) if mixes else set()))
+    reason, saturated, sat_cells, floor_cells, ceiling_cells = clean_events(
+        raw, feeders, event_file.channel_ranges, drop_saturated=bool(cleaning.get("drop_saturated", True)),
+        drop_piles=drop_piles)
+    kept = reason == REASON_KEPT
+    decoding = getattr(event_file, "decoding", None)
+    plans = {}
+    if do_jitter:
+        for j in feeders:
+            plan = plan_jitter(raw[:, j] if kept.all() else raw[kept, j], None if decoding is None else decoding[j],
+                               MAX_UNIQUE_FRACTION)
+            if plan is not None:
+                plans[j] = plan
+    spread = set() if drop_piles else {j for j in feeders
+                                       if floor_cells[j][kept].any() or ceiling_cells[j][kept].any()}
+    changed = set(plans) | spread
 
-    def pipeline(raw_values: np.ndarray) -> np.ndarray:
-        return compensated_and_transformed(event_file, recipe, raw=raw_values)[1][:, idx]
+    all_kept = bool(kept.all())
 
-    prepared = prepare_events(None, channel_ranges=ranges,
-                              drop_saturated=bool(cleaning.get("drop_saturated", True)),
-                              dequantise=bool(cleaning.get("dequantise", True)), random_state=seed,
-                              raw_data=raw, pipeline=pipeline)
+    def column(j: int) -> np.ndarray:
+        """Raw channel j over the kept events, jittered / piles spread as planned."""
+        if j not in changed:
+            return raw[:, j] if all_kept else raw[kept, j]
+        fl = floor_cells.get(j)
+        ce = ceiling_cells.get(j)
+        # uniforms are drawn for every event of the file, then the kept ones taken
+        full = raw[:, j].copy()
+        if not all_kept:
+            full[~kept] = 0.0
+        out = jittered_column(full, j, plans.get(j), seed, None if fl is None else fl & kept,
+                              None if ce is None else ce & kept, spread_piles=j in spread)
+        return out if all_kept else out[kept]
+
+    transforms = _get(recipe, "transforms", None) or {}
+    matrix = np.empty((int(kept.sum()), len(idx)))
+    redo = [c for c, j in enumerate(idx) if (j in changed) or (mixes and j in detectors and changed & set(detectors))]
+    compensated = None
+    if mixes and any(idx[c] in detectors for c in redo):
+        sub = np.column_stack([column(d) for d in detectors])
+        compensated = compensate(sub, [names[d] for d in detectors], S, source=where)
+    for c, j in enumerate(idx):
+        if c not in redo:
+            matrix[:, c] = values[:, j] if all_kept else values[kept, j]
+            continue
+        col = compensated[:, detectors.index(j)] if (compensated is not None and j in detectors) else column(j)
+        spec = transforms.get(names[j])
+        if spec is not None:
+            with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+                col = make_transform(spec).forward(col)
+        matrix[:, c] = col
+    bad = ~np.isfinite(matrix).all(axis=1)
+    if bad.any():
+        rows = np.flatnonzero(kept)[bad]
+        reason = reason.astype(object)
+        reason[rows] = REASON_NON_FINITE
+        reason = reason.astype(str)
+        kept = reason == REASON_KEPT
+        matrix = matrix[~bad]
+    steps = np.zeros(k)
+    grids = [""] * k
+    for j, plan in plans.items():
+        steps[j], grids[j] = plan.step, plan.grid
+    finite_rows = reason != REASON_NON_FINITE
+
+    def per_channel(cells, rows=None):
+        out = np.zeros(k, dtype=np.int64)
+        for j, m in cells.items():
+            out[j] = int(np.count_nonzero(m if rows is None else m & rows))
+        return out
+
+    prepared = PreparedEvents(matrix=matrix, kept=kept, reason=reason, steps=steps,
+                              saturated=saturated & finite_rows,
+                              saturated_per_channel=per_channel(sat_cells, finite_rows), grids=grids,
+                              floor_per_channel=per_channel(floor_cells),
+                              ceiling_per_channel=per_channel(ceiling_cells))
     return prepared, values
 
 
@@ -195,7 +277,7 @@ class Analysis:
     rarity: np.ndarray            # (n_events,) 0-100; NaN for removed events
     rare: np.ndarray              # (n_events,) bool
     rare_level: float             # log-density threshold of the rare rule
-    reason: np.ndarray            # (n_events,) "" / "saturated" / "non-finite"
+    reason: np.ndarray            # (n_events,) "" or a core.prepare.REASONS entry
     region_masks: dict            # name -> bool (n_events,)
     heldout_loglik: float         # held-out mean log-likelihood of the fit (nats per event)
     timing: dict                  # stage -> seconds
@@ -204,7 +286,12 @@ class Analysis:
     contrast: Any = None          # core.contrast.ContrastResult over kept events, or None
     enriched: np.ndarray | None = None         # (n_events,) bool when contrasted
     contrast_score: np.ndarray | None = None   # (n_events,) NaN for removed events
+    contrast_p: np.ndarray | None = None       # (n_events,) conformal p-value; NaN for removed events
+    contrast_q: np.ndarray | None = None       # (n_events,) Benjamini-Hochberg q-value; NaN for removed
     info: dict = field(default_factory=dict)
+    #: density channel -> share of the kept events on its most frequent value, for the
+    #: channels above core.prepare.ATOM_SHARE (the atoms check before fitting)
+    atoms: dict = field(default_factory=dict)
 
     @property
     def n_events(self) -> int:
@@ -222,21 +309,49 @@ class Analysis:
     def n_rare(self) -> int:
         return int(np.count_nonzero(self.rare))
 
+    @property
+    def set_aside(self) -> dict:
+        """Events set aside per reason, every reason of ``core.prepare.REASONS`` (zeros included)."""
+        from .prepare import REASONS
+
+        return {r: int(np.count_nonzero(self.reason == r)) for r in REASONS}
+
+    def cleaning_text(self) -> str:
+        """One line for people: kept events, events set aside by reason, atoms left in the density."""
+        aside = [f"{v:,} {r}" for r, v in self.set_aside.items() if v]
+        text = f"{self.n_kept:,} of {self.n_events:,} events kept"
+        if aside:
+            text += " (set aside: " + ", ".join(aside) + ")"
+        if self.atoms:
+            text += "; atoms left: " + ", ".join(f"{c} ({100 * v:.2g} % of the kept events on one value)"
+                                                 for c, v in self.atoms.items())
+        return text
+
     def export_columns(self) -> dict:
         """Per-event parameters an FCS/CSV export adds, name -> (n_events,) float64.
 
         FCS float data should hold no NaN, so removed events carry log density
-        0 and rarity percentile -1, and ``cleaning flag`` says why (0 kept,
-        1 saturated, 2 non-finite).  With a control: ``contrast score`` and
-        ``enriched`` (0/1).
+        0 and rarity percentile -1, and ``cleaning flag`` says why
+        (``core.prepare.CLEANING_FLAGS``: 0 kept, 1 saturated, 2 non-finite,
+        3 floor pile, 4 ceiling pile).  With a control: ``contrast score``
+        (nats; 0 for removed events), ``contrast p`` and ``contrast q``
+        (1 for removed events) and ``enriched`` (0/1).
         """
+        from .prepare import CLEANING_FLAGS
+
         kept = self.kept
-        flag = np.where(kept, 0.0, np.where(self.reason == "saturated", 1.0, 2.0))
+        flag = np.zeros(self.n_events)
+        for r, f in CLEANING_FLAGS.items():
+            if f:
+                flag[self.reason == r] = float(f)
         cols = {"log density": np.where(kept, self.log_density, 0.0),
                 "rarity percentile": np.where(kept, self.rarity, -1.0),
                 "cleaning flag": flag}
         if self.contrast_score is not None:
             cols["contrast score"] = np.where(np.isfinite(self.contrast_score), self.contrast_score, 0.0)
+            if self.contrast_p is not None:
+                cols["contrast p"] = np.where(np.isfinite(self.contrast_p), self.contrast_p, 1.0)
+                cols["contrast q"] = np.where(np.isfinite(self.contrast_q), self.contrast_q, 1.0)
             cols["enriched"] = self.enriched.astype(float)
         return cols
 
@@ -246,7 +361,7 @@ class Analysis:
         Columns: ``event`` (0-based index in the file), every channel's
         transformed value, ``log density``, ``rarity percentile``, ``rare``,
         ``reason``, one bool column per region (``region: NAME``) and, when
-        contrasted, ``contrast score`` and ``enriched``.
+        contrasted, ``contrast score``, ``contrast p``, ``contrast q`` and ``enriched``.
         """
         import pandas as pd
 
@@ -261,6 +376,9 @@ class Analysis:
             cols[f"region: {name}"] = m
         if self.contrast_score is not None:
             cols["contrast score"] = self.contrast_score
+            if self.contrast_p is not None:
+                cols["contrast p"] = self.contrast_p
+                cols["contrast q"] = self.contrast_q
             cols["enriched"] = self.enriched
         return pd.DataFrame(cols)
 
@@ -294,18 +412,48 @@ def prepare_control_file(control: Any, recipe: Any, progress=None):
                            progress=progress, source=os.fspath(control_file.path))
 
 
+def comparison_settings(recipe: Any, rate: float | None = None, min_fold: float | None = None) -> dict:
+    """``{"rate", "min_fold"}`` of a contrast: the given values, else the recipe's ``comparison`` section,
+    else the defaults of :mod:`core.contrast`."""
+    from .contrast import DEFAULT_MIN_FOLD, DEFAULT_RATE
+
+    cmp = dict(_get(recipe, "comparison", None) or {})
+    return {"rate": float(rate if rate is not None else cmp.get("rate", DEFAULT_RATE)),
+            "min_fold": float(min_fold if min_fold is not None else cmp.get("min_fold", DEFAULT_MIN_FOLD))}
+
+
+def _inverse_transforms(recipe: Any, channels: list) -> list:
+    """Per density channel, the inverse of its transform (None when untransformed): instrument units."""
+    from .transforms import make_transform
+
+    specs = _get(recipe, "transforms", None) or {}
+    out = []
+    for c in channels:
+        spec = specs.get(c)
+        try:
+            out.append(None if spec is None else make_transform(spec).inverse)
+        except Exception:  # a transform without an inverse: report medians in plotted units
+            out.append(None)
+    return out
+
+
 def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
-            alpha: float | None = None) -> Analysis:
+            rate: float | None = None, min_fold: float | None = None) -> Analysis:
     """Fit the recipe's density to ``event_file`` and derive rarity, rare events and regions.
 
     ``event_file``: a :class:`core.fcs.EventFile` (or a path to read).
     ``recipe``: a :class:`core.recipe.Recipe`; validated against the file first.
-    ``progress(step, total, heldout_loglik) -> bool``: passed to the fit(s).
+    ``progress(step, total, info) -> bool``: passed to the fit(s); during the
+    contrast ``info`` is a dict naming the model being fitted (``"stage"``).
     ``control``: optional control EventFile or path; the file is then contrasted
-    with it (``alpha`` the share of held-out control events allowed to pass,
-    default 0.1 %).  ``control`` may also be a :class:`core.contrast.PreparedControl`
-    from :func:`prepare_control_file` with the same recipe: the control is then
-    not refitted (same result).
+    with it (:func:`core.contrast.contrast`; ``rate`` the false discovery rate
+    and ``min_fold`` the smallest density ratio of an enriched event, default
+    the recipe's ``comparison`` section).  ``control`` may also be a
+    :class:`core.contrast.PreparedControl` from :func:`prepare_control_file`
+    with the same recipe: the control is then not refitted (same result).
+    Enriched regions (``core.regions``) are evaluated after the contrast; without
+    a control they, and regions built on them, are left out of ``region_masks``
+    (named in ``info["regions_without_control"]``).
     """
     from .density import AdditiveTreeDensity
     from .rare import rare_events, rarity_percentile
@@ -322,6 +470,9 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
     if n_kept < 50:
         raise EventDataError(f"{os.path.basename(event_file.path)}: only {n_kept} of {n} events are usable "
                              "after cleaning; at least 50 are needed to fit a density")
+    from .prepare import atoms as find_atoms
+
+    atoms = find_atoms(prepared.matrix, list(_get(recipe, "channels")))
     timing["prepare"] = time.perf_counter() - t0
 
     relay, stopped = stop_relay(progress)
@@ -343,10 +494,17 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
     t3 = time.perf_counter()
     region_dicts = _get(recipe, "regions", None) or []
     masks: dict = {}
+    regions = None
     if region_dicts:
         regions = recipe.region_set() if hasattr(recipe, "region_set") else RegionSet.from_dict(region_dicts)
         by_channel = {name: values[:, j] for j, name in enumerate(event_file.channel_names)}
-        masks = regions.evaluate(by_channel, rarity, n_events=n)
+        needs_control = regions.depending_on("enriched")
+        if not needs_control:
+            masks = regions.evaluate(by_channel, rarity, n_events=n)
+        elif control is None:  # regions of new events mean nothing without a control: left out
+            masks = RegionSet([r for r in regions if r.name not in needs_control]).evaluate(by_channel, rarity,
+                                                                                            n_events=n)
+        # with a control, regions of new events are evaluated after the contrast
     timing["regions"] = time.perf_counter() - t3
 
     result = Analysis(path=os.fspath(event_file.path), channel_names=list(event_file.channel_names),
@@ -354,11 +512,13 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
                       model=model, log_density=log_density, rarity=rarity, rare=rare_res.mask,
                       rare_level=rare_res.log_level, reason=np.asarray(prepared.reason).astype(str),
                       region_masks=masks, heldout_loglik=float(getattr(model, "heldout_loglik_", np.nan)),
-                      timing=timing, recipe=recipe, cancelled=bool(stopped))
+                      timing=timing, recipe=recipe, cancelled=bool(stopped), atoms=atoms)
+    if regions is not None and control is None and regions.depending_on("enriched"):
+        result.info["regions_without_control"] = regions.depending_on("enriched")
 
     if control is not None and not stopped:
         t4 = time.perf_counter()
-        from .contrast import DEFAULT_ALPHA, PreparedControl, contrast
+        from .contrast import PreparedControl, contrast
 
         if isinstance(control, PreparedControl):
             pc, c_matrix, control_path = control, None, control.source
@@ -367,15 +527,23 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
             validate_recipe(recipe, control_file)
             c_matrix = density_input(control_file, recipe)[0].matrix
             pc, control_path = None, os.fspath(control_file.path)
-        res = contrast(prepared.matrix, c_matrix, alpha=DEFAULT_ALPHA if alpha is None else alpha,
+        settings = comparison_settings(recipe, rate, min_fold)
+        chans = list(_get(recipe, "channels"))
+        res = contrast(prepared.matrix, c_matrix, rate=settings["rate"], min_fold=settings["min_fold"],
                        engine=engine, random_state=engine["random_state"], progress=progress,
-                       test_model=model, prepared_control=pc)
+                       prepared_control=pc, channel_names=chans, to_units=_inverse_transforms(recipe, chans))
         result.contrast = res
         result.contrast_score = np.full(n, np.nan)
         result.contrast_score[prepared.kept] = res.score
+        result.contrast_p = np.full(n, np.nan)
+        result.contrast_p[prepared.kept] = res.pvalue
+        result.contrast_q = np.full(n, np.nan)
+        result.contrast_q[prepared.kept] = res.qvalue
         result.enriched = np.zeros(n, dtype=bool)
         result.enriched[prepared.kept] = res.enriched
         result.info["control"] = control_path
+        if regions is not None and regions.depending_on("enriched"):
+            result.region_masks = regions.evaluate(by_channel, rarity, n_events=n, enriched=result.enriched)
         timing["contrast"] = time.perf_counter() - t4
     timing["total"] = time.perf_counter() - t0
     return result

@@ -2,40 +2,43 @@
 
 Command line (the ``boscage`` launcher delegates ``batch`` here without Qt)::
 
-    boscage batch INPUT_DIR --out OUT_DIR [--recipe R.json] [--control FILE]
+    boscage batch INPUT_DIR --out OUT_DIR [--recipe R.json] [--control FILE] [--csv]
                   [--workers N] [--scheduler ADDRESS] [--force]
 
 Every ``*.fcs`` file directly in INPUT_DIR (sorted by name, case-insensitive
 extension) goes through the same recipe -- the given one, or the default recipe
 of the first readable file (:func:`core.recipe.default_recipe`).  For each file
 :func:`core.analysis.analyse` fits the density, flags rare events and evaluates
-the recipe's regions; then, in ``OUT_DIR/<file stem>/``:
+the recipe's regions; then, in ``OUT_DIR/<file stem>/`` (see :func:`output_folder_names`):
 
 * ``<stem> rare.fcs`` -- the rare events, and ``<stem> region <name>.fcs`` per
   region: the ORIGINAL raw values plus added parameters ``log density``,
-  ``rarity percentile``, ``cleaning flag`` (0 kept, 1 saturated, 2 non-finite;
+  ``rarity percentile``, ``cleaning flag`` (0 kept, 1 saturated, 2 non-finite, 3 floor pile, 4 ceiling pile;
   removed events carry log density 0 and rarity -1 since FCS float data should
   hold no NaN), and with a control ``contrast score``/``enriched``
   (:func:`core.export.export_events_fcs`, with provenance keywords);
   with ``--control`` every file is contrasted with the control
-  (:mod:`core.contrast`);
+  (:mod:`core.contrast`) and ``<stem> enriched.fcs`` holds the events new
+  against it (columns ``contrast score``, ``contrast p``, ``contrast q``;
+  keywords naming the control, the false discovery rate and any shift
+  warning: :func:`export_enriched`), with ``--csv`` also as CSV;
 * ``done.json`` -- the file's summary row, the recipe digest (extended by the
   contents of a spillover CSV the recipe names: :func:`inputs_digest`) and the
   input file's size and modification time (and the control file's path, size
   and modification time): a re-run skips files whose marker matches (unless
   ``--force``); changed inputs, recipes, spillover CSVs or controls are redone.
 
-With ``--control`` the control's part of the contrast (its density fitted
-on the fit share, its held-out events and their log density under it) is
+With ``--control`` the control's part of the contrast (its K part densities,
+its events and their log density under the part model that did not see them) is
 computed ONCE per batch, in this process before the files are dispatched,
-and saved in ``OUT_DIR/.prepared-control/``: ``model.npz`` (the engine's own
-``save()``), ``heldout.npz`` (plain arrays, read with ``allow_pickle=False``)
+and saved in ``OUT_DIR/.prepared-control/``: ``model-<k>.npz`` (the engine's own
+``save()``), ``events.npz`` (plain arrays, read with ``allow_pickle=False``)
 and ``control.json`` (written last: recipe digest, control path, size and
-modification time, software version, split settings and SHA-256 of the two
-arrays files).  Every file's task loads it by path (worker processes and Dask
+modification time, software version, split settings and SHA-256 of the
+model and arrays files).  Every file's task loads it by path (worker processes and Dask
 workers alike) and fits only its own densities: the file's model and the
 three cross-fitted test densities (on 2/3 of its events each), about three
-full-size fits per file instead of four, with the same results as analysing
+full-size fits per file instead of five, with the same results as analysing
 each file with the control file.  The control's fit runs before any file
 starts (``BatchResult.info["control_seconds"]``); a caller's ``progress``
 is called at most every 5 s meanwhile and may stop it.  A
@@ -45,14 +48,26 @@ damaged, it is rebuilt.  If the control cannot be prepared (unreadable,
 missing channels) every file to do gets status ``error`` with the reason.
 
 ``OUT_DIR`` also gets ``summary.csv`` (one row per input file: file, events,
-events_kept, rare_events, rare_percent, ``region:<name>`` counts, enriched
-(with a control), heldout_loglik, seconds, status ``ok``/``error``/``cancelled``,
+events_kept, set_aside_<reason> per cleaning reason, atoms, rare_events, rare_percent, ``region:<name>``
+counts, with a control the :data:`ENRICHED_COLUMNS` (enriched count, percent and 95 % interval,
+expected false discoveries, rate, minimum fold, shift warning), heldout_loglik, seconds, status
+``ok``/``error``/``cancelled``,
 message), ``recipe.json`` and a ``README.txt`` with the research-use caution.
 
 A broken file gets status ``error`` and the reason; the others carry on.
 Exit code: 0 when every file succeeded, 1 when any failed, 2 for bad
-arguments, 130 when stopped with Ctrl-C (finished files are kept; the summary
+arguments (an output folder that cannot be created, that is or contains an
+input folder, or that no batch wrote and that holds names the batch writes,
+included), 130 when stopped with Ctrl-C (finished files are kept; the summary
 lists the rest as ``cancelled``).
+
+Safety (:mod:`core.write_guard`): inputs and the control are registered so no
+write replaces them; per-file folder names come from
+:func:`output_folder_names` (safe, stable, distinct; ``<stem> #<hash>`` when a
+stem is changed by cleaning, collides ignoring case or is a name the batch
+writes); the temporary files of an earlier, killed run are removed at the start;
+worker processes end with the batch process and never write after it
+(:func:`_die_with_parent`).
 
 Parallelism: ``--workers N`` worker processes (``concurrent.futures``; the
 "forkserver" start method where the platform has it -- workers fork from a
@@ -82,13 +97,17 @@ from dataclasses import dataclass, field
 from typing import Any, Callable, Sequence
 
 from . import RESEARCH_USE_NOTE, SOFTWARE_NAME, __version__
-from .atomic import atomic_write
-from .errors import BoscageError, Cancelled, ModelFileError, RecipeError
+from . import write_guard
+from .atomic import atomic_write, remove_stale_parts
+from .errors import BoscageError, Cancelled, ExportError, ModelFileError, RecipeError
 from .progress import keep_going
 
 SUMMARY_NAME = "summary.csv"
 DONE_NAME = "done.json"
-BASE_COLUMNS = ["file", "events", "events_kept", "rare_events", "rare_percent"]
+#: Events set aside by cleaning, one column per reason (core.prepare.REASONS), and the atoms check.
+CLEANING_COLUMNS = ["set_aside_saturated", "set_aside_ceiling_pile", "set_aside_floor_pile",
+                    "set_aside_non_finite", "atoms"]
+BASE_COLUMNS = ["file", "events", "events_kept"] + CLEANING_COLUMNS + ["rare_events", "rare_percent"]
 TAIL_COLUMNS = ["heldout_loglik", "seconds", "status", "message"]
 
 
@@ -97,13 +116,49 @@ TAIL_COLUMNS = ["heldout_loglik", "seconds", "status", "message"]
 # ---------------------------------------------------------------------------
 
 def _safe_name(text: str) -> str:
-    keep = "".join(c if (c.isalnum() or c in " -_.+") else "_" for c in str(text)).strip(" .")
-    return keep or "region"
+    return write_guard.clean_name(text, "region")
 
 
-def file_out_dir(out_dir: str, path: str) -> str:
-    """The output folder of one input file: ``OUT_DIR/<file stem>``."""
-    return os.path.join(out_dir, _safe_name(os.path.splitext(os.path.basename(path))[0]))
+#: Marks OUT_DIR as a batch output folder (its summary, README and recipe may be replaced).
+OUT_MARK = ".boscage-batch"
+#: Names the batch writes directly in OUT_DIR: no input's folder may take one.
+RESERVED_NAMES = (SUMMARY_NAME, "README.txt", "recipe.json", DONE_NAME, ".prepared-control", OUT_MARK)
+
+
+def output_folder_names(paths: Sequence[str]) -> dict:
+    """Folder name (inside OUT_DIR) of each input file: ``{basename: name or None}``.
+
+    The file's stem when it is safe as it is and no other input's stem equals it
+    ignoring case; otherwise the cleaned stem plus ``#`` and 8 hex digits of the
+    file name (:func:`core.write_guard.safe_unique_names`).  The same input gets
+    the same folder on every run, and two inputs never share one (``x.fcs`` /
+    ``x.FCS``, ``a:b.fcs`` / ``a_b.fcs``, ``summary.csv.fcs`` / the summary).
+    None: no distinct name could be made (the file is reported with status error).
+    """
+    bases = [os.path.basename(os.fspath(p)) for p in paths]
+    return write_guard.safe_unique_names(bases, RESERVED_NAMES, "file",
+                                         bases=[os.path.splitext(b)[0] for b in bases])
+
+
+def file_out_dir(out_dir: str, path: str, names: dict | None = None) -> str:
+    """The output folder of one input file: ``OUT_DIR/<name>`` (see :func:`output_folder_names`;
+    ``names`` is its result for all files of the run, default: this file alone)."""
+    base = os.path.basename(os.fspath(path))
+    name = (names if names is not None else output_folder_names([path])).get(base)
+    if name is None:
+        raise ExportError(f"{base}: no output folder name distinct from the other inputs' can be made; "
+                          "rename the file")
+    return os.path.join(out_dir, name)
+
+
+def _region_file_names(names: Sequence[str], where: str) -> dict:
+    """File-name part of each region: safe, stable, distinct (``a/b`` and ``a_b`` never share a file)."""
+    out = write_guard.safe_unique_names(list(names), (), "region")
+    for name, part in out.items():
+        if part is None:
+            raise ExportError(f"{where}: region {name!r} cannot be given a file name distinct from the other "
+                              "regions'; rename it")
+    return out
 
 
 def _source_stamp(path: str) -> dict:
@@ -134,6 +189,8 @@ def process_file(task: dict) -> dict:
         from .fcs import read_fcs
         from .recipe import Recipe
 
+        write_guard.protect(task.get("protected") or [])
+        folder = file_out_dir(task["out_dir"], path, task.get("names"))
         recipe = Recipe.from_dict(task["recipe"], source=task.get("recipe_source"))
         ef = read_fcs(path)
         control = task.get("control")
@@ -142,33 +199,41 @@ def process_file(task: dict) -> dict:
             control = load_prepared_control(task["control_prepared"], task.get("control_key"))
             used = control.info
         an = analyse(ef, recipe, control=control)
-        folder = file_out_dir(task["out_dir"], path)
-        os.makedirs(folder, exist_ok=True)
+        _make_folder(folder)
         stem = os.path.basename(folder)
         extra = an.export_columns()
+        region_files = _region_file_names(list(an.region_masks), row["file"])
         export_events_fcs(os.path.join(folder, f"{stem} rare.fcs"), ef, an.rare, extra, task["digest"],
                           overwrite=True)
+        if an.contrast is not None:
+            export_enriched(folder, stem, ef, an, task["digest"], csv=bool(task.get("csv")))
         for name, mask in an.region_masks.items():
-            export_events_fcs(os.path.join(folder, f"{stem} region {_safe_name(name)}.fcs"), ef, mask, extra,
+            export_events_fcs(os.path.join(folder, f"{stem} region {region_files[name]}.fcs"), ef, mask, extra,
                               task["digest"], overwrite=True)
         row.update({"events": an.n_events, "events_kept": an.n_kept, "rare_events": an.n_rare,
                     "rare_percent": round(100.0 * an.n_rare / an.n_kept, 4) if an.n_kept else 0.0,
                     "heldout_loglik": round(an.heldout_loglik, 6)})
+        for reason, count in an.set_aside.items():
+            row["set_aside_" + reason.replace(" ", "_").replace("-", "_")] = count
+        row["atoms"] = "; ".join(f"{c} {100 * v:.3g} %" for c, v in an.atoms.items())
         for name, mask in an.region_masks.items():
             row[f"region:{name}"] = int(mask.sum())
         if an.contrast is not None:
-            row["enriched"] = an.contrast.count
+            row.update(enriched_summary(an.contrast))
         row["status"] = "ok"
         row["seconds"] = round(time.perf_counter() - t0, 3)
         with atomic_write(os.path.join(folder, DONE_NAME), "w", overwrite=True, encoding="utf-8") as fh:
             json.dump({"row": row, "recipe_digest": task["digest"],
                        "inputs_digest": task.get("inputs_digest", task["digest"]), "control": task.get("control"),
                        "control_source": _source_stamp(task["control"]) if task.get("control") else None,
-                       "control_prepared": used, "source": _source_stamp(path)}, fh, indent=1)
+                       "control_prepared": used, "source": _source_stamp(path),
+                       "csv": bool(task.get("csv"))}, fh, indent=1)
     except KeyboardInterrupt:
         raise
     except BoscageError as exc:
         row["message"] = str(exc)
+    except OSError as exc:
+        row["message"] = f"{row['file']}: cannot write its outputs ({exc.strerror or exc})"
     except MemoryError:
         row["message"] = f"{row['file']}: not enough memory to analyse this file"
     except Exception as exc:  # an unexpected failure must not stop the batch
@@ -177,16 +242,52 @@ def process_file(task: dict) -> dict:
     return row
 
 
+#: summary.csv columns of a batch with a control (see :func:`enriched_summary`).
+ENRICHED_COLUMNS = ["enriched", "enriched_percent", "enriched_ci_low_percent", "enriched_ci_high_percent",
+                    "expected_false", "false_discovery_rate", "min_fold", "shift_warning"]
+
+
+def enriched_summary(res: Any) -> dict:
+    """The summary row's comparison entries from a :class:`core.contrast.ContrastResult`."""
+    return {"enriched": res.count, "enriched_percent": round(100.0 * res.share, 4),
+            "enriched_ci_low_percent": round(100.0 * res.share_ci[0], 4),
+            "enriched_ci_high_percent": round(100.0 * res.share_ci[1], 4),
+            "expected_false": round(res.expected_false, 2), "false_discovery_rate": res.rate,
+            "min_fold": res.min_fold, "shift_warning": res.shift.text if res.shift is not None else ""}
+
+
+def export_enriched(folder: str, stem: str, event_file: Any, an: Any, digest: str, csv: bool = False) -> list:
+    """Write ``<stem> enriched.fcs`` (and ``<stem> enriched.csv`` when ``csv``) in ``folder``.
+
+    The enriched events of ``an`` (a contrasted :class:`core.analysis.Analysis`)
+    with the added columns of :meth:`~core.analysis.Analysis.export_columns`
+    (``contrast score``, ``contrast p``, ``contrast q`` among them); the FCS
+    file carries :func:`core.contrast.contrast_keywords`.  The CSV holds the transformed
+    values as the analysis saw them.  Returns the paths written.
+    """
+    from .contrast import contrast_keywords
+    from .export import export_events_csv, export_events_fcs
+
+    extra = an.export_columns()
+    kw = contrast_keywords(an.contrast, an.info.get("control"))
+    paths = [export_events_fcs(os.path.join(folder, f"{stem} enriched.fcs"), event_file, an.enriched, extra,
+                               digest, overwrite=True, extra_keywords=kw)]
+    if csv:
+        paths.append(export_events_csv(os.path.join(folder, f"{stem} enriched.csv"), an.channel_names, an.values,
+                                       an.enriched, extra, overwrite=True, source_paths=[an.path]))
+    return paths
+
+
 # ---------------------------------------------------------------------------
 # the control's part of the contrast, prepared once per batch
 # ---------------------------------------------------------------------------
 
 CONTROL_DIR = ".prepared-control"
 CONTROL_META = "control.json"
-CONTROL_MODEL = "model.npz"
-CONTROL_ARRAYS = "heldout.npz"
+CONTROL_MODEL = "model-{k}.npz"
+CONTROL_ARRAYS = "events.npz"
 CONTROL_FORMAT = "boscage-batch-prepared-control"
-CONTROL_FORMAT_VERSION = 1
+CONTROL_FORMAT_VERSION = 2
 
 
 def control_key(control: str, digest: str) -> dict:
@@ -210,10 +311,11 @@ def _sha256(path: str) -> str:
 def save_prepared_control(prepared: Any, folder: str, key: dict) -> None:
     """Write a :class:`core.contrast.PreparedControl` to ``folder`` (created if missing).
 
-    The model goes through the engine's own ``save()``; the held-out events
-    and their control log density through ``np.savez``; ``control.json``
-    (``key``, split settings, checksums) is written last, every file atomically,
-    so a folder whose writing was interrupted is never taken as valid.
+    Each part model goes through the engine's own ``save()`` (``model-<k>.npz``);
+    the control events, their parts and log densities through ``np.savez``
+    (``events.npz``); ``control.json`` (``key``, split settings, checksums) is
+    written last, every file atomically, so a folder whose writing was
+    interrupted is never taken as valid.
     """
     import numpy as np
 
@@ -221,16 +323,17 @@ def save_prepared_control(prepared: Any, folder: str, key: dict) -> None:
     meta_path = os.path.join(folder, CONTROL_META)
     if os.path.exists(meta_path):  # what follows replaces the files it describes
         os.unlink(meta_path)
-    model_path = os.path.join(folder, CONTROL_MODEL)
+    names = [CONTROL_MODEL.format(k=k) for k in range(len(prepared.models))]
+    for name, model in zip(names, prepared.models):
+        model.save(os.path.join(folder, name))
     arrays_path = os.path.join(folder, CONTROL_ARRAYS)
-    prepared.model.save(model_path)
     with atomic_write(arrays_path, "wb", overwrite=True) as fh:
-        np.savez(fh, heldout=np.asarray(prepared.heldout, dtype=np.float64),
-                 heldout_log_control=np.asarray(prepared.heldout_log_control, dtype=np.float64))
-    meta = dict(key, n_fit=int(prepared.n_fit), n_heldout=int(prepared.heldout.shape[0]),
-                n_channels=int(prepared.heldout.shape[1]), heldout_fraction=float(prepared.heldout_fraction),
-                random_state=int(prepared.random_state), note=RESEARCH_USE_NOTE,
-                sha256={CONTROL_MODEL: _sha256(model_path), CONTROL_ARRAYS: _sha256(arrays_path)})
+        np.savez(fh, events=np.asarray(prepared.events, dtype=np.float64),
+                 part=np.asarray(prepared.part, dtype=np.int64),
+                 log_control=np.asarray(prepared.log_control, dtype=np.float64))
+    meta = dict(key, n_events=int(prepared.events.shape[0]), n_channels=int(prepared.events.shape[1]),
+                folds=int(prepared.folds), random_state=int(prepared.random_state), note=RESEARCH_USE_NOTE,
+                sha256={name: _sha256(os.path.join(folder, name)) for name in names + [CONTROL_ARRAYS]})
     with atomic_write(meta_path, "w", overwrite=True, encoding="utf-8") as fh:
         json.dump(meta, fh, indent=1)
 
@@ -268,8 +371,16 @@ def load_prepared_control(folder: str, key: dict | None = None):
         changed = [k for k in key if meta.get(k) != key[k]]
         if changed:
             raise fail(f"it was prepared for another {', '.join(changed)}")
+    try:
+        folds = int(meta["folds"])
+        seed = int(meta["random_state"])
+    except (KeyError, TypeError, ValueError) as exc:
+        raise fail(f"control.json lacks the split settings ({type(exc).__name__}: {exc})") from exc
+    if not 2 <= folds <= 100:
+        raise fail(f"control.json gives {folds} parts")
+    names = [CONTROL_MODEL.format(k=k) for k in range(folds)]
     sums = meta.get("sha256")
-    for name in (CONTROL_MODEL, CONTROL_ARRAYS):
+    for name in names + [CONTROL_ARRAYS]:
         path = os.path.join(folder, name)
         try:
             digest = _sha256(path)
@@ -277,24 +388,24 @@ def load_prepared_control(folder: str, key: dict | None = None):
             raise fail(f"{name} cannot be read ({exc.strerror or exc})") from exc
         if not isinstance(sums, dict) or sums.get(name) != digest:
             raise fail(f"{name} does not match its checksum in control.json (damaged or replaced)")
-    model = AdditiveTreeDensity.load(os.path.join(folder, CONTROL_MODEL))
+    models = [AdditiveTreeDensity.load(os.path.join(folder, name)) for name in names]
     try:
         with np.load(os.path.join(folder, CONTROL_ARRAYS), allow_pickle=False) as z:
-            held = np.asarray(z["heldout"])
-            held_log = np.asarray(z["heldout_log_control"])
-        n_fit = int(meta["n_fit"])
-        fraction = float(meta["heldout_fraction"])
-        seed = int(meta["random_state"])
+            events = np.asarray(z["events"])
+            part = np.asarray(z["part"])
+            log_control = np.asarray(z["log_control"])
     except (OSError, ValueError, KeyError, TypeError, EOFError, zipfile.BadZipFile) as exc:
-        raise fail(f"{CONTROL_ARRAYS} or control.json is damaged ({type(exc).__name__}: {exc})") from exc
-    if (held.ndim != 2 or held.dtype.kind != "f" or held_log.shape != (held.shape[0],)
-            or held.shape[1] != int(model.n_features_in_) or not np.all(np.isfinite(held))
-            or held.shape[0] == 0 or n_fit < 1):
-        raise fail(f"{CONTROL_ARRAYS} does not hold the held-out events the model expects "
-                   f"(shapes {held.shape} and {held_log.shape}, model of {model.n_features_in_} channels)")
-    return PreparedControl(model=model, heldout=held.astype(np.float64),
-                           heldout_log_control=held_log.astype(np.float64), n_fit=n_fit,
-                           heldout_fraction=fraction, random_state=seed, source=str(meta.get("control", "")),
+        raise fail(f"{CONTROL_ARRAYS} is damaged ({type(exc).__name__}: {exc})") from exc
+    n = events.shape[0] if events.ndim == 2 else -1
+    if (n <= 0 or events.dtype.kind != "f" or part.shape != (n,) or part.dtype.kind not in "iu"
+            or log_control.shape != (n,) or not np.all(np.isfinite(events))
+            or np.any((part < 0) | (part >= folds))
+            or any(events.shape[1] != int(m.n_features_in_) for m in models)):
+        raise fail(f"{CONTROL_ARRAYS} does not hold the control events the models expect "
+                   f"(shapes {events.shape}, {part.shape}, {log_control.shape}; {folds} parts)")
+    return PreparedControl(models=models, events=events.astype(np.float64), part=part.astype(np.int64),
+                           log_control=log_control.astype(np.float64), folds=folds, random_state=seed,
+                           source=str(meta.get("control", "")),
                            info={"folder": os.path.abspath(folder), "sha256": dict(sums)})
 
 
@@ -340,11 +451,68 @@ def _limit_numba_threads(threads: int) -> None:
         pass
 
 
-def _init_worker(threads: int) -> None:
-    """Worker start-up: ignore Ctrl-C (the parent stops the batch) and limit numba threads."""
+def _parent_alive(pid: int) -> bool:
+    """True while process ``pid`` runs (a zombie, killed but not yet reaped, counts as gone)."""
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except OSError:
+        return True  # exists, owned by someone else
+    try:
+        with open(f"/proc/{pid}/stat", encoding="ascii", errors="replace") as fh:
+            return fh.read().rsplit(")", 1)[1].split()[0] not in ("Z", "X")
+    except (OSError, IndexError):
+        return True
+
+
+def _die_with_parent(parent_pid: int) -> None:
+    """Make this worker end when the batch's process ``parent_pid`` ends, even by ``kill -9``.
+
+    On Linux the kernel sends SIGKILL when the worker's parent (the fork server)
+    exits (``prctl(PR_SET_PDEATHSIG)``); on every POSIX system a watchdog thread checks the
+    batch process every 0.2 s and ends the worker, and the write guard checks it
+    before every rename, so an orphaned worker never writes.
+    """
+    import signal
+    import threading
+
+    if os.name != "posix":
+        return  # os.kill(pid, 0) would end the process on Windows; spawned workers are not orphaned there
+    if sys.platform.startswith("linux"):
+        try:
+            import ctypes
+
+            libc = ctypes.CDLL(None, use_errno=True)
+            libc.prctl(1, signal.SIGKILL, 0, 0, 0)  # PR_SET_PDEATHSIG = 1
+        except Exception:  # no libc prctl: the watchdog below still works
+            pass
+
+    def orphaned() -> bool:
+        return not _parent_alive(parent_pid)
+
+    def check() -> None:
+        if orphaned():
+            os._exit(70)
+
+    def watch() -> None:
+        while True:
+            time.sleep(0.2)
+            check()
+
+    write_guard.set_abort_check(check)
+    threading.Thread(target=watch, name="boscage-parent-watch", daemon=True).start()
+    check()
+
+
+def _init_worker(threads: int, parent_pid: int | None = None) -> None:
+    """Worker start-up: ignore Ctrl-C (the parent stops the batch), end with the batch's
+    process ``parent_pid`` (:func:`_die_with_parent`) and limit numba threads."""
     import signal
 
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    if parent_pid:
+        _die_with_parent(int(parent_pid))
     if "numba" not in sys.modules:
         # a spawned worker: size numba's pool before numba is imported.  A worker
         # forked from the fork server has numba loaded already; changing the
@@ -437,18 +605,71 @@ def inputs_digest(recipe: Any, digest: str) -> str:
     return hashlib.sha256(f"{digest}:{_sha256(path)}".encode("ascii")).hexdigest()[:16]
 
 
-def _finished_row(out_dir: str, path: str, key: str, control: str | None) -> dict | None:
-    marker = os.path.join(file_out_dir(out_dir, path), DONE_NAME)
+def _finished_row(out_dir: str, path: str, key: str, control: str | None,
+                  names: dict | None = None, csv: bool = False) -> dict | None:
     try:
+        marker = os.path.join(file_out_dir(out_dir, path, names), DONE_NAME)
         with open(marker, encoding="utf-8") as fh:
             done = json.load(fh)
         if (done.get("inputs_digest") == key and done.get("control") == control
                 and done.get("control_source") == (_source_stamp(control) if control else None)
-                and done.get("source") == _source_stamp(path) and done["row"].get("status") == "ok"):
+                and done.get("source") == _source_stamp(path) and done["row"].get("status") == "ok"
+                and (not csv or not control or done.get("csv"))):
             return dict(done["row"])
-    except (OSError, ValueError, KeyError, TypeError, AttributeError):
+    except (OSError, ValueError, KeyError, TypeError, AttributeError, RecursionError, ExportError):
         pass
     return None
+
+
+def _make_folder(folder: str) -> None:
+    """Create ``folder`` (and parents); ExportError with a sentence when it cannot be."""
+    if os.path.lexists(folder) and not os.path.isdir(folder):
+        raise ExportError(f"{folder}: a file of that name exists, so the output folder cannot be created "
+                          "there; choose another output folder")
+    try:
+        os.makedirs(folder, exist_ok=True)
+    except OSError as exc:
+        raise ExportError(f"{folder}: the output folder cannot be created ({exc.strerror or exc}); choose "
+                          "a folder you can write in") from None
+
+
+def _is_batch_folder(out_dir: str) -> bool:
+    """True when ``out_dir`` was written by a batch (its mark, or the README of earlier versions)."""
+    if os.path.isfile(os.path.join(out_dir, OUT_MARK)):
+        return True
+    try:
+        with open(os.path.join(out_dir, "README.txt"), encoding="utf-8") as fh:
+            first = fh.readline()
+    except (OSError, UnicodeDecodeError):
+        return False
+    return first.startswith(f"{SOFTWARE_NAME} ") and "batch output" in first
+
+
+def prepare_out_dir(out_dir: str, folder_names: Sequence[str]) -> None:
+    """Create OUT_DIR, or check that an existing one may receive this batch's files.
+
+    A folder no batch wrote (no ``.boscage-batch`` mark) is refused when it holds
+    a file or folder the batch would replace (``summary.csv``, ``README.txt``,
+    ``recipe.json``, a per-file folder...): those are the user's files.  Then the
+    mark is written and the temporary files of an earlier, killed run removed.
+    Raises ExportError with a sentence (exit code 2 on the command line).
+    """
+    if os.path.isdir(out_dir) and not _is_batch_folder(out_dir):
+        ours = {n.casefold() for n in list(RESERVED_NAMES) + [n for n in folder_names if n]}
+        try:
+            clash = sorted(n for n in os.listdir(out_dir) if n.casefold() in ours)
+        except OSError as exc:
+            raise ExportError(f"{out_dir}: the output folder cannot be read ({exc.strerror or exc})") from None
+        if clash:
+            raise ExportError(f"{out_dir}: this folder was not written by a batch and holds "
+                              f"{', '.join(clash[:5])}, which the batch would replace; choose a new or "
+                              "empty output folder")
+    _make_folder(out_dir)
+    mark = os.path.join(out_dir, OUT_MARK)
+    if not os.path.isfile(mark):
+        with atomic_write(mark, "w", overwrite=True, encoding="utf-8") as fh:
+            fh.write(f"{SOFTWARE_NAME} {__version__} batch output folder\n")
+    remove_stale_parts(out_dir)
 
 
 def _cleanup_partial(out_dir: str) -> None:
@@ -467,7 +688,7 @@ def _summary_columns(rows: list, recipe: Any, control: bool) -> list[str]:
     extra = [k for row in rows for k in row if k.startswith("region:") and k not in regions]
     cols = BASE_COLUMNS + regions + sorted(set(extra))
     if control:
-        cols.append("enriched")
+        cols += ENRICHED_COLUMNS
     return cols + TAIL_COLUMNS
 
 
@@ -492,19 +713,32 @@ Control file: {control or "none"}
 Written: {time.strftime("%Y-%m-%d %H:%M:%S %Z")}
 
 summary.csv     one row per input file: events, events kept after cleaning,
-                rare events and their percentage of kept events, events in
-                each region, enriched events (with a control), held-out
+                events set aside per reason (saturated, ceiling pile, floor
+                pile, non-finite), atoms (density channels where one value
+                still holds more than 0.1 % of the kept events), rare events and their percentage of kept events, events in
+                each region, with a control the enriched (new) events:
+                count, percent of kept events with its 95 % interval, the
+                expected number of false discoveries, the false discovery
+                rate, the minimum fold and the whole-sample shift warning
+                (empty when none); held-out
                 log-likelihood of the density fit (nats per event), seconds,
                 status (ok / error / cancelled) and the reason of an error.
 <stem>/         per input file: '<stem> rare.fcs' (the rare events) and
                 '<stem> region <name>.fcs' per region, with the ORIGINAL raw
                 values plus the parameters 'log density', 'rarity percentile'
-                and 'cleaning flag' (0 kept, 1 saturated, 2 non-finite;
+                and 'cleaning flag' (0 kept, 1 saturated, 2 non-finite,
+                3 floor pile, 4 ceiling pile;
                 removed events have log density 0 and rarity -1), and
-                'done.json' (lets a re-run skip the file).
-.prepared-control/  with a control: the control's density and held-out
-                events, fitted once for all files; rebuilt when the recipe
-                or the control file changes.
+                'done.json' (lets a re-run skip the file).  With a control
+                also '<stem> enriched.fcs' (and '.csv' with --csv): the
+                events new against the control, with 'contrast score'
+                (log density ratio, nats), 'contrast p' (conformal p-value)
+                and 'contrast q' (Benjamini-Hochberg q-value); keywords
+                BOSCAGE_CONTROL, BOSCAGE_FDR, BOSCAGE_MIN_FOLD and, when
+                raised, BOSCAGE_SHIFT_WARNING.
+.prepared-control/  with a control: the control's part densities and
+                its events, fitted once for all files; rebuilt when the
+                recipe or the control file changes.
 
 Recipe used:
 {json.dumps(recipe.to_dict(), indent=2, sort_keys=True)}
@@ -515,7 +749,8 @@ Recipe used:
 
 def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | None = None,
               workers: int | None = None, scheduler: str | None = None, force: bool = False,
-              progress: Callable | None = None, numba_threads: int | None = None) -> BatchResult:
+              progress: Callable | None = None, numba_threads: int | None = None,
+              csv: bool = False) -> BatchResult:
     """Run one recipe over every ``*.fcs`` in ``input_dir``; see the module docstring.
 
     ``recipe``: a Recipe, a recipe dict, a path to a recipe JSON, or None
@@ -523,6 +758,7 @@ def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | N
     row)`` is called after each file (``row`` the file's summary row);
     returning False stops the batch like Ctrl-C.  ``numba_threads``: numba
     threads per worker process (default cores // workers, at least 1).
+    ``csv``: with a control, also write each file's enriched events as CSV.
 
     Worker processes are started (and load the compiled kernels) as soon as the
     files to do are known, while this process reports the skipped ones and
@@ -532,14 +768,14 @@ def run_batch(input_dir: str, out_dir: str, recipe: Any = None, control: str | N
     box: dict = {"pool": None}
     try:
         return _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, progress,
-                          numba_threads, box)
+                          numba_threads, box, csv=csv)
     finally:
         if box["pool"] is not None:
             _stop_pool(box["pool"])
 
 
 def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, progress, numba_threads,
-               box) -> BatchResult:
+               box, csv=False) -> BatchResult:
     """The body of :func:`run_batch`; ``box["pool"]`` holds an early-started worker pool."""
     from .recipe import recipe_digest, save_recipe
 
@@ -554,11 +790,14 @@ def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, p
         if not os.path.isfile(control):
             raise RecipeError(f"{control}: the control file does not exist")
         files = [p for p in files if os.path.abspath(p) != control]
-    if os.path.abspath(out_dir) == os.path.abspath(input_dir):
-        raise RecipeError(f"{out_dir}: choose an output folder other than the input folder")
+    # outputs never go among the inputs (links resolved, case ignored): core.write_guard
+    write_guard.check_output_folder(out_dir, [input_dir] + ([os.path.dirname(control)] if control else []))
     if not files:
         raise RecipeError(f"{input_dir}: the folder holds no *.fcs files")
-    os.makedirs(out_dir, exist_ok=True)
+    protected = [os.path.abspath(p) for p in files] + ([control] if control else [])
+    write_guard.protect(protected)
+    names = output_folder_names(files)
+    prepare_out_dir(out_dir, list(names.values()))
     cores = os.cpu_count() or 1
     try:
         recipe_obj, recipe_source = _resolve_recipe(recipe, files)
@@ -577,12 +816,17 @@ def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, p
     rows: dict[str, dict] = {}
     todo: list[str] = []
     for p in files:
-        done = None if force else _finished_row(out_dir, p, key_digest, control)
+        if names.get(os.path.basename(p)) is None:
+            rows[p] = {"file": os.path.basename(p), "status": "error", "seconds": "",
+                       "message": f"{os.path.basename(p)}: no output folder name distinct from the other "
+                                  "inputs' can be made; rename the file"}
+            continue
+        done = None if force else _finished_row(out_dir, p, key_digest, control, names, csv)
         if done is not None:
             rows[p] = done
         else:
             todo.append(p)
-    n_skipped = len(files) - len(todo)
+    n_skipped = sum(1 for r in rows.values() if r.get("status") == "ok")
     total = len(files)
     if workers is None:
         workers = max(1, min(cores, len(todo)))
@@ -606,7 +850,7 @@ def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, p
     for p in files:  # report the skipped ones first
         if p in rows:
             step += 1
-            keep_going(progress, step, total, dict(rows[p], skipped=True))
+            keep_going(progress, step, total, dict(rows[p], skipped=rows[p].get("status") == "ok"))
 
     # the control's part of the contrast: once for the whole batch, before dispatching
     control_dir = key = None
@@ -648,9 +892,12 @@ def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, p
               "recipe_source": getattr(recipe_obj, "source", None), "digest": digest,
               "inputs_digest": key_digest, "control": control,
               "control_prepared": os.path.abspath(control_dir) if control_dir else None, "control_key": key,
-              "numba_threads": threads if (workers > 1 or numba_threads) and not scheduler else None}
+              "numba_threads": threads if (workers > 1 or numba_threads) and not scheduler else None,
+              "csv": bool(csv)}
              for p in todo]
     by_path = {t["path"]: p for t, p in zip(tasks, todo)}
+    for t, p in zip(tasks, todo):  # the file's output folder name and the run's inputs (never written)
+        t.update(names={os.path.basename(p): names[os.path.basename(p)]}, protected=protected)
 
     try:
         if not tasks or stop:
@@ -705,7 +952,7 @@ def _start_pool(workers: int, threads: int):
     os.environ.update({var: str(threads) for var in _BLAS_THREAD_VARS})
     try:
         pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init_worker,
-                                   initargs=(threads,))
+                                   initargs=(threads, os.getpid()))
         for _ in range(workers):
             pool.submit(_warm_up)
     finally:
@@ -891,6 +1138,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--workers", type=int, metavar="N", help="worker processes (default: CPU cores)")
     p.add_argument("--scheduler", metavar="ADDRESS", help="address of a Dask distributed scheduler")
     p.add_argument("--force", action="store_true", help="redo files already finished in an earlier run")
+    p.add_argument("--csv", action="store_true",
+                   help="with --control, also write each file's enriched events as CSV (transformed values)")
     return p
 
 
@@ -907,13 +1156,18 @@ def main(argv: Sequence[str] | None = None) -> int:
     bar = TerminalProgress(sys.stderr)
     try:
         result = run_batch(args.input_dir, args.out, recipe=args.recipe, control=args.control,
-                           workers=args.workers, scheduler=args.scheduler, force=args.force, progress=bar)
+                           workers=args.workers, scheduler=args.scheduler, force=args.force, progress=bar,
+                           csv=args.csv)
     except KeyboardInterrupt:
         print("\nboscage batch: stopped; finished files are kept", file=sys.stderr)
         return 130
     except BoscageError as exc:
         print(f"boscage batch: {exc}", file=sys.stderr)
         return 2
+    except OSError as exc:  # a failing disk or folder mid-run: a sentence, not a traceback
+        print(f"boscage batch: {exc.filename or args.out}: {exc.strerror or exc}; finished files are kept "
+              "and a re-run completes the rest", file=sys.stderr)
+        return 1
     print(f"\n{result.n_ok} of {len(result.rows)} files ok, {result.n_failed} failed"
           + (f", {result.n_skipped} finished earlier and skipped" if result.n_skipped else "")
           + (" (stopped by the user)" if result.interrupted else "")

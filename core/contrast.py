@@ -1,102 +1,256 @@
-"""Contrast a test file with a control: events enriched in the test sample.
+"""Contrast a test file with a control: events new in the test sample, at a controlled false discovery rate.
 
 Method
 ------
 Both samples are described by the same channels (same recipe: compensation,
-transforms, cleaning).  A density is fitted to the test events (f_test) and one
-to the control events (f_control), except for a held-out share of the control
-events (default 30 %, seeded) that the control model never sees.  Each test
-event gets the score
+transforms, cleaning).  Each event x gets the score
 
     s(x) = log f_test(x) - log f_control(x)        (natural log, nats)
 
-which is large where the test sample has events the control lacks.  The
-threshold t is set on the HELD-OUT control events, scored the same way, so that
-at most ``alpha`` of them (default 0.1 %) have s > t: events of the control's
-kind pass with probability about alpha, measured on events that did not shape
-the control model (scoring the control's own training events would make them
-look more typical than new control-like events are, and the threshold too low).
-Test events with s > t are "enriched".
+from a density fitted to test events (f_test) and one fitted to control
+events (f_control); s is large where the test sample has events the control
+lacks.
 
-Reported: the enriched mask, their count and share of the test events with a
-95 % Clopper-Pearson (exact binomial) interval (``scipy.stats.binomtest``), the
-share of held-out control events that passed, and the expected number of
-control-like events among the enriched ones (alpha_observed x n_test), so the
-excess over the control is visible.
+Cross-fitting (``folds`` = K parts, default 3).  The test events are split into
+K seeded parts, and so are the control events.  Model pair k -- f_test fitted
+on the test events outside part k, f_control on the control events outside
+part k -- scores the test events AND the control events of part k.  So every
+event, test or control, is scored by models that never saw it: under the null
+(test drawn like the control), a test event and a control event of the same
+part are exchangeable.  (A density scores its own training events too high:
+without cross-fitting, control-like test events looked more unusual than
+control events and passed too often.)
 
-Cross-fitting (default, ``cross_fit=3``): a density fitted to the test
-events scores those same events higher than new events of the same kind
-(in-sample optimism), which lets control-like test events pass more often
-than alpha (measured on a 3-channel normal background with a 0.5 % spike:
-0.3 % instead of 0.1 %, precision 0.61; on the scenario's low-dose tube 0.15 %).
-So the test events are split into K seeded parts; the model fitted without
-part k scores the events of part k, and the held-out control events are
-assigned to parts the same way and scored by the same models.  Test events and
-held-out control events are then scored alike -- by models that did not see
-them -- and alpha holds for both.  K = 3 is the default: each model sees 2/3
-of the test events, so a small population keeps most of its events (with
-halves, a 35-event population of the scenario's low-dose tube was found with
-recall 0.03-0.51 depending on the split, with 3 parts 0.80, with 4 parts 0.83,
-without cross-fitting 1.00 but at 1.5 x the false-pass rate).  The cost is K
-fits on (K-1)/K of the test events.  ``cross_fit=0`` uses one f_test
-(``test_model``, e.g. the file's own fitted model): faster, optimistic.
+Conformal p-value of each test event against the control scores (all control
+events serve as the reference, each scored by its own part's pair):
 
-The control's part -- the held-out split, the control density fitted on the
-fit share and its log density at the held-out events -- depends on the control
-alone, so :func:`prepare_control` computes it once (:class:`PreparedControl`)
-and ``contrast(..., prepared_control=...)`` reuses it for any number of test
-files with the same result as passing the control's values (a batch does so).
-What involves the test file (its densities, the parts of the cross-fitting,
-the held-out events' part assignment, the threshold) is computed per file.
+    p(x) = (1 + #{control scores >= s(x)}) / (n_control + 1)
+
+Under the null p is (close to) uniform, so the Benjamini-Hochberg q-values of
+the test events' p (:func:`core.fdr.bh_qvalues`) control the false discovery
+rate (published method: conformal p-values for outlier detection with
+Benjamini-Hochberg).  Enriched = q <= ``rate`` (default 5 %) AND
+s >= log(``min_fold``).  Pooling the K parts' control scores (instead of
+comparing a test event only with the control events of its own part) makes the
+reference K times larger -- the smallest p is 1 / (n_control + 1), and BH can
+only accept R events if 1 / (n_control + 1) <= rate x R / n_test, i.e. a new
+population of R events needs n_control >= n_test / (rate x R): 20,000 control
+events for 30 new events among 30,000 at 5 %.  The K pairs are fitted alike on
+(K - 1)/K of the events, so their score scales agree, but pooling is an
+approximation: within a part a test event and the control events are exactly
+exchangeable, while the other parts' control scores come from models fitted
+on the test event's own part (as in cross-validation conformal methods).
+Measured (``tests/benchmarks/contrast_benchmark.py``): no event flagged in 20
+null runs, yet a two-sample KS test tells the pooled test and control scores
+apart in about a third of them (also with a Gaussian mixture as the density).
+
+Minimum fold (``min_fold``, default 2): an enriched event must also be at
+least twice as dense in the test sample as in the control (s >= log 2 =
+0.69 nats).  With tens of thousands of events a tiny, systematic difference
+can be statistically significant; an event whose estimated density ratio is
+below 2 is not "new" in any sense a user cares about (the density estimates
+themselves are uncertain by a few tenths of a nat), and populations that
+merely grew are the populations' question, not this one.
+
+Reported (:class:`ContrastResult`): per test event the score, p and q, the
+enriched mask; the count with its share of the test events and a 95 %
+Clopper-Pearson interval (``scipy.stats.binomtest``); the expected number of
+false discoveries (n_test x the share of control scores at or above the
+lowest enriched score: control-like events expected to pass; Benjamini-Hochberg
+bounds it by about rate x count); and the whole-sample shift check
+(:func:`shift_check`).
+
+Whole-sample shift.  When the two tubes differ as a whole (compensation,
+voltages, staining), a density ratio flags large parts of the file.
+:func:`shift_check` says so: a warning when more than ``max_share`` (10 %) of
+the test events are enriched, or when a channel's marginal distributions differ
+by a two-sample Kolmogorov-Smirnov test (``scipy.stats.ks_2samp``) with
+p < 1e-6 AND statistic D >= ``ks_min`` (0.02).  With 60,000 events a second
+draw of the same distribution gives D of 0.006-0.009 while a 5 % gain change
+on one channel gives 0.024-0.026 (measured on the benchmark's generator): the
+effect-size floor keeps trivial differences of huge files from flagging, and
+the small p (many channels, many files) keeps chance from flagging smaller
+files (a second draw of 20,000 events reached D = 0.021, p = 4e-4, on one
+channel of 60 tried).  The channels that moved most
+are named, with the KS statistic and their medians.
+
+The control's part (its K part models and every control event's log density
+under the model that did not see it) depends on the control alone;
+:func:`prepare_control` computes it once (:class:`PreparedControl`) and
+``contrast(..., prepared_control=...)`` reuses it for any number of test files
+with the same result as passing the control's values (a batch does so).
 
 Shapes: ``test_values`` (n_test, d), ``control_values`` (n_control, d) float,
 the values the density sees (transformed, cleaned).  Rows with NaN are scored
-NaN and are never enriched.
+NaN, get p = q = NaN and are never enriched.
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
-from typing import Any, Callable, Mapping
+from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
 from scipy import stats
 
 from .errors import Cancelled, EventDataError
+from .fdr import bh_qvalues
 from .progress import stop_relay
 
-DEFAULT_ALPHA = 0.001
-DEFAULT_HELDOUT_FRACTION = 0.3
-#: Parts for cross-fitting the test density (see the module docstring).
+#: False discovery rate of the enriched events (Benjamini-Hochberg).
+DEFAULT_RATE = 0.05
+#: Smallest density ratio f_test / f_control of an enriched event (see the module docstring).
+DEFAULT_MIN_FOLD = 2.0
+#: Parts for cross-fitting (see the module docstring).
 DEFAULT_FOLDS = 3
+#: Shift warning: share of enriched test events above which the whole sample is suspect.
+SHIFT_MAX_SHARE = 0.10
+#: Shift warning: smallest two-sample KS statistic that counts as a moved channel.
+SHIFT_KS_MIN = 0.02
+#: Shift warning: largest KS p-value that counts as a moved channel.
+SHIFT_KS_P = 1e-6
+#: Test events scored at least, per part, for a usable cross-fit.
+MIN_EVENTS_PER_PART = 50
+
+
+@dataclass
+class ShiftReport:
+    """Outcome of :func:`shift_check`.
+
+    ``warn``: True when the whole sample looks shifted; ``text``: a plain
+    sentence for people ("" when no warning); ``channels``: one dict per
+    channel, largest KS statistic first, with ``channel``, ``ks`` (D),
+    ``pvalue``, ``median_test``, ``median_control`` (in the units given, see
+    :func:`shift_check`) and ``moved`` (bool); ``enriched_share``: share of test
+    events enriched.
+    """
+
+    warn: bool
+    text: str
+    channels: list
+    enriched_share: float
+
+    @property
+    def moved(self) -> list:
+        """Names of the channels that moved (largest KS statistic first)."""
+        return [c["channel"] for c in self.channels if c["moved"]]
+
+
+def _fmt(v: float) -> str:
+    if not math.isfinite(v):
+        return "nan"
+    a = abs(v)
+    if a >= 1000:
+        return f"{v:,.0f}"
+    if a >= 10:
+        return f"{v:.1f}"
+    return f"{v:.3g}"
+
+
+def shift_check(test_values: np.ndarray, control_values: np.ndarray, channel_names: Sequence[str] | None = None,
+                enriched_share: float = 0.0, to_units: Sequence[Callable | None] | None = None,
+                max_share: float = SHIFT_MAX_SHARE, ks_min: float = SHIFT_KS_MIN,
+                ks_p: float = SHIFT_KS_P) -> ShiftReport:
+    """Does the test sample differ from the control as a whole?  (See the module docstring.)
+
+    ``test_values`` (n_test, d), ``control_values`` (n_control, d): finite
+    rows only are used.  ``channel_names``: d names (default "channel 1"...).
+    ``enriched_share``: share of test events found enriched.  ``to_units``:
+    optional d callables mapping the given values to instrument units (e.g.
+    the inverse transforms); medians are reported through them (a median
+    commutes with a monotone map; the KS statistic is unchanged by one).
+    """
+    T = np.asarray(test_values, dtype=np.float64)
+    C = np.asarray(control_values, dtype=np.float64)
+    d = T.shape[1]
+    names = list(channel_names) if channel_names is not None else [f"channel {j + 1}" for j in range(d)]
+    if len(names) != d or C.shape[1] != d:
+        raise EventDataError(f"shift check: {d} test channels, {C.shape[1]} control channels and "
+                             f"{len(names)} names")
+    T = T[np.all(np.isfinite(T), axis=1)]
+    C = C[np.all(np.isfinite(C), axis=1)]
+    rows = []
+    for j, name in enumerate(names):
+        if T.shape[0] < 2 or C.shape[0] < 2:
+            break
+        res = stats.ks_2samp(T[:, j], C[:, j])
+        mt, mc = float(np.median(T[:, j])), float(np.median(C[:, j]))
+        f = to_units[j] if to_units is not None else None
+        if f is not None:
+            mt, mc = (float(np.asarray(f(np.array([m], dtype=np.float64)))[0]) for m in (mt, mc))
+        rows.append({"channel": str(name), "ks": float(res.statistic), "pvalue": float(res.pvalue),
+                     "median_test": mt, "median_control": mc,
+                     "moved": bool(res.statistic >= ks_min and res.pvalue < ks_p)})
+    rows.sort(key=lambda r: -r["ks"])
+    moved = [r for r in rows if r["moved"]]
+    many = enriched_share > max_share
+    warn = bool(moved) or many
+    text = ""
+    if warn:
+        parts = []
+        if many:
+            parts.append(f"{100 * enriched_share:.1f} % of the events differ from the control (more than "
+                         f"{100 * max_share:.0f} %): the whole sample looks shifted rather than a new population "
+                         "having appeared.")
+        if moved:
+            desc = "; ".join(f"{r['channel']} (KS D = {r['ks']:.3f}, median {_fmt(r['median_control'])} -> "
+                             f"{_fmt(r['median_test'])})" for r in moved[:3])
+            more = f" and {len(moved) - 3} more" if len(moved) > 3 else ""
+            parts.append(f"Channel distributions differ from the control: {desc}{more}.")
+        parts.append("Unless a large population is expected to change, check compensation, detector voltages "
+                     "and staining before reading the enriched events as new cells.")
+        text = " ".join(parts)
+    return ShiftReport(warn=warn, text=text, channels=rows, enriched_share=float(enriched_share))
 
 
 @dataclass
 class ContrastResult:
-    """Outcome of :func:`contrast` (see the module docstring)."""
+    """Outcome of :func:`contrast` (see the module docstring).  Per-event arrays are (n_test,)."""
 
-    score: np.ndarray          # (n_test,) log f_test - log f_control; NaN for removed rows
-    threshold: float           # enriched: score > threshold
-    enriched: np.ndarray       # (n_test,) bool
+    score: np.ndarray          # log f_test - log f_control (nats); NaN for removed rows
+    pvalue: np.ndarray         # conformal p-value against the control scores; NaN for removed rows
+    qvalue: np.ndarray         # Benjamini-Hochberg q-value; NaN for removed rows
+    enriched: np.ndarray       # bool: q <= rate and score >= log(min_fold)
     count: int
     share: float               # count / n_scored test events
     share_ci: tuple            # (low, high) 95 % Clopper-Pearson
-    alpha: float
-    control_pass_share: float  # share of held-out control events above the threshold
-    n_control_heldout: int
+    rate: float                # false discovery rate
+    min_fold: float
+    threshold: float           # lowest score of an enriched event (inf when none)
+    control_pass_share: float  # share of control scores >= threshold
+    n_control: int             # control events in the reference
     expected_false: float      # control_pass_share x n_scored test events
-    test_model: Any = None     # fitted test density, or the list of K part models when cross-fitted
-    control_model: Any = None
+    folds: int = DEFAULT_FOLDS
+    shift: ShiftReport | None = None
+    test_model: Any = None     # list of the K test part models
+    control_model: Any = None  # list of the K control part models
+    control_scores: np.ndarray | None = None   # (n_control,) the reference scores
     info: dict = field(default_factory=dict)
 
     def summary(self) -> dict:
         """JSON-able numbers for tables and reports."""
         return {"enriched": self.count, "enriched_share": self.share,
                 "enriched_share_ci_low": self.share_ci[0], "enriched_share_ci_high": self.share_ci[1],
-                "threshold": self.threshold, "alpha": self.alpha,
-                "control_heldout_pass_share": self.control_pass_share,
-                "control_heldout_events": self.n_control_heldout,
-                "expected_control_like": self.expected_false}
+                "false_discovery_rate": self.rate, "min_fold": self.min_fold,
+                "expected_false_discoveries": self.expected_false, "threshold": self.threshold,
+                "control_events": self.n_control,
+                "shift_warning": self.shift.text if self.shift is not None else ""}
+
+
+def contrast_keywords(res: ContrastResult, control: str | None) -> dict:
+    """FCS TEXT keywords recording a contrast in an export: ``BOSCAGE_CONTROL`` (the control's
+    file name), ``BOSCAGE_FDR``, ``BOSCAGE_MIN_FOLD``, ``BOSCAGE_ENRICHED`` and, when raised,
+    ``BOSCAGE_SHIFT_WARNING``."""
+    import os
+
+    kw = {"BOSCAGE_CONTROL": os.path.basename(str(control or "")) or "unknown",
+          "BOSCAGE_FDR": repr(float(res.rate)), "BOSCAGE_MIN_FOLD": repr(float(res.min_fold)),
+          "BOSCAGE_ENRICHED": f"{res.count} of {res.info.get('n_test', '')} kept events; about "
+                              f"{res.expected_false:.1f} expected false discoveries"}
+    if res.shift is not None and res.shift.warn:
+        kw["BOSCAGE_SHIFT_WARNING"] = res.shift.text
+    return kw
 
 
 def _default_factory(engine: Mapping | None, random_state: int) -> Callable:
@@ -109,191 +263,196 @@ def _default_factory(engine: Mapping | None, random_state: int) -> Callable:
     return fit
 
 
-def split_heldout(n: int, fraction: float, random_state: int = 0) -> tuple[np.ndarray, np.ndarray]:
-    """Seeded split of ``range(n)`` into (fit indices, held-out indices), both sorted."""
-    if not 0.0 < fraction < 1.0:
-        raise EventDataError(f"the held-out share of control events must be between 0 and 1; got {fraction}")
-    rng = np.random.default_rng(random_state)
-    perm = rng.permutation(n)
-    n_out = int(round(fraction * n))
-    return np.sort(perm[n_out:]), np.sort(perm[:n_out])
+def assign_parts(n: int, folds: int, seed) -> np.ndarray:
+    """Seeded, balanced assignment of ``n`` events to ``folds`` parts: int array (n,) in [0, folds)."""
+    if folds < 2:
+        raise EventDataError(f"cross-fitting needs at least 2 parts; got {folds}")
+    rng = np.random.default_rng(seed)
+    return (rng.permutation(n) % folds).astype(np.int64)
+
+
+def _staged(progress, stage: str):
+    """Relay a fit's progress with ``info = {"stage": "<stage>[ -- <the fit's own stage>]",
+    "heldout_loglik": ...}``: which model is being fitted, and how far."""
+    if progress is None:
+        return None
+
+    def relay(step, total, info=None):
+        inner = info.get("stage") if isinstance(info, dict) else None
+        ll = info.get("heldout_loglik") if isinstance(info, dict) else info
+        return progress(step, total, {"stage": f"{stage} -- {inner}" if inner else stage, "heldout_loglik": ll})
+    return relay
+
+
+def _check_values(X: np.ndarray, what: str) -> np.ndarray:
+    X = np.asarray(X, dtype=np.float64)
+    if X.ndim != 2:
+        raise EventDataError(f"{what} events must be a 2-D array (events x channels); got shape {X.shape}")
+    return X
 
 
 @dataclass
 class PreparedControl:
     """The control's part of a contrast, shared by every test file (see :func:`prepare_control`).
 
-    ``model``: density fitted to the control's fit share; ``heldout``
-    (n_heldout, d) float64: the held-out control events (finite rows only);
-    ``heldout_log_control`` (n_heldout,): ``model``'s natural-log density at
-    them; ``n_fit``: events the model was fitted on; ``heldout_fraction`` and
-    ``random_state``: the split's settings (a contrast must use the same).
-    ``source``: where the control events came from (e.g. the file's path).
-    ``info``: free-form provenance (the batch records the folder and checksums
-    it was loaded from).
+    ``events`` (n_control, d) float64: the control's finite events; ``part``
+    (n_control,) int: each event's part; ``models``: the K part models (model k
+    fitted without part k); ``log_control`` (n_control,): each event's natural-log
+    density under the model that did not see it; ``folds`` and ``random_state``:
+    the split's settings (a contrast must use the same); ``source``: where the
+    control events came from (e.g. the file's path); ``info``: free-form
+    provenance (the batch records the folder and checksums it was loaded from).
     """
 
-    model: Any
-    heldout: np.ndarray
-    heldout_log_control: np.ndarray
-    n_fit: int
-    heldout_fraction: float = DEFAULT_HELDOUT_FRACTION
+    models: list
+    events: np.ndarray
+    part: np.ndarray
+    log_control: np.ndarray
+    folds: int = DEFAULT_FOLDS
     random_state: int = 0
     source: str = ""
-    info: dict = field(default_factory=dict)   # e.g. where it was loaded from
+    info: dict = field(default_factory=dict)
 
     @property
     def n_features(self) -> int:
-        return int(self.heldout.shape[1])
+        return int(self.events.shape[1])
+
+    @property
+    def n_events(self) -> int:
+        return int(self.events.shape[0])
 
 
-def _control_split(control_values: np.ndarray, heldout_fraction: float, random_state: int):
-    """Finite control rows split into (fit share, held-out events), as :func:`contrast` does."""
-    C = np.asarray(control_values, dtype=np.float64)
-    if C.ndim != 2:
-        raise EventDataError(f"control events must be a 2-D array (events x channels); got shape {C.shape}")
-    C = C[np.all(np.isfinite(C), axis=1)]
-    fit_idx, out_idx = split_heldout(C.shape[0], heldout_fraction, random_state)
-    return C[fit_idx], C[out_idx]
-
-
-def prepare_control(control_values: np.ndarray, heldout_fraction: float = DEFAULT_HELDOUT_FRACTION,
-                    engine: Mapping | None = None, random_state: int = 0, progress=None,
-                    model_factory: Callable | None = None, source: str = "") -> PreparedControl:
-    """Fit the control's density once, for contrasting any number of test files with it.
+def prepare_control(control_values: np.ndarray, folds: int = DEFAULT_FOLDS, engine: Mapping | None = None,
+                    random_state: int = 0, progress=None, model_factory: Callable | None = None,
+                    source: str = "") -> PreparedControl:
+    """Fit the control's K part models once, for contrasting any number of test files with it.
 
     ``control_values`` (n_control, d): the values the density sees; rows with
-    NaN/inf are dropped.  The held-out share (seeded by ``random_state``) is
-    set aside and scored by the model fitted on the rest -- exactly what
-    :func:`contrast` does with ``control_values``, so
+    NaN/inf are dropped.  The parts are seeded by ``random_state``;
     ``contrast(T, None, prepared_control=prepare_control(C, ...))`` gives the
     same result as ``contrast(T, C, ...)`` with the same settings.
-    ``progress(step, total, info)`` is passed to the fit; returning False
-    raises :class:`Cancelled`.
+    ``progress(step, total, info)`` receives ``info = {"stage": "control model,
+    part k of K", "heldout_loglik": ...}``; returning False raises :class:`Cancelled`.
     """
-    fit_part, held = _control_split(control_values, heldout_fraction, random_state)
+    C = _check_values(control_values, "control")
+    C = C[np.all(np.isfinite(C), axis=1)]
+    folds = int(folds)
+    if C.shape[0] < MIN_EVENTS_PER_PART * folds:
+        raise EventDataError(f"the control has {C.shape[0]} usable events; cross-fitting in {folds} parts "
+                             f"needs at least {MIN_EVENTS_PER_PART * folds}")
+    part = assign_parts(C.shape[0], folds, [int(random_state), 2])
     fit = model_factory or _default_factory(engine, random_state)
     relay, stopped = stop_relay(progress)
-    model = fit(fit_part, progress=relay)
-    if stopped:
-        raise Cancelled("contrast with the control was cancelled while fitting the control events")
-    return PreparedControl(model=model, heldout=held,
-                           heldout_log_control=np.asarray(model.score_samples(held), dtype=np.float64),
-                           n_fit=int(fit_part.shape[0]), heldout_fraction=float(heldout_fraction),
+    models = []
+    log_control = np.empty(C.shape[0])
+    for k in range(folds):
+        models.append(fit(C[part != k], progress=_staged(relay, f"Control model, part {k + 1} of {folds}")))
+        if stopped:
+            raise Cancelled("contrast with the control was cancelled while fitting the control events")
+        log_control[part == k] = models[k].score_samples(C[part == k])
+    return PreparedControl(models=models, events=C, part=part, log_control=log_control, folds=folds,
                            random_state=int(random_state), source=str(source))
 
 
-def threshold_for_alpha(heldout_scores: np.ndarray, alpha: float) -> float:
-    """Smallest threshold t with at most ``alpha`` of the scores strictly above t.
+def conformal_pvalues(scores: np.ndarray, reference: np.ndarray) -> np.ndarray:
+    """p = (1 + #{reference >= s}) / (n_reference + 1) for each score s (NaN stays NaN).
 
-    ``heldout_scores``: finite scores of held-out control events.
+    ``reference``: finite scores of events drawn like the null (here: the
+    control events, each scored by models that did not see it).
     """
-    s = np.sort(np.asarray(heldout_scores, dtype=np.float64))[::-1]
-    if s.size == 0:
-        raise EventDataError("no held-out control events to set the contrast threshold")
-    k = int(np.floor(alpha * s.size))
-    return float(s[min(k, s.size - 1)])
+    ref = np.sort(np.asarray(reference, dtype=np.float64))
+    ref = ref[np.isfinite(ref)]
+    if ref.size == 0:
+        raise EventDataError("no control scores to compare the test events with")
+    s = np.asarray(scores, dtype=np.float64)
+    p = np.full(s.shape, np.nan)
+    ok = ~np.isnan(s)
+    at_or_above = ref.size - np.searchsorted(ref, s[ok], side="left")
+    p[ok] = (1.0 + at_or_above) / (ref.size + 1.0)
+    return p
 
 
-def contrast(test_values: np.ndarray, control_values: np.ndarray, alpha: float = DEFAULT_ALPHA,
-             heldout_fraction: float = DEFAULT_HELDOUT_FRACTION, engine: Mapping | None = None,
-             random_state: int = 0, progress=None, test_model: Any = None,
-             model_factory: Callable | None = None, confidence_level: float = 0.95,
-             cross_fit: int | bool = 3, prepared_control: PreparedControl | None = None
+def contrast(test_values: np.ndarray, control_values: np.ndarray | None, rate: float = DEFAULT_RATE,
+             min_fold: float = DEFAULT_MIN_FOLD, folds: int = DEFAULT_FOLDS, engine: Mapping | None = None,
+             random_state: int = 0, progress=None, model_factory: Callable | None = None,
+             confidence_level: float = 0.95, prepared_control: PreparedControl | None = None,
+             channel_names: Sequence[str] | None = None, to_units: Sequence[Callable | None] | None = None
              ) -> ContrastResult:
-    """Score test events by log f_test - log f_control and flag the enriched ones.
+    """Score test events by log f_test - log f_control; flag the enriched ones at false discovery rate ``rate``.
 
-    ``cross_fit``: number of parts K >= 2 for cross-fitting the test density
-    (True = 3; 0 or False = off; see the module docstring).  ``test_model``: an
-    already fitted density of all test events, used only when cross-fitting is off.
-    ``model_factory(X, progress) -> fitted model``: how densities are fitted (default: AdditiveTreeDensity with ``engine`` keywords, seeded by
-    ``random_state``).  ``progress(step, total, info)`` is passed to the fits;
-    returning False raises :class:`Cancelled`.
-    ``prepared_control``: the control's part computed once by
-    :func:`prepare_control` (same ``heldout_fraction`` and ``random_state``);
-    ``control_values`` is then not used and may be None.
+    ``rate``: Benjamini-Hochberg false discovery rate (0 < rate < 1);
+    ``min_fold`` (>= 1): smallest density ratio of an enriched event;
+    ``folds``: cross-fitting parts K >= 2 (see the module docstring).
+    ``model_factory(X, progress) -> fitted model``: how densities are fitted
+    (default: AdditiveTreeDensity with ``engine`` keywords, seeded by
+    ``random_state``).  ``progress(step, total, info)`` receives
+    ``info = {"stage": ..., "heldout_loglik": ...}`` naming the model being
+    fitted; returning False raises :class:`Cancelled`.
+    ``prepared_control``: the control's part from :func:`prepare_control` (same
+    ``folds`` and ``random_state``); ``control_values`` is then not used.
+    ``channel_names``, ``to_units``: for the shift check's text (see :func:`shift_check`).
     """
-    if not 0.0 < alpha < 1.0:
-        raise EventDataError(f"alpha (the share of control events allowed to pass) must be between 0 and 1; got {alpha}")
-    T = np.asarray(test_values, dtype=np.float64)
-    if prepared_control is not None:
-        pc = prepared_control
-        if pc.heldout_fraction != float(heldout_fraction) or pc.random_state != int(random_state):
+    if not 0.0 < rate < 1.0:
+        raise EventDataError(f"the false discovery rate must be between 0 and 1 (0.05 = 5 %); got {rate}")
+    if not (math.isfinite(min_fold) and min_fold >= 1.0):
+        raise EventDataError(f"the minimum fold (density ratio) must be a number of at least 1; got {min_fold}")
+    folds = int(folds)
+    T = _check_values(test_values, "test")
+    pc = prepared_control
+    if pc is not None:
+        if pc.folds != folds or pc.random_state != int(random_state):
             raise EventDataError(
-                f"the prepared control was split with held-out share {pc.heldout_fraction} and seed "
-                f"{pc.random_state}, but this contrast asks for {heldout_fraction} and {random_state}; "
-                "prepare the control again with the same settings")
-        C_shape = (int(pc.n_fit) + pc.heldout.shape[0], pc.heldout.shape[1])
+                f"the prepared control was split into {pc.folds} parts with seed {pc.random_state}, but this "
+                f"contrast asks for {folds} parts and seed {random_state}; prepare the control again with the "
+                "same settings")
+        d_control = pc.n_features
     else:
-        C = np.asarray(control_values, dtype=np.float64)
-        C_shape = C.shape
-    if T.ndim != 2 or len(C_shape) != 2 or T.shape[1] != C_shape[1]:
-        raise EventDataError(f"test and control need the same channels; got shapes {T.shape} and {C_shape}")
+        d_control = _check_values(control_values, "control").shape[1]
+    if T.shape[1] != d_control:
+        raise EventDataError(f"test and control need the same channels; got {T.shape[1]} and {d_control}")
     t_ok = np.all(np.isfinite(T), axis=1)
+    Tk = T[t_ok]
+    if Tk.shape[0] < MIN_EVENTS_PER_PART * folds:
+        raise EventDataError(f"cross-fitting in {folds} parts needs at least {MIN_EVENTS_PER_PART * folds} "
+                             f"test events; got {Tk.shape[0]}")
     fit = model_factory or _default_factory(engine, random_state)
     relay, stopped = stop_relay(progress)
-
-    Tk = T[t_ok]
-    # only the held-out events' count is needed before the test fits (part assignment)
-    held = (prepared_control.heldout if prepared_control is not None
-            else _control_split(C, heldout_fraction, random_state)[1])
-    rng = np.random.default_rng([random_state, 1])
-    folds = DEFAULT_FOLDS if cross_fit is True else int(cross_fit or 0)
-    if folds >= 2:
-        fold_t = rng.integers(folds, size=Tk.shape[0])
-        fold_h = rng.integers(folds, size=held.shape[0])
-        if Tk.shape[0] < 50 * folds:
-            raise EventDataError(f"cross-fitting in {folds} parts needs at least {50 * folds} test events; "
-                                 f"got {Tk.shape[0]}")
-        models = []
-        for k in range(folds):
-            models.append(fit(Tk[fold_t != k], progress=relay))
-            if stopped:
-                raise Cancelled("contrast with the control was cancelled while fitting the test events")
-        test_model = models
-    else:
-        fold_t = fold_h = None
-        if test_model is None:
-            test_model = fit(Tk, progress=relay)
-            if stopped:
-                raise Cancelled("contrast with the control was cancelled while fitting the test events")
-    if prepared_control is None:  # the per-file path: the control's part, fitted here
-        prepared_control = prepare_control(C, heldout_fraction=heldout_fraction, random_state=random_state,
-                                           progress=progress, model_factory=fit)
+    if pc is None:
+        pc = prepare_control(control_values, folds=folds, random_state=random_state, progress=relay,
+                             model_factory=fit)
         shared = False
     else:
         shared = True
-    control_model = prepared_control.model
-    held_log_control = np.asarray(prepared_control.heldout_log_control, dtype=np.float64)
-    n_fit = int(prepared_control.n_fit)
+    part_t = assign_parts(Tk.shape[0], folds, [int(random_state), 1])
+    test_models = []
+    s_test = np.empty(Tk.shape[0])
+    s_control = np.empty(pc.n_events)
+    for k in range(folds):
+        model = fit(Tk[part_t != k], progress=_staged(relay, f"Test model, part {k + 1} of {folds}"))
+        if stopped:
+            raise Cancelled("contrast with the control was cancelled while fitting the test events")
+        test_models.append(model)
+        sel = part_t == k
+        s_test[sel] = (np.asarray(model.score_samples(Tk[sel]), dtype=np.float64)
+                       - np.asarray(pc.models[k].score_samples(Tk[sel]), dtype=np.float64))
+        csel = pc.part == k
+        s_control[csel] = np.asarray(model.score_samples(pc.events[csel]), dtype=np.float64) - pc.log_control[csel]
 
-    def log_test(X, fold):
-        if fold is None:
-            return np.asarray(test_model.score_samples(X), dtype=np.float64)
-        out = np.empty(X.shape[0])
-        # events of part k are scored by the model fitted without part k
-        for k, model in enumerate(test_model):
-            sel = fold == k
-            if sel.any():
-                out[sel] = model.score_samples(X[sel])
-        return out
-
-    held_scores = log_test(held, fold_h) - held_log_control
-    thr = threshold_for_alpha(held_scores, alpha)
     score = np.full(T.shape[0], np.nan)
-    score[t_ok] = log_test(Tk, fold_t) - \
-        np.asarray(control_model.score_samples(Tk), dtype=np.float64)
+    score[t_ok] = s_test
+    pvalue = conformal_pvalues(score, s_control)
+    qvalue = bh_qvalues(pvalue)
     with np.errstate(invalid="ignore"):
-        enriched = score > thr
+        enriched = (qvalue <= rate) & (score >= math.log(min_fold))
     n = int(t_ok.sum())
     count = int(enriched.sum())
-    ci = stats.binomtest(count, n).proportion_ci(confidence_level=confidence_level, method="exact") if n else None
-    pass_share = float(np.mean(held_scores > thr))
-    return ContrastResult(score=score, threshold=thr, enriched=enriched, count=count,
-                          share=count / n if n else float("nan"),
-                          share_ci=(float(ci.low), float(ci.high)) if ci else (float("nan"),) * 2,
-                          alpha=float(alpha), control_pass_share=pass_share,
-                          n_control_heldout=int(held.shape[0]), expected_false=pass_share * n,
-                          test_model=test_model, control_model=control_model,
-                          info={"n_test": n, "n_control_fit": n_fit,
-                                "control_prepared": shared})
+    ci = stats.binomtest(count, n).proportion_ci(confidence_level=confidence_level, method="exact")
+    threshold = float(np.min(score[enriched])) if count else float("inf")
+    pass_share = float(np.mean(s_control >= threshold))
+    shift = shift_check(Tk, pc.events, channel_names, enriched_share=count / n, to_units=to_units)
+    return ContrastResult(score=score, pvalue=pvalue, qvalue=qvalue, enriched=enriched, count=count,
+                          share=count / n, share_ci=(float(ci.low), float(ci.high)), rate=float(rate),
+                          min_fold=float(min_fold), threshold=threshold, control_pass_share=pass_share,
+                          n_control=int(pc.n_events), expected_false=pass_share * n, folds=folds, shift=shift,
+                          test_model=test_models, control_model=list(pc.models), control_scores=s_control,
+                          info={"n_test": n, "control_prepared": shared})

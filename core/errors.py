@@ -2,7 +2,10 @@
 
 Every message is written for a scientist: it names the file (where there is
 one) and says what is wrong in the trade's words.  Catch :class:`BoscageError`
-to handle all of them.
+to handle all of them.  The errors about bad values (a damaged file, unusable
+events, a bad setting, channel, transform, matrix, region or recipe) are also
+:class:`ValueError`, the type numpy / scikit-learn users catch for bad input,
+so code written for those libraries handles them too.
 """
 
 from __future__ import annotations
@@ -14,7 +17,7 @@ class BoscageError(Exception):
     """Base class of every error Boscage raises on purpose."""
 
 
-class FcsFileError(BoscageError):
+class FcsFileError(BoscageError, ValueError):
     """An FCS file cannot be read: broken, truncated or not FCS at all."""
 
     def __init__(self, path: str | os.PathLike | None, problem: str):
@@ -24,31 +27,35 @@ class FcsFileError(BoscageError):
         super().__init__(f"{where}: {problem}" + (f" (file: {self.path})" if self.path else ""))
 
 
-class ChannelError(BoscageError):
+class ChannelError(BoscageError, ValueError):
     """A channel is missing, duplicated or unsuitable for the requested use."""
 
 
-class CompensationError(BoscageError):
+class CompensationError(BoscageError, ValueError):
     """A spillover matrix is malformed, singular or does not match the file."""
 
 
-class TransformError(BoscageError):
+class TransformError(BoscageError, ValueError):
     """A transform's parameters are invalid."""
 
 
-class EventDataError(BoscageError):
+class EventDataError(BoscageError, ValueError):
     """Event values are unusable (NaN/inf, too few events, constant channel)."""
 
 
-class ModelFileError(BoscageError):
+class ParameterError(BoscageError, ValueError):
+    """A setting of the density engine (or a count such as the number of draws) is invalid."""
+
+
+class ModelFileError(BoscageError, ValueError):
     """A saved density model is damaged, foreign or from a newer version."""
 
 
-class RecipeError(BoscageError):
+class RecipeError(BoscageError, ValueError):
     """A recipe file is invalid or does not fit the event file."""
 
 
-class RegionError(BoscageError):
+class RegionError(BoscageError, ValueError):
     """A region definition is invalid (bad vertices, unknown channel, cycle)."""
 
 

@@ -15,7 +15,9 @@
 
 Every write is atomic (:func:`core.atomic.atomic_write`): a failed export
 leaves nothing behind.  An input file is never overwritten, not even with
-``overwrite=True``.
+``overwrite=True`` or through a link: every target passes
+:func:`core.write_guard.check_target` (files read in this process, the
+export's source and FCS files this program did not write are refused).
 """
 
 from __future__ import annotations
@@ -28,6 +30,7 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from . import RESEARCH_USE_NOTE, SOFTWARE_NAME, __version__
+from . import write_guard
 from .atomic import atomic_write, unique_path
 from .errors import BoscageError, ExportError
 
@@ -40,20 +43,13 @@ _CSV_BLOCK = 50_000
 
 
 def _same_file(a: str, b: str) -> bool:
-    """True when paths ``a`` and ``b`` resolve to the same file (links followed)."""
-    try:
-        if os.path.exists(a) and os.path.exists(b):
-            return os.path.samefile(a, b)
-    except OSError:
-        pass
-    return os.path.realpath(a) == os.path.realpath(b)
+    """True when paths ``a`` and ``b`` resolve to the same file (links followed, case ignored)."""
+    return write_guard._same(os.fspath(a), os.fspath(b))
 
 
-def _refuse_source(path: str, sources: Sequence[str]) -> None:
-    for src in sources:
-        if src and _same_file(path, src):
-            raise ExportError(f"{path}: this is the input file {os.path.basename(src)}; input files are "
-                              "never overwritten. Choose another name.")
+def _refuse_source(path: str, sources: Sequence[str], overwrite: bool = True) -> None:
+    """The write guard's verdict on ``path`` before any work (ExportError); see :mod:`core.write_guard`."""
+    write_guard.check_target(path, overwrite, [s for s in sources if s])
 
 
 def export_path_beside(source_path: str | os.PathLike, suffix: str) -> str:
@@ -127,7 +123,8 @@ def _spillover_keyword(keywords: Mapping[str, str], source: str) -> dict[str, st
 
 def export_events_fcs(path: str | os.PathLike, event_file: Any, mask: Any,
                       extra_columns: Mapping[str, Any] | None, recipe_digest: str,
-                      overwrite: bool = False, missing_value: float | None = None) -> str:
+                      overwrite: bool = False, missing_value: float | None = None,
+                      extra_keywords: Mapping[str, str] | None = None) -> str:
     """Write the selected events of ``event_file`` to an FCS 3.1 file; return the path.
 
     ``event_file``: a :class:`core.fcs.EventFile`; its ``data`` (events x
@@ -139,6 +136,8 @@ def export_events_fcs(path: str | os.PathLike, event_file: Any, mask: Any,
     or infinite values (FCS cannot store them) are left out and counted in
     the keyword ``BOSCAGE_NONFINITE`` and in ``$COM``.
     ``recipe_digest``: :func:`core.recipe.recipe_digest` of the recipe used.
+    ``extra_keywords``: more TEXT keywords (e.g. ``BOSCAGE_CONTROL``), added
+    after the provenance keywords.
     ``missing_value``: FCS holds no NaN; NaN in an added column (e.g. the log
     density of an event removed by cleaning) is written as this number, or
     refused (ExportError) when it is None.
@@ -151,7 +150,7 @@ def export_events_fcs(path: str | os.PathLike, event_file: Any, mask: Any,
 
     path = os.fspath(path)
     source = os.fspath(getattr(event_file, "path", "") or "")
-    _refuse_source(path, [source])
+    _refuse_source(path, [source], overwrite)
     data = np.asarray(event_file.data)
     if data.ndim != 2:
         raise ExportError(f"{path}: the event data must be events x channels; got shape {data.shape}")
@@ -207,6 +206,7 @@ def export_events_fcs(path: str | os.PathLike, event_file: Any, mask: Any,
         "BOSCAGE_CAUTION": RESEARCH_USE_NOTE,
         "BOSCAGE_EVENTS": f"{n_sel} of {n_events}",
     })
+    keywords.update({str(k): str(v) for k, v in (extra_keywords or {}).items()})
     if n_nonfinite:
         keywords["BOSCAGE_NONFINITE"] = str(n_nonfinite)
         keywords["$COM"] += (f" {n_nonfinite} selected events holding NaN or infinite values were "
@@ -242,10 +242,12 @@ def export_events_csv(path: str | os.PathLike, channel_names: Sequence[str], val
     for every event; ``extra_columns``: name -> array (n_events,) appended.
     Layout: when ``caution`` (default), a first line ``# <research-use caution>``;
     then the header row; then one row per selected event.  NaN is written as
-    ``nan``.  ``source_paths``: input files the target must not be (refused).
+    ``nan``.  ``source_paths``: input files the target must not be (refused),
+    besides every file read in this process (:mod:`core.write_guard`).
     """
     path = os.fspath(path)
-    _refuse_source(path, [os.fspath(p) for p in source_paths])
+    sources = [os.fspath(p) for p in source_paths]
+    _refuse_source(path, sources, overwrite)
     vals = np.asarray(values)
     if vals.ndim != 2:
         raise ExportError(f"{path}: values must be events x channels; got shape {vals.shape}")
@@ -261,7 +263,7 @@ def export_events_csv(path: str | os.PathLike, channel_names: Sequence[str], val
     idx = np.flatnonzero(sel)
     header = names + [name for name, _ in extras]
     try:
-        with atomic_write(path, "w", overwrite=overwrite, encoding="utf-8") as handle:
+        with atomic_write(path, "w", overwrite=overwrite, encoding="utf-8", sources=sources) as handle:
             if caution:
                 handle.write(f"# {RESEARCH_USE_NOTE} Exported by {SOFTWARE_NAME} {__version__}.\n")
             writer = csv.writer(handle, lineterminator="\n")

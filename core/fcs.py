@@ -31,8 +31,15 @@ data set as a float64 matrix of shape (events x channels), in *scale* units:
 
 The HEADER, TEXT offsets and ``$TOT x $PAR x $PnB`` are checked against the
 file size *before* any event is read, so a damaged header cannot make the
-reader allocate memory the file cannot fill.  Everything broken raises
-:class:`~core.errors.FcsFileError` naming the file and the problem.
+reader allocate memory the file cannot fill.  The DATA segment is located
+exactly: the HEADER and ``$BEGINDATA`` must give the same start, it may not
+overlap the HEADER or TEXT, and it must hold exactly ``$TOT`` events (one byte
+more only with a start confirmed by both; some writers end one byte late), so
+no tolerance can shift values.  The decoding keywords are bounded
+(:func:`_check_decoding`).  The path is checked before opening (non-regular
+files are never opened).  Everything broken raises
+:class:`~core.errors.FcsFileError` naming the file and the problem; no other
+exception type leaves :func:`read_fcs`.
 
 Writing
 -------
@@ -45,21 +52,31 @@ from __future__ import annotations
 import math
 import os
 import re
+import stat
 import warnings
 from dataclasses import dataclass, field
 from typing import Iterable, Mapping, Sequence
 
 import numpy as np
 
+from . import write_guard
 from .atomic import atomic_write
 from .errors import ChannelError, EventDataError, ExportError, FcsFileError
 
-__all__ = ["EventFile", "read_fcs", "write_fcs", "header_offset_fields"]
+__all__ = ["ChannelDecoding", "EventFile", "read_fcs", "write_fcs", "header_offset_fields"]
 
 #: Length of the FCS HEADER: version (6), 4 spaces, six 8-byte offsets (FCS 3.1 section 3.1).
 HEADER_LENGTH = 58
 #: The largest offset an 8-byte HEADER field can hold (FCS 3.1 section 3.1).
 MAX_HEADER_OFFSET = 99_999_999
+#: More channels than this in one file is taken as a damaged $PAR (real instruments: < 100).
+_MAX_PAR = 10_000
+#: Bounds of the decoding keywords (beyond them float64 arithmetic overflows or underflows;
+#: real files use a few decades, gains of 0.01-1000 and ranges up to 2^32: common practice).
+_MAX_DECADES = 30.0
+_MAX_LOG_OFFSET = 1e30
+_GAIN_BOUNDS = (1e-6, 1e6)
+_MAX_RANGE = 1e30
 
 _SUPPORTED_VERSIONS = ("FCS2.0", "FCS3.0", "FCS3.1", "FCS3.2")
 _BYTE_ORDERS = {"1,2,3,4": "<", "1,2": "<", "4,3,2,1": ">", "2,1": ">"}
@@ -71,6 +88,48 @@ _STRUCTURAL_KEYS = frozenset({
 })
 # Delimiters the writer may use, in order of preference (any byte 1-126 is allowed by FCS 3.1).
 _DELIMITER_CHOICES = ("/", "|", "\\", "!", "~", "^", "\x0c")
+
+
+@dataclass(frozen=True)
+class ChannelDecoding:
+    """How one channel's stored values became the scale values in ``EventFile.data``.
+
+    FCS 3.1 ($PnE, $PnG, $PnR; section 3.2.20 for $PnE, number from memory):
+    a log-amplified integer channel decodes as ``f2 * 10 ** (f1 * stored / $PnR)``,
+    a linear channel with a gain as ``stored / $PnG``, everything else as stored.
+
+    ``integer``: the file stores whole numbers ($DATATYPE I).
+    ``decades`` (f1, 0 for linear), ``offset`` (f2, used when ``decades > 0``),
+    ``stored_range`` ($PnR as written, NaN when unusable), ``gain`` (the divisor
+    applied; 1.0 when none was).
+    """
+
+    integer: bool
+    decades: float = 0.0
+    offset: float = 1.0
+    stored_range: float = math.nan
+    gain: float = 1.0
+
+    @property
+    def log_amplified(self) -> bool:
+        return self.decades > 0
+
+    def decode(self, stored) -> np.ndarray:
+        """Scale values (float64) of stored values (any shape)."""
+        x = np.asarray(stored, dtype=np.float64)
+        if self.log_amplified:
+            return self.offset * np.power(10.0, self.decades * x / self.stored_range)
+        return x / self.gain if self.gain != 1.0 else x.copy()
+
+    def encode(self, values) -> np.ndarray:
+        """Stored values (float64, rounded to whole numbers for integer channels) of scale values."""
+        v = np.asarray(values, dtype=np.float64)
+        if self.log_amplified:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                x = np.log10(v / self.offset) * (self.stored_range / self.decades)
+        else:
+            x = v * self.gain if self.gain != 1.0 else v.copy()
+        return np.rint(x) if self.integer else x
 
 
 @dataclass
@@ -97,6 +156,9 @@ class EventFile:
     notes : list of str
         What the reader did that an analyst may want to know (Latin-1 text,
         renamed channels, values kept as stored, extra data sets, ...).
+    decoding : list of ChannelDecoding or None
+        Per channel, how stored values became ``data`` (``decoding[j].encode``
+        gives back the stored values); None for event files not read from disk.
     """
 
     path: str
@@ -107,6 +169,7 @@ class EventFile:
     keywords: dict
     version: str
     notes: list = field(default_factory=list)
+    decoding: list | None = None
 
     @property
     def n_events(self) -> int:
@@ -176,7 +239,7 @@ def _parse_header(path: str, head: bytes, file_size: int) -> dict:
         else:
             raise FcsFileError(path, f"the HEADER is damaged: the {name} offset reads "
                                      f"{raw!r}, not a number")
-    if offsets["text start"] <= 0 or offsets["text end"] <= offsets["text start"]:
+    if offsets["text start"] < HEADER_LENGTH or offsets["text end"] <= offsets["text start"]:
         raise FcsFileError(path, "the HEADER does not locate the TEXT segment "
                                  f"(offsets {offsets['text start']}-{offsets['text end']})")
     # Some writers let the TEXT end where DATA starts; read one byte less (as fcsparser does).
@@ -211,7 +274,10 @@ def _split_text(path: str, text: str, notes: list) -> dict:
                                  f"(found {delimiter!r}); the HEADER offsets are probably wrong")
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        raw = FCSParser._extract_text_dict(text)
+        try:
+            raw = FCSParser._extract_text_dict(text)
+        except Exception as exc:  # fcsparser's splitter on a damaged segment
+            raise FcsFileError(path, f"the TEXT segment cannot be split into keywords ({exc})") from None
     for w in caught:
         notes.append("The TEXT segment does not end with its delimiter; its last keyword "
                      "may be incomplete." if "delimiter" in str(w.message) else str(w.message))
@@ -285,7 +351,10 @@ def _check_layout(path: str, header: dict, kw: Mapping[str, str], file_size: int
     _int_keyword(path, kw, "$NEXTDATA")  # fcsparser requires it; check it here with a clear message
     if "$P0B" in kw:
         raise FcsFileError(path, "channels are numbered from 0 ($P0B); FCS numbers them from 1")
-    bits = []
+    if n_par > _MAX_PAR:
+        raise FcsFileError(path, f"$PAR is {n_par}; more than {_MAX_PAR} channels is not a plausible "
+                                 "acquisition (the keyword is probably damaged)")
+    bits, ranges = [], []
     for n in range(1, n_par + 1):
         b = _int_keyword(path, kw, f"$P{n}B")
         if datatype == "F" and b != 32 or datatype == "D" and b != 64:
@@ -298,75 +367,162 @@ def _check_layout(path: str, header: dict, kw: Mapping[str, str], file_size: int
             raise FcsFileError(path, f"$P{n}R (channel range) is missing or not a positive number; "
                                      "integer data cannot be decoded without it")
         bits.append(b)
+        ranges.append(_float_or_none(kw.get(f"$P{n}R")) or 0.0)
     row_bytes = sum(bits) // 8
     # Like fcsparser: HEADER offsets unless 0 (then $BEGINDATA/$ENDDATA, FCS 3.1 section 3.1).
-    start, end = header["data start"], header["data end"]
-    if start == 0:
-        start = _int_keyword(path, kw, "$BEGINDATA") if "$BEGINDATA" in kw else 0
-    if end == 0:
-        end = _int_keyword(path, kw, "$ENDDATA") if "$ENDDATA" in kw else 0
+    h_start, h_end = header["data start"], header["data end"]
+    k_start = _int_keyword(path, kw, "$BEGINDATA") if "$BEGINDATA" in kw else None
+    k_end = _int_keyword(path, kw, "$ENDDATA") if "$ENDDATA" in kw else None
+    start = h_start if h_start else (k_start or 0)
+    end = h_end if h_end else (k_end or 0)
     needed = n_tot * row_bytes
+    _check_decoding(path, kw, n_par)
+    # Both places state the DATA segment (FCS 3.1 section 3.1).  The start decides where
+    # values are read: two different starts mean one is damaged, and the file is refused
+    # rather than read from a wrong byte.  With one start confirmed by both, two different
+    # ends are accepted when one of them fits $TOT events (that end is used; a note says so).
+    note = ""
+    if h_start and k_start and h_start != k_start:
+        raise FcsFileError(path, f"the HEADER and the TEXT segment disagree on where the DATA segment starts "
+                                 f"(byte {h_start} in the HEADER, $BEGINDATA {k_start}); the file is damaged")
+    if h_end and k_end and h_end != k_end:
+        fits = [e for e in (h_end, k_end) if needed and start and e - start + 1 in (needed, needed + 1)]
+        if len(fits) != 1:
+            raise FcsFileError(path, f"the HEADER and the TEXT segment disagree on where the DATA segment ends "
+                                     f"(byte {h_end} in the HEADER, $ENDDATA {k_end}); the file is damaged")
+        end = fits[0]
+        note = (f"The HEADER and $ENDDATA disagree on where the DATA segment ends ({h_end} and {k_end}); "
+                f"byte {end}, which fits $TOT events, was used.")
+    layout = {"n_tot": n_tot, "n_par": n_par, "datatype": datatype, "bits": bits, "ranges": ranges,
+              "byteorder": _BYTE_ORDERS[byteord], "start": start, "row_bytes": row_bytes, "note": note}
     if needed == 0:
-        return {"n_tot": n_tot, "n_par": n_par, "datatype": datatype}
+        # $TOT 0: an empty file is fine, but a DATA segment holding events is not (FCS 3.1: $TOT
+        # is the number of events in the data set; reading 0 events would lose them silently)
+        if start > 0 and end >= start and end < file_size and end - start + 1 >= row_bytes:
+            raise FcsFileError(path, f"$TOT is 0 but the DATA segment holds {end - start + 1} bytes "
+                                     f"({(end - start + 1) // row_bytes} events of {row_bytes} bytes); "
+                                     "the event count is damaged")
+        return layout
     if start <= 0 or end < start:
         raise FcsFileError(path, "neither the HEADER nor $BEGINDATA/$ENDDATA locate the DATA "
                                  "segment")
+    if start < HEADER_LENGTH or start <= header["text end"] and end >= header["text start"]:
+        raise FcsFileError(path, f"the DATA segment (bytes {start}-{end}) overlaps the HEADER or the TEXT "
+                                 f"segment (bytes {header['text start']}-{header['text end']}); the "
+                                 "offsets are damaged")
     if start + needed > file_size:
         raise FcsFileError(path, f"the file is truncated or its event count is wrong: $TOT and "
                                  f"$PAR announce {n_tot} events x {n_par} channels "
                                  f"({_size_text(needed)} of data from byte {start}) but the file "
                                  f"has only {file_size} bytes")
     held = end - start + 1
-    # A DATA segment shorter than $TOT x $PAR needs, or longer by a whole event or more,
-    # means $TOT/$PAR disagree with the data: refuse rather than misalign channels.
-    if held < needed or held - needed >= row_bytes:
+    # The DATA segment must hold exactly $TOT x (bytes per event).  One byte more is
+    # accepted only when the HEADER and $BEGINDATA give the same start: some writers
+    # put the end offset one past the last byte (seen in fcsparser's FCS 3.1 files),
+    # and a start confirmed twice rules out a shifted start.
+    confirmed = bool(h_start and k_start and h_start == k_start)
+    if held != needed and not (held == needed + 1 and confirmed):
         raise FcsFileError(path, f"$TOT and $PAR disagree with the DATA segment: {n_tot} events "
                                  f"x {row_bytes} bytes per event need {needed} bytes but the "
                                  f"DATA segment holds {held} bytes")
-    if end >= file_size:
+    if end >= file_size and held == needed:
         raise FcsFileError(path, f"the file is truncated: the DATA segment should end at byte "
                                  f"{end} but the file has only {file_size} bytes")
-    return {"n_tot": n_tot, "n_par": n_par, "datatype": datatype}
+    return layout
 
 
-def _read_raw_events(path: str, encoding: str, n_tot: int, n_par: int, notes: list) -> np.ndarray:
-    """Let fcsparser read (and bit-mask) the DATA segment; return float64 (events x channels).
+def _check_decoding(path: str, kw: Mapping[str, str], n_par: int) -> None:
+    """Bound the decoding keywords before any value is decoded (FcsFileError naming the keyword).
 
-    fcsparser's parser object is used rather than ``fcsparser.parse`` to skip the
-    DataFrame it builds (one copy of the events less).
+    The same parsing as :func:`_decode_scale`: ``$PnR`` (when a positive number) up to
+    1e30; ``$PnE f1,f2`` with ``f1 > 0`` up to 30 decades and offsets 0..1e30; ``$PnG``
+    (when a positive number other than 1) within 1e-6..1e6.  Beyond, float64 decoding
+    overflows, underflows or divides every value into inf.
     """
-    from fcsparser.api import FCSParser
+    for n in range(1, n_par + 1):
+        name = kw.get(f"$P{n}N", "").strip() or f"P{n}"
+        rng = _float_or_none(kw.get(f"$P{n}R"))
+        if rng is not None and rng > _MAX_RANGE:
+            raise FcsFileError(path, f"$P{n}R (range of channel {name}) is {kw.get(f'$P{n}R')!r}; ranges "
+                                     f"above {_MAX_RANGE:g} are not plausible (damaged keyword)")
+        pne = kw.get(f"$P{n}E")
+        if pne is not None:
+            vals = [_float_or_none(p.strip()) for p in pne.split(",")]
+            if len(vals) == 2 and None not in vals and vals[0] > 0 and not (
+                    vals[0] <= _MAX_DECADES and 0 <= vals[1] <= _MAX_LOG_OFFSET):
+                raise FcsFileError(path, f"$P{n}E (log amplification of channel {name}) is {pne!r}; FCS "
+                                         f"3.1 gives 'decades,offset' and this program reads up to "
+                                         f"{_MAX_DECADES:g} decades and offsets up to {_MAX_LOG_OFFSET:g}")
+        gain = _float_or_none(kw.get(f"$P{n}G"))
+        if gain is not None and gain > 0 and gain != 1.0 and not _GAIN_BOUNDS[0] <= gain <= _GAIN_BOUNDS[1]:
+            raise FcsFileError(path, f"$P{n}G (amplifier gain of channel {name}) is {kw.get(f'$P{n}G')!r}; "
+                                     f"gains between {_GAIN_BOUNDS[0]:g} and {_GAIN_BOUNDS[1]:g} are read "
+                                     "(dividing by it would make the values meaningless)")
 
+
+def _read_raw_events(path: str, handle, layout: dict, notes: list) -> np.ndarray:
+    """Decode the DATA segment located by :func:`_check_layout`: float64 (events x channels).
+
+    Reads exactly ``$TOT x bytes per event`` from the checked start (FCS 3.1
+    list mode): ``$DATATYPE F``/``D`` as 32/64-bit IEEE floats, ``I`` as unsigned
+    integers of each channel's ``$PnB`` bytes (any whole number of bytes, mixed
+    widths allowed) in the ``$BYTEORD`` order, then masked to the bits ``$PnR``
+    needs (FCS 3.1 on ``$PnB``/``$PnR``).  A ``$PnR`` larger than the field holds
+    keeps every stored bit (a note says so).
+    """
+    n_tot, n_par, row = layout["n_tot"], layout["n_par"], layout["row_bytes"]
+    if layout.get("note"):
+        notes.append(layout["note"])
     if n_tot == 0:
         return np.zeros((0, n_par), dtype=np.float64)
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        try:
-            raw = FCSParser(path, read_data=True, channel_naming="$PnN", encoding=encoding).data
-        except MemoryError:
-            raise FcsFileError(path, "not enough memory to hold the events") from None
-        except Exception as exc:  # fcsparser raises bare ValueError/KeyError etc.
-            raise FcsFileError(path, f"the DATA segment cannot be read ({exc})") from exc
-    for w in caught:
-        msg = str(w.message)
-        if "channel names" in msg and "not unique" in msg:
-            continue  # duplicate names are handled (and noted) by read_fcs
-        if "ANALYSIS segment" in msg:
-            notes.append("The file has an ANALYSIS segment; it is not read.")
-        elif "NEXTDATA" in msg or "data sets" in msg:
-            continue
+    needed = n_tot * row
+    handle.seek(layout["start"])
+    try:
+        buf = handle.read(needed)
+    except MemoryError:
+        raise FcsFileError(path, "not enough memory to hold the events") from None
+    if len(buf) != needed:
+        raise FcsFileError(path, f"the DATA segment ends early: {len(buf)} of {needed} bytes could be read")
+    endian = layout["byteorder"]
+    datatype = layout["datatype"]
+    try:
+        if datatype in ("F", "D"):
+            raw = np.frombuffer(buf, dtype=f"{endian}{'f4' if datatype == 'F' else 'f8'}")
+            with np.errstate(invalid="ignore"):  # signalling NaN bit patterns stay NaN
+                return raw.astype(np.float64).reshape(n_tot, n_par)
+        data = np.empty((n_tot, n_par), dtype=np.float64)
+        widths = [b // 8 for b in layout["bits"]]
+        uniform = len(set(widths)) == 1 and widths[0] in (1, 2, 4, 8)
+        if uniform:
+            whole = np.frombuffer(buf, dtype=f"{endian}u{widths[0]}").reshape(n_tot, n_par)
         else:
-            notes.append(f"fcsparser: {msg}")
-    if raw.dtype.names:  # channels of mixed widths come as one record per event
-        data = np.empty((raw.shape[0], len(raw.dtype.names)), dtype=np.float64)
-        for j, name in enumerate(raw.dtype.names):
-            data[:, j] = raw[name]
-    else:
-        data = np.array(raw, dtype=np.float64, order="C")
-    if data.shape != (n_tot, n_par):
-        raise FcsFileError(path, f"the DATA segment gave {data.shape[0]} x {data.shape[1]} "
-                                 f"values, not the announced {n_tot} x {n_par}")
-    return data
+            rows = np.frombuffer(buf, dtype=np.uint8).reshape(n_tot, row)
+        offset = 0
+        kept_all = []
+        for j, b in enumerate(layout["bits"]):
+            width = b // 8
+            if uniform:
+                col = whole[:, j].astype(np.uint64)
+            else:
+                part = rows[:, offset:offset + width]
+                order = range(width) if endian == "<" else range(width - 1, -1, -1)
+                col = np.zeros(n_tot, dtype=np.uint64)
+                for shift, k in enumerate(order):
+                    col |= part[:, k].astype(np.uint64) << np.uint64(8 * shift)
+            offset += width
+            rng = float(layout["ranges"][j])
+            valid = int(math.ceil(math.log2(rng))) if rng > 1 else 0
+            if valid < b:
+                col &= np.uint64((1 << max(valid, 0)) - 1) if valid > 0 else np.uint64(0)
+            elif valid > b:
+                kept_all.append(j + 1)
+            data[:, j] = col
+        if kept_all:
+            notes.append("Channels " + ", ".join(f"$P{n}" for n in kept_all) + " declare a range ($PnR) "
+                         "larger than their stored bits ($PnB) hold; every stored bit was kept.")
+        return data
+    except MemoryError:
+        raise FcsFileError(path, "not enough memory to hold the events") from None
 
 
 def _unique_names(names: Sequence[str]) -> tuple[list, list]:
@@ -397,9 +553,19 @@ def _is_time(name: str, label: str) -> bool:
 
 
 def _decode_scale(kw: Mapping[str, str], datatype: str, data: np.ndarray,
-                  names: list, labels: list, notes: list) -> np.ndarray:
-    """Apply $PnE / $PnG in place; return channel ranges in the same units (float64)."""
+                  names: list, labels: list, notes: list,
+                  decoding: list | None = None) -> np.ndarray:
+    """Apply $PnE / $PnG in place; return channel ranges in the same units (float64).
+
+    ``decoding``: when a list, one :class:`ChannelDecoding` per channel is appended.
+    """
     n_par = data.shape[1]
+    integer = datatype == "I"
+
+    def record(**kwargs):
+        if decoding is not None:
+            decoding.append(ChannelDecoding(integer=integer, **kwargs))
+
     ranges = np.full(n_par, np.nan, dtype=np.float64)
     missing_range = []
     kept_log = []
@@ -423,19 +589,23 @@ def _decode_scale(kw: Mapping[str, str], datatype: str, data: np.ndarray,
             if datatype != "I":
                 kept_log.append(names[j])
                 ranges[j] = rng if rng is not None else np.nan
+                record(stored_range=ranges[j])
                 continue
             if f2 <= 0:
                 f2 = 1.0  # common practice: files writing f2 = 0 mean 1
             # FCS 3.1: scale value = f2 * 10^(f1 * channel / $PnR)
             data[:, j] = f2 * np.power(10.0, f1 * data[:, j] / rng)
             ranges[j] = f2 * 10.0 ** f1
+            record(decades=f1, offset=f2, stored_range=rng)
             continue
         gain = _float_or_none(kw.get(f"$P{n}G"))
         if gain is not None and gain > 0 and gain != 1.0 and not _is_time(names[j], labels[j]):
             data[:, j] /= gain  # FCS 3.1: linear scale value = channel / $PnG
             ranges[j] = rng / gain if rng is not None else np.nan
+            record(stored_range=rng if rng is not None else np.nan, gain=gain)
         else:
             ranges[j] = rng if rng is not None else np.nan
+            record(stored_range=ranges[j])
     if kept_log:
         notes.append("Channels " + ", ".join(kept_log) + " are floating point with a "
                      "logarithmic $PnE; FCS 3.1 requires $PnE 0,0 for float data, so the "
@@ -459,23 +629,82 @@ def read_fcs(path: str | os.PathLike) -> EventFile:
     Returns an :class:`EventFile` whose ``data`` (events x channels, float64)
     are in scale units: integer channels bit-masked to ``$PnR``, ``$PnE`` log
     amplification and ``$PnG`` gain decoded (see the module notes).  The input
-    file is opened read-only and never modified.  Raises
-    :class:`~core.errors.FcsFileError` naming the file and the problem.
+    file is opened read-only and never modified, and it is registered with
+    :func:`core.write_guard.protect` so no write of this process replaces it.
+    Raises :class:`~core.errors.FcsFileError` naming the file and the problem
+    for everything: a path that is not a string, a missing file, a folder, a
+    named pipe or device (refused before opening), and any damage inside the
+    file; no other exception type leaves this function.
     """
-    path = os.fspath(path)
-    if not os.path.exists(path):
-        raise FcsFileError(path, "no such file")
-    if os.path.isdir(path):
-        raise FcsFileError(path, "this is a folder, not an FCS file")
+    path = _checked_path(path)
     try:
-        file_size = os.path.getsize(path)
-        with open(path, "rb") as handle:
+        return _read_checked(path)
+    except FcsFileError:
+        raise
+    except MemoryError:
+        raise FcsFileError(path, "not enough memory to hold the events") from None
+    except RecursionError:
+        raise FcsFileError(path, "the file's structure is too deeply nested to read") from None
+    except Exception as exc:  # a bug of ours or a library's: still a sentence naming the file
+        raise FcsFileError(path, f"internal error while reading ({type(exc).__name__}: {exc}); "
+                                 "please report it with the file") from exc
+
+
+def _checked_path(path) -> str:
+    """``path`` as str after refusing what is not a readable regular file (FcsFileError)."""
+    if path is None or isinstance(path, (bool, int, float)):
+        raise FcsFileError(None, f"{path!r} is not a file path; give the path of an FCS file")
+    try:
+        path = os.fspath(path)
+    except TypeError:
+        raise FcsFileError(None, f"a {type(path).__name__} is not a file path; give the path of an "
+                                 "FCS file") from None
+    if isinstance(path, bytes):
+        path = os.fsdecode(path)
+    if not path:
+        raise FcsFileError(None, "the file path is empty")
+    if "\x00" in path:
+        raise FcsFileError(None, f"{path!r} is not a usable file path (it holds a NUL character)")
+    try:
+        st = os.stat(path)
+    except FileNotFoundError:
+        raise FcsFileError(path, "no such file") from None
+    except (OSError, ValueError) as exc:
+        raise FcsFileError(path, f"the file cannot be opened ({getattr(exc, 'strerror', None) or exc})") \
+            from None
+    if stat.S_ISDIR(st.st_mode):
+        raise FcsFileError(path, "this is a folder, not an FCS file")
+    if not stat.S_ISREG(st.st_mode):
+        raise FcsFileError(path, "this is not a regular file (a named pipe, device or socket); "
+                                 "FCS files are read from regular files only")
+    return path
+
+
+def _open_regular(path: str):
+    """Open ``path`` read-only without blocking (a file swapped for a pipe cannot hang us)."""
+    flags = os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_BINARY", 0)
+    fd = os.open(path, flags)
+    try:
+        if not stat.S_ISREG(os.fstat(fd).st_mode):
+            raise FcsFileError(path, "this is not a regular file (a named pipe, device or socket)")
+        return os.fdopen(fd, "rb")
+    except BaseException:
+        os.close(fd)
+        raise
+
+
+def _read_checked(path: str) -> EventFile:
+    """:func:`read_fcs` after the path checks."""
+    try:
+        with _open_regular(path) as handle:
+            file_size = os.fstat(handle.fileno()).st_size
             head = handle.read(HEADER_LENGTH)
             header = _parse_header(path, head, file_size)
             handle.seek(header["text start"])
             raw_text = handle.read(header["text end"] - header["text start"] + 1)
     except OSError as exc:
         raise FcsFileError(path, f"the file cannot be opened ({exc.strerror or exc})") from exc
+    write_guard.protect(path)
 
     notes: list = []
     text, encoding = _decode_text(path, raw_text, notes)
@@ -486,7 +715,11 @@ def read_fcs(path: str | os.PathLike) -> EventFile:
     if nextdata:
         notes.append("The file holds more than one data set; the first one was read.")
 
-    data = _read_raw_events(path, encoding, n_tot, n_par, notes)
+    try:
+        with _open_regular(path) as handle:
+            data = _read_raw_events(path, handle, layout, notes)
+    except OSError as exc:
+        raise FcsFileError(path, f"the DATA segment cannot be read ({exc.strerror or exc})") from exc
 
     raw_names = []
     for n in range(1, n_par + 1):
@@ -502,14 +735,15 @@ def read_fcs(path: str | os.PathLike) -> EventFile:
                      ", ".join(f"'{a}' -> '{b}'" for a, b in renames) +
                      " (original names kept in the keywords).")
 
-    ranges = _decode_scale(keywords, datatype, data, names, labels, notes)
+    decoding: list = []
+    ranges = _decode_scale(keywords, datatype, data, names, labels, notes, decoding)
     bad = ~np.isfinite(data)
     if bad.any():
         notes.append(f"{int(bad.any(axis=1).sum())} events hold non-finite values (NaN or "
                      "inf); they are kept here and set aside by the cleaning step.")
     return EventFile(path=path, data=data, channel_names=names, channel_labels=labels,
                      channel_ranges=ranges, keywords=keywords, version=header["version"],
-                     notes=notes)
+                     notes=notes, decoding=decoding)
 
 
 # --------------------------------------------------------------------------- writing
@@ -605,7 +839,8 @@ def write_fcs(path: str | os.PathLike, data, channel_names: Sequence[str],
         the writer sets itself (segment offsets, ``$PAR``, ``$TOT``, ``$DATATYPE``,
         ``$BYTEORD``, ``$MODE``, ``$NEXTDATA``) and every per-channel ``$Pn...``
         keyword are ignored: channel keywords come from the arguments.  Empty
-        values are skipped (FCS 3.1 forbids them).
+        values are skipped (FCS 3.1 forbids them).  ``BOSCAGE_VERSION`` is added
+        when absent (the mark :mod:`core.write_guard` looks for before replacing an FCS file).
     channel_labels : ``$PnS`` per channel (written where non-empty).
     channel_ranges : ``$PnR`` per channel; default: the channel's largest value
         rounded up to a whole number (at least 1).
@@ -671,7 +906,13 @@ def write_fcs(path: str | os.PathLike, data, channel_names: Sequence[str],
         if labels[j].strip():
             pairs.append((f"$P{n}S", labels[j]))
     own = {k for k, _ in pairs}
-    for key, value in (keywords or {}).items():
+    keywords = dict(keywords or {})
+    if not any(str(k).strip().upper() == "BOSCAGE_VERSION" for k in keywords):
+        # marks the file as written here: core.write_guard lets only such FCS files be replaced
+        from . import __version__
+        keywords = {"BOSCAGE_VERSION": __version__, **keywords}
+    # the mark first, so a reader of the first bytes finds it whatever follows
+    for key, value in sorted(keywords.items(), key=lambda kv: str(kv[0]).strip().upper() != "BOSCAGE_VERSION"):
         key = str(key).strip()
         value = "" if value is None else str(value)
         if not key or not value:

@@ -10,10 +10,11 @@ colleague.  Stored form (schema version 1)::
       "channels": ["FL1-A", "FL2-A"],                  # $PnN names the density uses
       "compensation": {"source": "file", "csv_path": null},   # "file" | "csv" | "none"
       "transforms": {"FL1-A": {"kind": "arcsinh", "cofactor": 150.0}, ...},
-      "cleaning": {"drop_saturated": true, "dequantise": true},
+      "cleaning": {"drop_saturated": true, "drop_piles": true, "dequantise": true},
       "engine": {"random_state": 0},                   # AdditiveTreeDensity keyword arguments
       "rare": {"rule": "share", "share": 0.005},       # or {"rule": "mass", "mass": 0.995}
       "regions": [ ...region dicts, see core.regions... ],
+      "comparison": {"rate": 0.05, "min_fold": 2.0},    # contrast with a control (core.contrast)
       "software": "Boscage 0.1.0"                      # written on save, informational
     }
 
@@ -24,10 +25,14 @@ Meaning of the entries:
   is taken relative to the recipe file's folder), "none" analyses the values
   as recorded.
 * ``transforms``: per channel, a transform spec for :func:`core.transforms.make_transform`
-  (kinds linear, log, arcsinh, logicle).  A channel without an entry is used untransformed.
-* ``cleaning``: events with NaN/inf are always removed; ``drop_saturated``
-  removes events at a channel's $PnR ceiling; ``dequantise`` adds sub-unit
-  jitter to integer-valued channels before the density fit.
+  (the kinds of ``core.transforms.TRANSFORM_KINDS``: linear, log, arcsinh,
+  logicle, fasinh).  A channel without an entry is used untransformed.
+* ``cleaning`` (see :mod:`core.prepare`): events with NaN/inf are always set
+  aside; ``drop_saturated`` sets aside events at a channel's $PnR ceiling;
+  ``drop_piles`` sets aside piles of events on a density channel's lowest or
+  highest stored value (false: keep them, spread across their bin);
+  ``dequantise`` jitters values stored on a grid (integers in stored units,
+  before $PnE/$PnG decoding; float grids by half their step).
 * ``engine``: keyword arguments of the additive tree density; ``{}`` means the
   engine's defaults, with ``random_state`` 0 unless given (see
   :meth:`Recipe.engine_arguments`).
@@ -36,12 +41,14 @@ Meaning of the entries:
   whose outside counts as rare (0.995 = 99.5 %).
 * ``regions``: regions in transformed channel units with the transform of
   each channel recorded (see :mod:`core.regions`).
+* ``comparison``: how a file is contrasted with a control (:mod:`core.contrast`):
+  ``rate`` is the false discovery rate of the enriched events (0.05 = 5 %,
+  strictly between 0 and 1), ``min_fold`` the smallest density ratio
+  test / control of an enriched event (at least 1; default 2).
 
-The default choice of channels (:func:`default_recipe`) takes every channel
-whose $PnN does not start with FSC, SSC, Time or Event (case-insensitive):
-scatter, time and event-counter channels are named that way by common
-practice; every other channel is taken to be a fluorescence (or other marker)
-channel.
+The default choice of channels (:func:`default_recipe`) takes the
+fluorescence channels of :mod:`core.channel_kinds` (the one place where the
+kind of a channel is decided from its name).
 """
 
 from __future__ import annotations
@@ -56,37 +63,35 @@ from dataclasses import dataclass, field
 from typing import Any, Mapping
 
 from . import SOFTWARE_NAME, __version__
+from . import safe_json
 from .atomic import atomic_write
 from .errors import BoscageError, CompensationError, RecipeError, RegionError
+from .channel_kinds import FLUORESCENCE, SCATTER, channel_kind, is_fluorescence, one_measure_per_detector
 from .regions import RegionSet
+from .transforms import TRANSFORM_KINDS
 
 #: The recipe schema version this Boscage writes and the newest it reads.
 SCHEMA_VERSION = 1
 
 COMPENSATION_SOURCES = ("file", "csv", "none")
-TRANSFORM_KINDS = ("linear", "log", "arcsinh", "logicle")
 RARE_RULES = ("share", "mass")
 
 DEFAULT_COMPENSATION = {"source": "none", "csv_path": None}
-DEFAULT_CLEANING = {"drop_saturated": True, "dequantise": True}
+DEFAULT_CLEANING = {"drop_saturated": True, "drop_piles": True, "dequantise": True}
 DEFAULT_RARE = {"rule": "share", "share": 0.005}
 DEFAULT_RANDOM_STATE = 0
-
-#: Channel-name prefixes that mark a channel as *not* fluorescence (common practice).
-NON_FLUORESCENCE_PREFIXES = ("FSC", "SSC", "TIME", "EVENT")
+DEFAULT_COMPARISON = {"rate": 0.05, "min_fold": 2.0}
+#: default_recipe leaves out a channel whose floor or ceiling pile holds more than this share.
+MAX_PILE_SHARE = 0.25
 
 _FIELDS = ("schema_version", "name", "notes", "channels", "compensation", "transforms",
-           "cleaning", "engine", "rare", "regions")
+           "cleaning", "engine", "rare", "regions", "comparison")
 _INFORMATIONAL = ("software",)
 
 
-def is_fluorescence_channel(name: str) -> bool:
-    """True unless the $PnN ``name`` starts with FSC, SSC, Time or Event (case-insensitive).
-
-    Common practice names scatter channels FSC*/SSC* and the clock and event
-    counter Time*/Event*; everything else is taken as a marker channel.
-    """
-    return not str(name).strip().upper().startswith(NON_FLUORESCENCE_PREFIXES)
+def is_fluorescence_channel(name: str, label: str | None = None) -> bool:
+    """True when :func:`core.channel_kinds.channel_kind` says fluorescence."""
+    return is_fluorescence(name, label)
 
 
 @dataclass
@@ -105,6 +110,7 @@ class Recipe:
     engine: dict = field(default_factory=dict)
     rare: dict = field(default_factory=lambda: dict(DEFAULT_RARE))
     regions: list = field(default_factory=list)
+    comparison: dict = field(default_factory=lambda: dict(DEFAULT_COMPARISON))
     name: str = ""
     notes: str = ""
     schema_version: int = SCHEMA_VERSION
@@ -323,6 +329,27 @@ def _normalise(d: Mapping[str, Any], source: str | None) -> dict:
     except RegionError as exc:
         raise RecipeError(f"{where}{exc}") from exc
     out["regions"] = rset.to_dict()
+    out["comparison"] = _check_comparison(d.get("comparison", DEFAULT_COMPARISON), where)
+    return out
+
+
+def _check_comparison(cmp: Any, where: str) -> dict:
+    """The recipe's ``comparison`` section, defaults filled in (RecipeError if invalid)."""
+    if not isinstance(cmp, Mapping):
+        raise RecipeError(f"{where}'comparison' must be an object like {json.dumps(DEFAULT_COMPARISON)}; "
+                          f"got {_typename(cmp)}")
+    _check_keys(cmp, tuple(DEFAULT_COMPARISON), "'comparison'", where)
+    out = dict(DEFAULT_COMPARISON)
+    for k, v in cmp.items():
+        if not _is_number(v) or not math.isfinite(v):
+            raise RecipeError(f"{where}comparison '{k}' must be a number; got {v!r}")
+        out[k] = float(v)
+    if not 0.0 < out["rate"] < 1.0:
+        raise RecipeError(f"{where}comparison 'rate' is the false discovery rate, a fraction strictly between "
+                          f"0 and 1 (0.05 = 5 %); got {out['rate']}")
+    if out["min_fold"] < 1.0:
+        raise RecipeError(f"{where}comparison 'min_fold' is the smallest density ratio test / control of an "
+                          f"enriched event, at least 1 (default 2); got {out['min_fold']}")
     return out
 
 
@@ -406,6 +433,8 @@ def load_recipe(path: str | os.PathLike) -> Recipe:
     """Read and check a recipe file; RecipeError naming the file for anything wrong."""
     path = os.fspath(path)
     where = _where(path)
+    if os.path.exists(path) and not os.path.isfile(path):  # a folder or a named pipe (would block)
+        raise RecipeError(f"{where}not a regular file (a folder, named pipe or device) (file: {path})")
     try:
         with open(path, "r", encoding="utf-8") as handle:
             text = handle.read()
@@ -416,7 +445,7 @@ def load_recipe(path: str | os.PathLike) -> Recipe:
     except OSError as exc:
         raise RecipeError(f"{where}cannot read the file ({exc.strerror or exc}) (file: {path})") from exc
     try:
-        d = json.loads(text, parse_constant=_reject_constant)
+        d = safe_json.loads(text, parse_constant=_reject_constant)  # bounded nesting: no RecursionError
     except json.JSONDecodeError as exc:
         raise RecipeError(f"{where}not valid JSON at line {exc.lineno}, column {exc.colno}: {exc.msg} "
                           f"(file: {path})") from None
@@ -432,13 +461,17 @@ def load_recipe(path: str | os.PathLike) -> Recipe:
 def default_recipe(event_file: Any) -> Recipe:
     """A starting recipe for ``event_file`` (a :class:`core.fcs.EventFile`).
 
-    * channels: every channel for which :func:`is_fluorescence_channel` is true
-      (not FSC*/SSC*/Time*/Event*); when there is none, every channel except
-      Time*/Event*.
+    * channels: the fluorescence channels (:mod:`core.channel_kinds`); when
+      there is none, the scatter channels; one pulse measure per detector (its
+      area, else height, else width: the width is computed from the other two,
+      see :func:`core.channel_kinds.one_measure_per_detector`).  A channel whose lowest or highest
+      value holds more than :data:`MAX_PILE_SHARE` of the events (mostly below
+      detection, or clipped) is left out and ``notes`` says so: its piles would
+      be set aside from the fit (core.prepare) and take most events with them.
     * compensation: "file" when the file carries a usable spillover matrix,
       else "none" (an unusable one is explained in ``notes``).
     * transforms: :func:`core.transforms.default_transform_spec` for every
-      channel, from the (compensated, when compensating) values and $PnR.
+      channel, from its kind, the (compensated, when compensating) values and $PnR.
     * cleaning, rare rule: the defaults; engine: ``{"random_state": 0}``; no regions.
     """
     import numpy as np
@@ -449,14 +482,37 @@ def default_recipe(event_file: Any) -> Recipe:
     path = str(getattr(event_file, "path", "") or "")
     fname = os.path.basename(path) or "the event file"
     names = [str(c) for c in event_file.channel_names]
-    channels = [c for c in names if is_fluorescence_channel(c)]
+    labels = list(getattr(event_file, "channel_labels", None) or [""] * len(names))
+    kinds = [channel_kind(c, lab) for c, lab in zip(names, labels)]
+    channels = [c for c, k in zip(names, kinds) if k == FLUORESCENCE]
     if not channels:
-        channels = [c for c in names if not c.strip().upper().startswith(("TIME", "EVENT"))]
+        channels = [c for c, k in zip(names, kinds) if k == SCATTER]
     if not channels:
-        raise RecipeError(f"{fname}: no channel other than Time/Event to analyse; "
+        raise RecipeError(f"{fname}: no fluorescence or scatter channel to analyse; "
                           f"its channels are: {', '.join(names)}")
 
     notes = [f"Default recipe made from {fname}."]
+    from .prepare import pile_masks
+
+    raw = np.asarray(event_file.data, dtype=np.float64)
+    piled = {}
+    for c in channels:
+        j = names.index(c)
+        n_finite = max(1, int(np.isfinite(raw[:, j]).sum()))
+        share = max(int(m.sum()) for m in pile_masks(raw[:, j])) / n_finite
+        if share > MAX_PILE_SHARE:
+            piled[c] = share
+    if piled and len(piled) < len(channels):
+        channels = [c for c in channels if c not in piled]
+        notes.append("Left out of the density: " + ", ".join(f"{c} ({100 * v:.0f} % of the events on its "
+                                                             "lowest or highest value)" for c, v in piled.items())
+                     + ".")
+    single = one_measure_per_detector(channels)
+    if len(single) < len(channels):
+        notes.append("One pulse measure per detector (area, else height, else width): left out "
+                     + ", ".join(c for c in channels if c not in single) + ".")
+        channels = single
+
     data = np.asarray(event_file.data, dtype=np.float64)
     comp = "none"
     try:
@@ -471,7 +527,7 @@ def default_recipe(event_file: Any) -> Recipe:
     transforms = {}
     for i, c in enumerate(names):
         rng = None if ranges is None else float(np.asarray(ranges, dtype=np.float64)[i])
-        transforms[c] = dict(default_transform_spec(c, data[:, i], rng))
+        transforms[c] = dict(default_transform_spec(c, data[:, i], rng, labels[i]))
 
     return Recipe(channels=channels, compensation={"source": comp, "csv_path": None},
                   transforms=transforms, cleaning=dict(DEFAULT_CLEANING),

@@ -15,6 +15,12 @@ Kinds (``kind`` in the stored dict):
     ``percentile`` p in [0, 100]: the events whose rarity percentile is <= p,
     i.e. the rarest p % (see :func:`core.rare.rarity_percentile`; removed
     events have NaN rarity and are never inside).
+``enriched``
+    the events found enriched over a control (:mod:`core.contrast`: new
+    events at the recipe's false discovery rate); optional ``control``
+    records the control file's name (informational).  Evaluated only when a
+    contrast's enriched mask is given (``RegionSet.evaluate(..., enriched=)``);
+    otherwise a RegionError says a control is needed.
 ``and`` / ``or`` / ``not``
     boolean combinations of other regions, named in ``operands``
     (``not`` takes exactly one).
@@ -49,7 +55,7 @@ from .errors import RegionError
 
 GEOMETRIC_KINDS = ("rectangle", "polygon", "interval")
 COMBINATION_KINDS = ("and", "or", "not")
-KINDS = GEOMETRIC_KINDS + ("rarity",) + COMBINATION_KINDS
+KINDS = GEOMETRIC_KINDS + ("rarity", "enriched") + COMBINATION_KINDS
 
 _COMMON_KEYS = {"name", "kind", "parent"}
 _KEYS = {
@@ -57,6 +63,7 @@ _KEYS = {
     "polygon": _COMMON_KEYS | {"channels", "vertices", "transforms"},
     "interval": _COMMON_KEYS | {"channels", "low", "high", "transforms"},
     "rarity": _COMMON_KEYS | {"percentile"},
+    "enriched": _COMMON_KEYS | {"control"},
     "and": _COMMON_KEYS | {"operands"},
     "or": _COMMON_KEYS | {"operands"},
     "not": _COMMON_KEYS | {"operands"},
@@ -365,6 +372,38 @@ class RarityRegion(Region):
 
 
 @dataclass(frozen=True)
+class EnrichedRegion(Region):
+    """Events enriched over a control (the contrast's enriched mask); ``control``: the control's file name."""
+
+    control: str | None = None
+
+    kind = "enriched"
+
+    def __post_init__(self):
+        self._check_common()
+        if self.control is not None and not isinstance(self.control, str):
+            raise RegionError(f"region {self.name!r}: control must be a file name or null; got {self.control!r}")
+
+    def select(self, enriched: np.ndarray | None, n: int) -> np.ndarray:
+        """The region's own mask from the contrast's ``enriched`` mask (bool, n events)."""
+        if enriched is None:
+            raise RegionError(f"region {self.name!r} selects events enriched over a control, but no control "
+                              "was contrasted with this file; contrast it with a control first")
+        m = np.asarray(enriched, dtype=bool).ravel()
+        if m.shape[0] != n:
+            raise RegionError(f"region {self.name!r}: {m.shape[0]} enriched flags for {n} events")
+        return m
+
+    def own_mask(self, values, rarity, masks, n):
+        return self.select(None, n)
+
+    def to_dict(self):
+        d = self._base_dict()
+        d["control"] = self.control
+        return d
+
+
+@dataclass(frozen=True)
 class CombinationRegion(Region):
     """``and`` / ``or`` of two or more regions, or ``not`` of one, by name."""
 
@@ -433,6 +472,8 @@ def region_from_dict(d: Mapping[str, Any]) -> Region:
         return IntervalRegion(low=d.get("low"), high=d.get("high"), **common)
     if kind == "rarity":
         return RarityRegion(percentile=d.get("percentile"), **common)
+    if kind == "enriched":
+        return EnrichedRegion(control=d.get("control"), **common)
     return CombinationRegion(operator=kind, operands=d.get("operands"), **common)
 
 
@@ -587,6 +628,15 @@ class RegionSet:
                     stack.append((nxt, iter(self._regions[nxt].references())))
         return order
 
+    def depending_on(self, kind: str) -> list[str]:
+        """Names of the regions of ``kind`` and of those referring to one (through parents or operands)."""
+        out: list[str] = []
+        for name in self._order():  # references first
+            r = self._regions[name]
+            if r.kind == kind or any(ref in out for ref in r.references()):
+                out.append(name)
+        return [n for n in self._regions if n in out]
+
     def channels_used(self) -> list[str]:
         """Channels the geometric regions use, in first-use order."""
         seen: dict[str, None] = {}
@@ -617,19 +667,24 @@ class RegionSet:
 
     # -- evaluation --------------------------------------------------------
     def evaluate(self, values: Mapping[str, np.ndarray], rarity: np.ndarray | None = None,
-                 n_events: int | None = None) -> dict[str, np.ndarray]:
+                 n_events: int | None = None, enriched: np.ndarray | None = None) -> dict[str, np.ndarray]:
         """Masks of every region: name -> bool (n_events,), nested regions ANDed with their parent.
 
         ``values``: channel -> transformed values (n_events,); ``rarity``: rarity
         percentile per event (n_events,), NaN for removed events, or None when no
         density is fitted (a rarity region then raises RegionError).
+        ``enriched``: bool (n_events,) from a contrast with a control, or None
+        (an enriched region then raises RegionError).
         ``n_events`` is taken from the arrays when not given.
         """
         n = self._n_events(values, rarity, n_events)
         masks: dict[str, np.ndarray] = {}
         for name in self._order():
             r = self._regions[name]
-            m = np.asarray(r.own_mask(values, rarity, masks, n), dtype=bool)
+            if isinstance(r, EnrichedRegion):
+                m = r.select(enriched, n)
+            else:
+                m = np.asarray(r.own_mask(values, rarity, masks, n), dtype=bool)
             if r.parent is not None:
                 m = m & masks[r.parent]
             masks[name] = m
@@ -647,7 +702,8 @@ class RegionSet:
 
     def statistics(self, values: Mapping[str, np.ndarray], rarity: np.ndarray | None = None,
                    n_events: int | None = None,
-                   masks: Mapping[str, np.ndarray] | None = None) -> list[RegionStatistics]:
+                   masks: Mapping[str, np.ndarray] | None = None,
+                   enriched: np.ndarray | None = None) -> list[RegionStatistics]:
         """One row per region: (name, count, % of parent, % of all events).
 
         "% of parent" is relative to the parent's count, or to all events for a
@@ -656,7 +712,7 @@ class RegionSet:
         """
         n = self._n_events(values, rarity, n_events)
         if masks is None:
-            masks = self.evaluate(values, rarity, n)
+            masks = self.evaluate(values, rarity, n, enriched=enriched)
         rows = []
         for name, r in self._regions.items():
             count = int(np.count_nonzero(masks[name]))

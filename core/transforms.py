@@ -42,7 +42,6 @@ dimensionless display units (logicle and fasinh map T to 1).
 from __future__ import annotations
 
 import math
-import re
 from dataclasses import dataclass
 from functools import lru_cache
 from typing import Any, Callable
@@ -411,13 +410,79 @@ def logicle_auto_w(data, T: float, M: float = DEFAULT_M, r_quantile: float = 0.0
 
 # ----------------------------------------------------------------------------- Transform objects
 
-_SPEC_KEYS = {
-    "linear": {"scale": 1.0, "offset": 0.0},
-    "log": {"floor": 1.0, "decades": None},
-    "arcsinh": {"cofactor": DEFAULT_COFACTOR},
-    "logicle": {"T": None, "W": None, "M": DEFAULT_M, "A": 0.0},
-    "fasinh": {"T": None, "M": DEFAULT_M, "A": 0.0},
-}
+@dataclass(frozen=True)
+class TransformParameter:
+    """One parameter of a transform kind.
+
+    ``default`` None means "no fixed default": the caller supplies it (``T``:
+    the channel's range, ``$PnR``; ``decades``: optional).  ``low``/``high``:
+    the inclusive bounds an editor offers and :func:`make_transform` checks
+    (the kind's own rules, e.g. Gating-ML 2.0's, are checked as well).
+    """
+
+    key: str
+    label: str
+    help: str
+    default: float | None
+    low: float
+    high: float
+    optional: bool = False
+    from_data: str = ""   # where a default of None comes from, in words (for the docs)
+
+
+@dataclass(frozen=True)
+class TransformKind:
+    """A transform kind: its ``name`` in specs, a short ``label``, a ``help`` line, its parameters."""
+
+    name: str
+    label: str
+    help: str
+    parameters: tuple
+
+
+_T = TransformParameter("T", "Top (T)", "Largest data value of the scale (usually the channel range, $PnR).",
+                        None, 1e-9, 1e12, from_data="the channel range ($PnR)")
+_M = TransformParameter("M", "Decades (M)", "Number of decades the scale covers.", DEFAULT_M, 1e-3, 10.0)
+
+#: The ONE registry of transform kinds: recipe validation, make_transform, the
+#: Channels panel and the docs (transform_kinds_markdown) all read it.
+TRANSFORM_KINDS: dict[str, TransformKind] = {k.name: k for k in (
+    TransformKind("linear", "linear", "scale * x + offset", (
+        TransformParameter("scale", "Scale", "Multiply the values by this factor (not 0).", 1.0, -1e12, 1e12),
+        TransformParameter("offset", "Offset", "Add this after scaling (in scaled units).", 0.0, -1e12, 1e12))),
+    TransformKind("log", "log", "log10(max(x, floor)), optionally in units of `decades` above the floor", (
+        TransformParameter("floor", "Floor", "Values below the floor are raised to it before the logarithm "
+                           "(instrument units; common practice: 1).", 1.0, 1e-12, 1e12),
+        TransformParameter("decades", "Decades", "Express the result in units of this many decades above "
+                           "the floor (optional).", None, 1e-3, 100.0, optional=True))),
+    TransformKind("arcsinh", "arcsinh", "arcsinh(x / cofactor)", (
+        TransformParameter("cofactor", "Cofactor", "arcsinh(x / cofactor): linear near zero, logarithmic far "
+                           "from it. Common practice: about 150 for fluorescence detectors, 5 for mass channels.",
+                           DEFAULT_COFACTOR, 1e-9, 1e12),)),
+    TransformKind("logicle", "logicle", "Gating-ML 2.0 logicle (biexponential)", (
+        _T,
+        TransformParameter("W", "Linear width (W)", "Width of the near-linear region around zero, in decades "
+                           "(0 <= W <= M/2).", None, 0.0, 5.0,
+                           from_data="from the negative values (logicle_auto_w)"),
+        _M,
+        TransformParameter("A", "Extra negative (A)", "Additional decades of negative values shown "
+                           "(-W <= A <= M - 2W).", 0.0, -5.0, 10.0))),
+    TransformKind("fasinh", "fasinh", "Gating-ML 2.0 parametrised inverse hyperbolic sine", (
+        _T, _M,
+        TransformParameter("A", "Extra negative (A)", "Additional decades of negative values shown "
+                           "(0 <= A <= M).", 0.0, 0.0, 10.0))),
+)}
+
+
+def transform_kinds_markdown() -> str:
+    """The registry as a Markdown table (DEVELOPERS.md carries it; a test keeps them equal)."""
+    lines = ["| kind | what | parameter | default | bounds |", "|---|---|---|---|---|"]
+    for k in TRANSFORM_KINDS.values():
+        for i, p in enumerate(k.parameters):
+            default = ("optional" if p.optional else p.from_data) if p.default is None else f"{p.default:g}"
+            lines.append(f"| {k.name if i == 0 else ''} | {k.help if i == 0 else ''} | {p.key} | {default} "
+                         f"| {p.low:g} .. {p.high:g} |")
+    return "\n".join(lines)
 
 
 @dataclass(frozen=True, eq=False)
@@ -466,19 +531,28 @@ def make_transform(spec: dict) -> Transform:
     if not isinstance(spec, dict) or "kind" not in spec:
         raise TransformError(f"a transform needs a dict with a 'kind', not {spec!r}")
     kind = str(spec["kind"]).lower()
-    if kind not in _SPEC_KEYS:
-        raise TransformError(f"unknown transform kind {spec['kind']!r}; known kinds: {', '.join(_SPEC_KEYS)}")
-    allowed = _SPEC_KEYS[kind]
+    if kind not in TRANSFORM_KINDS:
+        raise TransformError(f"unknown transform kind {spec['kind']!r}; known kinds: {', '.join(TRANSFORM_KINDS)}")
+    allowed = {p.key: p for p in TRANSFORM_KINDS[kind].parameters}
     extra = sorted(set(spec) - set(allowed) - {"kind"})
     if extra:
         raise TransformError(f"the {kind} transform has no parameter(s) {', '.join(extra)}; "
                              f"it takes {', '.join(allowed)}")
     params = {}
-    for key, default in allowed.items():
-        value = spec.get(key, default)
-        if value is None and default is None and key != "decades":
+    for key, p in allowed.items():
+        value = spec.get(key, p.default)
+        if value is None and not p.optional:
             raise TransformError(f"the {kind} transform needs the parameter {key}")
         params[key] = None if value is None else _finite_number(value, key)
+    transform = _build(kind, params)   # the kind's own rules first: their messages say more
+    for key, p in allowed.items():
+        if params[key] is not None and not p.low <= params[key] <= p.high:
+            raise TransformError(f"the {kind} transform's {p.label} ({key}) must lie between {p.low:g} and "
+                                 f"{p.high:g}, not {params[key]:g}")
+    return transform
+
+
+def _build(kind: str, params: dict) -> Transform:
 
     if kind == "linear":
         s, o = params["scale"], params["offset"]
@@ -508,20 +582,18 @@ def make_transform(spec: dict) -> Transform:
                      lambda x: logicle(x, T, W, M, A), lambda y: logicle_inverse(y, T, W, M, A))
 
 
-_SCATTER = re.compile(r"^\s*(FSC|SSC|FS|SS)(\b|[-_ ])", re.IGNORECASE)
-_TIME = re.compile(r"^\s*(time|hdr-t)\b", re.IGNORECASE)
+def is_scatter_or_time(channel_name: str, label: str | None = None) -> bool:
+    """True for scatter and time channels (:func:`core.channel_kinds.channel_kind`)."""
+    from .channel_kinds import SCATTER, TIME, channel_kind
+
+    return channel_kind(channel_name, label) in (SCATTER, TIME)
 
 
-def is_scatter_or_time(channel_name: str) -> bool:
-    """True for forward/side scatter (FSC*, SSC*, FS/SS ...) and Time channels (names: common practice)."""
-    name = str(channel_name)
-    return bool(_SCATTER.match(name) or _TIME.match(name))
-
-
-def default_transform_spec(channel_name: str, values=None, channel_range: float | None = None) -> dict:
+def default_transform_spec(channel_name: str, values=None, channel_range: float | None = None,
+                           label: str | None = None) -> dict:
     """A sensible starting transform for a channel.
 
-    Scatter and Time channels (common-practice names FSC*/SSC*/Time): linear,
+    Scatter, time and other channels (:mod:`core.channel_kinds`): linear,
     scaled by the channel range ($PnR) so values run over about [0, 1].
     Fluorescence: logicle with T = the channel range, M = 4.5 and W from the
     negative ``values`` (:func:`logicle_auto_w`); arcsinh (cofactor 150) when
@@ -535,7 +607,9 @@ def default_transform_spec(channel_name: str, values=None, channel_range: float 
             rng = None
         if rng is not None and not (math.isfinite(rng) and rng > 0):
             rng = None
-    if is_scatter_or_time(channel_name):
+    from .channel_kinds import FLUORESCENCE, channel_kind
+
+    if channel_kind(channel_name, label) != FLUORESCENCE:
         if rng is None and values is not None:
             x = _f64(values)
             x = x[np.isfinite(x)]

@@ -156,6 +156,14 @@ def run_screenshot(out_path: str, paths: list[str], size=(1400, 900), timeout_s:
     win.resize(*size)
     app.processEvents()
     pixmap = win.grab()
+    from core.errors import ExportError
+    from core.write_guard import check_target
+
+    try:  # the one write guard: never over an input or an acquisition
+        check_target(out_path, overwrite=True)
+    except ExportError as exc:
+        print(f"boscage: {exc}", file=sys.stderr)
+        return 1
     if not pixmap.save(out_path, "PNG"):
         print(f"boscage: cannot write the picture {out_path}", file=sys.stderr)
         return 1

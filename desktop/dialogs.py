@@ -117,8 +117,14 @@ class ExportDialog(QDialog):
         overwrite = getattr(self, "_overwrite", False)
         if self.format.currentData() == "fcs":
             digest = recipe_digest(t.recipe_with_regions())
+            a = t.analysis
+            kw = None
+            if a is not None and getattr(a, "contrast", None) is not None:  # name the control and the rate
+                from core.contrast import contrast_keywords
+
+                kw = contrast_keywords(a.contrast, t.control_path or a.info.get("control"))
             self.written = export_events_fcs(path, t.event_file, mask, extra, digest, overwrite=overwrite,
-                                             missing_value=0.0)
+                                             missing_value=0.0, extra_keywords=kw)
         else:
             self.written = export_events_csv(path, t.names, t.values, mask, extra, overwrite=overwrite,
                                              source_paths=[t.path])

@@ -28,6 +28,7 @@ from core.errors import BoscageError, RegionError
 from desktop.app import guarded, icon, show_error
 from desktop.panels.channels import ChannelsPanel
 from desktop.panels.compensation import CompensationPanel, save_matrix_csv
+from desktop.panels.contrast import ContrastPanel
 from desktop.panels.fit import FitPanel
 from desktop.panels.selections import SelectionsPanel
 from desktop.panels.tubes import TubeCard, TubesList
@@ -139,39 +140,6 @@ class RarityBar(QWidget):
 
     def step(self, direction: int) -> None:
         self.slider.setValue(self.slider.value() + direction * SLIDER_STEPS // 40)
-
-
-class ContrastPanel(QWidget):
-    """Contrast with a control file: events more frequent here than in the control."""
-
-    chooseRequested = Signal()
-    showRequested = Signal(bool)
-
-    def __init__(self, parent=None) -> None:
-        super().__init__(parent)
-        lay = QVBoxLayout(self)
-        head = QLabel("Contrast with a control")
-        head.setObjectName("Heading")
-        lay.addWidget(head)
-        note = QLabel("Fits a density to a control tube too and marks the events of this tube whose "
-                      "density is much higher here than in the control (enriched events). "
-                      "The threshold lets about 0.1 % of held-out control events pass.")
-        note.setObjectName("Note")
-        note.setWordWrap(True)
-        lay.addWidget(note)
-        self.choose = QPushButton("Choose control tube and contrast...")
-        self.choose.setToolTip("Pick the control FCS file; the fit and the contrast run in the background (Ctrl+K)")
-        lay.addWidget(self.choose)
-        self.result = QLabel("No control chosen")
-        self.result.setWordWrap(True)
-        lay.addWidget(self.result)
-        self.show_enriched = QPushButton("Highlight enriched events instead of rare ones")
-        self.show_enriched.setCheckable(True)
-        self.show_enriched.setEnabled(False)
-        lay.addWidget(self.show_enriched)
-        lay.addStretch(1)
-        self.choose.clicked.connect(self.chooseRequested)
-        self.show_enriched.toggled.connect(self.showRequested)
 
 
 class MainWindow(QMainWindow):
@@ -372,6 +340,7 @@ class MainWindow(QMainWindow):
         self.comp_panel.loadCsvRequested.connect(self.load_spillover_csv)
         self.contrast_panel.chooseRequested.connect(self.choose_control)
         self.contrast_panel.showRequested.connect(self.set_highlight_enriched)
+        self.contrast_panel.keepRequested.connect(self.keep_enriched_region)
 
     # ------------------------------------------------------------------ opening
     @guarded("open")
@@ -514,9 +483,11 @@ class MainWindow(QMainWindow):
             self.rarity_bar.count.setText("Fit the density to rank events")
             self._set_title(tube)
             return
-        if self.highlight_enriched and a.enriched is not None:
+        showing_enriched = self.highlight_enriched and a.enriched is not None
+        self._rarity_controls_active(not showing_enriched)
+        if showing_enriched:
             mask = a.enriched
-            self.rarity_bar.count.setText(f"{int(mask.sum()):,} enriched events highlighted")
+            self.rarity_bar.count.setText(f"{int(mask.sum()):,} new events (vs control) highlighted")
         else:
             mask = tube.rare_mask
             n = int(mask.sum()) if mask is not None else 0
@@ -524,6 +495,18 @@ class MainWindow(QMainWindow):
                                           f"{a.n_kept:,} kept)")
         self.density_map.set_highlight(mask)
         self._set_title(tube)
+
+    def _rarity_controls_active(self, on: bool) -> None:
+        """The Rarity share means nothing while the new events of a contrast are shown: grey it out."""
+        bar = self.rarity_bar
+        for w in (bar.slider, bar.spin, bar.keep_button):
+            w.setEnabled(on)
+        bar.slider.setToolTip("Share of events, counted from the lowest fitted density up, to highlight as rare "
+                              "on every plot. Keys [ and ] step it." if on else
+                              "Not in use: the plots show the new events of the contrast. Switch off "
+                              "'Highlight the new events' in the Contrast panel to rank by rarity again.")
+        self.act_rarer.setEnabled(on)
+        self.act_more.setEnabled(on)
 
     def _set_title(self, tube: Tube) -> None:
         state = "fitted" if tube.analysis is not None else "not fitted — colour shows event counts"
@@ -711,6 +694,10 @@ class MainWindow(QMainWindow):
         self.job_kind = "contrast" if control else "fit"
         self._start_job(work, lambda result: self._fit_done(tube, recipe, result, control), self._fit_stopped)
         self.fit_panel.started()
+        if control:
+            self.contrast_panel.started(control)
+            self.fit_panel.status.setText("Contrasting with a control: progress in the Contrast panel")
+            self.notebook.setCurrentWidget(self.contrast_panel)
         self._fit_t0 = time.perf_counter()
 
     def _extent(self, pair):
@@ -729,7 +716,9 @@ class MainWindow(QMainWindow):
         job.start()
 
     def _job_progress(self, step, total, info) -> None:
-        if self.job_kind in ("fit", "contrast"):
+        if self.job_kind == "contrast":
+            self.contrast_panel.step(step, total, info)
+        elif self.job_kind == "fit":
             self.fit_panel.step(step, total, info)
         elif self.job_kind == "contours" and isinstance(info, dict):
             self.fit_panel.status.setText(str(info.get("stage", "")))
@@ -768,6 +757,8 @@ class MainWindow(QMainWindow):
                 self.highlight_enriched = True
                 self.contrast_panel.show_enriched.setEnabled(True)
                 self.contrast_panel.show_enriched.setChecked(True)
+            elif self.highlight_enriched:  # a plain fit has no new events to show
+                self.contrast_panel.show_enriched.setChecked(False)
             if tube is self.current:
                 self._recolour(tube)
                 self._update_highlight()
@@ -794,7 +785,7 @@ class MainWindow(QMainWindow):
         secs = a.timing.get("total", float("nan")) if isinstance(a.timing, dict) else float("nan")
         return (f"Fitted: {start + ' + ' if start else ''}{n_trees} trees, held-out log-likelihood "
                 f"{a.heldout_loglik:.3f} nats per event, "
-                f"{a.n_kept:,} of {a.n_events:,} events kept, {secs:.1f} s.")
+                f"{a.cleaning_text()}, {secs:.1f} s.")
 
     def _fit_stopped(self) -> None:
         self._job_ended()
@@ -802,6 +793,7 @@ class MainWindow(QMainWindow):
         tube = self.current
         self.fit_panel.ended("Cancelled: the previous state is kept." if tube and tube.analysis is not None
                              else "Cancelled: not fitted.")
+        self.contrast_panel.ended("Contrast cancelled.")
         self.fitEnded.emit(False)
 
     def _job_failed(self, exc, tb) -> None:
@@ -810,6 +802,8 @@ class MainWindow(QMainWindow):
         self.last_fit_problem = str(exc)
         if kind in ("fit", "contrast"):
             self.fit_panel.ended(f"The fit failed: {exc}")
+            if kind == "contrast":
+                self.contrast_panel.ended(f"The contrast failed: {exc}")
             show_error(self, "fit", exc, tb)
             self.fitEnded.emit(False)
         elif kind == "contours":
@@ -859,18 +853,7 @@ class MainWindow(QMainWindow):
         return True
 
     def _show_contrast_text(self, tube: Tube) -> None:
-        a = tube.analysis
-        p = self.contrast_panel
-        if a is None or a.contrast is None:
-            p.result.setText("No control chosen" if not tube.control_path else "Fit again to contrast")
-            p.show_enriched.setEnabled(False)
-            return
-        c = a.contrast
-        p.result.setText(f"Control: {os.path.basename(tube.control_path or a.info.get('control', ''))}\n"
-                         f"{c.count:,} enriched events ({100 * c.share:.3f} %, 95 % interval "
-                         f"{100 * c.share_ci[0]:.3f}–{100 * c.share_ci[1]:.3f} %); about "
-                         f"{c.expected_false:.1f} expected by chance.")
-        p.show_enriched.setEnabled(True)
+        self.contrast_panel.show_result(tube.analysis, tube.control_path)
 
     @guarded("contrast")
     def choose_control(self, path: str | None = None) -> None:
@@ -1049,6 +1032,24 @@ class MainWindow(QMainWindow):
             name = self._next_region_name(tube, name)
         self.add_region({"name": name, "kind": "rarity", "percentile": percentile})
         self.selections.select(name)
+
+    @guarded("keep new events")
+    def keep_enriched_region(self) -> None:
+        """An "enriched" region holding the events new against the control (the contrast's enriched mask)."""
+        tube = self.current
+        if tube is None:
+            raise BoscageError("open a tube first (Ctrl+O)")
+        a = tube.analysis
+        if a is None or a.enriched is None:
+            raise BoscageError("contrast the tube with a control first (Ctrl+K)")
+        control = os.path.basename(tube.control_path or a.info.get("control", "") or "") or None
+        stem = os.path.splitext(control)[0] if control else "control"
+        name = f"new vs {stem}"
+        if name in tube.regions:
+            name = self._next_region_name(tube, name)
+        self.add_region({"name": name, "kind": "enriched", "control": control})
+        self.selections.select(name)
+        self.notebook.setCurrentWidget(self.selections)
 
     def region_count(self, name: str) -> int:
         """Events in a region of the current tube, as the Selections panel shows."""

@@ -79,6 +79,11 @@ class Tube:
     def rarity(self):
         return None if self.analysis is None else self.analysis.rarity
 
+    @property
+    def enriched(self):
+        """The contrast's enriched mask (n_events,), or None without a contrast."""
+        return None if self.analysis is None else getattr(self.analysis, "enriched", None)
+
     def update_rare(self) -> None:
         """Rare events at the current share: the rule of core.rare.rare_by_share
         (the round(share x n_kept) lowest finite log densities, ties by event
@@ -107,13 +112,20 @@ class Tube:
         values = self.by_channel()
         rarity = self.rarity
         has_rarity_region = any(r.kind == "rarity" for r in self.regions)
+        if self.enriched is None and any(_uses_kind(r, self.regions, "enriched") for r in self.regions):
+            # an enriched region has no meaning before a contrast: count only the others
+            keep = RegionSet([r for r in self.regions if not _uses_kind(r, self.regions, "enriched")
+                              and (rarity is not None or not _uses_rarity(r, self.regions))])
+            self.masks = keep.evaluate(values, rarity, self.n_events)
+            self.stats = keep.statistics(values, rarity, self.n_events, masks=self.masks)
+            return
         if rarity is None and has_rarity_region:
             # a rarity region has no meaning before a fit: count only the others
             keep = RegionSet([r for r in self.regions if r.kind != "rarity" and not _uses_rarity(r, self.regions)])
             self.masks = keep.evaluate(values, None, self.n_events)
             self.stats = keep.statistics(values, None, self.n_events, masks=self.masks)
             return
-        self.masks = self.regions.evaluate(values, rarity, self.n_events)
+        self.masks = self.regions.evaluate(values, rarity, self.n_events, enriched=self.enriched)
         self.stats = self.regions.statistics(values, rarity, self.n_events, masks=self.masks)
 
     def update_region(self, name: str) -> bool:
@@ -130,9 +142,11 @@ class Tube:
                     stack.append(ref)
         if self.rarity is None and any(_uses_rarity(self.regions[n], self.regions) for n in needed):
             return False
+        if self.enriched is None and any(_uses_kind(self.regions[n], self.regions, "enriched") for n in needed):
+            return False
         sub = RegionSet([r for r in self.regions if r.name in needed])
         values = self.by_channel()
-        masks = sub.evaluate(values, self.rarity, self.n_events)
+        masks = sub.evaluate(values, self.rarity, self.n_events, enriched=self.enriched)
         rows = {s.name: s for s in sub.statistics(values, self.rarity, self.n_events, masks=masks)}
         self.masks.update(masks)
         self.stats = [rows.get(s.name, s) for s in self.stats]
@@ -146,11 +160,16 @@ class Tube:
 
 
 def _uses_rarity(region, regions) -> bool:
+    return _uses_kind(region, regions, "rarity")
+
+
+def _uses_kind(region, regions, kind: str) -> bool:
+    """True when ``region`` is of ``kind`` or refers (through parents, operands) to one that is."""
     seen = set()
     stack = [region]
     while stack:
         r = stack.pop()
-        if r.kind == "rarity":
+        if r.kind == kind:
             return True
         for name in r.references():
             if name not in seen and name in regions:
@@ -162,20 +181,20 @@ def _uses_rarity(region, regions) -> bool:
 def default_pairs(names: list, density_channels: list, limit: int = 6) -> list:
     """Channel pairs (x index, y index) for the density map: forward against side
     scatter when both exist, then the density channels two by two."""
+    from core.channel_kinds import scatter_direction
+
     pairs = []
-    upper = [n.upper() for n in names]
 
-    def find(prefix):
-        for suffix in ("-A", "-H", ""):
-            for i, n in enumerate(upper):
-                if n == prefix + suffix:
+    def find(direction):
+        """The area, else height, else any scatter channel of that direction (core.channel_kinds)."""
+        hits = [i for i, n in enumerate(names) if scatter_direction(n) == direction]
+        for suffix in ("-A", "-H"):
+            for i in hits:
+                if names[i].strip().upper().endswith(suffix):
                     return i
-        for i, n in enumerate(upper):
-            if n.startswith(prefix):
-                return i
-        return None
+        return hits[0] if hits else None
 
-    fsc, ssc = find("FSC"), find("SSC")
+    fsc, ssc = find("forward"), find("side")
     if fsc is not None and ssc is not None:
         pairs.append((fsc, ssc))
     chans = [names.index(c) for c in density_channels if c in names]

@@ -104,6 +104,10 @@ def test_summary_rows_statuses_and_exit_code(first_run):
     good = by.loc["a good.fcs"]
     assert int(good["events"]) == 3000
     assert int(good["events_kept"]) == 2995  # the 5 saturated events are removed
+    # ... and counted by reason in summary.csv (core.prepare.REASONS)
+    assert int(good["set_aside_saturated"]) == 5
+    assert int(good["set_aside_floor_pile"]) == int(good["set_aside_ceiling_pile"]) == 0
+    assert int(good["set_aside_non_finite"]) == 0
     assert int(good["rare_events"]) == round(0.005 * 2995)
     assert "ETA" in err and "1 of 4 files ok" in err
 
@@ -227,13 +231,22 @@ def write_control(path, n=3000, seed=50):
     write_fcs(str(path), data, list(CHANNELS), channel_ranges=[RANGE] * len(CHANNELS))
 
 
+def write_treated(path, n, seed):
+    """Events like make_events with a new CD8-bright population of 2.5 % (big enough to be found at a
+    false discovery rate of 5 % against a 2,000-event control: see core.contrast)."""
+    data = make_events(n, seed)
+    rng = np.random.default_rng(seed + 2)
+    data[: n // 40, 4] = np.round(rng.lognormal(10.5, 0.1, n // 40))
+    write_fcs(str(path), data, list(CHANNELS), channel_ranges=[RANGE] * len(CHANNELS))
+
+
 @pytest.fixture(scope="module")
 def control_folder(tmp_path_factory):
     base = tmp_path_factory.mktemp("batch_control")
     inp = base / "in"
     inp.mkdir()
-    write_events(inp / "p1.fcs", n=1500, seed=21)
-    write_events(inp / "p2.fcs", n=2000, seed=22)
+    write_treated(inp / "p1.fcs", n=1500, seed=21)
+    write_treated(inp / "p2.fcs", n=2000, seed=22)
     write_control(base / "control one.fcs", n=2000, seed=50)
     write_control(base / "control two.fcs", n=2000, seed=60)
     recipe = small_recipe(regions=[])
@@ -258,11 +271,14 @@ def test_contrast_with_a_prepared_control_equals_the_contrast_with_the_control_v
     shared = contrast(T, None, engine=engine, prepared_control=pc)
     # the per-file result (control values given) is reproduced exactly
     np.testing.assert_array_equal(shared.score, direct.score)
+    np.testing.assert_array_equal(shared.pvalue, direct.pvalue)
+    np.testing.assert_array_equal(shared.qvalue, direct.qvalue)
     assert shared.threshold == direct.threshold and shared.count == direct.count > 0
-    assert shared.n_control_heldout == direct.n_control_heldout == round(0.3 * 1499)
-    assert shared.info["n_control_fit"] == direct.info["n_control_fit"] == 1499 - round(0.3 * 1499)
+    # every finite control event is in the reference, scored by the part model that did not see it
+    assert shared.n_control == direct.n_control == pc.n_events == 1499
+    assert shared.info["control_prepared"] is True and direct.info["control_prepared"] is False
     with pytest.raises(EventDataError, match="prepared control"):   # split settings must match
-        contrast(T, None, engine=engine, prepared_control=pc, heldout_fraction=0.2)
+        contrast(T, None, engine=engine, prepared_control=pc, folds=4)
 
 
 def test_batch_with_a_control_prepares_it_once_and_workers_use_it(control_folder, tmp_path):
@@ -280,7 +296,8 @@ def test_batch_with_a_control_prepares_it_once_and_workers_use_it(control_folder
     assert int(summary.loc["p2.fcs", "enriched"]) == reference["p2.fcs"]["control one.fcs"]
     # one control model for the whole batch, and each worker's task loaded that one
     folder = res.info["control_dir"]
-    assert sorted(os.listdir(folder)) == ["control.json", "heldout.npz", "model.npz"]
+    assert sorted(os.listdir(folder)) == ["control.json", "events.npz", "model-0.npz", "model-1.npz",
+                                          "model-2.npz"]
     meta = json.loads(open(os.path.join(folder, "control.json"), encoding="utf-8").read())
     assert meta["control"] == os.path.abspath(ctrl)
     for name in ("p1.fcs", "p2.fcs"):
@@ -305,11 +322,11 @@ def test_control_is_fitted_once_per_batch_not_once_per_file(control_folder, tmp_
     res = run_batch(str(inp), str(tmp_path / "o"), recipe=recipe, control=ctrl, workers=1)
     assert {r["file"]: r["enriched"] for r in res.rows} == {n: reference[n]["control two.fcs"]
                                                             for n in ("p1.fcs", "p2.fcs")}
-    # the control keeps 1995 events after cleaning (5 saturated); its fit share is 70 % of them
-    control_fit = 1995 - round(0.3 * 1995)
-    assert sizes.count(control_fit) == 1
+    # the control keeps 1995 events after cleaning (5 saturated), split in 3 parts of 665:
+    # its 3 part models (fitted first, before any file) see 2 parts each
+    assert sizes[:3] == [1330] * 3
     # per file: its own model and 3 cross-fitted test densities, no control fit
-    assert len(sizes) == 1 + 2 * (1 + 3)
+    assert len(sizes) == 3 + 2 * (1 + 3)
 
 
 def test_rerun_reuses_the_prepared_control_and_rebuilds_it_for_another_control(control_folder, tmp_path):
@@ -320,7 +337,7 @@ def test_rerun_reuses_the_prepared_control_and_rebuilds_it_for_another_control(c
     one, two = str(base / "control one.fcs"), str(base / "control two.fcs")
     res = run_batch(str(inp), str(out), recipe=recipe, control=one, workers=1)
     folder = res.info["control_dir"]
-    model = os.path.join(folder, "model.npz")
+    model = os.path.join(folder, "model-0.npz")
     stamp = os.stat(model).st_mtime_ns
     # one file to redo, same recipe and control: the prepared control is reused as it is
     os.unlink(os.path.join(file_out_dir(str(out), "p1.fcs"), DONE_NAME))
@@ -356,9 +373,9 @@ def test_damaged_prepared_control_gives_a_clear_error_and_is_rebuilt(control_fol
     folder = os.path.join(str(out), CONTROL_DIR)
     key = control_key(one, recipe_digest(recipe))
     good = (tmp_path / "good.npz")
-    good.write_bytes(open(os.path.join(folder, "model.npz"), "rb").read())
-    for name, damage in [("model.npz", lambda b: b[: len(b) // 2]),
-                         ("heldout.npz", lambda b: b[:-7] + b"garbage"),
+    good.write_bytes(open(os.path.join(folder, "model-0.npz"), "rb").read())
+    for name, damage in [("model-0.npz", lambda b: b[: len(b) // 2]),
+                         ("events.npz", lambda b: b[:-7] + b"garbage"),
                          ("control.json", lambda b: b"{not json")]:
         path = os.path.join(folder, name)
         original = open(path, "rb").read()
@@ -375,13 +392,13 @@ def test_damaged_prepared_control_gives_a_clear_error_and_is_rebuilt(control_fol
             fh.write(original)
     # a damaged folder is rebuilt by the next batch, with the same results
     os.unlink(os.path.join(file_out_dir(str(out), "p2.fcs"), DONE_NAME))
-    with open(os.path.join(folder, "model.npz"), "r+b") as fh:
+    with open(os.path.join(folder, "model-0.npz"), "r+b") as fh:
         fh.seek(200)
         fh.write(b"\x00" * 16)
     res = run_batch(str(inp), str(out), recipe=recipe, control=one, workers=1)
     assert res.info["control_prepared"].startswith("rebuilt") and "checksum" in res.info["control_prepared"]
     assert res.rows[1]["enriched"] == reference["p2.fcs"]["control one.fcs"]
-    assert open(os.path.join(folder, "model.npz"), "rb").read() == good.read_bytes()
+    assert open(os.path.join(folder, "model-0.npz"), "rb").read() == good.read_bytes()
 
 
 def test_unreadable_control_marks_every_file_with_the_reason(control_folder, tmp_path):
@@ -431,3 +448,45 @@ def test_a_changed_spillover_csv_redoes_finished_files(tmp_path):
     assert (out / "a" / "done.json").read_text(encoding="utf-8") != marker_before
     assert redone.rows[0]["heldout_loglik"] != first.rows[0]["heldout_loglik"]
     assert os.path.isfile(out / "a" / "a rare.fcs")
+
+
+def test_batch_writes_the_enriched_events_with_p_and_q_and_the_shift_warning(control_folder, tmp_path):
+    # reference: fcsparser reads the exported FCS 3.1 files back (its own parser, not ours)
+    from core.contrast import shift_check
+
+    base, inp, recipe, reference = control_folder
+    # a control whose CD4 detector ran 30 % hotter: an instrument-like difference on one channel
+    shifted = read_fcs(str(base / "control one.fcs"))
+    data = shifted.data.copy()
+    data[:, CHANNELS.index("CD4")] *= 1.3
+    write_fcs(str(tmp_path / "control hot.fcs"), data, list(CHANNELS), channel_ranges=[RANGE] * len(CHANNELS))
+    out = tmp_path / "o"
+    res = run_batch(str(inp), str(out), recipe=recipe, control=str(tmp_path / "control hot.fcs"), workers=1,
+                    csv=True)
+    assert [r["status"] for r in res.rows] == ["ok", "ok"], res.rows
+    summary = pd.read_csv(out / "summary.csv").set_index("file")
+    for col in ("enriched", "enriched_percent", "expected_false", "false_discovery_rate", "min_fold",
+                "shift_warning"):
+        assert col in summary.columns
+    for name in ("p1.fcs", "p2.fcs"):
+        row = summary.loc[name]
+        assert row["false_discovery_rate"] == 0.05 and row["min_fold"] == 2.0
+        assert "CD4" in row["shift_warning"] and "CD3" not in row["shift_warning"].split(":")[1][:20]
+        stem = os.path.splitext(name)[0]
+        folder = file_out_dir(str(out), name)
+        meta, df = fcsparser.parse(os.path.join(folder, f"{stem} enriched.fcs"), reformat_meta=True)
+        assert len(df) == int(row["enriched"])
+        assert {"contrast score", "contrast p", "contrast q"} <= set(df.columns)
+        assert (df["contrast q"] <= 0.05).all() and (df["contrast p"] <= df["contrast q"] + 1e-12).all()
+        assert (df["contrast score"] >= np.log(2.0) - 1e-6).all() and (df["enriched"] == 1).all()
+        assert meta["BOSCAGE_CONTROL"] == "control hot.fcs" and float(meta["BOSCAGE_FDR"]) == 0.05
+        assert "CD4" in meta["BOSCAGE_SHIFT_WARNING"]
+        # the CSV copy holds the same events (transformed values) after the caution line
+        table = pd.read_csv(os.path.join(folder, f"{stem} enriched.csv"), comment="#")
+        assert len(table) == len(df) and "contrast q" in table.columns
+    # the warning is the core shift check on the two files' density inputs
+    from core.analysis import density_input
+
+    t = density_input(read_fcs(str(inp / "p1.fcs")), recipe)[0].matrix
+    c = density_input(read_fcs(str(tmp_path / "control hot.fcs")), recipe)[0].matrix
+    assert shift_check(t, c, recipe.channels).moved[0] == "CD4"

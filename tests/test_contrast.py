@@ -1,20 +1,24 @@
-"""Test-vs-control contrast (core/contrast.py) on synthetic data with a known spike.
+"""Test-vs-control contrast (core/contrast.py): conformal p-values, Benjamini-Hochberg, shift warning.
 
 The background of both samples is the same 3-channel correlated normal; the
 test sample also holds a spiked population of 1 % that the control lacks.
+References: scipy.stats (uniform distribution and kstest, binomtest, beta,
+ks_2samp, false_discovery_control), the conformal p-value's definition
+((1 + #{reference >= s}) / (n + 1), from memory) counted by brute force.
 """
 
 import numpy as np
 import pytest
 from scipy import stats
 
-from core.contrast import contrast, split_heldout, threshold_for_alpha
+from core.contrast import (assign_parts, conformal_pvalues, contrast, prepare_control, shift_check)
 from core.errors import Cancelled, EventDataError
 
 MEAN = np.array([2.0, 2.0, 1.0])
 COV = np.array([[0.30, 0.15, 0.00], [0.15, 0.30, 0.05], [0.00, 0.05, 0.20]])
 SPIKE_MEAN = np.array([3.2, 0.9, 1.0])
 ENGINE = {"random_state": 0}
+SMALL_ENGINE = {"n_trees": 30, "marginal_trees": 20, "patience": 5, "random_state": 0}
 
 
 def background(n, rng):
@@ -24,67 +28,91 @@ def background(n, rng):
 @pytest.fixture(scope="module")
 def spiked():
     rng = np.random.default_rng(20261201)
-    control = background(20_000, rng)
-    n_spike = 200
-    test = np.vstack([background(20_000 - n_spike, rng), rng.normal(SPIKE_MEAN, 0.08, size=(n_spike, 3))])
-    labels = np.r_[np.zeros(20_000 - n_spike, bool), np.ones(n_spike, bool)]
-    fresh_control = background(50_000, rng)
-    res = contrast(test, control, alpha=0.001, engine=ENGINE, random_state=0)
-    return res, labels, fresh_control
+    control = background(12_000, rng)
+    n_spike = 120
+    test = np.vstack([background(12_000 - n_spike, rng), rng.normal(SPIKE_MEAN, 0.08, size=(n_spike, 3))])
+    labels = np.r_[np.zeros(12_000 - n_spike, bool), np.ones(n_spike, bool)]
+    res = contrast(test, control, engine=ENGINE, random_state=0, channel_names=["a", "b", "c"])
+    return res, labels
 
 
-def test_threshold_lets_at_most_alpha_of_the_scores_pass():
+@pytest.fixture(scope="module")
+def null_run():
+    # control and test drawn from the same distribution (the complete null)
+    rng = np.random.default_rng(11)
+    control, test = background(3000, rng), background(3000, rng)
+    return contrast(test, control, engine=SMALL_ENGINE, random_state=0)
+
+
+def test_conformal_pvalue_is_the_rank_formula():
     rng = np.random.default_rng(0)
-    s = rng.normal(size=9_999)
-    for alpha in (0.001, 0.01, 0.1):
-        t = threshold_for_alpha(s, alpha)
-        assert np.sum(s > t) <= alpha * s.size
-        # and it is the smallest such threshold: one rank lower lets too many pass
-        lower = np.sort(s)[::-1][int(np.floor(alpha * s.size)) + 1]
-        assert np.sum(s > lower) > alpha * s.size
-    ties = np.r_[np.zeros(50), np.ones(50)]
-    assert np.sum(ties > threshold_for_alpha(ties, 0.01)) == 0
+    ref = rng.normal(size=500)
+    ref[:20] = ref[20:40]                      # ties count as ">="
+    s = np.r_[rng.normal(size=200), ref[:5], np.nan, 99.0]
+    p = conformal_pvalues(s, ref)
+    # brute force of the definition p = (1 + #{ref >= s}) / (n + 1)
+    expected = np.array([(1 + np.sum(ref >= v)) / (ref.size + 1) for v in s[:-2]])
+    np.testing.assert_allclose(p[:-2], expected, rtol=0, atol=1e-15)
+    assert np.isnan(p[-2]) and p[-1] == 1 / (ref.size + 1)
 
 
-def test_heldout_split_is_seeded_and_disjoint():
-    a_fit, a_out = split_heldout(1000, 0.3, 5)
-    b_fit, b_out = split_heldout(1000, 0.3, 5)
-    np.testing.assert_array_equal(a_out, b_out)
-    assert a_out.size == 300 and np.intersect1d(a_fit, a_out).size == 0
-    assert np.union1d(a_fit, a_out).size == 1000
-    with pytest.raises(EventDataError, match="held-out share"):
-        split_heldout(10, 1.5)
+def test_pvalues_are_uniform_under_the_null(null_run):
+    p = null_run.pvalue
+    assert np.isfinite(p).all()
+    # reference: scipy.stats.kstest against scipy.stats.uniform -- conformal p-values
+    # of events exchangeable with the control events are uniform on (0, 1].  All p share
+    # one reference of 3,000 control scores, so a one-sample test of all 3,000 would
+    # ignore the reference's own spread: test every 10th (300 << 3,000)
+    assert stats.kstest(p[::10], stats.uniform.cdf).pvalue > 0.05
+    # exchangeability itself: test and control scores from one distribution
+    # (reference: scipy.stats.ks_2samp)
+    assert stats.ks_2samp(null_run.score, null_run.control_scores).pvalue > 0.05
 
 
-def test_spiked_population_is_found(spiked):
-    res, labels, _ = spiked
+def test_nothing_is_flagged_under_the_null(null_run):
+    # Benjamini-Hochberg at 5 % under the complete null flags anything with probability <= 5 %
+    assert null_run.count == 0 and null_run.threshold == np.inf
+    assert null_run.shift is not None and not null_run.shift.warn, null_run.shift.text
+
+
+def test_qvalues_are_benjamini_hochberg_of_the_pvalues(spiked):
+    res, _ = spiked
+    ok = np.isfinite(res.pvalue)
+    # reference: scipy.stats.false_discovery_control (Benjamini-Hochberg adjusted p-values)
+    np.testing.assert_allclose(res.qvalue[ok], stats.false_discovery_control(res.pvalue[ok], method="bh"),
+                               rtol=1e-12)
+    expected = (res.qvalue <= res.rate) & (res.score >= np.log(res.min_fold))
+    np.testing.assert_array_equal(res.enriched, expected)
+    assert res.rate == 0.05 and res.min_fold == 2.0
+
+
+def test_spiked_population_is_found_at_the_false_discovery_rate(spiked):
+    res, labels = spiked
     recall = res.enriched[labels].mean()
     precision = labels[res.enriched].mean()
-    assert recall >= 0.9, recall
-    assert precision >= 0.8, precision
-    # reference: scipy.stats.binom -- background test events pass at about alpha
-    # (allowing the spread of a threshold set by ~6 of 6000 held-out events: 3 x alpha)
-    n_bg = int((~labels).sum())
-    assert res.enriched[~labels].sum() <= stats.binom.ppf(0.999, n_bg, 3 * res.alpha)
-    # the threshold was set on held-out control events: at most alpha of them pass
-    assert res.control_pass_share <= res.alpha
-    assert res.n_control_heldout == 6000
+    assert recall >= 0.95, recall
+    # BH at 5 %: the false share of the enriched events is near 5 % or below (one run: allow 10 %)
+    assert precision >= 0.9, precision
     assert res.count == res.enriched.sum() and res.share == pytest.approx(res.count / labels.size)
+    # every finite control event is in the reference; the expected false discoveries are
+    # the control share at or above the lowest enriched score, times the test events
+    assert res.n_control == 12_000
+    assert res.expected_false == pytest.approx(np.mean(res.control_scores >= res.threshold) * labels.size)
+    assert res.threshold == pytest.approx(res.score[res.enriched].min())
 
 
-def test_fresh_control_events_pass_at_about_alpha(spiked):
-    res, _, fresh = spiked
-    # cross-fitted: either half's test model has not seen these events
-    score = res.test_model[0].score_samples(fresh) - res.control_model.score_samples(fresh)
-    k = int(np.sum(score > res.threshold))
-    # reference: scipy.stats.binom -- with 6000 held-out events setting the
-    # threshold, new control-like events pass at a rate near alpha; allow the
-    # threshold's own sampling spread (a rate up to 4 x alpha) and no more
-    assert k <= stats.binom.ppf(0.999, fresh.shape[0], 4 * res.alpha), k
+def test_minimum_fold_removes_small_ratios(spiked):
+    res, labels = spiked
+    # the spiked events are far more than 2-fold denser in the test sample
+    assert np.all(res.score[res.enriched & labels] >= np.log(2.0))
+    with pytest.raises(EventDataError, match="minimum fold"):
+        contrast(np.zeros((300, 3)), np.zeros((300, 3)), min_fold=0.5)
+    with pytest.raises(EventDataError, match="false discovery rate"):
+        contrast(np.zeros((300, 3)), np.zeros((300, 3)), rate=0.0)
 
 
 def test_share_interval_is_clopper_pearson(spiked):
-    res, labels, _ = spiked
+    res, labels = spiked
     n, k = labels.size, res.count
     # reference: Clopper-Pearson bounds from scipy.stats.beta quantiles
     low = stats.beta.ppf(0.025, k, n - k + 1)
@@ -92,8 +120,49 @@ def test_share_interval_is_clopper_pearson(spiked):
     assert res.share_ci[0] == pytest.approx(low, rel=1e-6)
     assert res.share_ci[1] == pytest.approx(high, rel=1e-6)
     assert res.share_ci[0] < res.share < res.share_ci[1]
-    # the spike's true share (1 %) is not above the interval: every spiked event can be found
-    assert 0.01 <= res.share_ci[1]
+
+
+def test_parts_are_seeded_and_balanced():
+    a, b = assign_parts(1000, 3, [5, 1]), assign_parts(1000, 3, [5, 1])
+    np.testing.assert_array_equal(a, b)
+    assert sorted(np.bincount(a).tolist()) == [333, 333, 334]
+    with pytest.raises(EventDataError, match="at least 2 parts"):
+        assign_parts(10, 1, 0)
+
+
+def test_shift_warning_names_the_channel_that_moved():
+    rng = np.random.default_rng(4)
+    C = np.column_stack([rng.normal(5.0, 1.0, 40_000), rng.gamma(3.0, 1.0, 40_000), rng.normal(0, 1, 40_000)])
+    T = np.column_stack([rng.normal(5.0, 1.0, 40_000), rng.gamma(3.0, 1.0, 40_000), rng.normal(0, 1, 40_000)])
+    names = ["CD3", "CD4", "CD8"]
+    same = shift_check(T, C, names)
+    assert not same.warn and same.text == ""
+    # a 5 % gain change on CD4 (values in instrument units, log-scaled for the density)
+    logC, logT = np.log(C + 10), np.log(T + 10)
+    logT[:, 1] = np.log(T[:, 1] * 1.05 + 10)
+    moved = shift_check(logT, logC, names, to_units=[lambda v: np.exp(v) - 10] * 3)
+    assert moved.warn and moved.moved == ["CD4"]
+    top = moved.channels[0]
+    # reference: scipy.stats.ks_2samp gives the statistic reported
+    assert top["ks"] == pytest.approx(stats.ks_2samp(logT[:, 1], logC[:, 1]).statistic)
+    # medians are reported in instrument units through the inverse map
+    assert top["median_test"] / top["median_control"] == pytest.approx(1.05, rel=0.02)
+    assert "CD4" in moved.text and "compensation" in moved.text and "CD3" not in moved.text
+    # many enriched events warn even when no channel moved
+    many = shift_check(T, C, names, enriched_share=0.25)
+    assert many.warn and "25.0 %" in many.text and many.moved == []
+
+
+def test_prepared_control_holds_every_control_event_scored_out_of_part():
+    rng = np.random.default_rng(9)
+    C = background(1500, rng)
+    C[3, 0] = np.nan
+    calls = []
+    pc = prepare_control(C, engine=SMALL_ENGINE, progress=lambda s, t, i: calls.append(i["stage"]))
+    assert pc.n_events == 1499 and pc.folds == 3 and len(pc.models) == 3
+    for k in range(3):
+        np.testing.assert_allclose(pc.log_control[pc.part == k], pc.models[k].score_samples(pc.events[pc.part == k]))
+    assert calls[0].startswith("Control model, part 1 of 3") and calls[-1].startswith("Control model, part 3 of 3")
 
 
 def test_nan_rows_are_never_enriched_and_cancel_stops():
@@ -101,9 +170,10 @@ def test_nan_rows_are_never_enriched_and_cancel_stops():
     control = background(3000, rng)
     test = background(3000, rng)
     test[:5, 1] = np.nan
-    res = contrast(test, control, engine={"random_state": 0})
+    res = contrast(test, control, engine=SMALL_ENGINE)
     assert np.isnan(res.score[:5]).all() and not res.enriched[:5].any()
+    assert np.isnan(res.pvalue[:5]).all() and np.isnan(res.qvalue[:5]).all()
     with pytest.raises(Cancelled):
-        contrast(test, control, engine={"random_state": 0}, progress=lambda s, t, i: False)
+        contrast(test, control, engine=SMALL_ENGINE, progress=lambda s, t, i: False)
     with pytest.raises(EventDataError, match="same channels"):
         contrast(test, control[:, :2])

@@ -448,7 +448,7 @@ def test_drawing_tools_rename_and_drop(qtbot, window, tmp_path):
 
 
 def test_contrast_with_control_highlights_enriched(qtbot, window, tmp_path):
-    from core.contrast import DEFAULT_ALPHA
+    import fcsparser
 
     test_path = make_fcs(tmp_path / "test.fcs", n=2000, seed=3)
     # control: events of the same generator without the bright FL1 population
@@ -462,15 +462,53 @@ def test_contrast_with_control_highlights_enriched(qtbot, window, tmp_path):
     write_fcs(tmp_path / "control.fcs", data, CHANNELS, keywords={"$SPILLOVER": ef.keywords["$SPILLOVER"]},
               channel_labels=["", "", "CD3", "CD4"], channel_ranges=[262144] * 4)
     window.open_paths([test_path])
+    panel = window.contrast_panel
+    stages = []
+    real_step = panel.step
+    panel.step = lambda step, total, info: (stages.append(panel.stage.text()), real_step(step, total, info))
     with qtbot.waitSignal(window.fitEnded, timeout=120_000) as blocker:
         window.choose_control(str(tmp_path / "control.fcs"))
+        # during the run the panel itself says what is happening, not "No control chosen"
+        assert not panel.progress.isHidden() and "Contrasting with control.fcs" in panel.result.text()
+        assert window.notebook.currentWidget() is panel
     assert blocker.args == [True], window.last_fit_problem
+    assert panel.progress.isHidden()
+    # the stage text named the models being fitted: control parts, then test parts
+    seen = " | ".join(stages)
+    assert "Control model, part 1 of 3" in seen and "Test model, part 3 of 3" in seen, seen[-300:]
     a = window.current.analysis
-    assert a.enriched is not None and a.contrast.alpha == DEFAULT_ALPHA
+    assert a.enriched is not None and a.contrast.rate == 0.05
     assert window.highlight_enriched
-    assert f"{int(a.enriched.sum()):,} enriched" in window.rarity_bar.count.text()
+    assert f"{int(a.enriched.sum()):,} new events" in window.rarity_bar.count.text()
+    assert f"{a.contrast.count:,} new events" in panel.result.text() and "false discovery rate of 5 %" in panel.result.text()
     # the enriched events lie mostly in the population the control lacks (the first 50 events)
     assert a.enriched[:k].mean() > 0.5 > 10 * a.enriched[k:].mean()
+    # the Rarity controls do nothing while the new events are shown: they are greyed out
+    assert not window.rarity_bar.slider.isEnabled() and not window.rarity_bar.spin.isEnabled()
+    panel.show_enriched.setChecked(False)
+    assert window.rarity_bar.slider.isEnabled() and "rare events" in window.rarity_bar.count.text()
+    panel.show_enriched.setChecked(True)
+    # keep the new events as a region (kind "enriched"), counted like any region
+    assert panel.keep_button.isEnabled()
+    panel.keep_button.click()
+    tube = window.current
+    name = "new vs control"
+    assert tube.regions[name].kind == "enriched" and tube.regions[name].control == "control.fcs"
+    assert window.region_count(name) == int(a.enriched.sum())
+    assert tube.recipe_with_regions().regions[-1] == {"name": name, "kind": "enriched", "parent": None,
+                                                       "control": "control.fcs"}
+    # and exported like any region: read back with fcsparser, p and q columns included
+    from desktop.dialogs import ExportDialog
+
+    dlg = ExportDialog(window, tube, [name])
+    out = tmp_path / "new-events.fcs"
+    dlg.path.setText(str(out))
+    dlg.export()
+    meta, df = fcsparser.parse(str(out), reformat_meta=True)
+    assert len(df) == int(a.enriched.sum())
+    assert (df["contrast q"] <= 0.05).all() and (df["contrast p"] > 0).all()
+    assert (df[f"region {name}"] == 1).all()
+    assert meta["BOSCAGE_CONTROL"] == "control.fcs" and float(meta["BOSCAGE_FDR"]) == 0.05
 
 
 def test_scale_editor_keeps_small_factors(qtbot, window, tmp_path):

@@ -20,10 +20,15 @@ from core import RESEARCH_USE_NOTE, __version__
 from core.errors import ExportError
 from core.export import export_events_csv, export_events_fcs, export_path_beside
 from core.fcs import read_fcs, write_fcs
+from tests.bundled_files import bundled, pick
 
 DATA = os.path.join(os.path.dirname(fcsparser.__file__), "tests", "data", "FlowCytometers")
-FLOAT_31 = os.path.join(DATA, "MiltenyiBiotec", "FCS3.1", "EY_2013-07-19_PBS_FCS_3.1_Well_A1.001.fcs")
-WITH_SPILL = os.path.join(DATA, "Fortessa", "FCS_3.0_Fortessa_PBS_Specimen_001_A1_A01.fcs")
+# fcsparser's files chosen by what they are (tests/bundled_files.py): the FCS 3.1 float file of
+# 10,000 events x 19 channels whose Time range is 25.6708, and the smaller of the two FCS 3.0
+# float files of 11,585 events x 11 channels with a spillover matrix
+FLOAT_31 = pick(version="FCS3.1", events=10000, size=lambda b: 887600 < b < 887650)
+WITH_SPILL = pick(version="FCS3.0", events=11585, size=lambda b: b == min(
+    f["size"] for f in bundled() if f["events"] == 11585))
 REPO = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 
 

@@ -16,14 +16,25 @@ import pytest
 
 from core.errors import ChannelError, FcsFileError
 from core.fcs import EventFile, read_fcs, write_fcs
+from tests.bundled_files import pick
 
 FCS_DATA = os.path.join(os.path.dirname(fcsparser.__file__), "tests", "data")
 
-# Files fcsparser ships that are broken on purpose, with words the message must contain.
-BROKEN = {
-    os.path.join("FlowCytometers", "corrupted", "corrupted.fcs"): "not an FCS file",
-    os.path.join("FlowCytometers", "cytek-nl-2000", "sample_header.fcs"): "truncated",
-}
+
+
+def _broken_on_purpose(rel: str) -> str | None:
+    """Words the read error must contain for a file fcsparser ships broken on purpose, by what
+    it is: no 'FCS' at the start (not an FCS file), or a HEADER and TEXT without the DATA
+    $TOT x $PAR x $PnB announce (truncated); None for a whole file."""
+    path = os.path.join(FCS_DATA, rel)
+    with open(path, "rb") as handle:
+        head = handle.read(58)
+    if not head.startswith(b"FCS"):
+        return "not an FCS file"
+    data_end = int(head[34:42].strip() or 0)  # FCS 3.1 section 3.1: HEADER offsets
+    if data_end >= os.path.getsize(path):
+        return "truncated"
+    return None
 
 
 def _bundled_files() -> list:
@@ -37,6 +48,7 @@ def _bundled_files() -> list:
 
 
 BUNDLED = _bundled_files()
+BROKEN = {rel: _broken_on_purpose(rel) for rel in BUNDLED if _broken_on_purpose(rel)}
 READABLE = [rel for rel in BUNDLED if rel not in BROKEN]
 
 
@@ -144,8 +156,9 @@ def test_reading_bundled_files_is_quiet(caplog):
 
 
 def test_log_amplified_integer_channel_by_hand():
-    # reference: FCS 3.1 $PnE: Cytek xP5 FL1 has $P4E/4.0,1.0/, $P4R/1024, 24-bit big-endian ints
-    path = os.path.join(FCS_DATA, "FlowCytometers", "Cytek_xP5", "Cytek_xP5.fcs")
+    # reference: FCS 3.1 $PnE: fcsparser's FCS 3.0 integer file with log amplifiers has
+    # $P4E/4.0,1.0/, $P4R/1024, 24-bit big-endian ints
+    path = pick(version="FCS3.0", datatype="I", log_amplified=True)
     ef = read_fcs(path)
     assert ef.keywords["$P4E"] == "4.0,1.0" and ef.keywords["$BYTEORD"] == "4,3,2,1"
     with open(path, "rb") as handle:
@@ -160,8 +173,8 @@ def test_log_amplified_integer_channel_by_hand():
 
 
 def test_log_channel_writing_f2_zero_is_read_as_one():
-    # FACSCalibur file: $P1E/4,0/ -> f2 = 0 means 1 (common practice)
-    path = os.path.join(FCS_DATA, "FlowCytometers", "FACSCaliburHTS", "Sample_Well_A02.fcs")
+    # the FCS 2.0 integer file of 37,395 events: $P1E/4,0/ -> f2 = 0 means 1 (common practice)
+    path = pick(version="FCS2.0", datatype="I", events=37395)
     meta, raw = _fcsparser_raw(path)
     ef = read_fcs(path)
     assert ef.keywords["$P1E"] == "4,0"
@@ -170,10 +183,11 @@ def test_log_channel_writing_f2_zero_is_read_as_one():
 
 
 def test_bitmask_file_values():
-    # fake_bitmask_error/fcs1_cleaned.lmd stores 0x4210 in every 16-bit field with $PnR 1024.
+    # the FCS 2.0 integer file of 50,000 events x 7 channels stores 0x4210 in every 16-bit
+    # field with $PnR 1024.
     # reference: FCS 3.1 $PnB/$PnR: only the ceil(log2($PnR)) = 10 low bits carry the value,
     # so the raw channel is 0x4210 & 0x3FF = 528 (fcsparser's own test expects 528 too).
-    path = os.path.join(FCS_DATA, "FlowCytometers", "fake_bitmask_error", "fcs1_cleaned.lmd")
+    path = pick(version="FCS2.0", datatype="I", events=50000)
     with open(path, "rb") as handle:
         blob = handle.read()
     start, end = int(blob[26:34]), int(blob[34:42])
@@ -190,9 +204,9 @@ def test_bitmask_file_values():
 
 
 def test_float_channels_with_log_pne_are_kept_as_stored():
-    # Guava Muse: float data whose *HLog channels carry $PnE 4.0,1.0; FCS 3.1 wants 0,0 on
-    # float data, and the stored values are already log10 of the linear channel (checked here).
-    path = os.path.join(FCS_DATA, "FlowCytometers", "GuavaMuse", "Guava Muse.fcs")
+    # the FCS 3.0 float file of 108 events: its *HLog channels carry $PnE 4.0,1.0; FCS 3.1 wants
+    # 0,0 on float data, and the stored values are already log10 of the linear channel (checked here).
+    path = pick(datatype="F", log_amplified=True)
     meta, raw = _fcsparser_raw(path)  # fcsparser reads the first data set by default
     ef = read_fcs(path)
     j_log, j_lin = ef.channel_index("FSC-HLog"), ef.channel_index("FSC-HLin")
@@ -205,8 +219,9 @@ def test_float_channels_with_log_pne_are_kept_as_stored():
 
 
 def test_time_channel_gain_is_not_applied():
-    # FACS Diva file: Time has $P1G 0.01; a gain on time is meaningless (common practice)
-    path = os.path.join(FCS_DATA, "FlowCytometers", "FACS_Diva", "facs_diva_test.fcs")
+    # the FCS 3.0 float file of 83,411 events: Time has $P1G 0.01; a gain on time is
+    # meaningless (common practice)
+    path = pick(datatype="F", events=83411)
     meta, raw = _fcsparser_raw(path)
     ef = read_fcs(path)
     assert ef.keywords["$P1G"] == "0.01" and ef.channel_names[0] == "Time"
@@ -214,21 +229,22 @@ def test_time_channel_gain_is_not_applied():
 
 
 def test_non_utf8_text_segment_decodes_as_latin1():
-    path = os.path.join(FCS_DATA, "FlowCytometers", "FACSCaliburHTS", "Sample_Well_A02.fcs")
+    path = pick(version="FCS2.0", datatype="I", events=37395)
     with open(path, "rb") as handle:
         blob = handle.read()
-    assert b"CellQuest Pro\xaa 5.2.1" in blob  # 0xAA is not valid UTF-8 on its own
     ef = read_fcs(path)
-    # reference: ISO 8859-1 maps byte 0xAA to U+00AA
-    assert ef.keywords["CREATOR"] == "CellQuest Pro\u00aa 5.2.1"
+    creator = ef.keywords["CREATOR"]
+    # its CREATOR holds byte 0xAA, not valid UTF-8 on its own;
+    # reference: ISO 8859-1 maps byte 0xAA to U+00AA, so the text encodes back to the file's bytes
+    assert "\u00aa" in creator and creator.encode("latin-1") in blob and b"\xaa" in creator.encode("latin-1")
     assert any("Latin-1" in n for n in ef.notes)
     assert all(isinstance(k, str) and isinstance(v, str) for k, v in ef.keywords.items())
 
 
 def test_repeated_keyword_and_escaped_delimiter_in_bundled_file():
-    # SG_2014-09-26_Duplicate_Names.fcs repeats $VOL and writes 'GFP//FITC-A' (escaped '/')
-    path = os.path.join(FCS_DATA, "FlowCytometers", "MiltenyiBiotec", "FCS3.1",
-                        "SG_2014-09-26_Duplicate_Names.fcs")
+    # the FCS 3.1 file of 8,129 events x 9 channels repeats $VOL and writes 'GFP//FITC-A'
+    # (escaped '/')
+    path = pick(version="FCS3.1", events=8129)
     ef = read_fcs(path)
     assert ef.keywords["$VOL"] == "20083"
     assert ef.channel_labels[7] == "GFP/FITC-A"  # reference: FCS 3.1 delimiter doubling

@@ -18,10 +18,11 @@ from core.prepare import (
     prepare_events,
 )
 from core.transforms import logicle
+from tests.bundled_files import pick
 
-FCSPARSER_DATA = os.path.join(os.path.dirname(fcsparser.__file__), "tests", "data")
-DIVA = os.path.join(FCSPARSER_DATA, "FlowCytometers", "FACS_Diva", "facs_diva_test.fcs")
-CYTEK = os.path.join(FCSPARSER_DATA, "FlowCytometers", "Cytek_xP5", "Cytek_xP5.fcs")
+# fcsparser's files chosen by what they are (tests/bundled_files.py)
+FLOAT_83K = pick(datatype="F", events=lambda n: n > 50_000)           # FCS 3.0 float, 83,411 x 12
+INT_LOG_30 = pick(version="FCS3.0", datatype="I", log_amplified=True)  # FCS 3.0 integer, $PnE 4,1
 
 
 def _parse(path):
@@ -69,9 +70,9 @@ def test_step_robust_to_a_few_irregular_gaps():
 
 
 def test_steps_on_real_files():
-    # reference: fcsparser.parse of the FACS Diva file shipped with fcsparser;
+    # reference: fcsparser.parse of the FCS 3.0 float file of 83,411 events fcsparser ships;
     # its area channels hold integer multiples of a per-detector gain
-    raw, names, ranges = _parse(DIVA)
+    raw, names, ranges = _parse(FLOAT_83K)
     n = raw.shape[0]
     jittered, steps = dequantise(raw, random_state=0)
     fluor = [i for i, c in enumerate(names) if c.endswith("-A") and not c.startswith(("FSC", "SSC"))]
@@ -89,8 +90,8 @@ def test_steps_on_real_files():
     w = names.index("FSC-W")
     assert steps[w] == 0.0
     np.testing.assert_array_equal(jittered[:, w], raw[:, w])
-    # an integer-valued file (reference: fcsparser's Cytek xP5 file, values 0..1023)
-    raw, names, ranges = _parse(CYTEK)
+    # an integer-valued file (reference: fcsparser's FCS 3.0 integer file, stored values 0..1023)
+    raw, names, ranges = _parse(INT_LOG_30)
     _, steps = dequantise(raw)
     assert np.allclose(steps, 1.0)
 
@@ -113,7 +114,8 @@ def test_reasons_cover_every_event():
     assert set(np.flatnonzero(out.reason == REASON_NON_FINITE)) == {20, 21, 22}
     assert np.array_equal(out.kept, out.reason == "")
     assert out.matrix.shape == (n - 5, 3) and out.matrix.dtype == np.float64
-    assert out.counts == {"events": n, "kept": n - 5, "non-finite": 3, "saturated": 2, "dropped": 5}
+    assert out.counts == {"events": n, "kept": n - 5, "non-finite": 3, "saturated": 2, "floor pile": 0,
+                          "ceiling pile": 0, "dropped": 5}
     assert list(out.saturated_per_channel) == [0, 1, 1]
     # kept rows are the de-quantised raw rows, in file order
     assert np.all(np.abs(out.matrix - raw[out.kept]) <= 0.5 + 1e-12)
@@ -174,3 +176,203 @@ def test_pile_at_the_top_channel_counts_as_saturated():
     raw2[:6, 0] = 800.0
     raw2[raw2[:, 0] > 800, 0] = 700.0
     assert prepare_events(raw2, ranges, dequantise=False).saturated_per_channel[0] == 0
+
+
+# --------------------------------------------------------------------------- stored units, grids, piles
+
+def test_jitter_width_follows_the_pne_formula():
+    # reference: FCS 3.1 standard, section 3.2.20 ($PnE; section number from memory):
+    # a log-amplified integer channel decodes as value = f2 * 10 ** (f1 * x / $PnR).
+    # A stored value x stands for stored values in [x - 1/2, x + 1/2), so its jittered
+    # value must lie in [f2 10^(f1 (x - 1/2) / R), f2 10^(f1 (x + 1/2) / R)).
+    from core.fcs import ChannelDecoding
+
+    dec = ChannelDecoding(integer=True, decades=4.0, offset=1.0, stored_range=1024.0)
+    x = np.full(20000, 512.0)
+    values = dec.decode(x)
+    assert values[0] == pytest.approx(100.0, rel=1e-12)          # 10 ** (4 * 512 / 1024), by hand
+    jittered, steps = dequantise(values[:, None], random_state=3, decoding=[dec])
+    # explicit computation of the cell: 10 ** (4 * 511.5 / 1024) = 10 ** 1.998046875 ...
+    lo, hi = 10.0 ** 1.998046875, 10.0 ** 2.001953125
+    assert lo == pytest.approx(99.5512, rel=1e-5) and hi == pytest.approx(100.4507, rel=1e-5)
+    assert steps[0] == 1.0 and jittered.min() >= lo and jittered.max() < hi
+    # geometric width: uniform in log10 over the cell  reference: scipy.stats.kstest
+    assert stats.kstest(np.log10(jittered[:, 0]), stats.uniform(loc=1.998046875, scale=0.00390625).cdf).pvalue > 1e-3
+    # the cell is about 0.9 % of the value wide: a linear step of 1 on decoded values would be wrong here
+    assert (hi - lo) / 100.0 == pytest.approx(10 ** (4 / 1024 / 2) - 10 ** (-4 / 1024 / 2), rel=1e-9)
+
+
+def test_integer_log_file_jittered_in_stored_units():
+    # reference: fcsparser's raw (undecoded) stored values of its FCS 3.0 integer file with $PnE 4,1
+    from core.fcs import read_fcs
+
+    ef = read_fcs(INT_LOG_30)
+    raw, names, _ = _parse(INT_LOG_30)
+    jittered, steps = dequantise(ef.data, random_state=0, decoding=ef.decoding)
+    for j, dec in enumerate(ef.decoding):
+        # the decoding record gives back fcsparser's stored values exactly
+        np.testing.assert_array_equal(dec.encode(ef.data[:, j]), raw[:, j])
+        if dec.log_amplified:
+            x = np.log10(jittered[:, j] / dec.offset) * dec.stored_range / dec.decades
+            assert np.all(np.abs(x - raw[:, j]) <= 0.5 + 1e-9), names[j]
+            assert np.unique(jittered[:, j]).size > 0.99 * raw.shape[0]
+
+
+def test_grid_detector_on_made_up_grids():
+    from core.prepare import detect_grid
+
+    rng = np.random.default_rng(21)
+    n = 20000
+    linear = (17.0 + 0.37 * np.round(rng.normal(400, 60, n))).astype(np.float32)   # stored as float32
+    assert detect_grid(linear)[0] == "linear" and detect_grid(linear)[1] == pytest.approx(0.37, rel=1e-4)
+    log = (3.0 * 10 ** (0.0125 * np.round(rng.normal(100, 30, n)))).astype(np.float32)
+    kind, step = detect_grid(log)
+    assert kind == "log" and step == pytest.approx(0.0125, rel=1e-4)     # decades per step
+    assert detect_grid(rng.lognormal(3, 1, n)) == ("", 0.0)               # continuous
+    # the jitter of a log grid is half a step of log10 either side
+    jittered, _ = dequantise(log[:, None].astype(np.float64), random_state=1)
+    ratio = np.log10(jittered[:, 0] / log.astype(np.float64))
+    assert np.all(np.abs(ratio) <= 0.0125 / 2 + 1e-9) and np.abs(ratio).max() > 0.9 * 0.0125 / 2
+
+
+def test_floor_and_ceiling_piles_set_aside_and_counted():
+    from core.prepare import REASON_CEILING_PILE, REASON_FLOOR_PILE, pile_masks
+
+    rng = np.random.default_rng(5)
+    n = 10000
+    raw = rng.normal(500.0, 100.0, size=(n, 2))
+    raw[:150, 0] = raw[:, 0].min() - 1.0          # 1.5 % on the lowest value: floor pile
+    raw[150:230, 1] = raw[:, 1].max() + 1.0       # 0.8 % on the highest value: ceiling pile
+    raw[230:250, 1] = raw[:, 1].min() - 5.0       # 0.2 %: below the 0.5 % pile share, kept
+    ranges = np.array([1e6, 1e6])                 # far above: not saturation
+    out = prepare_events(raw, ranges, dequantise=False)
+    assert set(np.flatnonzero(out.reason == REASON_FLOOR_PILE)) == set(range(150))
+    assert set(np.flatnonzero(out.reason == REASON_CEILING_PILE)) == set(range(150, 230))
+    assert out.counts["floor pile"] == 150 and out.counts["ceiling pile"] == 80 and out.n_kept == n - 230
+    assert list(out.floor_per_channel) == [150, 0] and list(out.ceiling_per_channel) == [0, 80]
+    fl, ce = pile_masks(raw[:, 1])
+    assert not fl.any() and ce.sum() == 80
+    # kept on request, spread across their bin: no value holds more than one event any more
+    keep = prepare_events(raw, ranges, dequantise=False, drop_piles=False)
+    assert keep.n_kept == n and np.unique(keep.matrix[:, 0]).size == n
+    # the cell: centred on the pile value, as wide as the span to the 150th value above it
+    v = raw[0, 0]
+    width = np.sort(raw[150:, 0])[149] - v
+    spread = keep.matrix[:150, 0]
+    assert np.all(np.abs(spread - v) <= width / 2) and np.ptp(spread) > 0.9 * width
+    # a saturated pile keeps its own reason
+    sat = raw.copy()
+    sat[150:230, 1] = 1e6
+    assert np.all(prepare_events(sat, ranges, dequantise=False).reason[150:230] == REASON_SATURATED)
+
+
+def test_density_input_reasons_flags_and_atoms():
+    from core.analysis import density_input
+    from core.fcs import ChannelDecoding, EventFile
+    from core.prepare import ATOM_SHARE, CLEANING_FLAGS, atoms, largest_tie_share
+    from core.recipe import Recipe
+
+    rng = np.random.default_rng(9)
+    n = 6000
+    stored = np.clip(np.round(rng.normal(300, 80, size=(n, 2))), 0, 1023)
+    stored[:100, 0] = 0                                   # floor pile in stored units
+    dec = [ChannelDecoding(integer=True, decades=4.0, offset=1.0, stored_range=1024.0),
+           ChannelDecoding(integer=True, stored_range=1024.0)]
+    data = np.column_stack([dec[0].decode(stored[:, 0]), stored[:, 1]])
+    data[100, 1] = np.nan
+    ef = EventFile(path="made-up.fcs", data=data, channel_names=["FL1", "FL2"], channel_labels=["", ""],
+                   channel_ranges=np.array([1e4, 1024.0]), keywords={}, version="FCS3.0", decoding=dec)
+    recipe = Recipe(channels=["FL1", "FL2"], transforms={"FL1": {"kind": "log", "floor": 1.0}})
+    prepared, values = density_input(ef, recipe)
+    assert prepared.set_aside() == {"saturated": 0, "ceiling pile": 0, "floor pile": 100, "non-finite": 1}
+    assert prepared.grids == ["stored", "stored"]
+    # the density sees log10 of the jittered FL1, inside each stored cell (FCS 3.1 $PnE)
+    k = prepared.kept
+    x = prepared.matrix[:, 0] * 1024.0 / 4.0
+    assert np.all(np.abs(x - stored[k, 0]) <= 0.5 + 1e-9)
+    assert max(largest_tie_share(prepared.matrix[:, c]) for c in range(2)) <= ATOM_SHARE
+    assert atoms(prepared.matrix, ["FL1", "FL2"]) == {}
+    assert atoms(np.round(prepared.matrix), ["FL1", "FL2"])            # rounded back: atoms named
+    # plots see the values without jitter
+    np.testing.assert_array_equal(values[:, 0], np.log10(np.fmax(data[:, 0], 1.0)))
+    # keeping piles keeps them, spread
+    keep = Recipe(channels=["FL1", "FL2"], cleaning={"drop_saturated": True, "drop_piles": False,
+                                                       "dequantise": True})
+    assert density_input(ef, keep)[0].n_kept == n - 1
+    assert CLEANING_FLAGS["floor pile"] == 3 and CLEANING_FLAGS["ceiling pile"] == 4
+
+
+def test_bundled_files_leave_no_atom_after_the_default_recipe():
+    # Done-when of the real-acquisitions work, on every file fcsparser ships with >= 5,000 events
+    # (reference: fcsparser's files, read in place): no value of a density channel holds more
+    # than 0.1 % of the kept events after the default recipe's cleaning.
+    from core.analysis import density_input
+    from core.fcs import read_fcs
+    from core.prepare import ATOM_SHARE, largest_tie_share
+    from core.recipe import default_recipe
+    from tests.bundled_files import bundled
+
+    checked = 0
+    for f in bundled():
+        if f["events"] < 5000 or f["size"] < 100_000:   # the 27-channel header-only file is truncated
+            continue
+        ef = read_fcs(f["path"])
+        prepared, _ = density_input(ef, default_recipe(ef))
+        assert prepared.n_kept > 0.5 * ef.n_events, (f["version"], f["events"])
+        worst = max(largest_tie_share(prepared.matrix[:, c]) for c in range(prepared.matrix.shape[1]))
+        assert worst <= ATOM_SHARE, (f["version"], f["datatype"], f["events"], worst)
+        checked += 1
+    assert checked >= 12
+
+
+def test_one_pass_equals_the_pipeline_form_on_a_demo_tube():
+    # Our demo tube A (float, whole units, compensated): density_input's one pass gives what the
+    # pipeline form gives -- jitter the raw matrix, compensate, transform (numpy, by hand) -- with
+    # the same per-channel draws, and sets aside exactly the generator's saturated events.
+    from core.analysis import density_channel_indices, density_input
+    from core.compensation import spillover_from_keywords
+    from core.fcs import read_fcs
+    from core.prepare import channel_uniforms
+    from core.recipe import default_recipe
+    from core.scenario import load_truth
+    from core.transforms import make_transform
+
+    root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    path = os.path.join(root, "sample_events", "tube_A_control.fcs")
+    ef = read_fcs(path)
+    recipe = default_recipe(ef)
+    prepared, values = density_input(ef, recipe)
+    truth = load_truth(os.path.join(root, "sample_events"), "tube_A_control")
+    idx = density_channel_indices(ef, recipe)
+    S = spillover_from_keywords(ef.keywords)
+    judged = sorted(set(idx) | {ef.channel_names.index(d) for d in S.detectors})
+    # the generator's saturated events that are saturated in a judged channel (value >= $PnR)
+    expected = truth["saturated"] & np.any(ef.data[:, judged] >= ef.channel_ranges[judged], axis=1)
+    np.testing.assert_array_equal(prepared.reason == REASON_SATURATED, expected)
+    assert prepared.set_aside()["floor pile"] == prepared.set_aside()["ceiling pile"] == 0
+    raw = ef.data.copy()
+    for j in set(idx) | {ef.channel_names.index(d) for d in S.detectors}:
+        assert prepared.grids[j] == "linear" and prepared.steps[j] == pytest.approx(1.0, rel=1e-6)
+        raw[:, j] += channel_uniforms(0, j, ef.n_events) * prepared.steps[j]
+    det = [ef.channel_names.index(d) for d in S.detectors]
+    raw[:, det] = raw[:, det] @ np.linalg.inv(S.matrix)          # reference: numpy.linalg
+    by_hand = np.column_stack([make_transform(recipe.transforms[ef.channel_names[j]]).forward(raw[:, j])
+                               for j in idx])[prepared.kept]
+    np.testing.assert_allclose(prepared.matrix, by_hand, rtol=1e-9, atol=1e-12)
+
+
+def test_analysis_counts_reasons_for_the_app_and_exports():
+    # the app's fit line and the exports' cleaning flag read the reasons of every event
+    from core.analysis import Analysis
+
+    reason = np.array(["", "floor pile", "ceiling pile", "saturated", "non-finite", "", "floor pile"])
+    n = reason.size
+    an = Analysis(path="x.fcs", channel_names=["A"], values=np.zeros((n, 1)), density_channels=["A"],
+                  prepared=None, model=None, log_density=np.where(reason == "", -1.0, np.nan),
+                  rarity=np.where(reason == "", 50.0, np.nan), rare=np.zeros(n, bool), rare_level=0.0,
+                  reason=reason, region_masks={}, heldout_loglik=0.0, timing={}, atoms={"A": 0.004})
+    assert an.set_aside == {"saturated": 1, "ceiling pile": 1, "floor pile": 2, "non-finite": 1}
+    text = an.cleaning_text()
+    assert text.startswith("2 of 7 events kept") and "2 floor pile" in text and "1 ceiling pile" in text
+    assert "A (0.4 % of the kept events on one value)" in text
+    np.testing.assert_array_equal(an.export_columns()["cleaning flag"], [0, 3, 4, 1, 2, 0, 3])

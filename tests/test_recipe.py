@@ -18,6 +18,8 @@ from core.errors import ExportError, RecipeError
 from core.recipe import (SCHEMA_VERSION, Recipe, default_recipe, is_fluorescence_channel, load_recipe,
                          recipe_digest, save_recipe, validate_recipe)
 
+from tests.test_channel_kinds import EXPECTED as EXPECTED_KINDS  # noqa: E402
+
 FCSPARSER_DATA = os.path.join(os.path.dirname(fcsparser.__file__), "tests", "data")
 
 ASINH = {"kind": "arcsinh", "cofactor": 150.0}
@@ -61,7 +63,7 @@ def _full_recipe() -> Recipe:
         compensation={"source": "csv", "csv_path": "spill.csv"},
         transforms={"FL1-A": ASINH, "FL2-A": {"kind": "logicle", "T": 262144.0, "W": 0.5, "M": 4.5, "A": 0.0},
                     "FSC-A": {"kind": "linear", "scale": 1.0 / 262144.0, "offset": 0.0}},
-        cleaning={"drop_saturated": False, "dequantise": True},
+        cleaning={"drop_saturated": False, "drop_piles": False, "dequantise": True},
         engine={"random_state": 7, "learning_rate": 0.05},
         rare={"rule": "mass", "mass": 0.99},
         regions=[{"name": "lymph", "kind": "rectangle", "channels": ["FL1-A", "FL2-A"], "x": [0.1, 2.0],
@@ -95,9 +97,10 @@ def test_round_trip_dict_and_file(tmp_path):
 def test_defaults_filled_and_engine_arguments():
     r = Recipe.from_dict({"schema_version": 1, "channels": ["A"]})
     assert r.compensation == {"source": "none", "csv_path": None}
-    assert r.cleaning == {"drop_saturated": True, "dequantise": True}
+    assert r.cleaning == {"drop_saturated": True, "drop_piles": True, "dequantise": True}
     assert r.rare == {"rule": "share", "share": 0.005}
     assert r.engine == {} and r.engine_arguments() == {"random_state": 0}
+    assert r.comparison == {"rate": 0.05, "min_fold": 2.0}
     r2 = Recipe.from_dict({"schema_version": 1, "channels": ["A"], "engine": {"random_state": 3}})
     assert r2.engine_arguments() == {"random_state": 3}
 
@@ -105,7 +108,8 @@ def test_defaults_filled_and_engine_arguments():
 def test_digest_definition_and_sensitivity():
     minimal = Recipe.from_dict({"schema_version": 1, "channels": ["A"], "name": "x", "notes": "y"})
     # canonical JSON written out by hand: sorted keys, no spaces, name/notes left out
-    canonical = ('{"channels":["A"],"cleaning":{"dequantise":true,"drop_saturated":true},'
+    canonical = ('{"channels":["A"],"cleaning":{"dequantise":true,"drop_piles":true,"drop_saturated":true},'
+                 '"comparison":{"min_fold":2,"rate":0.05},'
                  '"compensation":{"csv_path":null,"source":"none"},"engine":{},'
                  '"rare":{"rule":"share","share":0.005},"regions":[],"schema_version":1,"transforms":{}}')
     # reference: hashlib.sha256 (FIPS 180-4)
@@ -222,11 +226,32 @@ def test_validation_against_an_event_file(tmp_path):
 # ---------------------------------------------------------------------------
 
 def test_fluorescence_rule():
-    # common practice: scatter FSC*/SSC*, clock Time*, event counter Event*
-    for name in ("FSC-A", "ssc-h", "Time", "TIME", "Event_length", "EVENT#"):
+    # common practice: scatter FSC*/SSC*/FS*/SS*, clock Time*/HDR-T, event counter Event*,
+    # instrument-internal HDR-* (the full table: tests/test_channel_kinds.py)
+    for name in ("FSC-A", "ssc-h", "FS-A", "SS INT LIN", "Time", "TIME", "HDR-T", "HDR-CE", "Event_length",
+                 "EVENT#"):
         assert not is_fluorescence_channel(name)
-    for name in ("FL1-A", "CD3 FITC", "PE-Cy7-A", "HDR-CE", "Sytox"):
+    for name in ("FL1-A", "CD3 FITC", "PE-Cy7-A", "Sytox", "FL1 INT LOG"):
         assert is_fluorescence_channel(name)
+
+
+def test_fasinh_recipe_round_trips(tmp_path):
+    # reference: Gating-ML 2.0 fasinh (T, M, A); the recipe keeps it as written and
+    # make_transform builds it (one registry of kinds: core.transforms.TRANSFORM_KINDS)
+    from core.transforms import TRANSFORM_KINDS, fasinh, make_transform
+
+    spec = {"kind": "fasinh", "T": 262144.0, "M": 4.5, "A": 0.5}
+    r = Recipe(channels=["FL1-A"], transforms={"FL1-A": spec})
+    path = tmp_path / "fasinh.json"
+    save_recipe(r, path)
+    back = load_recipe(path)
+    assert back.transforms["FL1-A"] == spec and back == r
+    assert make_transform(back.transforms["FL1-A"]).forward(262144.0) == pytest.approx(1.0)  # T maps to 1
+    assert make_transform(spec).forward(1000.0) == pytest.approx(fasinh(1000.0, 262144.0, 4.5, 0.5))
+    assert set(TRANSFORM_KINDS) == {"linear", "log", "arcsinh", "logicle", "fasinh"}
+    with pytest.raises(RecipeError, match="A"):
+        Recipe.from_dict({"schema_version": 1, "channels": ["FL1-A"],
+                          "transforms": {"FL1-A": {"kind": "fasinh", "T": 1e4, "M": 4.5, "A": 9.0}}})
 
 
 def _spillover_is_well_formed(meta) -> bool:
@@ -266,10 +291,13 @@ def test_default_recipe_on_fcsparser_files(reference_files, tmp_path):
         n = int(meta["$PAR"])
         pnn = [str(meta[f"$P{i}N"]).strip() for i in range(1, n + 1)]
         r = default_recipe(ef)
-        # reference: $PnN as fcsparser reads them; rule: not FSC*/SSC*/Time*/Event* (common practice)
-        expected = [c for c in pnn if not c.upper().startswith(("FSC", "SSC", "TIME", "EVENT"))]
+        # reference: $PnN as fcsparser reads them; kinds as stated name by name in
+        # tests/test_channel_kinds.py; channels mostly on one pile are left out and named in notes
+        expected = [c for c in pnn if EXPECTED_KINDS[c] == "fluorescence"]
         if len(set(pnn)) == len(pnn):
-            assert r.channels == expected, os.path.basename(ef.path)
+            left_out = [c for c in expected if c not in r.channels]
+            assert [c for c in expected if c in r.channels] == r.channels, len(pnn)
+            assert all(c in r.notes for c in left_out) and len(left_out) < len(expected)
         assert r.channels and set(r.channels) <= set(ef.channel_names)
         want = "file" if _spillover_is_well_formed(meta) else "none"
         assert r.compensation == {"source": want, "csv_path": None}, os.path.basename(ef.path)
@@ -302,3 +330,14 @@ def test_default_recipe_synthetic():
     assert scatter_only.channels == ["FSC-A", "SSC-A"]
     with pytest.raises(RecipeError, match="Time"):
         default_recipe(_synthetic_event_file(["Time"]))
+
+
+def test_comparison_section_is_checked():
+    base = {"schema_version": 1, "channels": ["A"]}
+    r = Recipe.from_dict({**base, "comparison": {"rate": 0.01}})
+    assert r.comparison == {"rate": 0.01, "min_fold": 2.0}
+    for bad, words in [({"rate": 0}, "false discovery rate"), ({"rate": 1.5}, "false discovery rate"),
+                       ({"min_fold": 0.5}, "min_fold"), ({"rate": "5 %"}, "must be a number"),
+                       ({"alpha": 0.001}, "alpha"), ([], "comparison")]:
+        with pytest.raises(RecipeError, match=words):
+            Recipe.from_dict({**base, "comparison": bad})

@@ -288,3 +288,25 @@ def test_replace_keeps_references_and_refuses_new_cycles():
     assert rs["a"].parent is None  # the refused change left the set as it was
     with pytest.raises(RegionError, match="no region named"):
         rs.replace(rect("zz", (0, 1), (0, 1)))
+
+
+def test_enriched_region_takes_the_contrast_mask():
+    from core.regions import EnrichedRegion
+
+    enriched = np.array([True, False, True, False])
+    rs = RegionSet.from_dict([{"name": "new", "kind": "enriched", "control": "ctrl.fcs"},
+                              {"name": "not new", "kind": "not", "operands": ["new"]}])
+    assert isinstance(rs["new"], EnrichedRegion)
+    assert rs.depending_on("enriched") == ["new", "not new"] and rs.depending_on("rarity") == []
+    masks = rs.evaluate({}, None, 4, enriched=enriched)
+    np.testing.assert_array_equal(masks["new"], enriched)
+    np.testing.assert_array_equal(masks["not new"], ~enriched)
+    # stored form round-trips
+    assert RegionSet.from_dict(rs.to_dict()).to_dict() == rs.to_dict()
+    assert rs.to_dict()[0] == {"name": "new", "kind": "enriched", "parent": None, "control": "ctrl.fcs"}
+    with pytest.raises(RegionError, match="control"):
+        rs.evaluate({}, None, 4)
+    with pytest.raises(RegionError, match="3 enriched flags for 4 events"):
+        rs.evaluate({}, None, 4, enriched=enriched[:3])
+    with pytest.raises(RegionError, match="unknown key"):
+        RegionSet.from_dict([{"name": "x", "kind": "enriched", "rate": 0.05}])

@@ -264,3 +264,44 @@ def test_logicle_extreme_values_round_trip(T, W, M, A):
     np.testing.assert_allclose(logicle_inverse(y, T, W, M, A), x, rtol=1e-9)
     tiny = np.logspace(-300, -1, 50)
     assert np.all(np.diff(logicle(tiny, T, W, M, A)) >= 0)
+
+
+def test_one_registry_of_kinds_read_by_transforms_recipe_panel_and_docs(qtbot):
+    # the registry is the one list: make_transform, recipe validation, the Channels panel
+    # and DEVELOPERS.md all follow it (reference for fasinh: Gating-ML 2.0)
+    import os
+
+    from core.errors import RecipeError
+    from core.recipe import Recipe
+    from core.transforms import TRANSFORM_KINDS, make_transform, transform_kinds_markdown
+    from desktop.panels.channels import ChannelsPanel
+
+    for name, kind in TRANSFORM_KINDS.items():
+        spec = {"kind": name}
+        for p in kind.parameters:
+            if not p.optional:
+                spec[p.key] = p.default if p.default is not None else {"T": 1e4, "W": 0.5}[p.key]
+        t = make_transform(spec)
+        assert t.kind == name and np.allclose(t.inverse(t.forward([1.0, 50.0, 900.0])), [1.0, 50.0, 900.0])
+        Recipe.from_dict({"schema_version": 1, "channels": ["X"], "transforms": {"X": spec}})
+        # bounds come from the registry: a value beyond one is refused in both places
+        p = kind.parameters[0]
+        bad = dict(spec, **{p.key: p.high * 10 if p.high > 0 else p.low * 10})
+        with pytest.raises(TransformError):
+            make_transform(bad)
+        with pytest.raises(RecipeError):
+            Recipe.from_dict({"schema_version": 1, "channels": ["X"], "transforms": {"X": bad}})
+    panel = ChannelsPanel()
+    qtbot.addWidget(panel)
+    offered = [panel.kind.itemData(i) for i in range(panel.kind.count())]
+    assert offered == list(TRANSFORM_KINDS)
+    values = np.random.default_rng(0).normal(500, 200, 1000)
+    panel.ranges = {"FL1-A": 1024.0}
+    panel.show_channels(["FL1-A"], [""], {"FL1-A": {"kind": "linear"}}, ["FL1-A"], lambda name: values)
+    panel.kind.setCurrentIndex(offered.index("fasinh"))
+    spec = panel.specs()["FL1-A"]
+    assert spec["kind"] == "fasinh" and spec["T"] == 1024.0   # top of scale from the channel range
+    make_transform(spec)
+    root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    with open(os.path.join(root, "DEVELOPERS.md"), encoding="utf-8") as fh:
+        assert transform_kinds_markdown() in fh.read()

@@ -66,7 +66,7 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import EventDataError
+from ..errors import BoscageError, EventDataError, ParameterError
 from ..progress import keep_going
 from . import kernels
 from .gaussian_base import BASE_CHOICES, MIXTURE_BASES, GaussianMixtureBase
@@ -124,6 +124,42 @@ def _chunk(X: np.ndarray, a: int, b: int, what: str) -> np.ndarray:
     if not np.isfinite(C).all():
         raise _nonfinite_error(X, what)
     return C
+
+
+#: Largest |value| fit accepts: beyond it squares and products in float64 overflow.
+MAX_ABS_VALUE = 1e100
+#: A channel whose values vary by less than this share of their size is below
+#: float64 resolution for the maps (the engine's scale floor is 1e-12 of the size).
+MIN_RELATIVE_SPREAD = 1e-12
+#: Scoring: values further than this many robust scales from a channel's centre are
+#: scored as if at that distance (their log density is then below -1e40 nats).
+FAR_SCALES = 1e40
+#: Scoring: the lowest log density reported (float64 cannot go below -1.8e308).
+LOG_DENSITY_FLOOR = -1e300
+#: Most events :meth:`AdditiveTreeDensity.sample` draws in one call.
+MAX_SAMPLE = 100_000_000
+
+
+def _check_value_range(X: np.ndarray) -> None:
+    """Refuse events the engine cannot represent (EventDataError naming the channel):
+    values beyond +-1e100, or a non-constant channel whose spread is below 1e-12 of its size."""
+    if X.shape[0] == 0 or X.shape[1] == 0:
+        return
+    with np.errstate(all="ignore"):
+        lo, hi = np.nanmin(X, axis=0).astype(np.float64), np.nanmax(X, axis=0).astype(np.float64)
+        size = np.maximum(np.abs(lo), np.abs(hi))
+        spread = hi - lo
+    for j in range(X.shape[1]):
+        if not np.isfinite(size[j]):
+            continue  # NaN/inf: reported by the fit's own check, with counts
+        if size[j] > MAX_ABS_VALUE:
+            raise EventDataError(
+                f"fit: column {j} (0-based) holds values up to {size[j]:.3g}; the density engine works with "
+                f"values within +-{MAX_ABS_VALUE:g} (transform or rescale the channel first)")
+        if 0 < spread[j] < MIN_RELATIVE_SPREAD * max(1.0, size[j]):
+            raise EventDataError(
+                f"fit: column {j} (0-based) varies by only {spread[j]:.3g} around {size[j]:.3g}, below what "
+                "float64 resolves for a density; rescale the channel or leave it out")
 
 
 #: With ``base="auto"``: a channel whose most frequent value holds at least this
@@ -304,7 +340,7 @@ class AdditiveTreeDensity:
     def set_params(self, **params) -> "AdditiveTreeDensity":
         for k, v in params.items():
             if k not in self._PARAMS:
-                raise ValueError(f"unknown parameter {k!r}")
+                raise ParameterError(f"unknown density engine setting {k!r}; settings: {', '.join(self._PARAMS)}")
             setattr(self, k, v)
         return self
 
@@ -337,6 +373,29 @@ class AdditiveTreeDensity:
 
     # ------------------------------------------------------------ fitting
     def fit(self, X, progress=None) -> "AdditiveTreeDensity":
+        """Fit to events X (n_events, n_channels); returns self (see :meth:`_fit_checked`).
+
+        Every problem with X or the settings raises one of this program's errors
+        (EventDataError, ParameterError; both are ValueError too), never a bare
+        numpy or Python exception."""
+        try:
+            self._validate_params()
+        except (ValueError, TypeError, OverflowError) as exc:
+            if isinstance(exc, BoscageError):
+                raise
+            raise ParameterError(f"density engine setting: {exc}") from None
+        X = _check_matrix(X, "fit", min_events=MIN_EVENTS)
+        if X.shape[1] == 0:
+            raise EventDataError("fit: the events have no channels (0 columns)")
+        _check_value_range(X)
+        try:
+            return self._fit_checked(X, progress)
+        except BoscageError:
+            raise
+        except (ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:
+            raise EventDataError(f"fit: the density could not be fitted to these events ({exc})") from exc
+
+    def _fit_checked(self, X, progress=None) -> "AdditiveTreeDensity":
         """Fit to events X (n_events, n_channels); returns self.
 
         ``progress(step, total, heldout_loglik)`` is called after the
@@ -662,8 +721,16 @@ class AdditiveTreeDensity:
         for a in range(0, X.shape[0], CHUNK):
             b = min(X.shape[0], a + CHUNK)
             C = _chunk(X, a, b, "score")
+            self._clip_far(C)
             out[a:b] = self._base_forward(C, want_u=False)[1] if base_only else self._forward_chunk(C)[1]
+        np.maximum(out, LOG_DENSITY_FLOOR, out=out)  # finite for every finite event
         return out
+
+    def _clip_far(self, C: np.ndarray) -> None:
+        """Move values further than FAR_SCALES robust scales from each channel's centre to that
+        distance (in place), so every finite event gets a finite log density."""
+        reach = FAR_SCALES * self._scale
+        np.clip(C, self._loc - reach, self._loc + reach, out=C)
 
     def score(self, X) -> float:
         """Mean log density of the events X (nats per event)."""
@@ -700,7 +767,15 @@ class AdditiveTreeDensity:
     def sample(self, n: int, random_state=None) -> np.ndarray:
         """Draw ``n`` events (n, d) from the fitted density (exact: inverse map of uniforms)."""
         self._check_fitted()
-        rng = np.random.default_rng(random_state)
+        if isinstance(n, bool) or not isinstance(n, (int, np.integer)) and not (
+                isinstance(n, (float, np.floating)) and float(n).is_integer()):
+            raise ParameterError(f"sample: the number of events must be a whole number, not {n!r}")
+        if not 0 <= int(n) <= MAX_SAMPLE:
+            raise ParameterError(f"sample: the number of events must lie between 0 and {MAX_SAMPLE:,}; got {n}")
+        try:
+            rng = np.random.default_rng(random_state)
+        except (TypeError, ValueError) as exc:
+            raise ParameterError(f"sample: random_state {random_state!r} is not a usable seed ({exc})") from None
         U = rng.random((int(n), self.n_features_in_))
         tiny = 2.0 ** -53
         np.clip(U, tiny, 1.0 - tiny, out=U)

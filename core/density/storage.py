@@ -7,17 +7,28 @@ with ``allow_pickle=False``; every array is checked (shapes, index ranges,
 tree structure, probabilities in (0, 1), monotone knots) before use so a
 damaged or hand-edited file raises :class:`ModelFileError` naming the file
 instead of crashing the compiled kernels.
+
+Before anything is inflated the file's structure is checked (:func:`_check_container`):
+a regular file, a zip archive (not a single ``.npy`` array), at most
+``MAX_MEMBERS`` members with known names, declared sizes within a byte budget
+(``MAX_MODEL_BYTES`` in all; inflation never goes beyond a member's declared size)
+and, for each array, a ``.npy`` header whose shape fits in the bytes its member
+declares.  The metadata JSON's nesting is bounded (:mod:`core.safe_json`).  No
+other exception type than ModelFileError leaves :func:`load_model`.
 """
 
 from __future__ import annotations
 
 import json
 import os
+import stat
 import zipfile
+import zlib
 
 import numpy as np
 
 from .. import RESEARCH_USE_NOTE, __version__
+from .. import safe_json
 from ..atomic import atomic_write
 from ..errors import ModelFileError
 from . import kernels
@@ -105,16 +116,98 @@ def _fail(path, problem: str) -> ModelFileError:
     return ModelFileError(f"{os.path.basename(os.fspath(path))}: {problem} (file: {os.fspath(path)})")
 
 
+#: Byte budget of a model file's inflated contents (real models: well under 100 MB).
+MAX_MODEL_BYTES = 1 << 30
+#: Most members a model file may hold (it writes about 30).
+MAX_MEMBERS = 64
+_KNOWN = frozenset(("metadata",) + _ARRAYS + _GMM_ARRAYS + ("gmm_skew", "gmm_background"))
+
+
+def _check_container(path: str) -> None:
+    """Structure and size checks before anything is inflated (ModelFileError naming the file)."""
+    try:
+        st = os.stat(path)
+    except OSError as exc:
+        raise _fail(path, f"cannot read the file ({exc.strerror or exc})") from None
+    if stat.S_ISDIR(st.st_mode):
+        raise _fail(path, "this is a folder, not a density model file")
+    if not stat.S_ISREG(st.st_mode):
+        raise _fail(path, "not a regular file (a named pipe, device or socket)")
+    with open(path, "rb") as fh:
+        magic = fh.read(6)
+    if magic == b"\x93NUMPY":
+        raise _fail(path, "this is a single numpy array (.npy), not a density model file (.npz)")
+    if magic[:2] != b"PK":
+        raise _fail(path, "not a density model file (not an .npz archive)")
+    with zipfile.ZipFile(path) as zf:
+        infos = zf.infolist()
+        if len(infos) > MAX_MEMBERS:
+            raise _fail(path, f"damaged density model file: {len(infos)} members (at most {MAX_MEMBERS})")
+        total = 0
+        for info in infos:
+            name = info.filename[:-4] if info.filename.endswith(".npy") else None
+            if name not in _KNOWN:
+                raise _fail(path, f"damaged density model file: unexpected member {info.filename[:80]!r}")
+            if info.flag_bits & 0x1:
+                raise _fail(path, "damaged density model file: encrypted member")
+            total += info.file_size
+            if info.file_size > MAX_MODEL_BYTES or total > MAX_MODEL_BYTES:
+                raise _fail(path, f"damaged or hostile density model file: its members declare "
+                                  f"{total:,} bytes, above the {MAX_MODEL_BYTES:,}-byte budget")
+            with zf.open(info) as member:
+                version = np.lib.format.read_magic(member)
+                if version == (1, 0):
+                    shape, _fortran, dtype = np.lib.format.read_array_header_1_0(member)
+                else:
+                    shape, _fortran, dtype = np.lib.format.read_array_header_2_0(member)
+            if dtype.hasobject:
+                raise _fail(path, f"damaged density model file: {name} holds Python objects")
+            count = 1
+            for n in shape:
+                count *= int(n)
+            if count * dtype.itemsize > info.file_size:
+                raise _fail(path, f"damaged density model file: {name} declares {count:,} values of "
+                                  f"{dtype.itemsize} bytes but its member holds {info.file_size:,} bytes")
+
+
 def load_model(cls, path):
-    """Read a model file written by :func:`save_model`."""
-    if not os.path.isfile(path):
+    """Read a model file written by :func:`save_model` (ModelFileError for anything wrong)."""
+    try:
+        path = os.fspath(path)
+    except TypeError:
+        raise ModelFileError(f"{path!r} is not a file path; give the path of a density model file") from None
+    if isinstance(path, bytes):
+        path = os.fsdecode(path)
+    if not os.path.exists(path):
         raise _fail(path, "no such density model file")
+    try:
+        _check_container(path)
+        return _load_checked(cls, path)
+    except ModelFileError:
+        raise
+    except MemoryError:
+        raise _fail(path, "not enough memory to read this density model file") from None
+    except RecursionError:
+        raise _fail(path, "damaged density model file (nested too deeply)") from None
+    except (OSError, ValueError, zipfile.BadZipFile, zipfile.LargeZipFile, EOFError, KeyError, TypeError,
+            IndexError, OverflowError, NotImplementedError, RuntimeError, UnicodeError, zlib.error) as exc:
+        raise _fail(path, f"damaged or unreadable density model file ({type(exc).__name__}: {exc})") from None
+    except Exception as exc:  # any other library failure on a damaged file: still our error
+        raise _fail(path, f"damaged density model file ({type(exc).__name__}: {exc})") from None
+
+
+def _reject_constant(name: str):
+    raise ValueError(f"{name} is not a number a model file may hold")
+
+
+def _load_checked(cls, path):
+    """:func:`load_model` after the container checks."""
     try:
         with np.load(path, allow_pickle=False) as z:
             files = set(z.files)
             if "metadata" not in files:
                 raise _fail(path, "not a density model file (no metadata)")
-            meta = json.loads(str(z["metadata"][()]))
+            meta = safe_json.loads(str(z["metadata"][()]), parse_constant=_reject_constant)
             if not isinstance(meta, dict) or meta.get("format") != FORMAT_NAME:
                 raise _fail(path, "not a density model file of this program")
             version = meta.get("format_version")
@@ -142,7 +235,7 @@ def load_model(cls, path):
         raise _fail(path, f"damaged or unreadable density model file ({exc})") from exc
     try:
         model = _build(cls, meta, a)
-    except (ValueError, TypeError, KeyError, IndexError) as exc:
+    except (ValueError, TypeError, KeyError, IndexError, OverflowError, AttributeError) as exc:
         raise _fail(path, f"damaged density model file ({exc})") from exc
     return model
 
@@ -159,10 +252,11 @@ def _arr(a, key, dtype, shape=None):
 
 def _build(cls, meta, a):
     d = int(meta["n_features_in"])
-    if d < 1:
-        raise ValueError("no channels")
+    if not 1 <= d <= 100_000:
+        raise ValueError(f"{d} channels")
     params = dict(meta["params"])
     model = cls(**{k: v for k, v in params.items() if k in cls._PARAMS})
+    model._validate_params()
     # files written before the base became a parameter used the logistic base;
     # "base_used" (the map "auto" chose) is in files since format 3
     model.base = params.get("base", "logistic")

@@ -18,20 +18,12 @@ from PySide6.QtWidgets import (QAbstractItemView, QComboBox, QDoubleSpinBox, QFo
 
 from desktop import style
 
-#: Editable parameters of each transform kind: (key, label, tooltip, low, high, default).
-PARAMETERS = {
-    "linear": [("scale", "Scale", "Multiply the values by this factor.", -1e9, 1e9, 1.0),
-               ("offset", "Offset", "Add this after scaling (in scaled units).", -1e9, 1e9, 0.0)],
-    "log": [("floor", "Floor", "Values below the floor are raised to it before the logarithm "
-             "(instrument units; common practice: 1).", 1e-9, 1e9, 1.0)],
-    "arcsinh": [("cofactor", "Cofactor", "arcsinh(x / cofactor): linear near zero, logarithmic far from it. "
-                 "Common practice: about 150 for fluorescence detectors, 5 for mass channels.",
-                 1e-6, 1e9, 150.0)],
-    "logicle": [("T", "Top (T)", "Largest data value of the display (usually the channel range).", 1.0, 1e12, 262144.0),
-                ("W", "Linear width (W)", "Width of the near-linear region around zero, in decades.", 0.0, 10.0, 0.5),
-                ("M", "Decades (M)", "Number of decades the display covers.", 1.0, 10.0, 4.5),
-                ("A", "Extra negative (A)", "Additional decades of negative values shown.", 0.0, 10.0, 0.0)],
-}
+from core.transforms import TRANSFORM_KINDS
+
+
+def parameters(kind: str) -> list:
+    """Editable parameters of a transform kind, from core's registry (core.transforms.TRANSFORM_KINDS)."""
+    return list(TRANSFORM_KINDS[kind].parameters) if kind in TRANSFORM_KINDS else []
 
 
 class NumberBox(QDoubleSpinBox):
@@ -71,7 +63,7 @@ class NumberBox(QDoubleSpinBox):
         self.setValue(v + steps * mag / 10.0)
 
 
-KIND_LABELS = {"linear": "linear", "log": "log", "arcsinh": "arcsinh", "logicle": "logicle"}
+KIND_LABELS = {name: kind.label for name, kind in TRANSFORM_KINDS.items()}
 
 
 class ChannelsPanel(QWidget):
@@ -211,15 +203,17 @@ class ChannelsPanel(QWidget):
         while self.form.rowCount() > 1:
             self.form.removeRow(1)
         self._param_boxes = {}
-        for key, label, tip, lo, hi, default in PARAMETERS.get(spec.get("kind", "linear"), []):
+        for p in parameters(spec.get("kind", "linear")):
+            if p.optional and spec.get(p.key) is None:
+                continue   # an optional parameter left out stays out (e.g. log's decades)
             box = NumberBox()
-            box.setRange(lo, hi)
-            box.setValue(float(spec.get(key, default)))
-            box.setToolTip(tip)
+            box.setRange(p.low, p.high)
+            box.setValue(float(spec.get(p.key, p.default if p.default is not None else p.low)))
+            box.setToolTip(p.help)
             box.setKeyboardTracking(False)
             box.valueChanged.connect(self._param_changed)
-            self.form.addRow(label, box)
-            self._param_boxes[key] = box
+            self.form.addRow(p.label, box)
+            self._param_boxes[p.key] = box
 
     def _kind_changed(self) -> None:
         name = self.current_channel()
@@ -227,11 +221,17 @@ class ChannelsPanel(QWidget):
             return
         kind = self.kind.currentData()
         spec = {"kind": kind}
-        for key, _l, _t, _lo, _hi, default in PARAMETERS[kind]:
-            spec[key] = default
-        if kind == "logicle":
-            row = self._names.index(name)
-            spec["T"] = float(self._range_of(row) or spec["T"])
+        row = self._names.index(name)
+        for p in parameters(kind):
+            if p.key == "T":   # the top of scale defaults to the channel's range ($PnR)
+                spec["T"] = float(self._range_of(row) or 262144.0)
+            elif p.key == "W":  # logicle's linear width from the channel's negative values
+                from core.transforms import DEFAULT_M, logicle_auto_w
+
+                values = self._values(name) if self._values is not None else None
+                spec["W"] = logicle_auto_w(values, spec["T"], DEFAULT_M) if values is not None else 0.0
+            elif p.default is not None:
+                spec[p.key] = p.default
         self._specs[name] = spec
         self._build_params(spec)
         self._spec_edited(name)

@@ -16,7 +16,7 @@ from PySide6.QtWidgets import (QAbstractItemView, QHBoxLayout, QHeaderView, QLab
                                QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget)
 
 KIND_WORDS = {"rectangle": "rectangle", "polygon": "polygon", "interval": "interval",
-              "rarity": "rarity", "and": "all of", "or": "any of", "not": "not"}
+              "rarity": "rarity", "enriched": "new vs control", "and": "all of", "or": "any of", "not": "not"}
 
 
 class SelectionsPanel(QWidget):

@@ -59,7 +59,7 @@ def _cases(args):
         seen.add(digest)
         order = np.random.default_rng(0).permutation(M.shape[0])
         half = M.shape[0] // 2
-        yield os.path.basename(rel), M[order[:half]], M[order[half:]]
+        yield DB.file_label(path), M[order[:half]], M[order[half:]]
 
 
 def main(argv=None) -> int:

@@ -532,6 +532,15 @@ def fcs_files():
                 yield os.path.relpath(path, root), path
 
 
+def file_label(path):
+    """A bundled file by what it is (FCS version, storage, events, channels), not by its name."""
+    from core.fcs import read_fcs
+
+    ef = read_fcs(path)
+    dt = {"I": "integer", "F": "float", "D": "double"}.get(ef.keywords.get("$DATATYPE", "").strip().upper(), "?")
+    return f"{ef.version.replace('FCS', 'FCS ')} {dt}, {ef.n_events:,} events, {ef.n_channels} ch"
+
+
 def prepare_file(path, seed=0):
     """Read and prepare one file: (matrix events x channels, channel names, how) or None.
 
@@ -617,7 +626,7 @@ def run_files(args, cache, log=print):
         X_train, X_test = M[order[:half]], M[order[half:]]
         key = f"file:{rel}|n={M.shape[0]}|d={M.shape[1]}|seed={args.seed}|{digest}"
         atom, grid = grid_report(M)
-        row = {"case": os.path.basename(rel), "d": M.shape[1], "n": M.shape[0], "dropped": dropped,
+        row = {"case": file_label(path), "d": M.shape[1], "n": M.shape[0], "dropped": dropped,
                "atom": atom, "grid": grid}
         entry = cache["entries"].get(key) if not args.no_cache else None
         if args.only != "ours":
