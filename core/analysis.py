@@ -20,9 +20,14 @@ the batch and :func:`analyse` all call it.
    (:mod:`core.rare`);
 4. evaluates the recipe's regions on the transformed values (not jittered:
    what the plots show) with the rarity;
+4b. finds the populations (modes of the fitted density, :mod:`core.populations`)
+   of the kept events, or counts those of the recipe's stored definition
+   (``Analysis.populations``, ``population_labels``);
 5. with a ``control`` file, contrasts the file with it (:mod:`core.contrast`:
    conformal p-values, Benjamini-Hochberg q-values, enriched events at the
-   recipe's ``comparison`` rate and minimum fold, the whole-sample shift check).
+   recipe's ``comparison`` rate and minimum fold, the whole-sample shift check)
+   and counts one set of populations in both (grown and shrunk populations,
+   ``Analysis.population_changes``).
    :func:`prepare_control_file` fits the control's part once
    (:class:`core.contrast.PreparedControl`); passing that as ``control``
    contrasts many files with one control without refitting it (the batch
@@ -286,6 +291,10 @@ class Analysis:
     contrast: Any = None          # core.contrast.ContrastResult over kept events, or None
     enriched: np.ndarray | None = None         # (n_events,) bool when contrasted
     contrast_score: np.ndarray | None = None   # (n_events,) NaN for removed events
+    populations: Any = None       # core.populations.Populations over kept events, or None
+    population_labels: np.ndarray | None = None   # (n_events,) int, -1 none / removed
+    population_changes: list | None = None     # grown/shrunk table with a control (core.populations)
+    control_populations: Any = None            # populations counted on the control's events
     contrast_p: np.ndarray | None = None       # (n_events,) conformal p-value; NaN for removed events
     contrast_q: np.ndarray | None = None       # (n_events,) Benjamini-Hochberg q-value; NaN for removed
     info: dict = field(default_factory=dict)
@@ -335,7 +344,9 @@ class Analysis:
         (``core.prepare.CLEANING_FLAGS``: 0 kept, 1 saturated, 2 non-finite,
         3 floor pile, 4 ceiling pile).  With a control: ``contrast score``
         (nats; 0 for removed events), ``contrast p`` and ``contrast q``
-        (1 for removed events) and ``enriched`` (0/1).
+        (1 for removed events) and ``enriched`` (0/1).  ``population``: the
+        event's population number as users see it (id + 1; 0 for none or
+        removed) when populations were found.
         """
         from .prepare import CLEANING_FLAGS
 
@@ -347,6 +358,8 @@ class Analysis:
         cols = {"log density": np.where(kept, self.log_density, 0.0),
                 "rarity percentile": np.where(kept, self.rarity, -1.0),
                 "cleaning flag": flag}
+        if self.population_labels is not None:
+            cols["population"] = self.population_labels.astype(float) + 1.0   # 1, 2, ...; 0 none
         if self.contrast_score is not None:
             cols["contrast score"] = np.where(np.isfinite(self.contrast_score), self.contrast_score, 0.0)
             if self.contrast_p is not None:
@@ -360,7 +373,7 @@ class Analysis:
 
         Columns: ``event`` (0-based index in the file), every channel's
         transformed value, ``log density``, ``rarity percentile``, ``rare``,
-        ``reason``, one bool column per region (``region: NAME``) and, when
+        ``reason``, ``population`` (id, -1 none), one bool column per region (``region: NAME``) and, when
         contrasted, ``contrast score``, ``contrast p``, ``contrast q`` and ``enriched``.
         """
         import pandas as pd
@@ -372,6 +385,8 @@ class Analysis:
         cols["rarity percentile"] = self.rarity
         cols["rare"] = self.rare
         cols["reason"] = self.reason
+        if self.population_labels is not None:
+            cols["population"] = self.population_labels
         for name, m in self.region_masks.items():
             cols[f"region: {name}"] = m
         if self.contrast_score is not None:
@@ -381,6 +396,78 @@ class Analysis:
                 cols["contrast q"] = self.contrast_q
             cols["enriched"] = self.enriched
         return pd.DataFrame(cols)
+
+
+def _channel_labels(event_file: Any, channels: list) -> list:
+    names = list(event_file.channel_names)
+    labels = list(getattr(event_file, "channel_labels", None) or [""] * len(names))
+    return [labels[names.index(c)] for c in channels]
+
+
+def _populations_stage(event_file, recipe, model, prepared, log_density, progress):
+    """Populations of the kept events (:mod:`core.populations`): counted with the
+    recipe's stored definition when it has one, else found on the fitted model.
+    Returns (Populations, labels (n_events,) with -1 for removed events)."""
+    from .populations import count_populations, find_populations
+
+    settings = dict(_get(recipe, "populations", None) or {})
+    chans = list(_get(recipe, "channels"))
+    labels = _channel_labels(event_file, chans)
+    transforms = _get(recipe, "transforms", None) or {}
+    stored = settings.pop("definition", None)
+    if stored is not None:
+        pops = count_populations(stored, prepared.matrix, chans, labels, transforms, settings)
+    else:
+        pops = find_populations(model, prepared.matrix, chans, labels, transforms, settings,
+                                log_density=log_density[prepared.kept], progress=progress)
+    full = np.full(prepared.kept.shape[0], -1, dtype=np.int64)
+    full[prepared.kept] = pops.labels
+    return pops, full
+
+
+def _population_change_stage(result, event_file, recipe, res, control) -> None:
+    """Grown and shrunk populations: ONE definition (the recipe's stored one, else
+    found on the control's model and events) counted in the control and in the
+    test file; :func:`core.populations.population_changes`.  ``control`` is the
+    control's prepared matrix or a PreparedControl (its ``events``; the
+    definition found is kept on it as ``populations_definition`` for the next
+    file).  The control's model is its first part model (the contrast fits K
+    part models of the control, each without one part of its events)."""
+    from .populations import (PopulationDefinition, assign_populations, count_populations,
+                              find_populations, population_changes)
+
+    settings = dict(_get(recipe, "populations", None) or {})
+    chans = list(_get(recipe, "channels"))
+    labels = _channel_labels(event_file, chans)
+    transforms = _get(recipe, "transforms", None) or {}
+    stored = settings.pop("definition", None)
+    c_events = control if isinstance(control, np.ndarray) else getattr(control, "events", None)
+    c_model = getattr(control, "models", None) if not isinstance(control, np.ndarray) else None
+    if c_model is None:
+        c_model = getattr(res, "control_model", None)
+    if isinstance(c_model, (list, tuple)):
+        c_model = c_model[0] if c_model else None
+    if c_events is None or (stored is None and c_model is None):
+        return
+    cached = None if isinstance(control, np.ndarray) else getattr(control, "populations_definition", None)
+    if stored is not None:
+        definition = PopulationDefinition.from_dict(stored)
+    elif cached is not None:
+        definition = cached
+    else:
+        definition = find_populations(c_model, c_events, chans, labels, transforms, settings).definition
+        if not isinstance(control, np.ndarray):
+            try:   # found once per prepared control, reused for every file contrasted with it
+                control.populations_definition = definition
+            except AttributeError:
+                pass
+    result.control_populations = count_populations(definition, c_events, chans, labels, transforms, settings)
+    test_labels = assign_populations(definition, result.prepared.matrix)
+    result.population_changes = population_changes(result.control_populations.labels, test_labels, definition)
+    short = {r["id"]: r["short_profile"] for r in result.control_populations.table}
+    for row in result.population_changes:
+        row["profile"] = definition.names[row["id"]]
+        row["short_profile"] = short[row["id"]]
 
 
 def _as_event_file(obj: Any):
@@ -491,6 +578,18 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
                            random_state=engine["random_state"])
     timing["score"] = time.perf_counter() - t2
 
+    t_pop = time.perf_counter()
+    populations = population_labels = None
+    if not stopped:
+        from .errors import Cancelled
+
+        try:
+            populations, population_labels = _populations_stage(event_file, recipe, model, prepared,
+                                                                log_density, relay)
+        except Cancelled:
+            pass   # stopped while finding populations: the rest of the analysis stands
+    timing["populations"] = time.perf_counter() - t_pop
+
     t3 = time.perf_counter()
     region_dicts = _get(recipe, "regions", None) or []
     masks: dict = {}
@@ -512,7 +611,8 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
                       model=model, log_density=log_density, rarity=rarity, rare=rare_res.mask,
                       rare_level=rare_res.log_level, reason=np.asarray(prepared.reason).astype(str),
                       region_masks=masks, heldout_loglik=float(getattr(model, "heldout_loglik_", np.nan)),
-                      timing=timing, recipe=recipe, cancelled=bool(stopped), atoms=atoms)
+                      timing=timing, recipe=recipe, cancelled=bool(stopped), atoms=atoms,
+                      populations=populations, population_labels=population_labels)
     if regions is not None and control is None and regions.depending_on("enriched"):
         result.info["regions_without_control"] = regions.depending_on("enriched")
 
@@ -545,5 +645,8 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
         if regions is not None and regions.depending_on("enriched"):
             result.region_masks = regions.evaluate(by_channel, rarity, n_events=n, enriched=result.enriched)
         timing["contrast"] = time.perf_counter() - t4
+        t5 = time.perf_counter()
+        _population_change_stage(result, event_file, recipe, res, pc if pc is not None else c_matrix)
+        timing["population changes"] = time.perf_counter() - t5
     timing["total"] = time.perf_counter() - t0
     return result

@@ -22,6 +22,9 @@ the recipe's regions; then, in ``OUT_DIR/<file stem>/`` (see :func:`output_folde
   against it (columns ``contrast score``, ``contrast p``, ``contrast q``;
   keywords naming the control, the false discovery rate and any shift
   warning: :func:`export_enriched`), with ``--csv`` also as CSV;
+* ``<stem> rare population <number>.fcs`` -- the events of each rare population
+  (:mod:`core.populations`), with the added ``population`` column (population
+  numbers as the app shows them: id + 1; 0 for none);
 * ``done.json`` -- the file's summary row, the recipe digest (extended by the
   contents of a spillover CSV the recipe names: :func:`inputs_digest`) and the
   input file's size and modification time (and the control file's path, size
@@ -47,8 +50,10 @@ software version match; otherwise, with ``--force``, or when the folder is
 damaged, it is rebuilt.  If the control cannot be prepared (unreadable,
 missing channels) every file to do gets status ``error`` with the reason.
 
-``OUT_DIR`` also gets ``summary.csv`` (one row per input file: file, events,
-events_kept, set_aside_<reason> per cleaning reason, atoms, rare_events, rare_percent, ``region:<name>``
+``OUT_DIR`` also gets ``populations.csv`` (one row per input file and
+population, :func:`write_population_tables`), with a control ``population
+changes.csv`` (grown and shrunk populations), and ``summary.csv`` (one row per input file: file, events,
+events_kept, set_aside_<reason> per cleaning reason, atoms, rare_events, rare_percent, rare_populations, ``region:<name>``
 counts, with a control the :data:`ENRICHED_COLUMNS` (enriched count, percent and 95 % interval,
 expected false discoveries, rate, minimum fold, shift warning), heldout_loglik, seconds, status
 ``ok``/``error``/``cancelled``,
@@ -123,6 +128,10 @@ def _safe_name(text: str) -> str:
 OUT_MARK = ".boscage-batch"
 #: Names the batch writes directly in OUT_DIR: no input's folder may take one.
 RESERVED_NAMES = (SUMMARY_NAME, "README.txt", "recipe.json", DONE_NAME, ".prepared-control", OUT_MARK)
+#: The population tables (:func:`write_population_tables`), written beside the summary.
+POPULATIONS_NAME = "populations.csv"
+POPULATION_CHANGES_NAME = "population changes.csv"
+RESERVED_NAMES = RESERVED_NAMES + (POPULATIONS_NAME, POPULATION_CHANGES_NAME)
 
 
 def output_folder_names(paths: Sequence[str]) -> dict:
@@ -220,6 +229,7 @@ def process_file(task: dict) -> dict:
             row[f"region:{name}"] = int(mask.sum())
         if an.contrast is not None:
             row.update(enriched_summary(an.contrast))
+        _population_outputs(an, ef, folder, stem, extra, task["digest"], row)
         row["status"] = "ok"
         row["seconds"] = round(time.perf_counter() - t0, 3)
         with atomic_write(os.path.join(folder, DONE_NAME), "w", overwrite=True, encoding="utf-8") as fh:
@@ -242,6 +252,57 @@ def process_file(task: dict) -> dict:
     return row
 
 
+POPULATION_COLUMNS = ["file", "population", "profile", "count", "share_percent", "share_low_percent",
+                      "share_high_percent", "rare", "caution", "matched"]
+CHANGE_COLUMNS = ["file", "control", "population", "profile", "control_count", "control_percent",
+                  "test_count", "test_percent", "fold", "fold_low", "fold_high", "p", "q", "change"]
+
+
+def _population_outputs(an: Any, ef: Any, folder: str, stem: str, extra: dict, digest: str, row: dict) -> None:
+    """Per-population rows into ``row`` (for populations.csv and, with a control,
+    the population changes table) and one FCS file per rare population, holding
+    its events with the ``population`` column."""
+    from .export import export_events_fcs
+
+    pops = getattr(an, "populations", None)
+    if pops is None:
+        return
+    matched = "yes" if pops.info.get("matched") else "no"
+    row["populations"] = [{"population": r["id"] + 1, "profile": r["profile"], "count": r["count"],
+                           "share_percent": round(100 * r["share"], 4),
+                           "share_low_percent": round(100 * r["share_low"], 4),
+                           "share_high_percent": round(100 * r["share_high"], 4),
+                           "rare": "yes" if r["rare"] else "", "caution": "few events" if r["caution"] else "",
+                           "matched": matched} for r in pops.table]
+    row["rare_populations"] = sum(1 for r in pops.table if r["rare"])
+    for r in pops.table:
+        if r["rare"] and r["count"]:
+            export_events_fcs(os.path.join(folder, f"{stem} rare population {r['id'] + 1}.fcs"), ef,
+                              an.population_labels == r["id"], extra, digest, overwrite=True)
+    if getattr(an, "population_changes", None):
+        row["population_changes"] = [
+            {"population": c["id"] + 1, "profile": c.get("profile", ""), "control_count": c["control_count"],
+             "control_percent": round(100 * c["control_share"], 4), "test_count": c["test_count"],
+             "test_percent": round(100 * c["test_share"], 4), "fold": round(c["fold"], 4),
+             "fold_low": round(c["fold_low"], 4), "fold_high": round(c["fold_high"], 4),
+             "p": float(f"{c['p']:.4g}"), "q": float(f"{c['q']:.4g}"), "change": c["change"]}
+            for c in an.population_changes]
+
+
+def write_population_tables(out_dir: str, rows: list, control: str | None) -> list[str]:
+    """``populations.csv`` (one row per file and population) and, with a control,
+    ``population changes.csv`` (one row per file and control population); atomic."""
+    written = []
+    tables = [(POPULATIONS_NAME, POPULATION_COLUMNS, "populations", {})]
+    if control:
+        tables.append((POPULATION_CHANGES_NAME, CHANGE_COLUMNS, "population_changes",
+                       {"control": os.path.basename(control)}))
+    for name, columns, key, fixed in tables:
+        lines = [dict(r, file=row["file"], **fixed) for row in rows for r in (row.get(key) or [])]
+        path = os.path.join(out_dir, name)
+        write_summary(path, lines, columns)
+        written.append(path)
+    return written
 #: summary.csv columns of a batch with a control (see :func:`enriched_summary`).
 ENRICHED_COLUMNS = ["enriched", "enriched_percent", "enriched_ci_low_percent", "enriched_ci_high_percent",
                     "expected_false", "false_discovery_rate", "min_fold", "shift_warning"]
@@ -686,7 +747,7 @@ def _cleanup_partial(out_dir: str) -> None:
 def _summary_columns(rows: list, recipe: Any, control: bool) -> list[str]:
     regions = [f"region:{r.get('name')}" for r in (getattr(recipe, "regions", None) or [])]
     extra = [k for row in rows for k in row if k.startswith("region:") and k not in regions]
-    cols = BASE_COLUMNS + regions + sorted(set(extra))
+    cols = BASE_COLUMNS + ["rare_populations"] + regions + sorted(set(extra))
     if control:
         cols += ENRICHED_COLUMNS
     return cols + TAIL_COLUMNS
@@ -723,7 +784,15 @@ summary.csv     one row per input file: events, events kept after cleaning,
                 (empty when none); held-out
                 log-likelihood of the density fit (nats per event), seconds,
                 status (ok / error / cancelled) and the reason of an error.
-<stem>/         per input file: '<stem> rare.fcs' (the rare events) and
+populations.csv one row per input file and population (modes of the fitted
+                density): profile, count, share with its 95 % interval, rare
+                (share below the recipe's rare_share), caution (few events),
+                matched (counted with the recipe's stored populations).
+population changes.csv  with a control: one row per file and population of
+                the control, counted in both: shares, fold with its 95 %
+                interval, exact test p, Benjamini-Hochberg q, grown/shrunk.
+<stem>/         per input file: '<stem> rare population <number>.fcs' per rare
+                population (with a 'population' column), '<stem> rare.fcs' (the rare events) and
                 '<stem> region <name>.fcs' per region, with the ORIGINAL raw
                 values plus the parameters 'log density', 'rarity percentile'
                 and 'cleaning flag' (0 kept, 1 saturated, 2 non-finite,
@@ -925,6 +994,7 @@ def _run_batch(input_dir, out_dir, recipe, control, workers, scheduler, force, p
                                        "message": "stopped before this file finished"})
     summary_path = os.path.join(out_dir, SUMMARY_NAME)
     write_summary(summary_path, ordered, _summary_columns(ordered, recipe_obj, control is not None))
+    write_population_tables(out_dir, ordered, control)
     return BatchResult(rows=ordered, out_dir=out_dir, summary_path=summary_path, recipe=recipe_obj,
                        n_skipped=n_skipped, interrupted=interrupted, seconds=time.perf_counter() - t_start,
                        info={"workers": workers, "numba_threads": threads, "scheduler": scheduler,

@@ -14,6 +14,7 @@ colleague.  Stored form (schema version 1)::
       "engine": {"random_state": 0},                   # AdditiveTreeDensity keyword arguments
       "rare": {"rule": "share", "share": 0.005},       # or {"rule": "mass", "mass": 0.995}
       "regions": [ ...region dicts, see core.regions... ],
+      "populations": {"rare_share": 0.01, "definition": {...}},   # optional, see core.populations
       "comparison": {"rate": 0.05, "min_fold": 2.0},    # contrast with a control (core.contrast)
       "software": "Boscage 0.1.0"                      # written on save, informational
     }
@@ -41,6 +42,10 @@ Meaning of the entries:
   whose outside counts as rare (0.995 = 99.5 %).
 * ``regions``: regions in transformed channel units with the transform of
   each channel recorded (see :mod:`core.regions`).
+* ``populations``: settings of the population search (:mod:`core.populations`:
+  ``rare_share``, ``merge_ratio``, ...) and, once kept, the ``definition`` of
+  the populations found, so every file of the recipe is counted with the same
+  populations.
 * ``comparison``: how a file is contrasted with a control (:mod:`core.contrast`):
   ``rate`` is the false discovery rate of the enriched events (0.05 = 5 %,
   strictly between 0 and 1), ``min_fold`` the smallest density ratio
@@ -85,7 +90,7 @@ DEFAULT_COMPARISON = {"rate": 0.05, "min_fold": 2.0}
 MAX_PILE_SHARE = 0.25
 
 _FIELDS = ("schema_version", "name", "notes", "channels", "compensation", "transforms",
-           "cleaning", "engine", "rare", "regions", "comparison")
+           "cleaning", "engine", "rare", "regions", "comparison", "populations")
 _INFORMATIONAL = ("software",)
 
 
@@ -110,6 +115,7 @@ class Recipe:
     engine: dict = field(default_factory=dict)
     rare: dict = field(default_factory=lambda: dict(DEFAULT_RARE))
     regions: list = field(default_factory=list)
+    populations: dict = field(default_factory=dict)
     comparison: dict = field(default_factory=lambda: dict(DEFAULT_COMPARISON))
     name: str = ""
     notes: str = ""
@@ -117,8 +123,8 @@ class Recipe:
     source: str | None = field(default=None, compare=False, repr=False)
 
     def to_dict(self) -> dict:
-        """The stored form: a JSON-able dict (deep copy)."""
-        return {k: copy.deepcopy(getattr(self, k)) for k in _FIELDS}
+        """The stored form: a JSON-able dict (deep copy); an empty ``populations`` is left out."""
+        return {k: copy.deepcopy(getattr(self, k)) for k in _FIELDS if k != "populations" or self.populations}
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any], source: str | os.PathLike | None = None) -> "Recipe":
@@ -330,6 +336,29 @@ def _normalise(d: Mapping[str, Any], source: str | None) -> dict:
         raise RecipeError(f"{where}{exc}") from exc
     out["regions"] = rset.to_dict()
     out["comparison"] = _check_comparison(d.get("comparison", DEFAULT_COMPARISON), where)
+    out["populations"] = _normalise_populations(d.get("populations", {}), out["channels"], where)
+    return out
+
+
+def _normalise_populations(pops: Any, channels: list, where: str) -> dict:
+    """The recipe's ``populations`` entry: settings of :mod:`core.populations`
+    (only those given are kept) and an optional stored ``definition``."""
+    from .populations import PopulationDefinition, check_settings
+
+    if not isinstance(pops, Mapping):
+        raise RecipeError(f"{where}'populations' must be an object like {{\"rare_share\": 0.01}}; "
+                          f"got {_typename(pops)}")
+    check_settings(pops, where)
+    out = {k: v for k, v in pops.items() if k != "definition"}
+    if pops.get("definition") is not None:
+        try:
+            definition = PopulationDefinition.from_dict(pops["definition"])
+        except RecipeError as exc:
+            raise RecipeError(f"{where}{exc}") from exc
+        if list(definition.channels) != list(channels):
+            raise RecipeError(f"{where}the stored populations were found on channels "
+                              f"{', '.join(definition.channels)}, not the recipe's {', '.join(channels)}")
+        out["definition"] = definition.to_dict()
     return out
 
 

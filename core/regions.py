@@ -15,6 +15,13 @@ Kinds (``kind`` in the stored dict):
     ``percentile`` p in [0, 100]: the events whose rarity percentile is <= p,
     i.e. the rarest p % (see :func:`core.rare.rarity_percentile`; removed
     events have NaN rarity and are never inside).
+``population``
+    ``population`` (an id) of a stored population ``definition``
+    (:class:`core.populations.PopulationDefinition`, over its density
+    channels): the events the definition assigns to that population
+    (:func:`core.populations.assign_populations` on the transformed values;
+    removed events, NaN rarity, are outside when rarity is given).
+    ``transforms`` records each density channel's transform spec.
 ``enriched``
     the events found enriched over a control (:mod:`core.contrast`: new
     events at the recipe's false discovery rate); optional ``control``
@@ -56,6 +63,7 @@ from .errors import RegionError
 GEOMETRIC_KINDS = ("rectangle", "polygon", "interval")
 COMBINATION_KINDS = ("and", "or", "not")
 KINDS = GEOMETRIC_KINDS + ("rarity", "enriched") + COMBINATION_KINDS
+KINDS = KINDS + ("population",)
 
 _COMMON_KEYS = {"name", "kind", "parent"}
 _KEYS = {
@@ -63,6 +71,7 @@ _KEYS = {
     "polygon": _COMMON_KEYS | {"channels", "vertices", "transforms"},
     "interval": _COMMON_KEYS | {"channels", "low", "high", "transforms"},
     "rarity": _COMMON_KEYS | {"percentile"},
+    "population": _COMMON_KEYS | {"population", "definition", "transforms"},
     "enriched": _COMMON_KEYS | {"control"},
     "and": _COMMON_KEYS | {"operands"},
     "or": _COMMON_KEYS | {"operands"},
@@ -448,6 +457,58 @@ class CombinationRegion(Region):
         return d
 
 
+@dataclass(frozen=True)
+class PopulationRegion(Region):
+    """The events a stored population definition assigns to population ``population``."""
+
+    population: int = 0
+    definition: Mapping[str, Any] = field(default_factory=dict)
+    transforms: Mapping[str, Any] = field(default_factory=dict)
+
+    kind = "population"
+
+    def __post_init__(self):
+        from .errors import RecipeError
+        from .populations import PopulationDefinition
+
+        self._check_common()
+        try:
+            pd = PopulationDefinition.from_dict(self.definition)
+        except RecipeError as exc:
+            raise RegionError(f"region {self.name!r}: {exc}") from exc
+        p = self.population
+        if isinstance(p, bool) or not isinstance(p, (int, np.integer)) or not 0 <= int(p) < pd.n_populations:
+            raise RegionError(f"region {self.name!r}: population must be an id from 0 to "
+                              f"{pd.n_populations - 1}; got {p!r}")
+        if not isinstance(self.transforms, Mapping) or set(self.transforms) != set(pd.channels):
+            raise RegionError(f"region {self.name!r}: the transforms of channels {', '.join(pd.channels)} "
+                              "must be recorded")
+        object.__setattr__(self, "population", int(p))
+        object.__setattr__(self, "definition", pd.to_dict())
+        object.__setattr__(self, "transforms", {c: (None if s is None else dict(s))
+                                                for c, s in self.transforms.items()})
+        object.__setattr__(self, "_pd", pd)
+
+    def channels_used(self) -> tuple[str, ...]:
+        return tuple(self._pd.channels)
+
+    def own_mask(self, values, rarity, masks, n):
+        from .populations import assign_populations
+
+        X = np.column_stack([_channel_values(values, c, self.name, n) for c in self._pd.channels])
+        m = assign_populations(self._pd, X) == self.population
+        if rarity is not None:
+            m &= np.isfinite(np.asarray(rarity, dtype=np.float64).ravel())
+        return m
+
+    def to_dict(self):
+        d = self._base_dict()
+        d["population"] = self.population
+        d["transforms"] = {c: (None if s is None else dict(s)) for c, s in self.transforms.items()}
+        d["definition"] = self._pd.to_dict()
+        return d
+
+
 def region_from_dict(d: Mapping[str, Any]) -> Region:
     """Build one region from its stored dict (see the module docstring); RegionError if invalid."""
     if not isinstance(d, Mapping):
@@ -472,6 +533,9 @@ def region_from_dict(d: Mapping[str, Any]) -> Region:
         return IntervalRegion(low=d.get("low"), high=d.get("high"), **common)
     if kind == "rarity":
         return RarityRegion(percentile=d.get("percentile"), **common)
+    if kind == "population":
+        return PopulationRegion(population=d.get("population"), definition=d.get("definition") or {},
+                                transforms=d.get("transforms") or {}, **common)
     if kind == "enriched":
         return EnrichedRegion(control=d.get("control"), **common)
     return CombinationRegion(operator=kind, operands=d.get("operands"), **common)
@@ -654,9 +718,9 @@ class RegionSet:
         """
         problems = []
         for r in self._regions.values():
-            if not isinstance(r, _GeometricRegion):
+            if not isinstance(r, (_GeometricRegion, PopulationRegion)):
                 continue
-            for c in r.channels:
+            for c in r.channels_used():
                 drawn = r.transforms.get(c)
                 now = recipe_transforms.get(c) if recipe_transforms else None
                 if _spec_key(drawn) != _spec_key(now):

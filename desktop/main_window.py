@@ -203,6 +203,8 @@ class MainWindow(QMainWindow):
 
         self._make_actions()
         self._connect()
+        from desktop.panels.populations import attach as attach_populations
+        self.populations_panel = attach_populations(self)
         self.rarity_bar.set_share(0.005, emit=False)
         self._drag_timer = QTimer(self)
         self._drag_timer.setSingleShot(True)

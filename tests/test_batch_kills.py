@@ -275,4 +275,4 @@ def test_names_that_cannot_be_made_distinct_are_reported_per_file(tmp_path, monk
     assert status == {"a:b.fcs": "error", "a;b.fcs": "error", "plain.fcs": "ok"}
     assert all("rename the file" in r["message"] for r in res.rows if r["status"] == "error")
     assert sorted(os.listdir(out)) == sorted([".boscage-batch", "README.txt", "plain", "recipe.json",
-                                              SUMMARY_NAME])
+                                              SUMMARY_NAME, "populations.csv"])
