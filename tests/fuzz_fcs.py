@@ -176,14 +176,19 @@ def run_cases(n_cases: int, seed: int, scratch: str, limit: float = 5.0, max_see
 
     rng = random.Random(seed)
     seeds = [p for p in seed_files() if max_seed_bytes is None or os.path.getsize(p) <= max_seed_bytes]
-    raws, refs = [], []
+    raws, refs, described = [], [], []
     for p in seeds:
         with open(p, "rb") as fh:
             raws.append(fh.read())
         try:
-            refs.append(read_fcs(p).data)
+            ef = read_fcs(p)
+            refs.append(ef.data)
+            # seeds are named by what they are (some file names carry makers' names)
+            described.append(f"{ef.version} {ef.keywords.get('$DATATYPE', '?')} "
+                             f"{ef.n_events}x{ef.n_channels}")
         except FcsFileError:
             refs.append(None)
+            described.append(f"unreadable seed of {len(raws[-1])} bytes")
     counts = {"read": 0, "error": 0, "foreign": 0, "hang": 0, "shift": 0}
     examples: dict = {}
     slowest = 0.0
@@ -198,7 +203,7 @@ def run_cases(n_cases: int, seed: int, scratch: str, limit: float = 5.0, max_see
         counts[outcome] += 1
         slowest = max(slowest, seconds)
         if outcome not in ("read", "error"):
-            examples.setdefault(outcome, []).append((os.path.basename(seeds[k]), kind, detail))
+            examples.setdefault(outcome, []).append((described[k], kind, detail))
         if on_case is not None:
             on_case(case, outcome)
     return {"counts": counts, "slowest": slowest, "examples": examples, "n_seeds": len(seeds)}

@@ -85,7 +85,11 @@ U_CLIP = 1e-15
 #: Smallest weight of the broad background component.
 MIN_BACKGROUND = 1e-4
 #: Component counts tried in turn (held-out log-likelihood picks one).
-DEFAULT_COMPONENTS = (1, 2, 4, 8, 16, 32)
+DEFAULT_COMPONENTS = (1, 2, 4, 8, 16, 32, 64)
+#: From this count on, a doubled count always starts from the split of the
+#: previous mixture, even a split one (a fresh k-means++ start costs more
+#: EM iterations there and was no better: EXPERIMENTS.md section 22).
+SPLIT_SPLIT_FROM = 64
 _Z_MAX = 1e100
 #: Largest |skew| of a component's sinh-arcsinh transform.
 MAX_SKEW = 2.0
@@ -252,14 +256,20 @@ class GaussianMixtureBase:
         component split in two along its principal axis (1, 4, 16 start from
         k-means++, 2, 8, 32 from the split): better and faster than a fresh
         start, while splitting a split compounds poor starts (EXPERIMENTS.md
-        section 17).  EM stops
+        section 17); from ``SPLIT_SPLIT_FROM`` (64) on a count starts from the
+        split of the previous one whichever way that one started.  EM stops
         when the training mean log-likelihood rises by less than ``tol`` nats
         per event (or after ``max_iter`` steps).  ``n_init`` seeded
         k-means++ restarts per count (best training log-likelihood kept).
         Covariances get ``1e-6 x`` the channel variance added on the diagonal
         (floor).  With ``skew``, the chosen mixture is then refitted with a
         sinh-arcsinh transform per component and channel (:func:`_skew_em`),
-        kept only if it beats it on the held-out events by ``min_gain``.
+        kept only if it beats it on the held-out events by ``min_gain``; when
+        the chosen count is ``SPLIT_SPLIT_FROM`` (64) or more, the count before
+        it is refitted with skewed components too and the larger skewed
+        mixture is the candidate only when it beats the smaller clearly
+        (:func:`_clearly_better`; counts from 64 on must also beat the one
+        before by ``COUNT_SE`` standard errors of the held-out difference).
         With ``flat_background`` the background component is a flat top with
         soft edges per channel (:func:`_initial_flat_background`), whose
         edges and softness the skewed-component fit also updates
@@ -290,7 +300,7 @@ class GaussianMixtureBase:
         reg = 1e-6 * np.where(var > 0, var, scale ** 2)
         bgr = _initial_flat_background(X) if flat_background else None
         bg = _background_logpdf(X, loc, scale, bgr)
-        best, best_ll = None, -np.inf
+        best, best_ll, best_scores, runner_up = None, -np.inf, None, None
         prev_fit, prev_fresh = None, False
         stopped = [False]
         for step, k in enumerate(components):
@@ -306,7 +316,8 @@ class GaussianMixtureBase:
                 break
             fit_k = None
             parent = None  # split a k-means++-started mixture, never a split one
-            if prev_fit is not None and prev_fresh and k == 2 * prev_fit[2].shape[0]:
+            if prev_fit is not None and (prev_fresh or k >= SPLIT_SPLIT_FROM) \
+                    and k == 2 * prev_fit[2].shape[0]:
                 parent = _split_components(prev_fit[1], prev_fit[2], prev_fit[3])
             for attempt in range(max(1, int(n_init))):
                 split_start = parent is not None and attempt == 0
@@ -323,25 +334,57 @@ class GaussianMixtureBase:
             prev_fit, prev_fresh = fit_k, fit_fresh
             _, w, mu, cov = fit_k
             model = cls(w, mu, cov, loc, scale, background=bgr)
-            ll = float(model.logpdf(Xva).mean())
-            if best is not None and ll <= best_ll + min_gain:
+            scores = model.logpdf(Xva)
+            ll = float(scores.mean())
+            if best is not None and not _clearly_better(scores, best_scores, min_gain, k >= SPLIT_SPLIT_FROM):
                 break
-            best, best_ll = model, ll
+            runner_up = best
+            best, best_ll, best_scores = model, ll, scores
             if stopped[0]:
                 break
         if skew and not stopped[0] and best.n_components:
-            stage = {"stage": f"Fitting the mixture base: skewed components ({best.n_components})"}
+            # from SPLIT_SPLIT_FROM components on, the Gaussian count's gain may be
+            # skew that fewer skewed components capture better: skew both, keep the
+            # better on the held-out events (EXPERIMENTS.md section 22)
+            starts = [best]
+            if best.n_components >= SPLIT_SPLIT_FROM and runner_up is not None and runner_up.n_components:
+                starts.append(runner_up)
+            fits = []
+            for start in starts:
+                stage = {"stage": f"Fitting the mixture base: skewed components ({start.n_components})"}
 
-            def going_skew(stage=stage):
-                stopped[0] = stopped[0] or not keep_going(progress, len(components) - 1, len(components), stage)
-                return not stopped[0]
+                def going_skew(stage=stage):
+                    stopped[0] = stopped[0] or not keep_going(progress, len(components) - 1, len(components), stage)
+                    return not stopped[0]
 
-            if going_skew():
-                skewed = _skew_em(X, best, reg, max_iter, tol, going_skew)
-                if skewed is not None and float(skewed.logpdf(Xva).mean()) > best_ll + min_gain:
-                    best = skewed
+                if not going_skew():
+                    break
+                skewed = _skew_em(X, start, reg, max_iter, tol, going_skew)
+                if skewed is not None:
+                    fits.append((skewed, skewed.logpdf(Xva)))
+            if len(fits) == 2 and not _clearly_better(fits[0][1], fits[1][1], min_gain, True):
+                fits = fits[1:]   # the larger count must beat the smaller clearly
+            if fits and float(fits[0][1].mean()) > best_ll + min_gain:
+                best = fits[0][0]
         best.cancelled = stopped[0]
         return best
+
+
+#: From ``SPLIT_SPLIT_FROM`` components on, a larger count must beat the
+#: smaller by this many standard errors of the paired held-out difference.
+COUNT_SE = 2.0
+
+
+def _clearly_better(new, old, min_gain, strict):
+    """True when per-event held-out log densities ``new`` (m,) beat ``old`` (m,) by
+    more than ``min_gain`` nats per event on average; with ``strict`` also by more
+    than ``COUNT_SE`` standard errors of the paired difference (a count with many
+    parameters per held-out event can win on noise: EXPERIMENTS.md section 22)."""
+    diff = new - old
+    gain = float(diff.mean())
+    if strict and diff.size > 1:
+        return gain > max(min_gain, COUNT_SE * float(diff.std(ddof=1)) / math.sqrt(diff.size))
+    return gain > min_gain
 
 
 def _flat_top_log_norm(a, b, soft):
@@ -508,10 +551,11 @@ def _em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going):
     ll = -np.inf
     X = np.ascontiguousarray(X)
     bg = np.ascontiguousarray(bg)
+    hint = np.zeros(n, np.int64)
     for _ in range(max_iter):
         chol = np.ascontiguousarray(np.linalg.cholesky(cov))
         log_det = np.log(np.diagonal(chol, axis1=1, axis2=2)).sum(axis=1)
-        total, N, S, M = kernels.em_stats(X, bg, np.log(w), np.ascontiguousarray(mu), chol, log_det)
+        total, N, S, M = kernels.em_stats(X, bg, np.log(w), np.ascontiguousarray(mu), chol, log_det, hint=hint)
         ll = total / n
         # M step (moments were taken about the current means)
         Nk = N + 1e-12
@@ -567,10 +611,14 @@ def _component_shape(T, rs, eps, reg):
     B = np.zeros((2 * d, d))
     B[diag, diag] = np.cosh(eps)
     B[d + diag, diag] = -np.sinh(eps)
+    # every channel's weighted histogram in one pass (bin j * nb + b)
+    flat = (idx + nb * diag[None, :]).ravel()
+    HW = np.bincount(flat, weights=np.repeat(rs, d), minlength=nb * d).reshape(d, nb)
+    HU = np.bincount(flat, weights=(Uq * rs[:, None]).ravel(), minlength=nb * d).reshape(d, nb)
     for j in range(d):
-        hw = np.bincount(idx[:, j], weights=rs, minlength=nb)
+        hw = HW[j]
         keep = hw > 0
-        hu = np.bincount(idx[:, j], weights=rs * Uq[:, j], minlength=nb)[keep] / hw[keep]
+        hu = HU[j][keep] / hw[keep]
         hw = hw[keep]
         cand = np.unique(np.clip(np.concatenate([_SKEW_GRID, eps[j] + _SKEW_MOVES]), -MAX_SKEW, MAX_SKEW))
         ch, sh = np.cosh(cand), np.sinh(cand)

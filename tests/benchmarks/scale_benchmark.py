@@ -1,0 +1,229 @@
+#!/usr/bin/env python3
+"""Scale benchmark: fit time and held-out log-likelihood of the density engine
+against scikit-learn's GaussianMixture(16), timed in the same run, and the
+stages of ``core.analysis.analyse`` on a generated FCS file.
+
+Run from the repository root (prefix with ``nice`` on a shared machine)::
+
+    python tests/benchmarks/scale_benchmark.py [--sizes 50000,200000] [--channels 8,16,30]
+        [--repeats 3] [--analyse 12,30] [--analyse-events 1000000] [--markdown PATH]
+
+Data: a synthetic panel of 16 populations that are log-normal in raw
+intensity (correlated, per-channel log-spread 0.15-0.45 decades) plus 2 %
+debris, with additive Gaussian noise of sd 30 in raw units, then arcsinh with
+cofactor 150 (common practice for fluorescence): the spread of each
+population fans out with intensity as in compensated data.  Events to fit and
+as many held-out events come from one seeded draw.
+
+Fit table: for each (n, d) the median over ``--repeats`` runs of the fit
+seconds of ``AdditiveTreeDensity(random_state=r)`` and of
+``GaussianMixture(n_components=16, covariance_type="full", random_state=r)``,
+their ratio (ours / GaussianMixture; <= 1 meets the issue's target) and the
+held-out mean log-likelihood of each (nats per event, natural log; higher is
+better).  The machine is shared: compare the ratios measured in the same run.
+
+Analyse table (``--analyse``): ``core.analysis.analyse`` on an FCS file of
+``--analyse-events`` events x d channels written by ``core.fcs.write_fcs``
+(two scatter channels, the rest fluorescence), with the default recipe; the
+stages of ``Analysis.timing`` and the peak resident memory of the process
+(``resource.getrusage``, so measured in a fresh subprocess per file).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import time
+import warnings
+
+import numpy as np
+
+HERE = os.path.dirname(os.path.abspath(__file__))
+ROOT = os.path.dirname(os.path.dirname(HERE))
+if ROOT not in sys.path:
+    sys.path.insert(0, ROOT)
+
+N_POPULATIONS = 16
+DEBRIS_SHARE = 0.02
+NOISE_SD = 30.0
+COFACTOR = 150.0
+REFERENCE_K = 16
+
+
+def raw_panel(n: int, d: int, seed: int = 0) -> np.ndarray:
+    """Raw intensities (n, d) float64 of the 16-population log-normal panel (see module docstring).
+
+    The populations' structure depends only on d (fixed seed); ``seed`` drives the draw."""
+    srng = np.random.default_rng([20261202, d])
+    centres = srng.uniform(1.0, 4.5, size=(N_POPULATIONS, d))           # log10 intensity
+    spreads = srng.uniform(0.15, 0.45, size=(N_POPULATIONS, d))         # decades
+    weights = srng.uniform(1.0, 4.0, size=N_POPULATIONS)
+    weights = (1.0 - DEBRIS_SHARE) * weights / weights.sum()
+    chols = []
+    for _ in range(N_POPULATIONS):
+        A = srng.normal(size=(d, d)) * 0.35 + np.eye(d)
+        C = A @ A.T
+        s = 1.0 / np.sqrt(np.diag(C))
+        chols.append(np.linalg.cholesky(C * np.outer(s, s)))
+    rng = np.random.default_rng(seed)
+    counts = rng.multinomial(n, np.append(weights, DEBRIS_SHARE))
+    parts = []
+    for k in range(N_POPULATIONS):
+        Z = rng.normal(size=(counts[k], d)) @ chols[k].T
+        parts.append(10.0 ** (centres[k] + spreads[k] * Z))
+    parts.append(10.0 ** rng.uniform(0.0, 5.0, size=(counts[-1], d)))
+    X = np.concatenate(parts)
+    X += rng.normal(scale=NOISE_SD, size=X.shape)
+    return X[rng.permutation(n)]
+
+
+def panel(n: int, d: int, seed: int = 0) -> np.ndarray:
+    """Transformed events (n, d): arcsinh(raw / 150) of :func:`raw_panel`."""
+    return np.arcsinh(raw_panel(n, d, seed) / COFACTOR)
+
+
+def _gmm16(X, seed):
+    from sklearn.mixture import GaussianMixture
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return GaussianMixture(n_components=REFERENCE_K, covariance_type="full", random_state=seed).fit(X)
+
+
+def fit_rows(sizes, channels, repeats, log=print):
+    from core.density import AdditiveTreeDensity
+    rows = []
+    for d in channels:
+        for n in sizes:
+            X = panel(2 * n, d, seed=n + d)
+            Xtr, Xte = X[:n], X[n:]
+            ours_t, ref_t, ours_ll, ref_ll, info = [], [], [], [], []
+            for r in range(repeats):
+                t = time.perf_counter()
+                m = AdditiveTreeDensity(random_state=r).fit(Xtr)
+                ours_t.append(time.perf_counter() - t)
+                ours_ll.append(m.score(Xte))
+                k = m._gmm.n_components if getattr(m, "_gmm", None) is not None else 0
+                info.append(f"{m.base_} K={k} trees={m.n_trees_}")
+                t = time.perf_counter()
+                g = _gmm16(Xtr, r)
+                ref_t.append(time.perf_counter() - t)
+                ref_ll.append(float(g.score(Xte)))
+                log(f"  n={n} d={d} run {r}: ours {ours_t[-1]:.1f} s ({info[-1]}) ll {ours_ll[-1]:.3f} | "
+                    f"GMM16 {ref_t[-1]:.1f} s ll {ref_ll[-1]:.3f}")
+            ratio = float(np.median(np.array(ours_t) / np.array(ref_t)))
+            rows.append(dict(n=n, d=d, ours_s=float(np.median(ours_t)), ref_s=float(np.median(ref_t)),
+                             ratio=ratio, ours_ll=float(np.median(ours_ll)), ref_ll=float(np.median(ref_ll)),
+                             info=info[int(np.argsort(ours_t)[len(ours_t) // 2])]))
+    return rows
+
+
+def _analyse_child(n: int, d: int) -> dict:
+    """Write an FCS file of n x d events, run analyse() on it; stage seconds and peak memory."""
+    import resource
+    from core.analysis import analyse
+    from core.fcs import read_fcs, write_fcs
+    from core.recipe import default_recipe
+    raw = raw_panel(n, d, seed=7)
+    names = ["FSC-A", "SSC-A"] + [f"FL{j}-A" for j in range(1, d - 1)]
+    raw[:, :2] = np.abs(raw[:, :2]) * 5.0
+    with tempfile.TemporaryDirectory() as tmp:
+        path = os.path.join(tmp, f"panel_{n}x{d}.fcs")
+        write_fcs(path, raw.astype(np.float32), names,
+                  channel_ranges=np.full(d, 262144.0))
+        del raw
+        t = time.perf_counter()
+        ef = read_fcs(path)
+        read_s = time.perf_counter() - t
+        recipe = default_recipe(ef)
+        a = analyse(ef, recipe)
+        timing = {"read": read_s, **{k: float(v) for k, v in a.timing.items()}}
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # kB -> MB (Linux)
+    return {"n": n, "d": d, "timing": timing, "peak_mb": peak}
+
+
+def analyse_rows(channels, n, log=print):
+    rows = []
+    for d in channels:
+        out = subprocess.run([sys.executable, os.path.abspath(__file__), "--child", f"{n},{d}"],
+                             capture_output=True, text=True, cwd=ROOT)
+        if out.returncode != 0:
+            log(out.stderr[-2000:])
+            continue
+        row = json.loads(out.stdout.strip().splitlines()[-1])
+        log(f"  analyse {n} x {d}: {row}")
+        rows.append(row)
+    return rows
+
+
+def format_fit(rows, markdown=False) -> str:
+    head = ["n", "d", "ours s", "GMM(16) s", "ours / GMM(16)", "ours held-out", "GMM(16) held-out", "ours: model"]
+    lines = []
+    sep = " | " if markdown else "  "
+    if markdown:
+        lines += ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
+    else:
+        lines.append(sep.join(head))
+    for r in rows:
+        vals = [f"{r['n']:,}", str(r["d"]), f"{r['ours_s']:.1f}", f"{r['ref_s']:.1f}", f"{r['ratio']:.2f}",
+                f"{r['ours_ll']:.3f}", f"{r['ref_ll']:.3f}", r["info"]]
+        lines.append(("| " + " | ".join(vals) + " |") if markdown else sep.join(vals))
+    return "\n".join(lines)
+
+
+def format_analyse(rows, markdown=False) -> str:
+    stages = []
+    for r in rows:
+        for k in r["timing"]:
+            if k not in stages:
+                stages.append(k)
+    head = ["events x channels"] + [f"{s} s" for s in stages] + ["peak MB"]
+    lines = []
+    if markdown:
+        lines += ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
+    else:
+        lines.append("  ".join(head))
+    for r in rows:
+        vals = [f"{r['n']:,} x {r['d']}"] + [f"{r['timing'].get(s, float('nan')):.1f}" for s in stages] \
+            + [f"{r['peak_mb']:.0f}"]
+        lines.append(("| " + " | ".join(vals) + " |") if markdown else "  ".join(vals))
+    return "\n".join(lines)
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--sizes", default="50000,200000")
+    ap.add_argument("--channels", default="8,16,30")
+    ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument("--analyse", default="", help="channel counts for analyse(), e.g. 12,30")
+    ap.add_argument("--analyse-events", type=int, default=1_000_000)
+    ap.add_argument("--markdown", default="")
+    ap.add_argument("--child", default="", help=argparse.SUPPRESS)
+    a = ap.parse_args(argv)
+    if a.child:
+        n, d = (int(v) for v in a.child.split(","))
+        print(json.dumps(_analyse_child(n, d)))
+        return 0
+    out = []
+    sizes = [int(v) for v in a.sizes.split(",") if v]
+    channels = [int(v) for v in a.channels.split(",") if v]
+    if sizes and channels:
+        rows = fit_rows(sizes, channels, a.repeats)
+        print(format_fit(rows))
+        out.append(format_fit(rows, markdown=True))
+    if a.analyse:
+        rows = analyse_rows([int(v) for v in a.analyse.split(",")], a.analyse_events)
+        print(format_analyse(rows))
+        out.append(format_analyse(rows, markdown=True))
+    if a.markdown:
+        from core.atomic import atomic_write
+        with atomic_write(a.markdown, "w", overwrite=True) as fh:
+            fh.write("\n\n".join(out) + "\n")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,118 @@
+"""Tests of the density engine's scaling machinery: the pruned E step of the
+mixture EM, the component-count search and the tree stage's cost rule,
+against scipy.stats (multivariate_normal, logistic) and scikit-learn's
+GaussianMixture as outside references.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import special, stats
+
+from core.density import AdditiveTreeDensity, kernels
+from core.density import model as model_module
+from core.density.gaussian_base import GaussianMixtureBase
+
+
+def _separated_mixture(d, k, seed, gap=8.0):
+    """Parameters of k Gaussians in d channels (centres ``gap`` apart on a
+    diagonal, random correlations): (weights (k,), means (k, d), covs (k, d, d))."""
+    rng = np.random.default_rng(seed)
+    w = np.full(k, 1.0 / k)
+    means = np.array([np.full(d, gap * c) + rng.normal(0.0, 0.5, d) for c in range(k)])
+    covs = []
+    for _ in range(k):
+        A = rng.normal(size=(d, d)) * 0.3 + np.eye(d)
+        covs.append(A @ A.T)
+    return w, means, np.array(covs)
+
+
+def _draw(n, params, seed):
+    """n events (n, d) from the mixture ``params``."""
+    w, means, covs = params
+    rng = np.random.default_rng(seed)
+    lab = rng.choice(w.size, size=n, p=w)
+    X = np.empty((n, means.shape[1]))
+    for c in range(w.size):
+        sel = lab == c
+        X[sel] = rng.multivariate_normal(means[c], covs[c], int(sel.sum()))
+    return X
+
+
+def test_pruned_e_step_matches_scipy_responsibilities():
+    d, k = 6, 5
+    w, means, covs = _separated_mixture(d, k, 3)
+    X = _draw(4000, (w, means, covs), 4)
+    loc, scale = np.median(X, axis=0), np.full(d, 5.0)
+    # background: the product of logistics (reference: scipy.stats.logistic)
+    bg = stats.logistic(loc, scale).logpdf(X).sum(axis=1)
+    logw = np.log(np.concatenate([[1e-3], (1 - 1e-3) * w]))
+    chol = np.linalg.cholesky(covs)
+    log_det = np.log(np.diagonal(chol, axis1=1, axis2=2)).sum(axis=1)
+    # reference: scipy.stats.multivariate_normal log densities and the exact responsibilities
+    L = np.column_stack([logw[0] + bg] + [logw[c + 1] + stats.multivariate_normal(means[c], covs[c]).logpdf(X)
+                                         for c in range(k)])
+    ll_ref = special.logsumexp(L, axis=1)
+    R = np.exp(L - ll_ref[:, None])
+    hint = np.zeros(X.shape[0], np.int64)
+    for _ in range(2):  # the second call starts from each event's most probable component
+        total, N, S, M = kernels.em_stats(X, bg, logw, means, np.ascontiguousarray(chol), log_det, hint=hint)
+        assert total == pytest.approx(ll_ref.sum(), rel=1e-12)
+        np.testing.assert_allclose(N, R.sum(axis=0), rtol=1e-10, atol=1e-9)
+        for c in range(k):
+            D = X - means[c]
+            np.testing.assert_allclose(S[c], R[:, c + 1] @ D, rtol=1e-9, atol=1e-7)
+            np.testing.assert_allclose(M[c], (D * R[:, c + 1, None]).T @ D, rtol=1e-9, atol=1e-7)
+    # the hints are the most probable Gaussian components
+    assert np.mean(hint == R[:, 1:].argmax(axis=1)) > 0.999
+
+
+def test_count_search_finds_the_number_of_populations():
+    d, k = 4, 4
+    params = _separated_mixture(d, k, 5)
+    means = params[1]
+    X, Xva = _draw(8000, params, 6), _draw(2000, params, 7)
+    gm = GaussianMixtureBase.fit(X, np.median(X, axis=0), np.full(d, 5.0), random_state=0,
+                                 skew=False, validation=Xva)
+    assert gm.n_components == k
+    found = gm.means[np.argsort(gm.means[:, 0])]
+    np.testing.assert_allclose(found, means, atol=0.15)
+    # reference: scikit-learn's GaussianMixture with the true count scores the same held-out events alike
+    from sklearn.mixture import GaussianMixture
+    ref = GaussianMixture(k, covariance_type="full", random_state=0).fit(X)
+    assert gm.logpdf(Xva).mean() == pytest.approx(ref.score(Xva), abs=0.01)
+
+
+def test_tree_stage_adds_nothing_when_the_mixture_is_the_truth():
+    d, k = 3, 2
+    w, means, covs = _separated_mixture(d, k, 8, gap=4.0)
+    X = _draw(6000, (w, means, covs), 9)
+    m = AdditiveTreeDensity(base="gmm", random_state=0).fit(X)
+    assert m.n_trees_ == 0
+    # the first trees fell short of the required gain: abandoned at once, no patience run
+    n_tree_entries = len(m.learning_curve_) - 3   # marginal entry, roll-back and drop entries
+    assert n_tree_entries <= model_module.EARLY_TREES
+    Xt = _draw(4000, (w, means, covs), 10)
+    # reference: the true density from scipy.stats.multivariate_normal
+    true = np.log(sum(w[c] * stats.multivariate_normal(means[c], covs[c]).pdf(Xt) for c in range(k)))
+    assert abs(m.score(Xt) - true.mean()) < 0.02
+
+
+def test_first_tree_layer_must_pay_for_the_full_map():
+    # the rule's constants: a kept first layer gains >= layer_tol x MAP_COST_RATIO
+    rng = np.random.default_rng(1)
+    # an L of two uniform bars: sharp edges the mixture only approximates
+    arm = rng.random((4000, 1)) < 0.5
+    X = np.where(arm, np.c_[2.0 * rng.random(4000), 0.3 * rng.random(4000)],
+                 np.c_[0.3 * rng.random(4000), 2.0 * rng.random(4000)])
+    m = AdditiveTreeDensity(base="gmm", random_state=0).fit(X)
+    loose = AdditiveTreeDensity(base="gmm", random_state=0, layer_tol=1e-9).fit(X)
+    assert loose.n_trees_ > 0   # the trees do gain something here
+    gain = loose.heldout_loglik_ - loose.base_heldout_loglik_
+    required = m.layer_tol * model_module.MAP_COST_RATIO
+    if gain < required:
+        assert m.n_trees_ == 0
+    else:
+        assert m.n_trees_ > 0
+        assert m.heldout_loglik_ - m.base_heldout_loglik_ >= required
