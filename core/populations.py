@@ -33,7 +33,20 @@ Method (mode clustering on the fitted density; the choice is argued in DEVELOPER
    separates them (persistence-based merging of a cluster tree).  Because
    groups merge through chains of pairs, a curved or skewed population made
    of several components merges even where the straight segment between its
-   two far ends dips.
+   two far ends dips.  The saddle is the higher of the straight segment's
+   lowest point and that of a bent path (mode -> the segment's midpoint moved
+   up by :data:`BEND_STEPS` hill-climbing rounds -> mode): the lowest point of
+   any path is a lower bound of the true saddle.
+   **Runt size** (runt pruning of the cluster tree, an excess-mass rule): at
+   each join, the events of each side (a mode's events: the subsample's events
+   of its basin, i.e. nearest start of the event's own component, as in step
+   4) whose log density lies above the saddle are counted; when the smaller
+   side has fewer than ``min_events`` (20, the recipe's
+   ``populations.min_events``; scaled to the subsample when it is one), it
+   merges whatever the saddle's depth: a hill holding fewer events above its
+   saddle than that is not supported by the data.  Measured on real
+   15-17-channel files (about 10,000 events): 212-228 hill-climbed modes,
+   median 10 events each; the depth rule alone left 212-218 populations.
 4. **Assignment.**  Each event goes to the population with the largest sum of
    its components' posterior probabilities under the mixture (a compiled
    kernel, :func:`core.density.kernels.skew_logpdf`); an event whose largest
@@ -100,6 +113,7 @@ DEFINITION_VERSION = 1
 DEFAULT_SETTINGS = {
     "rare_share": 0.01,       # share below which a population is rare
     "merge_ratio": 0.3,       # merge when f(saddle) >= merge_ratio * f(smaller peak)
+    "min_events": 20,         # runt size: a hill needs this many events above its saddle to stay apart
     "caution_events": 20,     # fewer events than this: caution
     "mode_events": 200_000,   # events (seeded subsample) used to start the mode search
     "segment_points": 33,     # points on each segment between two modes
@@ -113,6 +127,9 @@ MIN_GAP = 1.0
 #: Density whose modes and saddles define the populations: "model" (the fitted
 #: model's exact log density) or "mixture" (its mixture base alone).
 MODES_ON = "model"
+#: Hill-climbing rounds that move each segment's midpoint up to bend the saddle
+#: path (0: straight segments only).
+BEND_STEPS = 8
 #: Longest hill-climbing step, in channel inter-quartile ranges.
 MAX_STEP = 0.2
 #: q-value at or below which a population counts as grown or shrunk (``change``).
@@ -146,7 +163,7 @@ def check_settings(settings: Mapping | None, where: str = "") -> dict:
                           f"(0.01 = 1 %); got {out['rare_share']!r}")
     if not 0.0 < out["merge_ratio"] < 1.0:
         raise RecipeError(f"{where}populations 'merge_ratio' must lie between 0 and 1; got {out['merge_ratio']!r}")
-    for k in ("caution_events", "mode_events", "segment_points", "random_state", "starts_per_component"):
+    for k in ("caution_events", "min_events", "mode_events", "segment_points", "random_state", "starts_per_component"):
         if int(out[k]) != out[k] or out[k] < (3 if k == "segment_points" else 0):
             raise RecipeError(f"{where}populations {k!r} must be a whole number; got {out[k]!r}")
         out[k] = int(out[k])
@@ -414,7 +431,8 @@ def _same_place(E: np.ndarray, f: np.ndarray, tol: float = 0.05) -> np.ndarray:
     return node
 
 
-def _saddles(score, modes: np.ndarray, n_points: int, scale: np.ndarray, neighbours: int = 12):
+def _saddles(score, modes: np.ndarray, n_points: int, scale: np.ndarray, neighbours: int = 12,
+             bend_steps: int = 0):
     """Edges (i, j, saddle) between each mode and its ``neighbours`` nearest modes
     (scaled distance; a neighbourhood graph): the lowest log density at
     ``n_points`` points of the straight segment between the two."""
@@ -429,18 +447,34 @@ def _saddles(score, modes: np.ndarray, n_points: int, scale: np.ndarray, neighbo
     iu = np.array([p[0] for p in pairs])
     ju = np.array([p[1] for p in pairs])
     t = np.linspace(0.0, 1.0, n_points)[1:-1]
-    pts = modes[iu][:, None, :] * (1 - t)[None, :, None] + modes[ju][:, None, :] * t[None, :, None]
-    vals = score(pts.reshape(-1, d)).reshape(iu.size, t.size)
-    return iu, ju, vals.min(axis=1)
+
+    def lowest(a, b):
+        pts = a[:, None, :] * (1 - t)[None, :, None] + b[:, None, :] * t[None, :, None]
+        return score(pts.reshape(-1, d)).reshape(a.shape[0], t.size).min(axis=1)
+
+    straight = lowest(modes[iu], modes[ju])
+    if bend_steps <= 0:
+        return iu, ju, straight
+    # a bent path: the segment's midpoint moved up by a short hill climb, then
+    # the two segments mode -> moved midpoint -> mode; any path's lowest point is
+    # a lower bound of the true saddle, so the higher of the two is kept
+    mid = 0.5 * (modes[iu] + modes[ju])
+    top, _ = _hill_climb(score, mid, score(mid), scale, iters=bend_steps)
+    bent = np.minimum(lowest(modes[iu], top), lowest(top, modes[ju]))
+    return iu, ju, np.maximum(straight, bent)
 
 
-def _merge(peaks: np.ndarray, edges, ratio: float) -> np.ndarray:
-    """Group per mode by the persistence rule (see module docstring); ``edges``
-    (i, j, saddle) from :func:`_saddles`."""
+def _merge(peaks: np.ndarray, edges, ratio: float, above=None, min_events: float = 0.0) -> np.ndarray:
+    """Group per mode by the persistence and runt-size rules (module docstring);
+    ``edges`` (i, j, saddle) from :func:`_saddles`.  ``above(nodes, level)``:
+    number of events of the modes ``nodes`` (list) whose log density exceeds
+    ``level``; with ``min_events`` > 0, the smaller side of a join holding fewer
+    such events merges whatever the depth of the saddle."""
     iu, ju, saddle = edges
     m = peaks.size
     parent = list(range(m))
     top = peaks.astype(float).copy()   # best peak of each root's group
+    members = {i: [i] for i in range(m)}
 
     def find(i):
         while parent[i] != i:
@@ -455,11 +489,33 @@ def _merge(peaks: np.ndarray, edges, ratio: float) -> np.ndarray:
         a, b = find(int(iu[e])), find(int(ju[e]))
         if a == b:
             continue
-        if min(top[a], top[b]) - s[e] <= depth:
+        runt = (min_events > 0 and above is not None
+                and min(above(members[a], s[e]), above(members[b], s[e])) < min_events)
+        if runt or min(top[a], top[b]) - s[e] <= depth:
             lo, hi = (a, b) if top[a] < top[b] or (top[a] == top[b] and a > b) else (b, a)
             parent[lo] = hi
+            members[hi] = members[hi] + members.pop(lo)
     roots = [find(i) for i in range(m)]
     return np.unique(roots, return_inverse=True)[1]
+
+
+def _node_of_events(Z: np.ndarray, hard: np.ndarray, starts: np.ndarray, owner: np.ndarray,
+                    node: np.ndarray) -> np.ndarray:
+    """Mode (node) per event of the subsample: the node reached from the nearest
+    start (scaled units ``Z``) among the starts of the event's own component
+    (``hard``, -1 background), as the assignment splits components."""
+    out = np.zeros(Z.shape[0], dtype=np.int64)
+    for k in np.unique(hard):
+        ev = np.flatnonzero(hard == k)
+        mine = np.flatnonzero(owner == k)
+        if mine.size == 0:      # a component without starts: nearest start of all
+            mine = np.arange(owner.size)
+        S = Z[starts[mine]]
+        for a in range(0, ev.size, 8192):
+            E = Z[ev[a:a + 8192]]
+            d2 = (E * E).sum(axis=1)[:, None] - 2.0 * E @ S.T + (S * S).sum(axis=1)[None, :]
+            out[ev[a:a + 8192]] = node[mine[np.argmin(d2, axis=1)]]
+    return out
 
 
 # ---------------------------------------------------------------------------
@@ -730,8 +786,16 @@ def find_populations(model, values, channel_names, channel_labels=None, transfor
     top = np.array([np.flatnonzero(node == q)[np.argmax(peaks[node == q])] for q in range(n_nodes)])
     modes, node_peaks = ends[top], peaks[top]
     going(2, "Populations: saddles between modes")
-    edges = _saddles(score, modes, st["segment_points"], scale)
-    node_group = _merge(node_peaks, edges, st["merge_ratio"])
+    edges = _saddles(score, modes, st["segment_points"], scale, bend_steps=BEND_STEPS)
+    # runt size: events of each mode's basin, sorted by log density
+    ev_node = _node_of_events(Xs / scale, hard, starts, owner, node)
+    by_node = [np.sort(ld[ev_node == q]) for q in range(n_nodes)]
+
+    def above(nodes, level):
+        return sum(int(by_node[q].size - np.searchsorted(by_node[q], level, side="right")) for q in nodes)
+
+    min_ev = st["min_events"] * Xs.shape[0] / n      # in the subsample's events
+    node_group = _merge(node_peaks, edges, st["merge_ratio"], above, min_ev)
     start_pop = node_group[node]
     n_pop = int(node_group.max()) + 1
     # each component goes to the population its starts reached; a component whose
@@ -777,6 +841,8 @@ def find_populations(model, values, channel_names, channel_labels=None, transfor
     return Populations(labels=labels, table=table, definition=definition,
                        info={"components": K, "components_with_events": int(np.unique(owner[owner >= 0]).size),
                              "mixture": origin, "starts": int(starts.size), "modes": n_nodes,
+                             "mode_events": np.bincount(ev_node, minlength=n_nodes).tolist(),
+                             "mode_peaks": node_peaks.tolist(),
                              "split_components": len(split),
                              "peaks": pop_peaks, "settings": st})
 

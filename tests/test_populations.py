@@ -92,6 +92,55 @@ def test_a_small_population_far_from_the_rest_is_found_as_rare():
     assert rare[0]["caution"] is False
 
 
+def runt_layout(seed=5):
+    """1-D layout with an exact density (scipy.stats.norm): a large population
+    N(0, 1) of 10,000 events, a tight bump N(3, 0.01) of 10 events in its
+    shoulder and a 40-event cluster N(8, 0.2) far away.  Returns the arguments
+    of the merge rule: mode peaks, the (i, j, saddle) joins (log density minima
+    on a fine grid between the modes) and ``above(nodes, level)``, the events of
+    those modes' basins whose log density exceeds ``level``."""
+    from core.populations import _merge  # noqa: F401  (the rule under test)
+
+    rng = np.random.default_rng(seed)
+    comps = [(0.0, 1.0, 10_000), (3.0, 0.01, 10), (8.0, 0.2, 40)]
+    n = sum(c for _, _, c in comps)
+    x = np.concatenate([rng.normal(m, s, c) for m, s, c in comps])
+
+    def logf(v):
+        return np.log(sum(c / n * stats.norm.pdf(v, m, s) for m, s, c in comps))
+
+    grid = np.linspace(-5.0, 10.0, 300_001)
+    lg = logf(grid)
+    modes = [grid[np.argmax(np.where(np.abs(grid - m) < 4 * s, lg, -np.inf))] for m, s, _ in comps]
+    peaks = logf(np.array(modes))
+    pairs = [(0, 1), (0, 2), (1, 2)]
+    saddle = np.array([lg[(grid > modes[i]) & (grid < modes[j])].min() for i, j in pairs])
+    iu, ju = np.array([p[0] for p in pairs]), np.array([p[1] for p in pairs])
+    cut01 = grid[(grid > modes[0]) & (grid < modes[1])][np.argmin(lg[(grid > modes[0]) & (grid < modes[1])])]
+    basin = np.where(x < cut01, 0, np.where(x < 5.0, 1, 2))     # basins split at the saddles
+    fx = logf(x)
+
+    def above(nodes, level):
+        return int(np.sum(np.isin(basin, nodes) & (fx > level)))
+
+    return peaks, (iu, ju, saddle), above
+
+
+def test_a_tiny_bump_merges_but_a_small_far_cluster_stays_apart():
+    from core.populations import _merge
+
+    peaks, edges, above = runt_layout()
+    # both the bump and the far cluster lie behind a deep dip (saddle far below
+    # 0.3 x their peak): the depth rule alone keeps all three apart
+    assert np.all(edges[2][:2] < peaks[1:] + np.log(0.3))
+    assert len(set(_merge(peaks, edges, DEFAULT_SETTINGS["merge_ratio"]).tolist())) == 3
+    # runt size: the bump has 10 events above its saddle (< 20) and joins the large
+    # population; the far cluster's 40 keep it a population of its own
+    assert above([1], edges[2][0]) < DEFAULT_SETTINGS["min_events"] <= above([2], edges[2][1])
+    g = _merge(peaks, edges, DEFAULT_SETTINGS["merge_ratio"], above, DEFAULT_SETTINGS["min_events"])
+    assert g[0] == g[1] != g[2]
+
+
 def test_marker_profile_of_a_known_layout():
     # four populations of 500 events; medians per channel (transformed units), sd 0.1
     rng = np.random.default_rng(4)
