@@ -351,24 +351,28 @@ class DensityMap(QWidget):
                 roi.addScaleHandle(pos, centre)
         else:
             roi = pg.PolyLineROI([tuple(v) for v in vs], closed=True, pen=pen, removable=False)
-        roi.kind = kind
-        roi.name = name
         roi.setZValue(10)
+        self._attach_region_item(cell, roi, kind, name, region_id)
+        return True
+
+    def _attach_region_item(self, cell, item, kind: str, name: str, region_id) -> None:
+        """Put a region's ROI or band on ``cell`` with its name label, and relay its edits."""
+        item.kind = kind
+        item.name = name
         label = pg.TextItem(name, color=style.REGION, anchor=(0, 0), fill=pg.mkBrush(29, 35, 38, 170))
         label.setZValue(11)
         cell.plot.addItem(label)
-        roi.label = label
-        cell.plot.addItem(roi)
-        cell.rois[region_id] = roi
-        self._place_label(cell, roi)
+        item.label = label
+        cell.plot.addItem(item)
+        cell.rois[region_id] = item
+        self._place_label(cell, item)
 
-        def changed(r=roi, rid=region_id, c=cell):
+        def changed(r=item, rid=region_id, c=cell):
             self._place_label(c, r)
             self.roiChanged.emit(rid, roi_vertices(r))
 
-        roi.sigRegionChanged.connect(changed)
-        roi.sigRegionChangeFinished.connect(lambda r=roi, rid=region_id: self.roiFinished.emit(rid, roi_vertices(r)))
-        return True
+        item.sigRegionChanged.connect(changed)
+        item.sigRegionChangeFinished.connect(lambda r=item, rid=region_id: self.roiFinished.emit(rid, roi_vertices(r)))
 
     @staticmethod
     def _place_label(cell: PairCell, roi) -> None:
@@ -399,23 +403,8 @@ class DensityMap(QWidget):
             band = pg.LinearRegionItem(values=(lo, hi), orientation="vertical",
                                        brush=pg.mkBrush(245, 215, 110, 40),
                                        pen=pg.mkPen(style.REGION, width=1.6))
-            band.kind = "interval"
-            band.name = name
             band.setZValue(9)
-            label = pg.TextItem(name, color=style.REGION, anchor=(0, 0), fill=pg.mkBrush(29, 35, 38, 170))
-            label.setZValue(11)
-            cell.plot.addItem(label)
-            band.label = label
-            cell.plot.addItem(band)
-            cell.rois[region_id] = band
-            self._place_label(cell, band)
-
-            def changed(r=band, rid=region_id, c=cell):
-                self._place_label(c, r)
-                self.roiChanged.emit(rid, roi_vertices(r))
-
-            band.sigRegionChanged.connect(changed)
-            band.sigRegionChangeFinished.connect(lambda r=band, rid=region_id: self.roiFinished.emit(rid, roi_vertices(r)))
+            self._attach_region_item(cell, band, "interval", name, region_id)
             shown = True
         return shown
 
