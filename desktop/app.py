@@ -10,6 +10,7 @@ import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
 
 import os
 import sys
+import time
 import traceback
 
 from PySide6.QtCore import QEventLoop, QTimer
@@ -95,14 +96,16 @@ def run_screenshot(out_path: str, paths: list[str], size=(1400, 900), timeout_s:
     if not outcome.get("ok", False):
         print(f"boscage: the fit did not finish: {win.last_fit_problem or 'timed out'}", file=sys.stderr)
         return 1
-    if win.fit_running():  # contours are drawn after the fit
-        loop2 = QEventLoop()
-        win.contoursEnded.connect(lambda _ok: loop2.quit())
-        QTimer.singleShot(int(timeout_s * 1000), loop2.quit)
-        if win.fit_running():
-            loop2.exec()
-    app.processEvents()
+    # contours are drawn after the fit, and a re-layout may start more of them: the
+    # picture is taken only when no background job runs (grabbing the window while a
+    # worker thread still computes contours crashed the process in garbage collection)
+    deadline = time.monotonic() + timeout_s
     win.resize(*size)
+    app.processEvents()
+    while win.fit_running() and time.monotonic() < deadline:
+        pause = QEventLoop()
+        QTimer.singleShot(50, pause.quit)
+        pause.exec()
     app.processEvents()
     pixmap = win.grab()
     from core.errors import ExportError
