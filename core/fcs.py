@@ -655,12 +655,10 @@ def _checked_path(path) -> str:
     if path is None or isinstance(path, (bool, int, float)):
         raise FcsFileError(None, f"{path!r} is not a file path; give the path of an FCS file")
     try:
-        path = os.fspath(path)
+        path = write_guard.path_text(path)
     except TypeError:
         raise FcsFileError(None, f"a {type(path).__name__} is not a file path; give the path of an "
                                  "FCS file") from None
-    if isinstance(path, bytes):
-        path = os.fsdecode(path)
     if not path:
         raise FcsFileError(None, "the file path is empty")
     if "\x00" in path:

@@ -112,6 +112,15 @@ def _is_foreign_fcs(path: str) -> bool:
         return False
 
 
+def path_text(path) -> str:
+    """``path`` (str, bytes or os.PathLike) as str; TypeError for anything else.
+
+    The one coercion of a caller's path; each caller turns the TypeError into
+    its own error type (FCS file, model file, output file)."""
+    path = os.fspath(path)
+    return os.fsdecode(path) if isinstance(path, bytes) else path
+
+
 def check_target(path: str | os.PathLike, overwrite: bool = False, sources: Sequence = ()) -> str:
     """Refuse writing ``path`` (ExportError) for the reasons in the module docstring.
 
@@ -119,11 +128,9 @@ def check_target(path: str | os.PathLike, overwrite: bool = False, sources: Sequ
     source file), refused like registered inputs.  Returns ``path`` as str.
     """
     try:
-        path = os.fspath(path)
+        path = path_text(path)
     except TypeError:
         raise ExportError(f"{path!r} is not a file path") from None
-    if isinstance(path, bytes):
-        path = os.fsdecode(path)
     if not path or "\x00" in path:
         raise ExportError(f"{path!r} is not a usable file path")
     name = os.path.basename(path) or path

@@ -30,6 +30,7 @@ import numpy as np
 from .. import RESEARCH_USE_NOTE, __version__
 from .. import safe_json
 from ..atomic import atomic_write
+from ..write_guard import path_text
 from ..errors import ModelFileError
 from . import kernels
 from .gaussian_base import BASE_CHOICES, BASES, MIXTURE_BASES, GaussianMixtureBase
@@ -173,11 +174,9 @@ def _check_container(path: str) -> None:
 def load_model(cls, path):
     """Read a model file written by :func:`save_model` (ModelFileError for anything wrong)."""
     try:
-        path = os.fspath(path)
+        path = path_text(path)
     except TypeError:
         raise ModelFileError(f"{path!r} is not a file path; give the path of a density model file") from None
-    if isinstance(path, bytes):
-        path = os.fsdecode(path)
     if not os.path.exists(path):
         raise _fail(path, "no such density model file")
     try:
