@@ -6,12 +6,20 @@ runs in its own QThread; progress is delivered to the GUI thread by a queued
 signal; :meth:`Job.cancel` makes the next progress call return False, which
 asks core to stop cleanly.  Exactly one of ``finished(result)``,
 ``failed(exception)`` or ``cancelled()`` is emitted at the end.
+
+Python's cyclic garbage collector is paused while any job's thread runs and
+resumed (with one collection, on the GUI thread) when the last one ends: a
+collection that ran while a worker thread computed contour lines crashed the
+process (segmentation fault, seen twice in CI in the screenshot test), and
+cycles holding Qt wrappers are then freed only when no worker thread runs.
+Reference counting frees everything else as usual meanwhile.
 """
 
 from __future__ import annotations
 
 import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
 
+import gc
 import threading
 import traceback
 from typing import Any, Callable
@@ -19,6 +27,26 @@ from typing import Any, Callable
 from PySide6.QtCore import QObject, QThread, Signal, Slot
 
 from core.errors import Cancelled
+
+
+_running_jobs = 0
+_gc_was_enabled = True
+
+
+def _job_started() -> None:
+    global _running_jobs, _gc_was_enabled
+    if _running_jobs == 0:
+        _gc_was_enabled = gc.isenabled()
+        gc.disable()
+    _running_jobs += 1
+
+
+def _job_ended() -> None:
+    global _running_jobs
+    _running_jobs = max(_running_jobs - 1, 0)
+    if _running_jobs == 0 and _gc_was_enabled:
+        gc.enable()
+        gc.collect()
 
 
 class _Runner(QObject):
@@ -78,6 +106,7 @@ class Job(QObject):
 
     def start(self) -> None:
         self.running = True
+        _job_started()
         self._thread.start()
 
     def cancel(self) -> None:
@@ -89,9 +118,11 @@ class Job(QObject):
         return self._stop.is_set()
 
     def _finish(self) -> None:
-        self.running = False
         self._thread.quit()
         self._thread.wait()
+        if self.running:
+            _job_ended()
+        self.running = False
 
     def _on_done(self, result) -> None:
         self._finish()
