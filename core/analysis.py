@@ -1,8 +1,10 @@
 """One file through one recipe: compensation, transforms, cleaning, density, rarity, regions.
 
-:func:`compensated_and_transformed` is the ONE place where a recipe's
-compensation and transforms are applied to an event file; the desktop app,
-the batch and :func:`analyse` all call it.
+:func:`core.file_values.compensate_transform` is the ONE place where a
+recipe's compensation and transforms are resolved for an event file (once per
+file); the desktop app, the batch and :func:`analyse` all apply it.  The
+stages after the fit live in :mod:`core.analysis_stages`.  ``analyse`` takes a
+:class:`core.recipe.Recipe` (a stored-form dict is checked once into one).
 
 :func:`analyse` then
 
@@ -51,217 +53,29 @@ from __future__ import annotations
 import os
 import time
 from dataclasses import dataclass, field
-from typing import Any, Mapping
+from typing import Any
 
 import numpy as np
 
-from .errors import ChannelError, EventDataError, RecipeError
+from .analysis_stages import (channel_labels, comparison_settings, contrast_stage, inverse_transforms,
+                              populations_stage)
+from .errors import EventDataError
+from .file_values import (CompensateTransform, compensate_transform, compensated_and_transformed,
+                          density_channel_indices, density_input)
 from .progress import stop_relay
+from .recipe import Recipe, validate_recipe
+from .regions import RegionSet
+
+# the names this module had before its stages moved out (kept for callers that import them here)
+_channel_labels = channel_labels
+_inverse_transforms = inverse_transforms
+__all__ = ["Analysis", "CompensateTransform", "analyse", "comparison_settings", "compensate_transform",
+           "compensated_and_transformed", "density_channel_indices", "density_input", "prepare_control_file"]
 
 
-# ---------------------------------------------------------------------------
-# recipe access helpers (the recipe is a dataclass; accept plain dicts too)
-# ---------------------------------------------------------------------------
-
-def _get(recipe: Any, key: str, default: Any = None) -> Any:
-    if isinstance(recipe, Mapping):
-        return recipe.get(key, default)
-    return getattr(recipe, key, default)
-
-
-def _engine_kwargs(recipe: Any) -> dict:
-    if hasattr(recipe, "engine_arguments"):
-        return recipe.engine_arguments()
-    engine = dict(_get(recipe, "engine", None) or {})
-    engine.setdefault("random_state", 0)
-    return engine
-
-
-def _spillover(event_file: Any, recipe: Any):
-    """The spillover matrix the recipe asks for, or None."""
-    from . import compensation
-
-    comp = _get(recipe, "compensation", None) or {"source": "none"}
-    source = comp.get("source", "none")
-    if source == "none":
-        return None
-    if source == "file":
-        S = compensation.spillover_from_keywords(event_file.keywords, source=os.path.basename(event_file.path))
-        if S is None:
-            raise RecipeError(f"{os.path.basename(event_file.path)}: the recipe asks for the file's spillover "
-                              "matrix but the file has none ($SPILLOVER/SPILL); set compensation to 'none' "
-                              "or give a CSV matrix")
-        return S
-    if source == "csv":
-        path = recipe.csv_path_resolved() if hasattr(recipe, "csv_path_resolved") else comp.get("csv_path")
-        if not path:
-            raise RecipeError("the recipe's compensation source is 'csv' but no csv_path is given")
-        return compensation.read_spillover_csv(path)
-    raise RecipeError(f"unknown compensation source {source!r}; use 'file', 'csv' or 'none'")
-
-
-def compensated_and_transformed(event_file: Any, recipe: Any, raw: np.ndarray | None = None
-                                ) -> tuple[list[str], np.ndarray]:
-    """All channels of ``event_file`` compensated and transformed as ``recipe`` says.
-
-    Returns ``(channel_names, values)`` with values (n_events, n_channels)
-    float64: compensated by the recipe's spillover matrix (only its detectors
-    change), then each channel with an entry in ``recipe.transforms`` mapped by
-    that transform's ``forward``; channels without one keep their compensated
-    values.  ``raw`` replaces ``event_file.data`` (same shape), e.g. de-quantised
-    raw values; the file's data are never modified.
-    """
-    from .compensation import compensate
-    from .transforms import make_transform
-
-    names = list(event_file.channel_names)
-    data = np.asarray(event_file.data if raw is None else raw, dtype=np.float64)
-    if data.ndim != 2 or data.shape[1] != len(names):
-        raise EventDataError(f"{os.path.basename(event_file.path)}: event values of shape {data.shape} do not "
-                             f"match {len(names)} channels")
-    S = _spillover(event_file, recipe)
-    values = compensate(data, names, S, source=os.path.basename(event_file.path)) if S is not None else data.copy()
-    transforms = _get(recipe, "transforms", None) or {}
-    for ch, spec in transforms.items():
-        if spec is None:
-            continue
-        if ch not in names:
-            raise ChannelError(f"{os.path.basename(event_file.path)}: the recipe transforms channel {ch!r} "
-                               f"which the file lacks; the file's channels are {', '.join(names)}")
-        j = names.index(ch)
-        with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-            values[:, j] = make_transform(spec).forward(values[:, j])
-    return names, values
-
-
-def density_channel_indices(event_file: Any, recipe: Any) -> list[int]:
-    """Column indices of the recipe's density channels in ``event_file`` (ChannelError if missing)."""
-    names = list(event_file.channel_names)
-    chans = list(_get(recipe, "channels", None) or [])
-    if not chans:
-        raise RecipeError("the recipe names no channels for the density")
-    missing = [c for c in chans if c not in names]
-    if missing:
-        raise ChannelError(f"{os.path.basename(event_file.path)}: the recipe's channel(s) {', '.join(missing)} "
-                           f"are not in the file; its channels are {', '.join(names)}")
-    return [names.index(c) for c in chans]
-
-
-def density_input(event_file: Any, recipe: Any):
-    """The cleaned, de-quantised, compensated, transformed matrix the density sees.
-
-    Returns ``(prepared, values)``: ``prepared`` a :class:`core.prepare.PreparedEvents`
-    over the recipe's density channels (``matrix`` n_kept x d, ``kept``,
-    ``reason`` per event) and ``values`` the transformed values of all
-    channels without jitter (for plots and regions).
-
-    One pass (see :mod:`core.prepare` for each rule):
-
-    1. ``values``: every channel compensated and transformed once
-       (:func:`compensated_and_transformed`; the one full-size copy).
-    2. Reasons from the raw values: non-finite in any channel; saturation and
-       floor/ceiling piles of the density channels and, when compensating, of
-       the spillover detectors that feed them (recipe ``cleaning``).
-    3. Only the raw channels that feed the density and sit on a grid are
-       jittered (integers in stored units before $PnE/$PnG decoding, float
-       grids by half their step), on the kept events only; their density
-       columns are compensated (when compensating) and transformed again.
-       Every other density column is taken from ``values``.
-    """
-    from .compensation import compensate
-    from .prepare import (MAX_UNIQUE_FRACTION, PreparedEvents, REASON_KEPT, REASON_NON_FINITE,
-                          clean_events, jittered_column, plan_jitter)
-    from .transforms import make_transform
-
-    cleaning = dict(_get(recipe, "cleaning", None) or {})
-    drop_piles = bool(cleaning.get("drop_piles", True))
-    do_jitter = bool(cleaning.get("dequantise", True))
-    seed = _engine_kwargs(recipe)["random_state"]
-    where = os.path.basename(event_file.path)
-    idx = density_channel_indices(event_file, recipe)
-    names, values = compensated_and_transformed(event_file, recipe)
-    raw = np.asarray(event_file.data, dtype=np.float64)
-    n, k = raw.shape
-    S = _spillover(event_file, recipe)
-    detectors = [names.index(d) for d in S.detectors if d in names] if S is not None else []
-    # raw channels that feed the density: a compensated density channel mixes every detector
-    mixes = S is not None and any(j in detectors for j in idx)
-    feeders = sorted(set(idx) | (set(detectors) if mixes else set()))
-    reason, saturated, sat_cells, floor_cells, ceiling_cells = clean_events(
-        raw, feeders, event_file.channel_ranges, drop_saturated=bool(cleaning.get("drop_saturated", True)),
-        drop_piles=drop_piles)
-    kept = reason == REASON_KEPT
-    decoding = getattr(event_file, "decoding", None)
-    plans = {}
-    if do_jitter:
-        for j in feeders:
-            plan = plan_jitter(raw[:, j] if kept.all() else raw[kept, j], None if decoding is None else decoding[j],
-                               MAX_UNIQUE_FRACTION)
-            if plan is not None:
-                plans[j] = plan
-    spread = set() if drop_piles else {j for j in feeders
-                                       if floor_cells[j][kept].any() or ceiling_cells[j][kept].any()}
-    changed = set(plans) | spread
-
-    all_kept = bool(kept.all())
-
-    def column(j: int) -> np.ndarray:
-        """Raw channel j over the kept events, jittered / piles spread as planned."""
-        if j not in changed:
-            return raw[:, j] if all_kept else raw[kept, j]
-        fl = floor_cells.get(j)
-        ce = ceiling_cells.get(j)
-        # uniforms are drawn for every event of the file, then the kept ones taken
-        full = raw[:, j].copy()
-        if not all_kept:
-            full[~kept] = 0.0
-        out = jittered_column(full, j, plans.get(j), seed, None if fl is None else fl & kept,
-                              None if ce is None else ce & kept, spread_piles=j in spread)
-        return out if all_kept else out[kept]
-
-    transforms = _get(recipe, "transforms", None) or {}
-    matrix = np.empty((int(kept.sum()), len(idx)))
-    redo = [c for c, j in enumerate(idx) if (j in changed) or (mixes and j in detectors and changed & set(detectors))]
-    compensated = None
-    if mixes and any(idx[c] in detectors for c in redo):
-        sub = np.column_stack([column(d) for d in detectors])
-        compensated = compensate(sub, [names[d] for d in detectors], S, source=where)
-    for c, j in enumerate(idx):
-        if c not in redo:
-            matrix[:, c] = values[:, j] if all_kept else values[kept, j]
-            continue
-        col = compensated[:, detectors.index(j)] if (compensated is not None and j in detectors) else column(j)
-        spec = transforms.get(names[j])
-        if spec is not None:
-            with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-                col = make_transform(spec).forward(col)
-        matrix[:, c] = col
-    bad = ~np.isfinite(matrix).all(axis=1)
-    if bad.any():
-        rows = np.flatnonzero(kept)[bad]
-        reason = reason.astype(object)
-        reason[rows] = REASON_NON_FINITE
-        reason = reason.astype(str)
-        kept = reason == REASON_KEPT
-        matrix = matrix[~bad]
-    steps = np.zeros(k)
-    grids = [""] * k
-    for j, plan in plans.items():
-        steps[j], grids[j] = plan.step, plan.grid
-    finite_rows = reason != REASON_NON_FINITE
-
-    def per_channel(cells, rows=None):
-        out = np.zeros(k, dtype=np.int64)
-        for j, m in cells.items():
-            out[j] = int(np.count_nonzero(m if rows is None else m & rows))
-        return out
-
-    prepared = PreparedEvents(matrix=matrix, kept=kept, reason=reason, steps=steps,
-                              saturated=saturated & finite_rows,
-                              saturated_per_channel=per_channel(sat_cells, finite_rows), grids=grids,
-                              floor_per_channel=per_channel(floor_cells),
-                              ceiling_per_channel=per_channel(ceiling_cells))
-    return prepared, values
+def _engine_kwargs(recipe: Recipe) -> dict:
+    """The engine's keyword arguments (kept for callers of the old name; see Recipe.engine_arguments)."""
+    return recipe.engine_arguments()
 
 
 # ---------------------------------------------------------------------------
@@ -398,78 +212,6 @@ class Analysis:
         return pd.DataFrame(cols)
 
 
-def _channel_labels(event_file: Any, channels: list) -> list:
-    names = list(event_file.channel_names)
-    labels = list(getattr(event_file, "channel_labels", None) or [""] * len(names))
-    return [labels[names.index(c)] for c in channels]
-
-
-def _populations_stage(event_file, recipe, model, prepared, log_density, progress):
-    """Populations of the kept events (:mod:`core.populations`): counted with the
-    recipe's stored definition when it has one, else found on the fitted model.
-    Returns (Populations, labels (n_events,) with -1 for removed events)."""
-    from .populations import count_populations, find_populations
-
-    settings = dict(_get(recipe, "populations", None) or {})
-    chans = list(_get(recipe, "channels"))
-    labels = _channel_labels(event_file, chans)
-    transforms = _get(recipe, "transforms", None) or {}
-    stored = settings.pop("definition", None)
-    if stored is not None:
-        pops = count_populations(stored, prepared.matrix, chans, labels, transforms, settings)
-    else:
-        pops = find_populations(model, prepared.matrix, chans, labels, transforms, settings,
-                                log_density=log_density[prepared.kept], progress=progress)
-    full = np.full(prepared.kept.shape[0], -1, dtype=np.int64)
-    full[prepared.kept] = pops.labels
-    return pops, full
-
-
-def _population_change_stage(result, event_file, recipe, res, control) -> None:
-    """Grown and shrunk populations: ONE definition (the recipe's stored one, else
-    found on the control's model and events) counted in the control and in the
-    test file; :func:`core.populations.population_changes`.  ``control`` is the
-    control's prepared matrix or a PreparedControl (its ``events``; the
-    definition found is kept on it as ``populations_definition`` for the next
-    file).  The control's model is its first part model (the contrast fits K
-    part models of the control, each without one part of its events)."""
-    from .populations import (PopulationDefinition, assign_populations, count_populations,
-                              find_populations, population_changes)
-
-    settings = dict(_get(recipe, "populations", None) or {})
-    chans = list(_get(recipe, "channels"))
-    labels = _channel_labels(event_file, chans)
-    transforms = _get(recipe, "transforms", None) or {}
-    stored = settings.pop("definition", None)
-    c_events = control if isinstance(control, np.ndarray) else getattr(control, "events", None)
-    c_model = getattr(control, "models", None) if not isinstance(control, np.ndarray) else None
-    if c_model is None:
-        c_model = getattr(res, "control_model", None)
-    if isinstance(c_model, (list, tuple)):
-        c_model = c_model[0] if c_model else None
-    if c_events is None or (stored is None and c_model is None):
-        return
-    cached = None if isinstance(control, np.ndarray) else getattr(control, "populations_definition", None)
-    if stored is not None:
-        definition = PopulationDefinition.from_dict(stored)
-    elif cached is not None:
-        definition = cached
-    else:
-        definition = find_populations(c_model, c_events, chans, labels, transforms, settings).definition
-        if not isinstance(control, np.ndarray):
-            try:   # found once per prepared control, reused for every file contrasted with it
-                control.populations_definition = definition
-            except AttributeError:
-                pass
-    result.control_populations = count_populations(definition, c_events, chans, labels, transforms, settings)
-    test_labels = assign_populations(definition, result.prepared.matrix)
-    result.population_changes = population_changes(result.control_populations.labels, test_labels, definition)
-    short = {r["id"]: r["short_profile"] for r in result.control_populations.table}
-    for row in result.population_changes:
-        row["profile"] = definition.names[row["id"]]
-        row["short_profile"] = short[row["id"]]
-
-
 def _as_event_file(obj: Any):
     if isinstance(obj, (str, os.PathLike)):
         from .fcs import read_fcs
@@ -478,7 +220,7 @@ def _as_event_file(obj: Any):
     return obj
 
 
-def prepare_control_file(control: Any, recipe: Any, progress=None):
+def prepare_control_file(control: Any, recipe: Recipe, progress=None):
     """The control's part of the contrast, computed once for many test files.
 
     ``control``: an EventFile or a path; validated against ``recipe`` and
@@ -489,47 +231,22 @@ def prepare_control_file(control: Any, recipe: Any, progress=None):
     ``progress(step, total, info)`` goes to the control fit (False: Cancelled).
     """
     from .contrast import prepare_control
-    from .recipe import validate_recipe
 
     control_file = _as_event_file(control)
-    validate_recipe(recipe, control_file)
+    recipe = validate_recipe(recipe, control_file)
     c_prepared, _ = density_input(control_file, recipe)
-    engine = _engine_kwargs(recipe)
+    engine = recipe.engine_arguments()
     return prepare_control(c_prepared.matrix, engine=engine, random_state=engine["random_state"],
                            progress=progress, source=os.fspath(control_file.path))
 
 
-def comparison_settings(recipe: Any, rate: float | None = None, min_fold: float | None = None) -> dict:
-    """``{"rate", "min_fold"}`` of a contrast: the given values, else the recipe's ``comparison`` section,
-    else the defaults of :mod:`core.contrast`."""
-    from .contrast import DEFAULT_MIN_FOLD, DEFAULT_RATE
-
-    cmp = dict(_get(recipe, "comparison", None) or {})
-    return {"rate": float(rate if rate is not None else cmp.get("rate", DEFAULT_RATE)),
-            "min_fold": float(min_fold if min_fold is not None else cmp.get("min_fold", DEFAULT_MIN_FOLD))}
-
-
-def _inverse_transforms(recipe: Any, channels: list) -> list:
-    """Per density channel, the inverse of its transform (None when untransformed): instrument units."""
-    from .transforms import make_transform
-
-    specs = _get(recipe, "transforms", None) or {}
-    out = []
-    for c in channels:
-        spec = specs.get(c)
-        try:
-            out.append(None if spec is None else make_transform(spec).inverse)
-        except Exception:  # a transform without an inverse: report medians in plotted units
-            out.append(None)
-    return out
-
-
-def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
+def analyse(event_file: Any, recipe: Recipe, progress=None, control: Any = None,
             rate: float | None = None, min_fold: float | None = None) -> Analysis:
     """Fit the recipe's density to ``event_file`` and derive rarity, rare events and regions.
 
     ``event_file``: a :class:`core.fcs.EventFile` (or a path to read).
-    ``recipe``: a :class:`core.recipe.Recipe`; validated against the file first.
+    ``recipe``: a :class:`core.recipe.Recipe` (or its stored-form dict); validated
+    against the file first, and the validated recipe is the one used and kept.
     ``progress(step, total, info) -> bool``: passed to the fit(s); during the
     contrast ``info`` is a dict naming the model being fitted (``"stage"``).
     ``control``: optional control EventFile or path; the file is then contrasted
@@ -543,29 +260,27 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
     (named in ``info["regions_without_control"]``).
     """
     from .density import AdditiveTreeDensity
+    from .errors import Cancelled
+    from .prepare import atoms as find_atoms
     from .rare import rare_events, rarity_percentile
-    from .recipe import validate_recipe
-    from .regions import RegionSet
 
     timing: dict[str, float] = {}
     t0 = time.perf_counter()
     event_file = _as_event_file(event_file)
-    validate_recipe(recipe, event_file)
-    prepared, values = density_input(event_file, recipe)
+    recipe = validate_recipe(recipe, event_file)
+    prepared, values = density_input(event_file, recipe, compensate_transform(event_file, recipe))
     n = values.shape[0]
     n_kept = int(np.count_nonzero(prepared.kept))
     if n_kept < 50:
         raise EventDataError(f"{os.path.basename(event_file.path)}: only {n_kept} of {n} events are usable "
                              "after cleaning; at least 50 are needed to fit a density")
-    from .prepare import atoms as find_atoms
-
-    atoms = find_atoms(prepared.matrix, list(_get(recipe, "channels")))
+    atoms = find_atoms(prepared.matrix, list(recipe.channels))
     timing["prepare"] = time.perf_counter() - t0
 
     relay, stopped = stop_relay(progress)
 
     t1 = time.perf_counter()
-    engine = _engine_kwargs(recipe)
+    engine = recipe.engine_arguments()
     model = AdditiveTreeDensity(**engine)
     model.fit(prepared.matrix, progress=relay)
     timing["fit"] = time.perf_counter() - t1
@@ -574,28 +289,24 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
     log_density = np.full(n, np.nan)
     log_density[prepared.kept] = model.score_samples(prepared.matrix)
     rarity = rarity_percentile(log_density)
-    rare_res = rare_events(log_density, _get(recipe, "rare", None), model=model,
-                           random_state=engine["random_state"])
+    rare_res = rare_events(log_density, recipe.rare, model=model, random_state=engine["random_state"])
     timing["score"] = time.perf_counter() - t2
 
     t_pop = time.perf_counter()
     populations = population_labels = None
     if not stopped:
-        from .errors import Cancelled
-
         try:
-            populations, population_labels = _populations_stage(event_file, recipe, model, prepared,
-                                                                log_density, relay)
+            populations, population_labels = populations_stage(event_file, recipe, model, prepared,
+                                                               log_density, relay)
         except Cancelled:
             pass   # stopped while finding populations: the rest of the analysis stands
     timing["populations"] = time.perf_counter() - t_pop
 
     t3 = time.perf_counter()
-    region_dicts = _get(recipe, "regions", None) or []
     masks: dict = {}
-    regions = None
-    if region_dicts:
-        regions = recipe.region_set() if hasattr(recipe, "region_set") else RegionSet.from_dict(region_dicts)
+    regions = by_channel = None
+    if recipe.regions:
+        regions = recipe.region_set()
         by_channel = {name: values[:, j] for j, name in enumerate(event_file.channel_names)}
         needs_control = regions.depending_on("enriched")
         if not needs_control:
@@ -607,7 +318,7 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
     timing["regions"] = time.perf_counter() - t3
 
     result = Analysis(path=os.fspath(event_file.path), channel_names=list(event_file.channel_names),
-                      values=values, density_channels=list(_get(recipe, "channels")), prepared=prepared,
+                      values=values, density_channels=list(recipe.channels), prepared=prepared,
                       model=model, log_density=log_density, rarity=rarity, rare=rare_res.mask,
                       rare_level=rare_res.log_level, reason=np.asarray(prepared.reason).astype(str),
                       region_masks=masks, heldout_loglik=float(getattr(model, "heldout_loglik_", np.nan)),
@@ -615,38 +326,7 @@ def analyse(event_file: Any, recipe: Any, progress=None, control: Any = None,
                       populations=populations, population_labels=population_labels)
     if regions is not None and control is None and regions.depending_on("enriched"):
         result.info["regions_without_control"] = regions.depending_on("enriched")
-
     if control is not None and not stopped:
-        t4 = time.perf_counter()
-        from .contrast import PreparedControl, contrast
-
-        if isinstance(control, PreparedControl):
-            pc, c_matrix, control_path = control, None, control.source
-        else:
-            control_file = _as_event_file(control)
-            validate_recipe(recipe, control_file)
-            c_matrix = density_input(control_file, recipe)[0].matrix
-            pc, control_path = None, os.fspath(control_file.path)
-        settings = comparison_settings(recipe, rate, min_fold)
-        chans = list(_get(recipe, "channels"))
-        res = contrast(prepared.matrix, c_matrix, rate=settings["rate"], min_fold=settings["min_fold"],
-                       engine=engine, random_state=engine["random_state"], progress=progress,
-                       prepared_control=pc, channel_names=chans, to_units=_inverse_transforms(recipe, chans))
-        result.contrast = res
-        result.contrast_score = np.full(n, np.nan)
-        result.contrast_score[prepared.kept] = res.score
-        result.contrast_p = np.full(n, np.nan)
-        result.contrast_p[prepared.kept] = res.pvalue
-        result.contrast_q = np.full(n, np.nan)
-        result.contrast_q[prepared.kept] = res.qvalue
-        result.enriched = np.zeros(n, dtype=bool)
-        result.enriched[prepared.kept] = res.enriched
-        result.info["control"] = control_path
-        if regions is not None and regions.depending_on("enriched"):
-            result.region_masks = regions.evaluate(by_channel, rarity, n_events=n, enriched=result.enriched)
-        timing["contrast"] = time.perf_counter() - t4
-        t5 = time.perf_counter()
-        _population_change_stage(result, event_file, recipe, res, pc if pc is not None else c_matrix)
-        timing["population changes"] = time.perf_counter() - t5
+        contrast_stage(result, event_file, recipe, control, rate, min_fold, engine, progress, regions, by_channel)
     timing["total"] = time.perf_counter() - t0
     return result

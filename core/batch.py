@@ -656,8 +656,7 @@ def inputs_digest(recipe: Any, digest: str) -> str:
     names (compensation source "csv"): a changed matrix at the same path must redo
     finished files and the prepared control.  ``digest`` itself stays the recipe's
     (it is what exports record as provenance)."""
-    comp = getattr(recipe, "compensation", None) or {}
-    if comp.get("source") != "csv":
+    if recipe.compensation.source != "csv":
         return digest
     path = recipe.csv_path_resolved()
     if not path or not os.path.isfile(path):

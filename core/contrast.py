@@ -97,11 +97,13 @@ from scipy import stats
 from .errors import Cancelled, EventDataError
 from .fdr import bh_qvalues
 from .progress import stop_relay
+from .recipe.records import Comparison
 
-#: False discovery rate of the enriched events (Benjamini-Hochberg).
-DEFAULT_RATE = 0.05
-#: Smallest density ratio f_test / f_control of an enriched event (see the module docstring).
-DEFAULT_MIN_FOLD = 2.0
+#: False discovery rate of the enriched events (Benjamini-Hochberg): core.recipe.Comparison's default.
+DEFAULT_RATE = Comparison().rate
+#: Smallest density ratio f_test / f_control of an enriched event (see the module docstring):
+#: core.recipe.Comparison's default.
+DEFAULT_MIN_FOLD = Comparison().min_fold
 #: Parts for cross-fitting (see the module docstring).
 DEFAULT_FOLDS = 3
 #: Shift warning: share of enriched test events above which the whole sample is suspect.

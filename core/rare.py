@@ -82,9 +82,10 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from .errors import EventDataError, RecipeError
+from .recipe.records import RareRule
 
-#: Default rule: the lowest 0.5 % of events by density.
-DEFAULT_RARE_RULE = {"rule": "share", "share": 0.005}
+#: Default rule (stored form of :class:`core.recipe.RareRule`'s defaults): the lowest 0.5 % of events by density.
+DEFAULT_RARE_RULE = RareRule().to_dict()
 
 #: Number of the model's own draws used to find a probability-mass level (a
 #: power of two: scrambled Sobol points; see the module docstring).  Used by
@@ -244,16 +245,16 @@ def rare_by_mass(log_density: np.ndarray, model: Any, mass: float = 0.995,
                       count=int(mask.sum()))
 
 
-def rare_events(log_density: np.ndarray, rule: Mapping | None = None, model: Any = None,
+def rare_events(log_density: np.ndarray, rule: RareRule | Mapping | None = None, model: Any = None,
                 random_state: int | None = 0, n_samples: int = DEFAULT_LEVEL_SAMPLES) -> RareResult:
-    """Apply a recipe's rare rule (see module docstring); ``model`` is needed for "mass"."""
-    rule = dict(DEFAULT_RARE_RULE if rule is None else rule)
-    kind = rule.get("rule", "share")
-    if kind == "share":
-        return rare_by_share(log_density, rule.get("share", DEFAULT_RARE_RULE["share"]))
-    if kind == "mass":
-        if model is None:
-            raise RecipeError("the rare rule 'mass' needs the fitted density model")
-        return rare_by_mass(log_density, model, rule.get("mass", 0.995), n_samples=n_samples,
-                            random_state=random_state)
-    raise RecipeError(f"unknown rare rule {kind!r}; use 'share' or 'mass'")
+    """Apply a recipe's rare rule (see module docstring); ``model`` is needed for "mass".
+
+    ``rule``: a :class:`core.recipe.RareRule` (its stored-form dict is checked into
+    one; None: the default rule)."""
+    if not isinstance(rule, RareRule):
+        rule = RareRule() if rule is None else RareRule.from_dict(rule)
+    if rule.rule == "share":
+        return rare_by_share(log_density, rule.share)
+    if model is None:
+        raise RecipeError("the rare rule 'mass' needs the fitted density model")
+    return rare_by_mass(log_density, model, rule.mass, n_samples=n_samples, random_state=random_state)

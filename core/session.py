@@ -17,7 +17,6 @@ a notebook or a test drives the same object.  No Qt here.
 
 from __future__ import annotations
 
-import copy
 import os
 from typing import Mapping, Sequence
 
@@ -25,6 +24,7 @@ import numpy as np
 
 from .errors import BoscageError, ChannelError, RegionError
 from .files import expand_paths
+from .recipe import Compensation
 from .regions import Region, region_from_dict
 from .tube import (Tube, default_pairs, region_closure, region_name, rescale_region,  # noqa: F401 (re-exported)
                    uses_rarity)
@@ -90,8 +90,8 @@ class Session:
         follow onto the new scales.  Returns why the fit was discarded ("" when
         nothing changed)."""
         tube = self.require()
-        old = dict(tube.recipe.transforms or {})
-        new = dict(specs)
+        old = dict(tube.recipe.transforms)
+        new = {c: s for c, s in specs.items() if s is not None}
         changed = [c for c in set(old) | set(new) if old.get(c) != new.get(c)]
         if not changed and list(channels) == list(tube.recipe.channels):
             return ""
@@ -116,7 +116,7 @@ class Session:
 
         tube = self.require()
         spec = tube.spec(channel)
-        specs = dict(tube.recipe.transforms or {})
+        specs = dict(tube.recipe.transforms)
         for c in tube.names:
             if not is_scatter_or_time(c):
                 specs[c] = None if spec is None else dict(spec)
@@ -131,18 +131,19 @@ class Session:
         from .compensation import write_spillover_csv
 
         tube = self.require()
-        comp = {"source": source, "csv_path": None}
+        comp = Compensation(source)   # the one place the sources are checked (core.recipe)
         if edited is not None:
             stem = os.path.splitext(os.path.basename(tube.path))[0]
             path = unique_path(os.path.join(matrix_folder or os.path.dirname(tube.path),
                                             f"{stem}-spillover-edited.csv"))
             write_spillover_csv(path, edited)
-            comp = {"source": "csv", "csv_path": path}
+            comp = Compensation("csv", path)
         elif source == "csv":
-            comp["csv_path"] = csv_path or (tube.recipe.compensation or {}).get("csv_path")
-            if not comp["csv_path"]:
+            csv_path = csv_path or tube.recipe.compensation.csv_path
+            if not csv_path:
                 raise BoscageError("choose a spillover CSV file first (Load CSV...)")
-        old = copy.deepcopy(tube.recipe.compensation)
+            comp = Compensation("csv", csv_path)
+        old = tube.recipe.compensation
         tube.recipe.compensation = comp
         try:
             tube.recompute_values()
@@ -182,8 +183,8 @@ class Session:
         validate_recipe(recipe, tube.event_file)
         tube.recipe = recipe
         tube.regions = recipe.region_set()
-        if (recipe.rare or {}).get("rule") == "share":
-            tube.share = float(recipe.rare["share"])
+        if recipe.rare.rule == "share":
+            tube.share = recipe.rare.share
         tube.recompute_values()
         tube.pairs = default_pairs(tube.names, recipe.channels)
         tube.dirty = False
@@ -198,7 +199,7 @@ class Session:
                 or list(tube.recipe.channels) != list(recipe.channels)):
             return "the scales, channels or compensation changed during the fit; fit again"
         tube.analysis = analysis
-        tube.recipe.engine = dict(recipe.engine or {})
+        tube.recipe.engine = recipe.engine
         tube.contours = None
         tube.control_path = control
         tube.highlight_enriched = bool(control) and getattr(analysis, "enriched", None) is not None

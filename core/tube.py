@@ -22,10 +22,11 @@ import numpy as np
 from .channel_kinds import scatter_direction
 from .errors import ChannelError, RegionError
 from .rare import share_mask, share_order
+from .recipe import RareRule
 from .regions import Region, RegionSet, region_from_dict
 
-#: Default share of events highlighted as rare (0.5 %).
-DEFAULT_SHARE = 0.005
+#: Default share of events highlighted as rare: the recipe's default rare rule (core.recipe.RareRule).
+DEFAULT_SHARE = RareRule().share
 
 
 # --------------------------------------------------------------------- regions
@@ -166,7 +167,7 @@ class Tube:
 
         ef = read_fcs(path)
         recipe = default_recipe(ef)
-        share = float((recipe.rare or {}).get("share", DEFAULT_SHARE))
+        share = recipe.rare.share
         tube = cls(path=os.path.abspath(path), event_file=ef, recipe=recipe, share=share)
         tube.recompute_values()
         tube.pairs = default_pairs(tube.names, recipe.channels)
@@ -201,7 +202,7 @@ class Tube:
     # -- values -----------------------------------------------------------
     def recompute_values(self) -> None:
         """Compensate and transform every channel as the recipe says (core.analysis)."""
-        from .analysis import compensated_and_transformed
+        from .file_values import compensated_and_transformed
 
         self.names, self.values = compensated_and_transformed(self.event_file, self.recipe)
         self._compensated = None
@@ -209,18 +210,16 @@ class Tube:
     def compensated(self, channel: str) -> np.ndarray:
         """Compensated, untransformed values of one channel (for scale previews)."""
         if self._compensated is None:
-            from .analysis import compensated_and_transformed
+            from .file_values import compensate_transform
 
-            bare = copy.copy(self.recipe)
-            bare.transforms = {}
-            _, self._compensated = compensated_and_transformed(self.event_file, bare)
+            self._compensated = compensate_transform(self.event_file, self.recipe).compensated(self.event_file.data)
         return self._compensated[:, self.names.index(channel)]
 
     def by_channel(self) -> dict:
         return {name: self.values[:, j] for j, name in enumerate(self.names)}
 
     def spec(self, channel: str):
-        return (self.recipe.transforms or {}).get(channel)
+        return self.recipe.transforms.get(channel)
 
     # -- fit ----------------------------------------------------------------
     @property
@@ -312,6 +311,6 @@ class Tube:
 
     def recipe_with_regions(self):
         r = copy.deepcopy(self.recipe)
-        r.regions = self.regions.to_dict()
-        r.rare = {"rule": "share", "share": float(self.share)}
+        r.regions = tuple(self.regions)
+        r.rare = RareRule(rule="share", share=float(self.share))
         return r

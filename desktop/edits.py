@@ -65,7 +65,7 @@ class EditsController(QObject):
         reason = self.session.set_compensation(source, edited, csv_path=self.win.comp_panel.csv_path,
                                                matrix_folder=self._matrix_folder())
         if edited is not None:
-            self.win.statusBar().showMessage(f"Edited matrix saved as {tube.recipe.compensation['csv_path']}", 8000)
+            self.win.statusBar().showMessage(f"Edited matrix saved as {tube.recipe.compensation.csv_path}", 8000)
         self._discarded(tube, reason)
         self.win.show_tube(tube)
 

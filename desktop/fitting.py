@@ -83,10 +83,12 @@ class FitController(QObject):
 
     def recipe_for_fit(self, tube):
         """The tube's recipe with its regions and the Fit panel's engine settings."""
+        from core.recipe import Engine
+
         recipe = tube.recipe_with_regions()
-        engine = {k: v for k, v in (recipe.engine or {}).items() if k not in PANEL_KEYS}
+        engine = {k: v for k, v in recipe.engine.items() if k not in PANEL_KEYS}
         engine.update(self.win.fit_panel.engine_settings())
-        recipe.engine = engine
+        recipe.engine = Engine(engine)
         return recipe
 
     def start_fit(self, control: str | None = None) -> bool:

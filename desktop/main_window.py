@@ -262,7 +262,7 @@ class MainWindow(QMainWindow):
         self.channels_panel.show_channels(ef.channel_names, ef.channel_labels, tube.recipe.transforms,
                                           tube.recipe.channels, tube.compensated)
         self.comp_panel.show_for_tube(tube)
-        self.fit_panel.set_engine_settings(tube.recipe.engine or {})
+        self.fit_panel.set_engine_settings(tube.recipe.engine)
         self.rarity_bar.set_share(tube.share, emit=False)
         self.map_view.draw_map(tube)
         self.show_fit(tube, redraw=False)

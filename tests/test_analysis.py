@@ -180,9 +180,9 @@ def test_enriched_region_is_evaluated_after_the_contrast(tmp_path):
     np.testing.assert_array_equal(an.region_masks["new"], an.enriched)
     assert an.enriched.sum() > 0
     # without a control the region (and those built on it) is left out; the others are evaluated
-    r.regions.append({"name": "not new", "kind": "not", "operands": ["new"]})
-    r.regions.append({"name": "CD3 any", "kind": "interval", "channels": ["CD3"], "low": -100.0, "high": None,
-                      "transforms": {"CD3": dict(ARCSINH)}})
+    r.regions = [*r.to_dict()["regions"], {"name": "not new", "kind": "not", "operands": ["new"]},
+                 {"name": "CD3 any", "kind": "interval", "channels": ["CD3"], "low": -100.0, "high": None,
+                  "transforms": {"CD3": dict(ARCSINH)}}]
     plain = analyse(str(tmp_path / "treated.fcs"), r)
     assert list(plain.region_masks) == ["CD3 any"]
     assert plain.info["regions_without_control"] == ["new", "not new"]

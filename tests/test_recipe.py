@@ -96,11 +96,11 @@ def test_round_trip_dict_and_file(tmp_path):
 
 def test_defaults_filled_and_engine_arguments():
     r = Recipe.from_dict({"schema_version": 1, "channels": ["A"]})
-    assert r.compensation == {"source": "none", "csv_path": None}
-    assert r.cleaning == {"drop_saturated": True, "drop_piles": True, "dequantise": True}
-    assert r.rare == {"rule": "share", "share": 0.005}
+    assert r.compensation.to_dict() == {"source": "none", "csv_path": None}
+    assert r.cleaning.to_dict() == {"drop_saturated": True, "drop_piles": True, "dequantise": True}
+    assert r.rare.to_dict() == {"rule": "share", "share": 0.005}
     assert r.engine == {} and r.engine_arguments() == {"random_state": 0}
-    assert r.comparison == {"rate": 0.05, "min_fold": 2.0}
+    assert r.comparison.to_dict() == {"rate": 0.05, "min_fold": 2.0}
     r2 = Recipe.from_dict({"schema_version": 1, "channels": ["A"], "engine": {"random_state": 3}})
     assert r2.engine_arguments() == {"random_state": 3}
 
@@ -300,7 +300,7 @@ def test_default_recipe_on_fcsparser_files(reference_files, tmp_path):
             assert all(c in r.notes for c in left_out) and len(left_out) < len(expected)
         assert r.channels and set(r.channels) <= set(ef.channel_names)
         want = "file" if _spillover_is_well_formed(meta) else "none"
-        assert r.compensation == {"source": want, "csv_path": None}, os.path.basename(ef.path)
+        assert r.compensation.to_dict() == {"source": want, "csv_path": None}, os.path.basename(ef.path)
         seen_file_comp += want == "file"
         seen_none += want == "none"
         assert set(r.transforms) == set(ef.channel_names)
@@ -319,13 +319,13 @@ def test_default_recipe_synthetic():
     names = ["FSC-A", "SSC-H", "Time", "Event_count", "CD3 FITC", "PE-A"]
     plain = default_recipe(_synthetic_event_file(names))
     assert plain.channels == ["CD3 FITC", "PE-A"]
-    assert plain.compensation["source"] == "none"
-    assert plain.regions == [] and plain.rare == {"rule": "share", "share": 0.005}
+    assert plain.compensation.source == "none"
+    assert plain.regions == () and plain.rare.to_dict() == {"rule": "share", "share": 0.005}
     # reference: FCS 3.1 $SPILLOVER text
     comp = default_recipe(_synthetic_event_file(names, {"$SPILLOVER": "2,CD3 FITC,PE-A,1,0.2,0.01,1"}))
-    assert comp.compensation["source"] == "file"
+    assert comp.compensation.source == "file"
     broken = default_recipe(_synthetic_event_file(names, {"$SPILLOVER": "2,CD3 FITC,PE-A,1,0.2"}))
-    assert broken.compensation["source"] == "none" and "not used" in broken.notes
+    assert broken.compensation.source == "none" and "not used" in broken.notes
     scatter_only = default_recipe(_synthetic_event_file(["FSC-A", "SSC-A", "Time"]))
     assert scatter_only.channels == ["FSC-A", "SSC-A"]
     with pytest.raises(RecipeError, match="Time"):
@@ -335,7 +335,7 @@ def test_default_recipe_synthetic():
 def test_comparison_section_is_checked():
     base = {"schema_version": 1, "channels": ["A"]}
     r = Recipe.from_dict({**base, "comparison": {"rate": 0.01}})
-    assert r.comparison == {"rate": 0.01, "min_fold": 2.0}
+    assert r.comparison.to_dict() == {"rate": 0.01, "min_fold": 2.0}
     for bad, words in [({"rate": 0}, "false discovery rate"), ({"rate": 1.5}, "false discovery rate"),
                        ({"min_fold": 0.5}, "min_fold"), ({"rate": "5 %"}, "must be a number"),
                        ({"alpha": 0.001}, "alpha"), ([], "comparison")]:

@@ -145,15 +145,15 @@ class CompensationPanel(QWidget):
 
     def show_for_tube(self, tube) -> None:
         """Show the matrix the tube's recipe uses (or the file's, not applied)."""
-        comp = tube.recipe.compensation or {"source": "none"}
-        source = comp.get("source", "none")
+        comp = tube.recipe.compensation
+        source = comp.source
         try:
-            S = (read_spillover_csv(tube.recipe.csv_path_resolved()) if source == "csv" and comp.get("csv_path")
+            S = (read_spillover_csv(tube.recipe.csv_path_resolved()) if source == "csv"
                  else spillover_from_keywords(tube.event_file.keywords, source=os.path.basename(tube.path))
                  if source in ("file", "none") else None)
         except BoscageError:
             S = None
-        self.show_matrix(source, S, comp.get("csv_path"))
+        self.show_matrix(source, S, comp.csv_path)
         if source == "none" and S is not None:
             self.info.setText("The file carries this matrix but it is not applied; "
                               "choose the file's keyword and Apply to use it.")

@@ -209,7 +209,7 @@ def population_region(tube, pop_id: int, name: str) -> dict:
     """A region dict (core.regions, kind ``population``) for population ``pop_id`` of the tube's analysis."""
     a = tube.analysis
     definition = a.populations.definition
-    transforms = {c: (tube.recipe.transforms or {}).get(c) for c in definition.channels}
+    transforms = {c: tube.recipe.transforms.get(c) for c in definition.channels}
     return {"name": name, "kind": "population", "population": int(pop_id),
             "definition": definition.to_dict(), "transforms": transforms}
 
@@ -252,9 +252,8 @@ def attach(window) -> PopulationsPanel:
         tube = window.current
         if tube is None or tube.analysis is None or tube.analysis.populations is None:
             return
-        settings = dict(tube.recipe.populations or {})
-        settings["definition"] = tube.analysis.populations.definition.to_dict()
-        tube.recipe.populations = settings
+        tube.recipe.populations = tube.recipe.populations.with_definition(
+            tube.analysis.populations.definition.to_dict())
         tube.dirty = True
         window.statusBar().showMessage("The populations are kept in the recipe: save it to count them in "
                                        "other files and in a batch", 8000)
