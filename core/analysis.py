@@ -268,7 +268,7 @@ def analyse(event_file: Any, recipe: Recipe, progress=None, control: Any = None,
     t0 = time.perf_counter()
     event_file = _as_event_file(event_file)
     recipe = validate_recipe(recipe, event_file)
-    prepared, values = density_input(event_file, recipe, compensate_transform(event_file, recipe))
+    prepared, values = density_input(event_file, recipe)   # the file's compensate-and-transform step, once
     n = values.shape[0]
     n_kept = int(np.count_nonzero(prepared.kept))
     if n_kept < 50:

@@ -745,7 +745,7 @@ def _cleanup_partial(out_dir: str) -> None:
 
 
 def _summary_columns(rows: list, recipe: Any, control: bool) -> list[str]:
-    regions = [f"region:{r.get('name')}" for r in (getattr(recipe, "regions", None) or [])]
+    regions = [f"region:{r.name}" for r in recipe.regions]
     extra = [k for row in rows for k in row if k.startswith("region:") and k not in regions]
     cols = BASE_COLUMNS + ["rare_populations"] + regions + sorted(set(extra))
     if control:

@@ -58,7 +58,7 @@ In code the sections are typed records (:mod:`core.recipe.records`:
 (:meth:`Recipe.from_dict` / :meth:`Recipe.to_dict`, :func:`load_recipe` /
 :func:`save_recipe`).  Every default is a field default of its record.
 
-Modules: :mod:`.records` (the sections), :mod:`.model` (:class:`Recipe`),
+Modules: :mod:`.records` and :mod:`.keyed` (the sections), :mod:`.model` (:class:`Recipe`),
 :mod:`.files` (checking against an event file, JSON file, digest),
 :mod:`.defaults` (:func:`default_recipe`).
 
@@ -73,8 +73,8 @@ from ..channel_kinds import is_fluorescence
 from .defaults import MAX_PILE_SHARE, default_recipe
 from .files import as_recipe, load_recipe, recipe_digest, save_recipe, validate_recipe
 from .model import SCHEMA_VERSION, Recipe
-from .records import (COMPENSATION_SOURCES, RARE_RULES, Cleaning, Comparison, Compensation, Engine, Populations,
-                      RareRule, TransformSpec)
+from .keyed import Engine, Populations, TransformSpec
+from .records import COMPENSATION_SOURCES, RARE_RULES, Cleaning, Comparison, Compensation, RareRule
 
 
 def is_fluorescence_channel(name: str, label: str | None = None) -> bool:

@@ -8,7 +8,8 @@ from typing import Any
 from ..channel_kinds import FLUORESCENCE, SCATTER, channel_kind, one_measure_per_detector
 from ..errors import CompensationError, RecipeError
 from .model import Recipe
-from .records import Compensation, Engine
+from .keyed import Engine
+from .records import Compensation
 
 #: default_recipe leaves out a channel whose floor or ceiling pile holds more than this share.
 MAX_PILE_SHARE = 0.25

@@ -10,8 +10,8 @@ from typing import Any, Mapping
 from .. import SOFTWARE_NAME, __version__
 from ..errors import RecipeError, RegionError
 from ..regions import Region, RegionSet
-from .records import (NOWHERE, Cleaning, Comparison, Compensation, Engine, Populations, RareRule, TransformSpec,
-                      check_keys, transforms_from_dict, typename)
+from .keyed import Engine, Populations, TransformSpec, transforms_from_dict
+from .records import NOWHERE, Cleaning, Comparison, Compensation, RareRule, check_keys, typename
 
 #: The recipe schema version this Boscage writes and the newest it reads.
 SCHEMA_VERSION = 1

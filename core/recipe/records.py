@@ -1,21 +1,18 @@
 """The typed sections of a recipe, each checking itself; dicts only in ``from_dict`` / ``to_dict``.
 
-Every default of a recipe lives here, as the field defaults of these
-records; other modules read them from here (``Cleaning().drop_piles``,
-``RareRule().share``, ``Comparison().rate``, ``Engine.DEFAULT_RANDOM_STATE``).
+Every default of a recipe is a field default of its record, here or in
+:mod:`core.recipe.keyed`; other modules read them from there
+(``Cleaning().drop_piles``, ``RareRule().share``, ``Comparison().rate``,
+``Engine.DEFAULT_RANDOM_STATE``).
 
 * :class:`Compensation`: where the spillover matrix comes from.
-* :class:`TransformSpec`: one channel's transform (a read-only dict, the
-  spec :func:`core.transforms.make_transform` takes).
 * :class:`Cleaning`: which events :mod:`core.prepare` sets aside or jitters.
-* :class:`Engine`: keyword arguments of the additive tree density (read-only
-  mapping of the parameters given; the engine owns their defaults).
 * :class:`RareRule`: which events are rare (:mod:`core.rare`).
-* :class:`Populations`: settings of :mod:`core.populations` given in the
-  recipe (that module owns their defaults) and the stored ``definition``.
 * :class:`Comparison`: false discovery rate and minimum fold of a contrast.
 
-Regions are :class:`core.regions.Region` records (see :class:`core.recipe.Recipe`).
+The sections whose keys another module owns (``TransformSpec``, ``Engine``,
+``Populations``) are in :mod:`core.recipe.keyed`; regions are
+:class:`core.regions.Region` records (see :class:`core.recipe.Recipe`).
 
 Building a record with a bad value raises :class:`RecipeError`; ``from_dict``
 also checks the stored form (keys, types) and names the recipe file
@@ -27,10 +24,9 @@ from __future__ import annotations
 import json
 import math
 from dataclasses import dataclass, fields
-from typing import Any, Iterator, Mapping
+from typing import Any, Mapping
 
-from ..errors import BoscageError, RecipeError
-from ..transforms import TRANSFORM_KINDS
+from ..errors import RecipeError
 
 COMPENSATION_SOURCES = ("file", "csv", "none")
 RARE_RULES = ("share", "mass")
@@ -110,73 +106,6 @@ class Compensation:
 
 
 # ---------------------------------------------------------------------------
-# transforms
-# ---------------------------------------------------------------------------
-
-class TransformSpec(dict):
-    """One channel's transform: ``{"kind": ..., parameters...}`` as stored, checked by
-    :func:`core.transforms.make_transform` and read-only.
-
-    A dict so that every reader of transform specs (``make_transform``, the
-    regions' recorded scales, the app's scale controls) takes it as it is;
-    ``kind`` and ``params`` name its parts.
-    """
-
-    def __init__(self, spec: Any, channel: str = "?"):
-        if not isinstance(spec, Mapping):
-            raise _Bad(f"the transform of channel {channel!r} must be an object like "
-                       f'{{"kind": "arcsinh", "cofactor": 150.0}}; got {typename(spec)}')
-        kind = spec.get("kind")
-        if kind not in TRANSFORM_KINDS:
-            raise _Bad(f"the transform of channel {channel!r} has unknown kind {kind!r}; "
-                       f"use one of {', '.join(TRANSFORM_KINDS)}")
-        from ..transforms import make_transform
-
-        try:
-            make_transform(dict(spec))
-        except BoscageError as exc:
-            raise _Bad(f"the transform of channel {channel!r} is invalid: {exc}") from exc
-        except (TypeError, ValueError, KeyError) as exc:
-            raise _Bad(f"the transform of channel {channel!r} has a bad parameter: {exc}") from exc
-        super().__init__(spec)
-
-    @property
-    def kind(self) -> str:
-        return self["kind"]
-
-    @property
-    def params(self) -> dict:
-        """The parameters as written (without ``kind``)."""
-        return {k: v for k, v in self.items() if k != "kind"}
-
-    def to_dict(self) -> dict:
-        return dict(self)
-
-    def _read_only(self, *args, **kwargs):
-        raise TypeError("a recipe's transform spec is read-only; build a new one")
-
-    __setitem__ = __delitem__ = update = pop = popitem = clear = setdefault = _read_only  # type: ignore[assignment]
-
-    def __reduce__(self):
-        return (self.__class__, (dict(self),))
-
-    def __copy__(self):
-        return self
-
-    def __deepcopy__(self, memo):
-        return self
-
-
-def transforms_from_dict(d: Any, where: str = NOWHERE) -> dict:
-    """channel -> :class:`TransformSpec` from the stored ``transforms`` object."""
-    if not isinstance(d, Mapping):
-        raise RecipeError(f"{where}'transforms' must be an object mapping channel -> transform; "
-                          f"got {typename(d)}")
-    return {str(c): (s if isinstance(s, TransformSpec) else build(TransformSpec, where, s, str(c)))
-            for c, s in d.items()}
-
-
-# ---------------------------------------------------------------------------
 # cleaning
 # ---------------------------------------------------------------------------
 
@@ -210,92 +139,6 @@ class Cleaning:
             raise RecipeError(f"{where}'cleaning' must be an object; got {typename(d)}")
         check_keys(d, [f.name for f in fields(cls)], "'cleaning'", where)
         return build(cls, where, **d)
-
-
-# ---------------------------------------------------------------------------
-# engine
-# ---------------------------------------------------------------------------
-
-def _engine_parameters() -> list | None:
-    """The additive tree density's parameter names, or None when they cannot be read."""
-    import inspect
-
-    try:
-        from ..density import AdditiveTreeDensity  # type: ignore[attr-defined]
-        params = inspect.signature(AdditiveTreeDensity.__init__).parameters
-    except (ImportError, TypeError, ValueError):
-        return None
-    if any(p.kind == inspect.Parameter.VAR_KEYWORD for p in params.values()):
-        return None
-    return [n for n in params if n != "self"]
-
-
-class Engine(Mapping):
-    """Keyword arguments of the additive tree density given in the recipe (read-only).
-
-    Only the parameters given are kept (the engine owns the defaults of the
-    others), so the stored form is unchanged; ``random_state`` defaults to
-    :data:`DEFAULT_RANDOM_STATE` (see :meth:`arguments`).
-    """
-
-    DEFAULT_RANDOM_STATE = 0
-
-    def __init__(self, settings: Mapping | None = None):
-        settings = {} if settings is None else settings
-        if not isinstance(settings, Mapping):
-            raise _Bad(f"'engine' must be an object of density engine parameters; got {typename(settings)}")
-        for k, v in settings.items():
-            if not isinstance(k, str):
-                raise _Bad(f"engine parameter names must be text; got {k!r}")
-            if isinstance(v, float) and not math.isfinite(v):
-                raise _Bad(f"engine parameter {k!r} must be a finite number; got {v}")
-            if not (v is None or isinstance(v, (bool, int, float, str))):
-                raise _Bad(f"engine parameter {k!r} must be a number, text, true/false or null; got {typename(v)}")
-        rs = settings.get("random_state", self.DEFAULT_RANDOM_STATE)
-        if not isinstance(rs, int) or isinstance(rs, bool) or rs < 0:
-            raise _Bad(f"engine 'random_state' must be a whole number >= 0 (a fixed seed makes the analysis "
-                       f"repeatable); got {rs!r}")
-        accepted = _engine_parameters()
-        unknown = [] if accepted is None else [k for k in settings if k not in accepted]
-        if unknown:
-            raise _Bad(f"engine parameter(s) {', '.join(repr(k) for k in unknown)} are not parameters of the "
-                       f"additive tree density; accepted: {', '.join(accepted)}")
-        self._settings = dict(settings)
-
-    def __getitem__(self, key: str):
-        return self._settings[key]
-
-    def __iter__(self) -> Iterator[str]:
-        return iter(self._settings)
-
-    def __len__(self) -> int:
-        return len(self._settings)
-
-    def __repr__(self) -> str:
-        return f"Engine({self._settings!r})"
-
-    def __reduce__(self):
-        return (self.__class__, (self._settings,))
-
-    @property
-    def random_state(self) -> int:
-        return int(self._settings.get("random_state", self.DEFAULT_RANDOM_STATE))
-
-    def arguments(self) -> dict:
-        """Keyword arguments for the engine: those given, ``random_state`` filled in."""
-        return {"random_state": self.DEFAULT_RANDOM_STATE, **self._settings}
-
-    def replaced(self, **changes) -> "Engine":
-        """A copy with some parameters changed (a value None removes the parameter)."""
-        new = {**self._settings, **changes}
-        return Engine({k: v for k, v in new.items() if not (k in changes and changes[k] is None)})
-
-    def to_dict(self) -> dict:
-        return dict(self._settings)
-
-    @classmethod
-    def from_dict(cls, d: Any, where: str = NOWHERE) -> "Engine":
-        return build(cls, where, d)
 
 
 # ---------------------------------------------------------------------------
@@ -348,72 +191,6 @@ class RareRule:
         if rule not in d:
             raise RecipeError(f"{where}rare rule {rule!r} needs the value '{rule}'")
         return build(cls, where, rule, **{rule: d[rule]})
-
-
-# ---------------------------------------------------------------------------
-# populations
-# ---------------------------------------------------------------------------
-
-class Populations(Mapping):
-    """The recipe's ``populations`` entry (read-only): the settings of
-    :mod:`core.populations` given in the recipe (that module's
-    ``DEFAULT_SETTINGS`` holds the others) and, once kept, the stored
-    ``definition`` (its stored dict) so every file is counted with the same
-    populations."""
-
-    def __init__(self, entry: Mapping | None = None):
-        from ..populations import PopulationDefinition, check_settings
-
-        entry = {} if entry is None else entry
-        if not isinstance(entry, Mapping):
-            raise _Bad(f"'populations' must be an object like {{\"rare_share\": 0.01}}; got {typename(entry)}")
-        try:
-            check_settings(entry, "")
-            definition = entry.get("definition")
-            if definition is not None:
-                definition = PopulationDefinition.from_dict(definition).to_dict()
-        except RecipeError as exc:
-            raise _Bad(str(exc)) from exc
-        self._entry = {k: v for k, v in entry.items() if k != "definition"}
-        if definition is not None:
-            self._entry["definition"] = definition
-
-    def __getitem__(self, key: str):
-        return self._entry[key]
-
-    def __iter__(self) -> Iterator[str]:
-        return iter(self._entry)
-
-    def __len__(self) -> int:
-        return len(self._entry)
-
-    def __repr__(self) -> str:
-        return f"Populations({self._entry!r})"
-
-    def __reduce__(self):
-        return (self.__class__, (self._entry,))
-
-    @property
-    def definition(self) -> dict | None:
-        """The stored definition (dict of :class:`core.populations.PopulationDefinition`), or None."""
-        return self._entry.get("definition")
-
-    @property
-    def settings(self) -> dict:
-        """The settings given (without the definition)."""
-        return {k: v for k, v in self._entry.items() if k != "definition"}
-
-    def with_definition(self, definition: Mapping | None) -> "Populations":
-        return Populations({**self.settings, **({} if definition is None else {"definition": definition})})
-
-    def to_dict(self) -> dict:
-        import copy
-
-        return copy.deepcopy(self._entry)
-
-    @classmethod
-    def from_dict(cls, d: Any, where: str = NOWHERE) -> "Populations":
-        return build(cls, where, d)
 
 
 # ---------------------------------------------------------------------------
