@@ -270,8 +270,8 @@ def test_scale_and_compensation_edits_recompute_values(qtbot, window, tmp_path):
     # edit one spillover value, apply: the matrix is saved as CSV and used
     window.comp_panel.set_value(0, 1, 0.2)
     window.comp_panel.apply_button.click()
-    assert tube.recipe.compensation["source"] == "csv"
-    S = read_spillover_csv(tube.recipe.compensation["csv_path"])
+    assert tube.recipe.compensation.source == "csv"
+    S = read_spillover_csv(tube.recipe.compensation.csv_path)
     edited = SPILL.copy()
     edited[0, 1] = 0.2
     np.testing.assert_allclose(S.matrix, edited)
@@ -501,7 +501,7 @@ def test_contrast_with_control_highlights_enriched(qtbot, window, tmp_path):
     name = "new vs control"
     assert tube.regions[name].kind == "enriched" and tube.regions[name].control == "control.fcs"
     assert window.region_count(name) == int(a.enriched.sum())
-    assert tube.recipe_with_regions().regions[-1] == {"name": name, "kind": "enriched", "parent": None,
+    assert tube.recipe_with_regions().regions[-1].to_dict() == {"name": name, "kind": "enriched", "parent": None,
                                                        "control": "control.fcs"}
     # and exported like any region: read back with fcsparser, p and q columns included
     from desktop.dialogs import ExportDialog
@@ -575,7 +575,7 @@ def test_populations_list_highlight_keep_as_region_and_export(qtbot, window, tmp
     assert np.array_equal(tube.masks[name], expected)
     # the region is stored in the recipe with its definition
     assert any(d["kind"] == "population" and d["population"] == small["id"] and d["definition"]
-               for d in tube.recipe_with_regions().regions)
+               for d in tube.recipe_with_regions().to_dict()["regions"])
     dlg = ExportDialog(window, tube, [name])
     out = tmp_path / "population.fcs"
     dlg.path.setText(str(out))
