@@ -131,7 +131,6 @@ class Session:
         from .compensation import write_spillover_csv
 
         tube = self.require()
-        comp = Compensation(source)   # the one place the sources are checked (core.recipe)
         if edited is not None:
             stem = os.path.splitext(os.path.basename(tube.path))[0]
             path = unique_path(os.path.join(matrix_folder or os.path.dirname(tube.path),
@@ -143,6 +142,8 @@ class Session:
             if not csv_path:
                 raise BoscageError("choose a spillover CSV file first (Load CSV...)")
             comp = Compensation("csv", csv_path)
+        else:
+            comp = Compensation(source)   # the record checks the source (core.recipe)
         old = tube.recipe.compensation
         tube.recipe.compensation = comp
         try:

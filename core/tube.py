@@ -201,7 +201,7 @@ class Tube:
 
     # -- values -----------------------------------------------------------
     def recompute_values(self) -> None:
-        """Compensate and transform every channel as the recipe says (core.analysis)."""
+        """Compensate and transform every channel as the recipe says (core.file_values)."""
         from .file_values import compensated_and_transformed
 
         self.names, self.values = compensated_and_transformed(self.event_file, self.recipe)

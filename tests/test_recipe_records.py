@@ -134,3 +134,30 @@ def test_compensate_transform_step_is_built_once_per_file(monkeypatch):
     step = file_values.compensate_transform(ef, r)
     np.testing.assert_array_equal(step.apply(ef.data), values)
     assert prepared.matrix.shape == (int(prepared.kept.sum()), len(r.channels))
+
+
+def test_session_compensation_choices_make_records(tmp_path):
+    from core.compensation import SpilloverMatrix, write_spillover_csv
+    from core.errors import BoscageError
+    from core.session import Session
+    from tests.test_session import make_fcs
+
+    path = make_fcs(tmp_path / "tube.fcs")
+    s = Session()
+    s.open([path])
+    tube = s.current
+    with pytest.raises(BoscageError, match="choose a spillover CSV file first"):
+        s.set_compensation("csv")
+    S = SpilloverMatrix(detectors=["FL1-A", "FL2-A"], matrix=np.array([[1.0, 0.1], [0.05, 1.0]]), source="test")
+    csv = write_spillover_csv(tmp_path / "spill.csv", S)
+    s.set_compensation("csv", csv_path=csv)
+    assert tube.recipe.compensation == Compensation("csv", csv)
+    # the values follow: compensated = observed @ inverse(S) on the detectors (FCS 3.1 $SPILLOVER meaning)
+    fl = [tube.names.index("FL1-A"), tube.names.index("FL2-A")]
+    by_hand = np.asarray(tube.event_file.data, dtype=np.float64)[:, fl] @ np.linalg.inv(S.matrix)
+    np.testing.assert_allclose(tube.compensated("FL1-A"), by_hand[:, 0], rtol=1e-10)
+    s.set_compensation("none")
+    assert tube.recipe.compensation == Compensation() and tube.recipe.compensation.csv_path is None
+    with pytest.raises(RecipeError, match="compensation source 'auto'"):
+        s.set_compensation("auto")
+    assert tube.recipe.compensation == Compensation()

@@ -20,6 +20,27 @@ from ..transforms import TRANSFORM_KINDS
 from .records import NOWHERE, _Bad, build, typename
 
 
+class _ReadOnlyMapping(Mapping):
+    """A read-only mapping over ``self._data`` (a dict set once in ``__init__``)."""
+
+    _data: dict
+
+    def __getitem__(self, key: str):
+        return self._data[key]
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._data)
+
+    def __len__(self) -> int:
+        return len(self._data)
+
+    def __repr__(self) -> str:
+        return f"{type(self).__name__}({self._data!r})"
+
+    def __reduce__(self):
+        return (self.__class__, (self._data,))
+
+
 # ---------------------------------------------------------------------------
 # transforms
 # ---------------------------------------------------------------------------
@@ -105,7 +126,7 @@ def _engine_parameters() -> list | None:
     return [n for n in params if n != "self"]
 
 
-class Engine(Mapping):
+class Engine(_ReadOnlyMapping):
     """Keyword arguments of the additive tree density given in the recipe (read-only).
 
     Only the parameters given are kept (the engine owns the defaults of the
@@ -135,38 +156,18 @@ class Engine(Mapping):
         if unknown:
             raise _Bad(f"engine parameter(s) {', '.join(repr(k) for k in unknown)} are not parameters of the "
                        f"additive tree density; accepted: {', '.join(accepted)}")
-        self._settings = dict(settings)
-
-    def __getitem__(self, key: str):
-        return self._settings[key]
-
-    def __iter__(self) -> Iterator[str]:
-        return iter(self._settings)
-
-    def __len__(self) -> int:
-        return len(self._settings)
-
-    def __repr__(self) -> str:
-        return f"Engine({self._settings!r})"
-
-    def __reduce__(self):
-        return (self.__class__, (self._settings,))
+        self._data = dict(settings)
 
     @property
     def random_state(self) -> int:
-        return int(self._settings.get("random_state", self.DEFAULT_RANDOM_STATE))
+        return int(self._data.get("random_state", self.DEFAULT_RANDOM_STATE))
 
     def arguments(self) -> dict:
         """Keyword arguments for the engine: those given, ``random_state`` filled in."""
-        return {"random_state": self.DEFAULT_RANDOM_STATE, **self._settings}
-
-    def replaced(self, **changes) -> "Engine":
-        """A copy with some parameters changed (a value None removes the parameter)."""
-        new = {**self._settings, **changes}
-        return Engine({k: v for k, v in new.items() if not (k in changes and changes[k] is None)})
+        return {"random_state": self.DEFAULT_RANDOM_STATE, **self._data}
 
     def to_dict(self) -> dict:
-        return dict(self._settings)
+        return dict(self._data)
 
     @classmethod
     def from_dict(cls, d: Any, where: str = NOWHERE) -> "Engine":
@@ -177,7 +178,7 @@ class Engine(Mapping):
 # populations
 # ---------------------------------------------------------------------------
 
-class Populations(Mapping):
+class Populations(_ReadOnlyMapping):
     """The recipe's ``populations`` entry (read-only): the settings of
     :mod:`core.populations` given in the recipe (that module's
     ``DEFAULT_SETTINGS`` holds the others) and, once kept, the stored
@@ -197,34 +198,19 @@ class Populations(Mapping):
                 definition = PopulationDefinition.from_dict(definition).to_dict()
         except RecipeError as exc:
             raise _Bad(str(exc)) from exc
-        self._entry = {k: v for k, v in entry.items() if k != "definition"}
+        self._data = {k: v for k, v in entry.items() if k != "definition"}
         if definition is not None:
-            self._entry["definition"] = definition
-
-    def __getitem__(self, key: str):
-        return self._entry[key]
-
-    def __iter__(self) -> Iterator[str]:
-        return iter(self._entry)
-
-    def __len__(self) -> int:
-        return len(self._entry)
-
-    def __repr__(self) -> str:
-        return f"Populations({self._entry!r})"
-
-    def __reduce__(self):
-        return (self.__class__, (self._entry,))
+            self._data["definition"] = definition
 
     @property
     def definition(self) -> dict | None:
         """The stored definition (dict of :class:`core.populations.PopulationDefinition`), or None."""
-        return self._entry.get("definition")
+        return self._data.get("definition")
 
     @property
     def settings(self) -> dict:
         """The settings given (without the definition)."""
-        return {k: v for k, v in self._entry.items() if k != "definition"}
+        return {k: v for k, v in self._data.items() if k != "definition"}
 
     def with_definition(self, definition: Mapping | None) -> "Populations":
         return Populations({**self.settings, **({} if definition is None else {"definition": definition})})
@@ -232,7 +218,7 @@ class Populations(Mapping):
     def to_dict(self) -> dict:
         import copy
 
-        return copy.deepcopy(self._entry)
+        return copy.deepcopy(self._data)
 
     @classmethod
     def from_dict(cls, d: Any, where: str = NOWHERE) -> "Populations":
