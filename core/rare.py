@@ -143,7 +143,7 @@ def share_mask(order: np.ndarray, share: float, n_events: int) -> np.ndarray:
     return mask
 
 
-def rare_by_share(log_density: np.ndarray, share: float = 0.005) -> RareResult:
+def rare_by_share(log_density: np.ndarray, share: float = RareRule.share) -> RareResult:
     """The ``round(share * n_kept)`` events with the lowest finite log density.
 
     ``share`` is a fraction in [0, 1] (0.005 = 0.5 %).
@@ -230,7 +230,7 @@ def mass_level(model: Any, mass: float, n_samples: int = DEFAULT_LEVEL_SAMPLES,
     return float(hdr_levels(model, [mass], n_samples, random_state)[0])
 
 
-def rare_by_mass(log_density: np.ndarray, model: Any, mass: float = 0.995,
+def rare_by_mass(log_density: np.ndarray, model: Any, mass: float = RareRule.mass,
                  n_samples: int = DEFAULT_LEVEL_SAMPLES, random_state: int | None = 0) -> RareResult:
     """Events whose log density is below the level of the HDR holding ``mass``.
 

@@ -23,6 +23,7 @@ from PySide6.QtWidgets import (QDockWidget, QFileDialog, QLabel, QMainWindow, QM
 
 from core import RESEARCH_USE_NOTE, SOFTWARE_NAME, __version__
 from core.errors import BoscageError
+from core.recipe import RareRule
 from core.session import Session
 
 from desktop.actions import build_actions
@@ -110,7 +111,7 @@ class MainWindow(QMainWindow):
         self.contrast_panel.showRequested.connect(self.set_highlight_enriched)
         self.contrast_panel.keepRequested.connect(self.regions.keep_enriched)
         self.populations_panel = attach_populations(self)
-        self.rarity_bar.set_share(0.005, emit=False)
+        self.rarity_bar.set_share(RareRule().share, emit=False)   # the recipe's default rare share
         self.density_map.set_title("Open an FCS file or a folder (Ctrl+O), or drop one here")
         geometry = self.settings.value("window/geometry")
         if geometry is not None and interactive:

@@ -10,6 +10,7 @@ import numpy as np
 from PySide6.QtCore import Qt, Signal
 from PySide6.QtWidgets import QComboBox, QDoubleSpinBox, QHBoxLayout, QLabel, QPushButton, QSizePolicy, QSlider, QWidget
 
+from core.recipe import RareRule
 from desktop.plots import COLOUR_MODES
 
 #: The rarity slider runs over shares from 0.01 % to 20 % on a log scale.
@@ -72,7 +73,7 @@ class RarityBar(QWidget):
         lay.addWidget(self.colour)
         self.colour.currentIndexChanged.connect(lambda _i: self.colourChanged.emit(self.colour.currentData()))
         self.keep_button.clicked.connect(lambda: self.keepRequested.emit(self._share))
-        self._share = 0.005
+        self._share = RareRule().share   # the recipe's default rare share
         self.slider.valueChanged.connect(self._slid)
         self.spin.valueChanged.connect(self._typed)
 
