@@ -1,4 +1,4 @@
-"""One recipe over a folder (core/batch.py): summary rows, exit codes, exports, re-runs.
+"""One recipe over a folder (core/batch/): summary rows, exit codes, exports, re-runs.
 
 Exported files are read back with fcsparser (reference) and compared with the
 source file's raw values; the summary CSV is read back with pandas.
@@ -128,7 +128,7 @@ def test_exports_hold_the_original_raw_values_of_the_selected_events(first_run, 
     summary = pd.read_csv(out / "summary.csv").set_index("file")
     assert int(summary.loc["a good.fcs", "rare_events"]) == an.n_rare
     assert int(summary.loc["a good.fcs", "region:CD3 high"]) == int(an.region_masks["CD3 high"].sum())
-    for name, mask in [("a good rare.fcs", an.rare), ("a good region CD3 high.fcs", an.region_masks["CD3 high"])]:
+    for name, mask in [("a_good_rare.fcs", an.rare), ("a_good_region_CD3_high.fcs", an.region_masks["CD3 high"])]:
         # reference: fcsparser reads our export
         meta, df = fcsparser.parse(os.path.join(sub, name), reformat_meta=True)
         got = df[CHANNELS].to_numpy()
@@ -447,7 +447,7 @@ def test_a_changed_spillover_csv_redoes_finished_files(tmp_path):
     assert redone.n_skipped == 0 and [r["status"] for r in redone.rows] == ["ok"]
     assert (out / "a" / "done.json").read_text(encoding="utf-8") != marker_before
     assert redone.rows[0]["heldout_loglik"] != first.rows[0]["heldout_loglik"]
-    assert os.path.isfile(out / "a" / "a rare.fcs")
+    assert os.path.isfile(out / "a" / "a_rare.fcs")
 
 
 def test_batch_writes_the_enriched_events_with_p_and_q_and_the_shift_warning(control_folder, tmp_path):
@@ -474,7 +474,7 @@ def test_batch_writes_the_enriched_events_with_p_and_q_and_the_shift_warning(con
         assert "CD4" in row["shift_warning"] and "CD3" not in row["shift_warning"].split(":")[1][:20]
         stem = os.path.splitext(name)[0]
         folder = file_out_dir(str(out), name)
-        meta, df = fcsparser.parse(os.path.join(folder, f"{stem} enriched.fcs"), reformat_meta=True)
+        meta, df = fcsparser.parse(os.path.join(folder, f"{stem}_enriched.fcs"), reformat_meta=True)
         assert len(df) == int(row["enriched"])
         assert {"contrast score", "contrast p", "contrast q"} <= set(df.columns)
         assert (df["contrast q"] <= 0.05).all() and (df["contrast p"] <= df["contrast q"] + 1e-12).all()
@@ -482,7 +482,7 @@ def test_batch_writes_the_enriched_events_with_p_and_q_and_the_shift_warning(con
         assert meta["BOSCAGE_CONTROL"] == "control hot.fcs" and float(meta["BOSCAGE_FDR"]) == 0.05
         assert "CD4" in meta["BOSCAGE_SHIFT_WARNING"]
         # the CSV copy holds the same events (transformed values) after the caution line
-        table = pd.read_csv(os.path.join(folder, f"{stem} enriched.csv"), comment="#")
+        table = pd.read_csv(os.path.join(folder, f"{stem}_enriched.csv"), comment="#")
         assert len(table) == len(df) and "contrast q" in table.columns
     # the warning is the core shift check on the two files' density inputs
     from core.analysis import density_input
