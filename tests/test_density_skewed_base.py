@@ -193,13 +193,13 @@ def test_model_file_keeps_the_skew(tmp_path):
     rng = np.random.default_rng(8)
     X = _rvs(12_000, rng)
     model = AdditiveTreeDensity(random_state=0).fit(X)
-    assert model.base_ == "skewed" and model._gmm.skew is not None and model._gmm.background is not None
+    assert model.base_ == "skewed" and model.mixture_.is_skewed and model.mixture_.background is not None
     path = tmp_path / "skewed.npz"
     model.save(path)
     with np.load(path, allow_pickle=False) as z:
         assert json.loads(str(z["metadata"][()]))["format_version"] == 3
-        np.testing.assert_array_equal(z["gmm_skew"], model._gmm.skew)
-        np.testing.assert_array_equal(z["gmm_background"], model._gmm.background)
+        np.testing.assert_array_equal(z["gmm_skew"], model.mixture_.skew)
+        np.testing.assert_array_equal(z["gmm_background"], model.mixture_.background)
     back = AdditiveTreeDensity.load(path)
     Xt = _rvs(2000, rng)
     np.testing.assert_array_equal(back.score_samples(Xt), model.score_samples(Xt))
