@@ -50,6 +50,18 @@ def _base_inverse_rows(start, stop, U, X, loc, scale):
                 X[i, j] = loc[j] + scale[j] * (math.log(u) - math.log1p(-u))
 
 @njit(cache=True)
+def _piece(knots, a, b, v):
+    """Index in [a, b - 2] of the piece of one channel's knots ``knots[a:b]`` holding v:
+    the last knot <= v, clamped to the first and last piece."""
+    k = np.searchsorted(knots[a:b], v, side="right") - 1
+    if k < 0:
+        k = 0
+    if k > b - a - 2:
+        k = b - a - 2
+    return a + k
+
+
+@njit(cache=True)
 def _pwl_forward_rows(start, stop, U, logd, m):
     """Per-channel monotone piecewise-linear maps of [0, 1] onto itself, in place.
 
@@ -68,13 +80,7 @@ def _pwl_forward_rows(start, stop, U, logd, m):
             if b - a < 2:
                 continue
             u = U[i, j]
-            # last knot <= u, restricted to a piece index in [a, b-2]
-            k = np.searchsorted(xs[a:b], u, side="right") - 1
-            if k < 0:
-                k = 0
-            if k > b - a - 2:
-                k = b - a - 2
-            p = a + k
+            p = _piece(xs, a, b, u)
             v = ys[p] + (u - xs[p]) * slopes[p]
             if v < 0.0:
                 v = 0.0
@@ -97,12 +103,7 @@ def _pwl_inverse_rows(start, stop, U, m):
             if b - a < 2:
                 continue
             v = U[i, j]
-            k = np.searchsorted(ys[a:b], v, side="right") - 1
-            if k < 0:
-                k = 0
-            if k > b - a - 2:
-                k = b - a - 2
-            p = a + k
+            p = _piece(ys, a, b, v)
             u = xs[p] + (v - ys[p]) / slopes[p]
             if u < xs[p]:
                 u = xs[p]
