@@ -43,7 +43,7 @@ in the transformed units.  The map keeps its form: component k's conditional
 CDF of x_j is ``Phi((y_kj(x_j) - m_kj) / L_k[j, j])`` and its conditional
 density gains the factor dy_kj/dx_j, which lies in
 [exp(-|eps|) / s, exp(|eps|) / s], so the log density stays exact and finite.
-Fitted by generalised EM from the chosen Gaussian mixture (:func:`core.density.skew_fit.skew_em`).
+Fitted by generalised EM from the chosen Gaussian mixture (:class:`core.density.skew_fit.SkewFit`).
 
 Flat-top background (``background``, with the skewed components in the model's
 default): per channel 99.9 % the uniform on [a, b] convolved with a logistic of

@@ -13,7 +13,7 @@ import numpy as np
 from ..progress import keep_going
 from .em import em_from_kmeans, em_iterations, split_components
 from .mixture_base import MixtureBase, background_logpdf
-from .skew_fit import initial_flat_background, skew_em
+from .skew_fit import SkewFit, initial_flat_background
 
 #: Component counts tried in turn (held-out log-likelihood picks one).
 DEFAULT_COMPONENTS = (1, 2, 4, 8, 16, 32, 64)
@@ -112,7 +112,7 @@ def fit_mixture(X, loc, scale, settings: MixtureSettings | None = None, validati
     k-means++ restarts per count (best training log-likelihood kept).
     Covariances get ``1e-6 x`` the channel variance added on the diagonal
     (floor).  With ``settings.skew``, the chosen mixture is then refitted with a
-    sinh-arcsinh transform per component and channel (:func:`core.density.skew_fit.skew_em`),
+    sinh-arcsinh transform per component and channel (:class:`core.density.skew_fit.SkewFit`),
     kept only if it beats it on the held-out events by ``settings.min_gain``; when
     the chosen count is ``SPLIT_SPLIT_FROM`` (64) or more, the count before
     it is refitted with skewed components too and the larger skewed
@@ -210,27 +210,48 @@ def _skewed_candidate(X, Xva, best, best_scores, runner_up, reg, s, stop):
     """The chosen Gaussian mixture refitted with skewed components, kept when it
     beats it on the held-out events by ``min_gain``.  From ``SPLIT_SPLIT_FROM``
     components on, the Gaussian count's gain may be skew that fewer skewed
-    components capture better: the count before is skewed too and the larger
-    is the candidate only when it beats the smaller clearly (EXPERIMENTS.md
-    section 22)."""
+    components capture better: the count before is skewed too, side by side
+    (:func:`_race`), and the larger is the candidate only when it beats the
+    smaller clearly (EXPERIMENTS.md sections 22 and 24)."""
     n_steps = len(s.components)
     starts = [best]
     if best.n_components >= SPLIT_SPLIT_FROM and runner_up is not None and runner_up.n_components:
         starts.append(runner_up)
-    fits = []
-    for start in starts:
-        stage = {"stage": f"Fitting the mixture base: skewed components ({start.n_components})"}
-
-        def going_skew(stage=stage):
-            return stop.going(n_steps - 1, n_steps, stage)
-
-        if not going_skew():
-            break
-        skewed = skew_em(X, start, reg, s.max_iter, s.tol, going_skew)
-        if skewed is not None:
-            fits.append((skewed, skewed.logpdf(Xva)))
+    fits = [SkewFit(X, start, reg, s.max_iter, s.tol, Xva) for start in starts]
+    stage = {"stage": "Fitting the mixture base: skewed components "
+                      f"({' and '.join(str(f.n_components) for f in fits)})"}
+    if not stop.going(n_steps - 1, n_steps, stage):
+        return best
+    _race(fits, lambda: stop.going(n_steps - 1, n_steps, stage))
+    fits = [(f.best, f.best_scores) for f in fits if f.best is not None]
     if len(fits) == 2 and not clearly_better(fits[0][1], fits[1][1], s.min_gain, True):
         fits = fits[1:]   # the larger count must beat the smaller clearly
     if fits and float(fits[0][1].mean()) > float(best_scores.mean()) + s.min_gain:
         return fits[0][0]
     return best
+
+
+#: Two skewed fits run side by side; the one behind is dropped once the gap
+#: exceeds this many times its latest held-out gain per step (successive gains
+#: shrink by about a third a step, so all that is left to it is about twice the
+#: latest: EXPERIMENTS.md section 24).
+RACE_GAP = 3.0
+
+
+def _race(fits, going):
+    """Step the skewed fits in turn until each is done; a fit that trails another
+    clearly (:func:`clearly_better`) by more than ``RACE_GAP`` times its own latest
+    held-out gain stops there (the larger count is then the smaller's loss, or the
+    reverse, without paying for every step of both)."""
+    live = list(fits)
+    while live:
+        for f in list(live):
+            if not f.step(going):
+                live.remove(f)
+        if len(fits) == 2 and all(f.best_scores is not None for f in fits):
+            a, b = sorted(fits, key=lambda f: f.best_heldout)
+            gap = b.best_heldout - a.best_heldout
+            if a in live and gap > RACE_GAP * max(a.last_gain, 0.0) and \
+                    clearly_better(b.best_scores, a.best_scores, 0.0, True):
+                a.done = True
+                live.remove(a)

@@ -140,56 +140,106 @@ def _component_shape(T, rs, eps, reg):
     return mean, 0.5 * (cov + cov.T) + np.diag(reg)
 
 
-def skew_em(X, gauss, reg, max_iter, tol, going):
+class SkewFit:
     """Generalised EM for background + K Gaussian copulas with sinh-arcsinh margins,
     started from the Gaussian mixture ``gauss`` (each transform centred and scaled
-    by its component's mean and standard deviation, skew 0: the same mixture).
+    by its component's mean and standard deviation, skew 0: the same mixture),
+    one iteration per :meth:`step` (so two fits can run side by side).
 
     Component k's density is N(y; m_k, S_k) prod_j dy_j/dx_j with
     y_j = sinh(asinh((x_j - c_kj) / s_kj) - eps_kj).  Each step: E step
-    (:func:`core.density.kernels.skew_logpdf` with its posterior output), then
-    per component :func:`_component_shape` (each channel's skew in turn by the
-    profile likelihood over m_k and S_k, then m_k and S_k in closed form).
-    Stops when the training
-    mean log-likelihood rises by less than ``tol``; returns the best mixture
-    seen (None if ``going()`` said stop before any E step finished).  A flat-top
-    background's edges and softness are updated in each step too
-    (:func:`flat_background_step`)."""
-    K, d = gauss.means.shape
-    n = X.shape[0]
-    w = gauss.weights.copy()
-    centre = gauss.means.copy()
-    scale = np.sqrt(np.diagonal(gauss.covariances, axis1=1, axis2=2)).copy()
-    eps = np.zeros((K, d))
-    mu = np.zeros((K, d))
-    cov = gauss.covariances / (scale[:, :, None] * scale[:, None, :])
-    reg_y = reg[None, :] / scale ** 2                               # (K, d)
-    bgr = gauss.background
-    best, prev = None, -np.inf
-    for _ in range(max_iter):
-        model = type(gauss)(w, mu, cov, gauss.loc, gauss.scale, skew=np.stack([centre, scale, eps]),
-                            background=bgr)
-        ll_rows, R = model.logpdf_and_posteriors(X)
+    (:meth:`MixtureBase.logpdf_and_posteriors`), then per component
+    :func:`_component_shape` (each channel's skew in turn by the profile
+    likelihood over m_k and S_k, then m_k and S_k in closed form); a flat-top
+    background's edges and softness are updated too (:func:`flat_background_step`).
+
+    Stops when the training mean log-likelihood rises by less than ``tol``, after
+    ``max_iter`` steps or, given held-out events ``Xva`` (m, d), as soon as their
+    mean log-likelihood rises by less than ``tol`` (held-out values peak several
+    steps before training values settle, then fall: EXPERIMENTS.md section 24).
+    ``best``: the mixture with the best held-out (else training) value so far,
+    ``best_scores`` its held-out log densities (m,) (None without ``Xva``)."""
+
+    def __init__(self, X, gauss, reg, max_iter, tol, Xva=None):
+        self.X, self.Xva, self.tol, self.max_iter = X, Xva, float(tol), int(max_iter)
+        K, d = gauss.means.shape
+        self.gauss = gauss
+        self.w = gauss.weights.copy()
+        self.centre = gauss.means.copy()
+        self.scale = np.sqrt(np.diagonal(gauss.covariances, axis1=1, axis2=2)).copy()
+        self.eps = np.zeros((K, d))
+        self.mu = np.zeros((K, d))
+        self.cov = gauss.covariances / (self.scale[:, :, None] * self.scale[:, None, :])
+        self.reg_y = reg[None, :] / self.scale ** 2                     # (K, d)
+        self.bgr = gauss.background
+        self.best, self.best_scores, self.best_heldout = None, None, -np.inf
+        self.prev = -np.inf
+        self.steps = 0
+        self.done = False
+        self.last_gain = np.inf  # held-out gain of the latest step
+
+    @property
+    def n_components(self) -> int:
+        return self.centre.shape[0]
+
+    def step(self, going) -> bool:
+        """One E step and, unless the fit has converged, one M step; ``going()`` is
+        asked after the E step (False ends the fit).  Returns False once done."""
+        if self.done or self.steps >= self.max_iter:
+            self.done = True
+            return False
+        self.steps += 1
+        g = self.gauss
+        model = type(g)(self.w, self.mu, self.cov, g.loc, g.scale, skew=np.stack([self.centre, self.scale, self.eps]),
+                        background=self.bgr)
+        ll_rows, R = model.logpdf_and_posteriors(self.X)
         ll = float(ll_rows.mean())
-        if ll <= prev:
-            break
-        best = model
-        if ll - prev < tol or not going():
-            break
-        prev = ll
+        if ll <= self.prev:
+            self.done = True
+            return False
+        stop = ll - self.prev < self.tol
+        if self.Xva is None:
+            self.best = model
+        else:
+            scores = model.logpdf(self.Xva)
+            heldout = float(scores.mean())
+            if heldout > self.best_heldout:
+                self.best, self.best_scores = model, scores
+            stop = stop or heldout < self.best_heldout + self.tol
+            self.last_gain = heldout - self.best_heldout
+            self.best_heldout = max(self.best_heldout, heldout)
+        if stop or not going():
+            self.done = True
+            return False
+        self.prev = ll
+        self._m_step(R)
+        return True
+
+    def _m_step(self, R):
+        X = self.X
+        n, d = X.shape
         Nk = R.sum(axis=0) + 1e-12
         w = Nk / n
         w[0] = max(w[0], MIN_BACKGROUND)
         w[1:] = np.maximum(w[1:], 1e-12)
-        w /= w.sum()
-        mu, cov, eps = mu.copy(), cov.copy(), eps.copy()
-        if bgr is not None:
-            bgr = flat_background_step(X, R[:, 0], bgr)
-        for k in range(K):
+        self.w = w / w.sum()
+        self.mu, self.cov, self.eps = self.mu.copy(), self.cov.copy(), self.eps.copy()
+        if self.bgr is not None:
+            self.bgr = flat_background_step(X, R[:, 0], self.bgr)
+        for k in range(self.n_components):
             rk = R[:, k + 1]
             sel = rk > 1e-3 * max(rk.max(), 1e-300)
             n_k = float(rk[sel].sum())
             if n_k < 2 * (d + 1):
                 continue  # too little weight to move this component's shape
-            mu[k], cov[k] = _component_shape((X[sel] - centre[k]) / scale[k], rk[sel], eps[k], reg_y[k])
-    return best
+            self.mu[k], self.cov[k] = _component_shape((X[sel] - self.centre[k]) / self.scale[k], rk[sel],
+                                                       self.eps[k], self.reg_y[k])
+
+
+def skew_em(X, gauss, reg, max_iter, tol, going, Xva=None):
+    """The skewed mixture fitted from ``gauss`` by :class:`SkewFit` run to its end;
+    returns its best mixture (None if ``going()`` said stop before any E step finished)."""
+    fit = SkewFit(X, gauss, reg, max_iter, tol, Xva)
+    while fit.step(going):
+        pass
+    return fit.best
