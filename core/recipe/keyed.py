@@ -112,18 +112,13 @@ def transforms_from_dict(d: Any, where: str = NOWHERE) -> dict:
 # engine
 # ---------------------------------------------------------------------------
 
-def _engine_parameters() -> list | None:
-    """The additive tree density's parameter names, or None when they cannot be read."""
-    import inspect
-
+def _engine_parameters() -> tuple | None:
+    """The additive tree density's parameter names (its one list), or None when the engine cannot be imported."""
     try:
         from ..density import AdditiveTreeDensity  # type: ignore[attr-defined]
-        params = inspect.signature(AdditiveTreeDensity.__init__).parameters
-    except (ImportError, TypeError, ValueError):
+    except ImportError:
         return None
-    if any(p.kind == inspect.Parameter.VAR_KEYWORD for p in params.values()):
-        return None
-    return [n for n in params if n != "self"]
+    return AdditiveTreeDensity.param_names()
 
 
 class Engine(_ReadOnlyMapping):
