@@ -102,6 +102,10 @@ from .progress import stop_relay
 DEFAULT_RATE = 0.05
 #: Smallest density ratio f_test / f_control of an enriched event (see the module docstring).
 DEFAULT_MIN_FOLD = 2.0
+#: Range of the false discovery rate offered in the app (the check accepts any 0 < rate < 1).
+MIN_RATE, MAX_RATE = 0.0001, 0.5
+#: Largest minimum fold offered in the app (the check accepts any finite fold >= 1).
+MAX_MIN_FOLD = 100.0
 #: Parts for cross-fitting (see the module docstring).
 DEFAULT_FOLDS = 3
 #: Shift warning: share of enriched test events above which the whole sample is suspect.
@@ -372,6 +376,14 @@ def conformal_pvalues(scores: np.ndarray, reference: np.ndarray) -> np.ndarray:
     return p
 
 
+def check_settings(rate: float, min_fold: float) -> None:
+    """Raise :class:`EventDataError` unless 0 < ``rate`` < 1 and ``min_fold`` is a finite number >= 1."""
+    if not 0.0 < rate < 1.0:
+        raise EventDataError(f"the false discovery rate must be between 0 and 1 (0.05 = 5 %); got {rate}")
+    if not (math.isfinite(min_fold) and min_fold >= 1.0):
+        raise EventDataError(f"the minimum fold (density ratio) must be a number of at least 1; got {min_fold}")
+
+
 def contrast(test_values: np.ndarray, control_values: np.ndarray | None, rate: float = DEFAULT_RATE,
              min_fold: float = DEFAULT_MIN_FOLD, folds: int = DEFAULT_FOLDS, engine: Mapping | None = None,
              random_state: int = 0, progress=None, model_factory: Callable | None = None,
@@ -392,10 +404,7 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray | None, rate: f
     ``folds`` and ``random_state``); ``control_values`` is then not used.
     ``channel_names``, ``to_units``: for the shift check's text (see :func:`shift_check`).
     """
-    if not 0.0 < rate < 1.0:
-        raise EventDataError(f"the false discovery rate must be between 0 and 1 (0.05 = 5 %); got {rate}")
-    if not (math.isfinite(min_fold) and min_fold >= 1.0):
-        raise EventDataError(f"the minimum fold (density ratio) must be a number of at least 1; got {min_fold}")
+    check_settings(rate, min_fold)
     folds = int(folds)
     T = _check_values(test_values, "test")
     pc = prepared_control

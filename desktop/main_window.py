@@ -263,6 +263,7 @@ class MainWindow(QMainWindow):
                                           tube.recipe.channels, tube.compensated)
         self.comp_panel.show_for_tube(tube)
         self.fit_panel.set_engine_settings(tube.recipe.engine or {})
+        self.contrast_panel.show_recipe(tube.recipe)
         self.rarity_bar.set_share(tube.share, emit=False)
         self.map_view.draw_map(tube)
         self.show_fit(tube, redraw=False)
