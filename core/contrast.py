@@ -230,7 +230,7 @@ class ContrastResult:
     test_model: Any = None     # list of the K test part models
     control_model: Any = None  # list of the K control part models
     control_scores: np.ndarray | None = None   # (n_control,) the reference scores
-    info: dict = field(default_factory=dict)
+    info: dict = field(default_factory=dict)   # n_test, control_prepared, part (the scored test events' parts)
 
     def summary(self) -> dict:
         """JSON-able numbers for tables and reports."""
@@ -464,4 +464,4 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray | None, rate: f
                           min_fold=float(min_fold), threshold=threshold, control_pass_share=pass_share,
                           n_control=int(pc.n_events), expected_false=pass_share * n, folds=folds, shift=shift,
                           test_model=test_models, control_model=list(pc.models), control_scores=s_control,
-                          info={"n_test": n, "control_prepared": shared})
+                          info={"n_test": n, "control_prepared": shared, "part": part_t})
