@@ -102,8 +102,8 @@ from __future__ import annotations
 # climbing, saddles, merging), profiles (marker levels and names), table (the result and its
 # table), search (find_populations), changes (grown and shrunk populations).
 from .changes import population_changes
-from .definition import (PopulationDefinition, _group_matrix, _kernel_arrays, _labels_from_posteriors,
-                         _mixture_dict, assign_populations, component_posteriors)
+from .definition import (PopulationDefinition, _group_matrix, _labels_from_posteriors, _mixture_dict,
+                         assign_populations, component_posteriors)
 from .modes import _hill_climb, _merge, _node_of_events, _saddles, _same_place, _spread_starts
 from .profiles import _weighted_median, channel_splits, marker_level, population_stats, profile_text
 from .search import _mixture_for, find_populations
