@@ -171,6 +171,13 @@ class DensityMap(QWidget):
         self._redraw_images()
         self._redraw_highlight()
 
+    def release(self) -> None:
+        """Drop every per-event array (the window is closing); the plots keep their pictures."""
+        self.values = self.colour_values = self.highlight_mask = self.only = None
+        for cell in self.cells:
+            cell.index = cell.inside = np.zeros(0, dtype=np.int32)
+        self.cells = []
+
     def _build_grid(self, n: int, columns: int) -> None:
         """Lay out ``n`` plots in ``columns``; plots made before are reused
         (making one is the slow part), new ones are added to the pool."""
