@@ -332,6 +332,9 @@ def test_batch_dialog_runs_and_shows_summary(qtbot, window, tmp_path):
     qtbot.addWidget(dlg)
     dlg.input.setText(str(folder))
     dlg.output.setText(str(tmp_path / "out"))
+    # one file at a time, in this process: the process pool is core.batch's (tests/test_batch*.py);
+    # fresh worker processes would spend most of this test importing and compiling
+    dlg.workers.setValue(1)
     with qtbot.waitSignal(dlg.ended, timeout=180_000) as blocker:
         dlg.run()
     assert blocker.args == [True]
