@@ -124,7 +124,7 @@ class DrawingViewBox(pg.ViewBox):
     interval) while the map's drawing tool is armed; otherwise it pans as usual."""
 
     def __init__(self, owner) -> None:
-        super().__init__()
+        super().__init__(enableMenu=False)  # the map has no context menu: building one per plot cost 0.1 s
         self._owner = owner
         self._start = None
 
