@@ -207,7 +207,11 @@ class Tube:
         """Compensate and transform every channel as the recipe says (core.analysis)."""
         from .analysis import compensated_and_transformed
 
-        self.names, self.values = compensated_and_transformed(self.event_file, self.recipe)
+        self.names, values = compensated_and_transformed(self.event_file, self.recipe)
+        # column-major: every use here takes whole channels (plots, regions, previews), and a
+        # contiguous column is read 5-10x faster than a strided one at millions of events
+        self.values = np.asfortranarray(values)
+        del values
         self._compensated = None
 
     def compensated(self, channel: str) -> np.ndarray:

@@ -174,9 +174,7 @@ class DensityMap(QWidget):
     def release(self) -> None:
         """Drop every per-event array (the window is closing); the plots keep their pictures."""
         self.values = self.colour_values = self.highlight_mask = self.only = None
-        for cell in self.cells:
-            cell.index = cell.inside = np.zeros(0, dtype=np.int32)
-        self.cells = []
+        self.cells = []  # each held a bin number and an inside flag per event
 
     def _build_grid(self, n: int, columns: int) -> None:
         """Lay out ``n`` plots in ``columns``; plots made before are reused
