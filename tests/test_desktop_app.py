@@ -79,6 +79,13 @@ def window(qtbot, tmp_path, monkeypatch, messages):
     if win.job is not None:
         win.job.cancel()
         win.job.wait(20000)
+    # free the window's widgets now: a closed window left alive keeps every later
+    # test's layout and style passes busy with it
+    win.close()
+    win.deleteLater()
+    from PySide6.QtCore import QCoreApplication, QEvent
+
+    QCoreApplication.sendPostedEvents(None, QEvent.DeferredDelete)
 
 
 def fit(qtbot, win, timeout=120_000):
