@@ -349,4 +349,9 @@ class MainWindow(QMainWindow):
         if self.interactive:
             self.settings.set_value("window/geometry", self.saveGeometry())
         self.settings.sync()
+        # the events go with the window: a closed window whose Python wrapper
+        # lives on (signal connections) must not keep every tube's arrays
+        for path in list(self.session.tubes):
+            self.session.close(path)
+        self.density_map.release()
         event.accept()
