@@ -350,7 +350,7 @@ def test_one_pass_equals_the_pipeline_form_on_a_demo_tube():
     expected = truth["saturated"] & np.any(ef.data[:, judged] >= ef.channel_ranges[judged], axis=1)
     np.testing.assert_array_equal(prepared.reason == REASON_SATURATED, expected)
     assert prepared.set_aside()["floor pile"] == prepared.set_aside()["ceiling pile"] == 0
-    raw = ef.data.copy()
+    raw = ef.data.astype(np.float64)          # the file holds float32; jitter is added in float64
     for j in set(idx) | {ef.channel_names.index(d) for d in S.detectors}:
         assert prepared.grids[j] == "linear" and prepared.steps[j] == pytest.approx(1.0, rel=1e-6)
         raw[:, j] += channel_uniforms(0, j, ef.n_events) * prepared.steps[j]
