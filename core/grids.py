@@ -139,16 +139,38 @@ def plan_jitter(raw_col, decoding=None, max_unique_fraction: float = MAX_UNIQUE_
     """
     if decoding is not None and getattr(decoding, "integer", False):
         return ChannelJitter(GRID_STORED, 1.0, decoding)
-    col = np.asarray(raw_col, dtype=np.float64).ravel()
+    col = np.asarray(raw_col).ravel()
     # the grid shows in an evenly strided share of at most GRID_SAMPLE values
     # (sorting a million values per channel would dominate the preparation)
-    sample = col[::-(-col.size // GRID_SAMPLE)] if col.size > GRID_SAMPLE else col
+    sampled = col.size > GRID_SAMPLE
+    sample = np.asarray(col[::-(-col.size // GRID_SAMPLE)] if sampled else col, dtype=np.float64)
+    if _too_many_values(sample, max_unique_fraction):
+        return None
     grid, step = detect_grid(sample, max_unique_fraction)
     if step > 0:
         return ChannelJitter(grid, step)
-    if sample is not col and _cells(sample, max_unique_fraction) is None:
+    if sampled and _cells(sample, max_unique_fraction) is None:
         return None
-    return _cells(col, max_unique_fraction)
+    return _cells(np.asarray(col, dtype=np.float64), max_unique_fraction)
+
+
+def _too_many_values(v: np.ndarray, max_unique_fraction: float) -> bool:
+    """True when no grid kind can apply to ``v``, from one sort (continuous channels are the usual case).
+
+    The linear grid and the "cells" both need at most ``max_unique_fraction``
+    distinct values among the finite ones; the log grid the same among the
+    positive values (distinct positive floats have distinct logarithms at the
+    spacings data hold), when those are at least 90 % of the finite values.
+    """
+    v = v[np.isfinite(v)]
+    if v.size < 3:
+        return False
+    u, counts = np.unique(v, return_counts=True)
+    if u.size <= max_unique_fraction * v.size:
+        return False
+    positive = u > 0
+    n_pos = int(counts[positive].sum())
+    return not (n_pos >= 3 and n_pos >= 0.9 * v.size and int(positive.sum()) <= max_unique_fraction * n_pos)
 
 
 #: Values examined for a grid (an evenly strided share of a longer channel).

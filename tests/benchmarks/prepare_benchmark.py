@@ -9,7 +9,11 @@ rest; without and with a 10-detector spillover matrix.  Prints one row per case:
 seconds (best of ``--repeat``) and the peak of numpy's allocations during the call
 (tracemalloc), beyond the event file itself.
 
-    python tests/benchmarks/prepare_benchmark.py [--events 1000000] [--repeat 2]
+    python tests/benchmarks/prepare_benchmark.py [--events 1000000] [--repeat 2] [--dtype float32]
+
+``--dtype``: the type the event matrix is held in (float64, what read_fcs gave
+before it kept float files as float32; float32, what it gives for a float file
+now).  The whole-number channels are exact in both.
 
 Runs with whatever ``core`` is first on PYTHONPATH, so the same script measures an
 older checkout too (it only uses EventFile's first fields, Recipe and density_input).
@@ -35,7 +39,7 @@ from core.fcs import EventFile  # noqa: E402
 from core.recipe import Recipe  # noqa: E402
 
 
-def make_file(n: int, seed: int = 0):
+def make_file(n: int, seed: int = 0, dtype=np.float64):
     rng = np.random.default_rng(seed)
     names = ["FSC-A", "SSC-A"] + [f"FL{i}-A" for i in range(1, 27)] + ["Time", "FL1-W"]
     data = np.empty((n, len(names)))
@@ -51,7 +55,8 @@ def make_file(n: int, seed: int = 0):
     det = names[2:12]
     S = np.eye(10) + np.triu(rng.uniform(0.0, 0.08, (10, 10)), 1)
     kw["$SPILLOVER"] = ",".join([str(len(det))] + det + [f"{v:.6g}" for v in S.ravel()])
-    return EventFile(path="made-up.fcs", data=data, channel_names=names, channel_labels=[""] * len(names),
+    return EventFile(path="made-up.fcs", data=data.astype(dtype, copy=False), channel_names=names,
+                     channel_labels=[""] * len(names),
                      channel_ranges=np.full(len(names), 262144.0), keywords=kw, version="FCS3.1")
 
 
@@ -67,12 +72,13 @@ def main(argv=None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--events", type=int, default=1_000_000)
     p.add_argument("--repeat", type=int, default=2)
+    p.add_argument("--dtype", default="float64", choices=("float64", "float32"))
     args = p.parse_args(argv)
-    ef = make_file(args.events)
+    ef = make_file(args.events, dtype=np.dtype(args.dtype))
     import core
 
     print(f"core from {os.path.dirname(core.__file__)}; {args.events:,} events x {ef.n_channels} channels "
-          f"({ef.data.nbytes / 1e6:.0f} MB)")
+          f"{ef.data.dtype} ({ef.data.nbytes / 1e6:.0f} MB)")
     print(f"{'case':<22} {'seconds':>8} {'peak MB':>8} {'kept':>9} {'d':>3}")
     for comp in (False, True):
         r = recipe(ef.channel_names, comp)
