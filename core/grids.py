@@ -143,9 +143,12 @@ def plan_jitter(raw_col, decoding=None, max_unique_fraction: float = MAX_UNIQUE_
     # the grid shows in an evenly strided share of at most GRID_SAMPLE values
     # (sorting a million values per channel would dominate the preparation)
     sampled = col.size > GRID_SAMPLE
-    sample = np.asarray(col[::-(-col.size // GRID_SAMPLE)] if sampled else col, dtype=np.float64)
-    if _too_many_values(sample, max_unique_fraction):
+    sample = col[::-(-col.size // GRID_SAMPLE)] if sampled else col
+    if sample.dtype.kind != "f":
+        sample = sample.astype(np.float64)
+    if _too_many_values(sample, max_unique_fraction):   # in the stored type: float32 sorts faster
         return None
+    sample = np.asarray(sample, dtype=np.float64)
     grid, step = detect_grid(sample, max_unique_fraction)
     if step > 0:
         return ChannelJitter(grid, step)

@@ -45,16 +45,25 @@ def transformed_values(data, names: Sequence[str], S, transforms: Mapping, where
             raise ChannelError(f"{where}: the recipe transforms channel {ch!r} which the file lacks; the "
                                f"file's channels are {', '.join(names)}")
     det = checked_detectors(names, S, where) if S is not None else []
+    forward = [None if transforms.get(c) is None else make_transform(transforms[c]).forward for c in names]
     values = np.empty(x.shape)
-    if det:
-        values[:, det] = compensate_columns(x, det, S)
-    for j in range(len(names)):
-        spec = transforms.get(names[j])
-        if spec is not None:
-            values[:, j] = _forward(spec, values[:, j] if j in det else x[:, j])
-        elif j not in det:
-            values[:, j] = x[:, j]
+    # in blocks of events, so each block's channels are read and written while in cache
+    for start in range(0, x.shape[0], BLOCK_EVENTS):
+        xb = x[start:start + BLOCK_EVENTS]
+        vb = values[start:start + BLOCK_EVENTS]
+        if det:
+            vb[:, det] = compensate_columns(xb, det, S)
+        with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+            for j, f in enumerate(forward):
+                if f is not None:
+                    vb[:, j] = f(vb[:, j] if j in det else xb[:, j])
+                elif j not in det:
+                    vb[:, j] = xb[:, j]
     return values
+
+
+#: Events per block of the whole-file passes (a block of 30 channels fits in a core's cache).
+BLOCK_EVENTS = 1 << 14
 
 
 def prepare_file_events(event_file, idx: Sequence[int], S, transforms: Mapping, values: np.ndarray, *,
@@ -114,9 +123,20 @@ def prepare_file_events(event_file, idx: Sequence[int], S, transforms: Mapping, 
         for c, d in enumerate(detectors):
             compensated[:, c] = column(d)
         compensated = compensate_columns(compensated, list(range(len(detectors))), S)
+    copied = [c for c in range(len(idx)) if c not in redo]
+    source = [idx[c] for c in copied]
+    rows = None if all_kept else np.flatnonzero(kept)
+    in_order = copied == list(range(len(idx)))
+    for start in range(0, matrix.shape[0], BLOCK_EVENTS):   # gathered by blocks of whole rows
+        block = values[start:start + BLOCK_EVENTS] if all_kept else values[rows[start:start + BLOCK_EVENTS]]
+        taken = np.take(block, source, axis=1)
+        if in_order:
+            matrix[start:start + BLOCK_EVENTS] = taken
+        else:
+            for i, c in enumerate(copied):
+                matrix[start:start + BLOCK_EVENTS, c] = taken[:, i]
     for c, j in enumerate(idx):
         if c not in redo:
-            matrix[:, c] = values[:, j] if all_kept else values[kept, j]
             continue
         col = compensated[:, detectors.index(j)] if (compensated is not None and j in detectors) else column(j)
         spec = transforms.get(names[j])
