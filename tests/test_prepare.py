@@ -376,3 +376,27 @@ def test_analysis_counts_reasons_for_the_app_and_exports():
     assert text.startswith("2 of 7 events kept") and "2 floor pile" in text and "1 ceiling pile" in text
     assert "A (0.4 % of the kept events on one value)" in text
     np.testing.assert_array_equal(an.export_columns()["cleaning flag"], [0, 3, 4, 1, 2, 0, 3])
+
+
+def test_float32_event_file_prepares_like_its_float64_values():
+    # read_fcs holds a float file as float32; the preparation converts column by column and
+    # block by block, so every consumer sees the values a float64 copy would give.
+    # Reference: the same tube with its event matrix converted to float64 beforehand.
+    import dataclasses
+
+    from core.analysis import compensated_and_transformed, density_input
+    from core.fcs import read_fcs
+    from core.recipe import default_recipe
+
+    root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    ef = read_fcs(os.path.join(root, "sample_events", "tube_B_treated_low.fcs"))
+    assert ef.data.dtype == np.float32                      # FCS 3.1 $DATATYPE F, no decoding
+    ef64 = dataclasses.replace(ef, data=ef.data.astype(np.float64))
+    recipe = default_recipe(ef)
+    prepared, values = density_input(ef, recipe)
+    prepared64, values64 = density_input(ef64, recipe)
+    np.testing.assert_array_equal(values, values64)
+    np.testing.assert_array_equal(prepared.matrix, prepared64.matrix)
+    np.testing.assert_array_equal(prepared.reason, prepared64.reason)
+    assert prepared.grids == prepared64.grids
+    np.testing.assert_array_equal(compensated_and_transformed(ef, recipe)[1], values)
