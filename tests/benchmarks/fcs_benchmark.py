@@ -9,8 +9,8 @@ fcsparser.parse alone (the difference is our checks and $PnE/$PnG decoding).
 
 ``--memory N``: one float32 file of N events x ``--channels`` channels, read in
 fresh processes by read_fcs and by fcsparser.parse: seconds and the peak
-resident memory the read added to the process (``resource.getrusage`` peak
-minus the resident memory after the imports), best of ``--repeat``.
+resident memory the read added to the process (peak resident memory, reset
+after the imports, minus the resident memory then), best of ``--repeat``.
 ``core`` comes from PYTHONPATH when it is set, so an older checkout can be
 measured in the same run.
 """
@@ -51,17 +51,26 @@ def _fcsparser(path):
 def _memory_child(reader: str, path: str) -> None:
     """Print seconds and MB the read added (peak RSS minus RSS after the imports) as JSON."""
     import json
-    import resource
 
     import fcsparser.api  # noqa: F401  (both readers use it: imported before the base is taken)
     import pandas  # noqa: F401
-    with open("/proc/self/statm") as fh:
-        base = int(fh.read().split()[1]) * os.sysconf("SC_PAGE_SIZE") / 2 ** 20
+    # the peak resident memory is reset here (Linux: "5" to clear_refs), since a forked child
+    # starts with its parent's peak, and read afterwards as VmHWM
+    with open("/proc/self/clear_refs", "w") as fh:
+        fh.write("5")
+    base = _status_mb("VmRSS")
     t0 = time.perf_counter()
     kept = read_fcs(path).data if reader == "read_fcs" else _fcsparser_frame(path)
     seconds = time.perf_counter() - t0
-    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
-    print(json.dumps({"seconds": seconds, "added_mb": peak - base, "held_mb": kept.nbytes / 2 ** 20}))
+    print(json.dumps({"seconds": seconds, "added_mb": _status_mb("VmHWM") - base, "held_mb": kept.nbytes / 2 ** 20}))
+
+
+def _status_mb(key: str) -> float:
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith(key + ":"):
+                return int(line.split()[1]) / 1024.0
+    return float("nan")
 
 
 def _fcsparser_frame(path):
