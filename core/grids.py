@@ -40,7 +40,12 @@ def detect_step(values, max_unique_fraction: float = MAX_UNIQUE_FRACTION) -> flo
     if v.size < 3:
         return 0.0
     u, counts = np.unique(v, return_counts=True)
-    if u.size < 2 or u.size > max_unique_fraction * v.size:
+    return _step_of(u, counts, v.size, max_unique_fraction)
+
+
+def _step_of(u: np.ndarray, counts: np.ndarray, n: int, max_unique_fraction: float) -> float:
+    """:func:`detect_step` from the sorted distinct values ``u`` (float64) of n finite values."""
+    if u.size < 2 or u.size > max_unique_fraction * n:
         return 0.0
     gaps = np.diff(u)
     s0 = float(np.quantile(gaps, 0.02))
@@ -91,6 +96,11 @@ def detect_grid(values, max_unique_fraction: float = MAX_UNIQUE_FRACTION) -> tup
     step = detect_step(v, max_unique_fraction)
     if step > 0:
         return GRID_LINEAR, step
+    return _log_grid(v, max_unique_fraction)
+
+
+def _log_grid(v: np.ndarray, max_unique_fraction: float) -> tuple[str, float]:
+    """``("log", step)`` for finite values ``v`` on a grid uniform in log10, else ``("", 0.0)``."""
     pos = v[v > 0]
     if pos.size >= 3 and pos.size >= 0.9 * v.size:
         step = detect_step(np.log10(pos), max_unique_fraction)
@@ -146,34 +156,39 @@ def plan_jitter(raw_col, decoding=None, max_unique_fraction: float = MAX_UNIQUE_
     sample = col[::-(-col.size // GRID_SAMPLE)] if sampled else col
     if sample.dtype.kind != "f":
         sample = sample.astype(np.float64)
-    if _too_many_values(sample, max_unique_fraction):   # in the stored type: float32 sorts faster
+    sample = sample[np.isfinite(sample)]
+    if sample.size < 3:
         return None
-    sample = np.asarray(sample, dtype=np.float64)
-    grid, step = detect_grid(sample, max_unique_fraction)
+    # one sort of the sample serves every grid kind (in the stored type: float32 sorts faster)
+    u, counts = np.unique(sample, return_counts=True)
+    u = u.astype(np.float64)
+    if _too_many_values(u, counts, sample.size, max_unique_fraction):
+        return None
+    step = _step_of(u, counts, sample.size, max_unique_fraction)
+    if step > 0:
+        return ChannelJitter(GRID_LINEAR, step)
+    grid, step = _log_grid(np.asarray(sample, dtype=np.float64), max_unique_fraction)
     if step > 0:
         return ChannelJitter(grid, step)
-    if sampled and _cells(sample, max_unique_fraction) is None:
-        return None
+    cells = _cells_of(u, counts, sample.size, max_unique_fraction)
+    if not sampled or cells is None:
+        return cells
     return _cells(np.asarray(col, dtype=np.float64), max_unique_fraction)
 
 
-def _too_many_values(v: np.ndarray, max_unique_fraction: float) -> bool:
-    """True when no grid kind can apply to ``v``, from one sort (continuous channels are the usual case).
+def _too_many_values(u: np.ndarray, counts: np.ndarray, n: int, max_unique_fraction: float) -> bool:
+    """True when no grid kind can apply to n finite values with distinct values ``u`` (counts ``counts``).
 
     The linear grid and the "cells" both need at most ``max_unique_fraction``
     distinct values among the finite ones; the log grid the same among the
     positive values (distinct positive floats have distinct logarithms at the
     spacings data hold), when those are at least 90 % of the finite values.
     """
-    v = v[np.isfinite(v)]
-    if v.size < 3:
-        return False
-    u, counts = np.unique(v, return_counts=True)
-    if u.size <= max_unique_fraction * v.size:
+    if u.size <= max_unique_fraction * n:
         return False
     positive = u > 0
     n_pos = int(counts[positive].sum())
-    return not (n_pos >= 3 and n_pos >= 0.9 * v.size and int(positive.sum()) <= max_unique_fraction * n_pos)
+    return not (n_pos >= 3 and n_pos >= 0.9 * n and int(positive.sum()) <= max_unique_fraction * n_pos)
 
 
 #: Values examined for a grid (an evenly strided share of a longer channel).
@@ -194,7 +209,12 @@ def _cells(raw_col, max_unique_fraction: float):
     v = np.asarray(raw_col, dtype=np.float64).ravel()
     v = v[np.isfinite(v)]
     u, cnt = np.unique(v, return_counts=True)
-    if u.size < 3 or u.size > max_unique_fraction * v.size:
+    return _cells_of(u, cnt, v.size, max_unique_fraction)
+
+
+def _cells_of(u: np.ndarray, cnt: np.ndarray, n: int, max_unique_fraction: float):
+    """:func:`_cells` from the sorted distinct values ``u`` (float64) of n finite values."""
+    if u.size < 3 or u.size > max_unique_fraction * n:
         return None
     i = np.arange(u.size)
     lo = np.maximum(i - CELL_NEIGHBOURS, 0)
