@@ -182,30 +182,39 @@ def clean_events(raw, judged: Sequence[int], channel_ranges=None, *, drop_satura
     return names[code], saturated, sat_cells, floor_cells, ceiling_cells
 
 
-def largest_tie_share(col, limit_events: int = 400_000, random_state=0) -> float:
+def largest_tie_share(col, limit_events: int = 400_000, random_state=0, rows=None) -> float:
     """Largest share of the values of ``col`` held by one value (0 for an empty column).
 
     Beyond ``limit_events`` values, a seeded random subsample of that size is
-    examined (a value holding 0.1 % of a million events holds about 400 of it).
+    examined (a value holding 0.1 % of a million events holds about 400 of it);
+    ``rows``: that subsample's indices when already drawn (:func:`_tie_rows`).
     """
-    v = np.asarray(col, dtype=np.float64).ravel()
+    v = np.asarray(col).ravel()
     if v.size == 0:
         return 0.0
     if v.size > limit_events:
-        v = v[np.random.default_rng(random_state).choice(v.size, limit_events, replace=False)]
-    s = np.sort(v)
+        v = v[_tie_rows(v.size, limit_events, random_state) if rows is None else rows]
+    s = np.sort(np.asarray(v, dtype=np.float64))
     edges = np.flatnonzero(np.diff(s) != 0)
     runs = np.diff(np.concatenate([[-1], edges, [s.size - 1]]))
     return float(runs.max() / s.size)
+
+
+def _tie_rows(n: int, limit_events: int, random_state) -> np.ndarray | None:
+    """The seeded subsample of :func:`largest_tie_share` (None when all n values are examined)."""
+    if n <= limit_events:
+        return None
+    return np.random.default_rng(random_state).choice(n, limit_events, replace=False)
 
 
 def atoms(matrix, names: Sequence[str], share: float = ATOM_SHARE) -> dict[str, float]:
     """Channels of ``matrix`` (events x channels) where one value holds more than ``share``
     of the events: name -> that share (the atoms check before fitting)."""
     m = _as_matrix(matrix, "the density's events")
+    rows = _tie_rows(m.shape[0], 400_000, 0)   # the same seeded subsample for every channel, drawn once
     out = {}
     for j, name in enumerate(names):
-        t = largest_tie_share(m[:, j])
+        t = largest_tie_share(m[:, j], rows=rows)
         if t > share:
             out[str(name)] = t
     return out

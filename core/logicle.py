@@ -126,7 +126,7 @@ def logicle(x, T: float, W: float, M: float = DEFAULT_M, A: float = 0.0) -> np.n
     x = np.asarray(x)
     if x.dtype.kind != "f":
         x = x.astype(np.float64)
-    flat = np.ascontiguousarray(x).reshape(-1)
+    flat = x if x.ndim == 1 else np.ascontiguousarray(x).reshape(-1)   # a column of a matrix is read in place
     table, e_lo, e_hi = _start_table(k)
     out = _logicle_kernel(flat, table, e_lo, e_hi, _PER_OCTAVE, k.x1, k.p, k.q, k.b, k.d)
     return out.reshape(x.shape)

@@ -45,24 +45,20 @@ def transformed_values(data, names: Sequence[str], S, transforms: Mapping, where
             raise ChannelError(f"{where}: the recipe transforms channel {ch!r} which the file lacks; the "
                                f"file's channels are {', '.join(names)}")
     det = checked_detectors(names, S, where) if S is not None else []
-    forward = [None if transforms.get(c) is None else make_transform(transforms[c]).forward for c in names]
     values = np.empty(x.shape)
-    # in blocks of events, so each block's channels are read and written while in cache
-    for start in range(0, x.shape[0], BLOCK_EVENTS):
-        xb = x[start:start + BLOCK_EVENTS]
-        vb = values[start:start + BLOCK_EVENTS]
-        if det:
-            vb[:, det] = compensate_columns(xb, det, S)
-        with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-            for j, f in enumerate(forward):
-                if f is not None:
-                    vb[:, j] = f(vb[:, j] if j in det else xb[:, j])
-                elif j not in det:
-                    vb[:, j] = xb[:, j]
+    for start in range(0, x.shape[0] if det else 0, BLOCK_EVENTS):   # in blocks: no full-size temporaries
+        values[start:start + BLOCK_EVENTS, det] = compensate_columns(x[start:start + BLOCK_EVENTS], det, S)
+    # one call per channel (the logicle's compiled solver runs in parallel over a whole column)
+    for j, name in enumerate(names):
+        spec = transforms.get(name)
+        if spec is not None:
+            values[:, j] = _forward(spec, values[:, j] if j in det else x[:, j])
+        elif j not in det:
+            values[:, j] = x[:, j]
     return values
 
 
-#: Events per block of the whole-file passes (a block of 30 channels fits in a core's cache).
+#: Events per block of the row-wise passes (a block of 30 channels fits in a core's cache).
 BLOCK_EVENTS = 1 << 14
 
 
