@@ -186,16 +186,7 @@ def _logicle_kernel(x, table, e_lo, e_hi, per, x1, p, q, b, d):  # pragma: no co
             j = int(t)
             at = (e - e_lo) * per + j
             z = table[at] + (t - j) * (table[at + 1] - table[at])
-        # one Halley step (the update of _bracketed_one; expm1 alone gives both e^x - 1 and e^x)
-        emb = math.expm1(b * z)
-        emd = math.expm1(-d * z)
-        eb = emb + 1.0
-        ed = emd + 1.0
-        h = p * emb - q * emd - v
-        h1 = p * b * eb + q * d * ed
-        h2 = p * b * b * eb - q * d * d * ed
-        newton = h / h1
-        step = newton / (1.0 - 0.5 * newton * (h2 / h1))
+        _, step = _halley(z, v, p, q, b, d)
         zn = z - step
         # Halley converges cubically: from a start within about 1e-7 the error left is of
         # order b^2 step^3, below the rounding of the logicle value; otherwise solve fully
@@ -203,6 +194,22 @@ def _logicle_kernel(x, table, e_lo, e_hi, per, x1, p, q, b, d):  # pragma: no co
             zn = _bracketed_one(v, p, q, b, d, 200)
         out[i] = x1 + zn if xi > 0.0 else x1 - zn
     return out
+
+
+@numba.njit(cache=True, fastmath=False, inline="always")
+def _halley(z, v, p, q, b, d):  # pragma: no cover - compiled
+    """(h, step): the residual p expm1(b z) - q expm1(-d z) - v and Halley's step from z.
+
+    expm1 alone gives both e^x - 1 (no cancellation near z = 0) and e^x; the step
+    is written as newton / (1 - newton h'' / (2 h')) to avoid overflow.
+    """
+    emb = math.expm1(b * z)
+    emd = math.expm1(-d * z)
+    h = p * emb - q * emd - v
+    h1 = p * b * (emb + 1.0) + q * d * (emd + 1.0)
+    h2 = p * b * b * (emb + 1.0) - q * d * d * (emd + 1.0)
+    newton = h / h1
+    return h, newton / (1.0 - 0.5 * newton * (h2 / h1))
 
 
 @numba.njit(cache=True, fastmath=False)
@@ -213,24 +220,13 @@ def _bracketed_one(v, p, q, b, d, max_iter):  # pragma: no cover - compiled
     hi = math.log1p(v / p) / b
     z = 0.5 * (lo + hi)
     for _ in range(max_iter):
-        bz = b * z
-        dz = d * z
-        eb = math.exp(bz)
-        ed = math.exp(-dz)
-        # expm1 only where eb - 1 would lose bits (eb < 2): one transcendental less
-        emb = math.expm1(bz) if bz < 0.7 else eb - 1.0
-        emd = math.expm1(-dz) if dz < 0.7 else ed - 1.0
-        h = p * emb - q * emd - v
+        h, step = _halley(z, v, p, q, b, d)
         if h == 0.0:
             break
         if h < 0.0:
             lo = z
         else:
             hi = z
-        h1 = p * b * eb + q * d * ed
-        h2 = p * b * b * eb - q * d * d * ed
-        newton = h / h1
-        step = newton / (1.0 - 0.5 * newton * (h2 / h1))   # Halley, written to avoid overflow
         zn = z - step
         if abs(step) <= 2.0 * eps * abs(z):
             z = zn if (zn >= lo and zn <= hi) else z
