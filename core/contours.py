@@ -173,11 +173,9 @@ def fit_pair_model(xy: np.ndarray, engine: Mapping | None = None, random_state: 
 
     Settings: :data:`PAIR_ENGINE` (those the engine accepts), overridden by ``engine``.
     """
-    import inspect
-
     from .density import AdditiveTreeDensity
 
-    known = set(inspect.signature(AdditiveTreeDensity.__init__).parameters)
+    known = set(AdditiveTreeDensity.param_names())
     kwargs = {k: v for k, v in PAIR_ENGINE.items() if k in known}
     kwargs.update(engine or {})
     kwargs.setdefault("random_state", random_state)

@@ -65,3 +65,8 @@ class ExportError(BoscageError):
 
 class Cancelled(BoscageError):
     """Long work was cancelled by the user; partial results are kept."""
+
+
+class NotFittedError(BoscageError, ValueError, AttributeError):
+    """A density model was used before it was fitted (also the ValueError and
+    AttributeError that scikit-learn's own not-fitted error is)."""

@@ -270,28 +270,9 @@ def _mixture_dict(mix) -> dict:
 # posteriors and assignment (compiled kernel)
 # ---------------------------------------------------------------------------
 
-def _kernel_arrays(mix):
-    """Arguments of the skewed-mixture density kernel for ``mix``; plain Gaussian
-    components get the identity transform (centre 0, scale 1, skew 0)."""
-    if mix._skew is not None:
-        return mix._means_t, mix._chol_t, 1.0 / mix._sd, mix._log_sd, mix._skew
-    K, d = mix.means.shape
-    skew = np.ascontiguousarray(np.stack([np.zeros((d, K)), np.ones((d, K)), np.ones((d, K)), np.zeros((d, K))]))
-    return (np.ascontiguousarray(mix.means.T), np.ascontiguousarray(np.transpose(mix.chol, (1, 2, 0))),
-            1.0 / mix._sd, mix._log_sd, skew)
-
-
 def component_posteriors(mix, X) -> np.ndarray:
     """Posterior component probabilities (n, K + 1), background first, of events X (n, d)."""
-    from .density import kernels
-    from .density.gaussian_base import _Z_MAX
-
-    X = np.ascontiguousarray(X, dtype=np.float64)
-    means_t, chol_t, inv_sd, log_sd, skew = _kernel_arrays(mix)
-    R = np.empty((X.shape[0], mix.n_components + 1))
-    kernels.skew_logpdf(X, np.zeros(X.shape[0]), mix.log_weights, means_t, chol_t, inv_sd, log_sd,
-                        mix._bgp, mix._flat, _Z_MAX, skew, R)
-    return R
+    return mix.posteriors(X)
 
 
 def _labels_from_posteriors(R: np.ndarray, G: np.ndarray, X: np.ndarray | None = None,

@@ -60,7 +60,6 @@ from __future__ import annotations
 
 import copy
 import hashlib
-import inspect
 import json
 import math
 import os
@@ -185,13 +184,7 @@ def _check_engine_names(engine: Mapping, where: str) -> None:
         from .density import AdditiveTreeDensity  # type: ignore[attr-defined]
     except ImportError:
         return
-    try:
-        params = inspect.signature(AdditiveTreeDensity.__init__).parameters
-    except (TypeError, ValueError):
-        return
-    if any(p.kind == inspect.Parameter.VAR_KEYWORD for p in params.values()):
-        return
-    accepted = [n for n in params if n != "self"]
+    accepted = AdditiveTreeDensity.param_names()
     unknown = [k for k in engine if k not in accepted]
     if unknown:
         raise RecipeError(f"{where}engine parameter(s) {', '.join(repr(k) for k in unknown)} are not "

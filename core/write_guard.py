@@ -17,8 +17,7 @@ It refuses, with :class:`~core.errors.ExportError` naming the file:
 * an existing target when ``overwrite`` is False, and a target that is a folder.
 
 :func:`check_output_folder` is the batch's rule for ``--out`` (see its
-docstring), and :func:`safe_unique_names` turns input stems and region names
-into file names that are safe, stable and never shared.
+docstring); file names follow the one rule of :mod:`core.naming`.
 
 A worker process can set :func:`set_abort_check` (the batch's parent-death
 check): it is called before each rename, so an orphaned worker writes nothing.
@@ -26,12 +25,12 @@ check): it is called before each rename, so an orphaned worker writes nothing.
 
 from __future__ import annotations
 
-import hashlib
 import os
 import threading
 from typing import Callable, Iterable, Sequence
 
 from .errors import ExportError
+from .naming import file_names, file_part, short_hash  # noqa: F401  (re-exported: old import path)
 
 _LOCK = threading.Lock()
 _INPUT_IDS: dict = {}         # (st_dev, st_ino) of inputs -> (size, mtime_ns) when registered
@@ -209,61 +208,6 @@ def check_output_folder(out_dir: str, input_dirs: Sequence[str], what: str = "--
 
 # --------------------------------------------------------------------------- names
 
-#: Longest name part kept from an input stem or region name (UTF-8 bytes): a batch file
-#: name holds two of them plus about 30 bytes, within the usual 255-byte limit.
-_MAX_NAME = 100
-
-
-def _shorten(text: str, limit: int = _MAX_NAME) -> str:
-    """``text`` cut to at most ``limit`` UTF-8 bytes (whole characters)."""
-    while len(text.encode("utf-8", "surrogatepass")) > limit:
-        text = text[:-1]
-    return text
-
-
-def clean_name(text: str, fallback: str = "unnamed") -> str:
-    """``text`` with every character other than letters, digits, space and ``-_.+`` replaced by ``_``,
-    stripped of leading/trailing spaces and dots (so never ``.``/``..`` or hidden)."""
-    keep = "".join(c if (c.isalnum() or c in " -_.+") else "_" for c in str(text)).strip(" .")
-    return keep or fallback
-
-
-def short_hash(text: str) -> str:
-    """8 hex digits of the SHA-256 of ``text`` (UTF-8, surrogates escaped)."""
-    return hashlib.sha256(str(text).encode("utf-8", "surrogatepass")).hexdigest()[:8]
-
-
-def safe_unique_names(originals: Sequence[str], reserved: Iterable[str] = (), fallback: str = "unnamed",
-                      bases: Sequence[str] | None = None) -> dict:
-    """File-name parts for ``originals`` that are safe, stable and pairwise distinct.
-
-    Each name is made from ``bases[i]`` (default: the original itself; for
-    input files the stem of the file name) and kept as it is when
-    :func:`clean_name` leaves it unchanged, it is at most 100 UTF-8 bytes long,
-    it is not one of ``reserved`` and no other base of the list equals it
-    ignoring case.  Otherwise it becomes ``<cleaned, shortened> #<8 hex
-    digits>`` (hash of the original), so the same original always gets the
-    same name and two never
-    share one.  Returns ``{original: name}``; an original that still cannot get
-    a distinct name maps to None (reported per file by the caller).
-    """
-    originals = [str(o) for o in originals]
-    bases = [str(b) for b in (bases if bases is not None else originals)]
-    taken_reserved = {str(r).casefold() for r in reserved}
-    cleaned = [clean_name(b, fallback) for b in bases]
-    counts: dict = {}
-    for c in cleaned:
-        counts[c.casefold()] = counts.get(c.casefold(), 0) + 1
-    out: dict = {}
-    for o, c, b in zip(originals, cleaned, bases):
-        plain = (c == b and len(c.encode("utf-8", "surrogatepass")) <= _MAX_NAME
-                 and c.casefold() not in taken_reserved and counts[c.casefold()] == 1)
-        out[o] = c if plain else f"{_shorten(c).rstrip(' .') or fallback} #{short_hash(o)}"
-    seen: dict = {}
-    for o, n in out.items():
-        seen.setdefault(n.casefold(), []).append(o)
-    for group in seen.values():
-        if len(group) > 1 or out[group[0]].casefold() in taken_reserved:
-            for o in group:
-                out[o] = None
-    return out
+# File names follow the one rule of core.naming; these names stay importable from here.
+clean_name = file_part
+safe_unique_names = file_names

@@ -6,7 +6,6 @@ import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
 
 import csv
 import os
-import re
 
 import numpy as np
 from PySide6.QtCore import QStandardPaths, Qt, QUrl, Signal
@@ -19,6 +18,7 @@ from core import RESEARCH_USE_NOTE
 from core.batch import output_folder_names
 from core.errors import ExportError
 from core.files import list_fcs_files
+from core.naming import events_file_name, file_part
 
 #: Readable headers for the batch summary's columns (the CSV keeps its names).
 SUMMARY_HEADERS = {"file": "File", "status": "Status", "events": "Events", "events_kept": "Events kept",
@@ -34,10 +34,8 @@ def summary_header(column: str) -> str:
 
 
 def file_stem(text: str) -> str:
-    """A file-name part from free text: letters, digits, '-' and '_' only
-    ('%' becomes 'pct', other runs of characters one '-')."""
-    text = text.replace("%", "pct")
-    return re.sub(r"[^A-Za-z0-9_]+", "-", text).strip("-") or "events"
+    """A file-name part from free text by the one naming rule of core.naming."""
+    return file_part(text, "events")
 
 
 def default_folder(settings) -> str:
@@ -114,12 +112,13 @@ class ExportDialog(QDialog):
         self.written: str | None = None
 
     def _propose_name(self) -> None:
-        """``<input stem>-<what>.<ext>`` in the last export folder."""
+        """``<input stem>_<what>.<ext>`` (core.naming's rule, as the batch names its files) in the last
+        export folder."""
         stem = os.path.splitext(os.path.basename(self.tube.path))[0]
         kind, _, name = str(self.which.currentData()).partition(":")
-        what = file_stem(name) if kind == "region" else kind
+        part = file_stem(name) if kind == "region" else None
         ext = "csv" if getattr(self, "format", None) is not None and self.format.currentData() == "csv" else "fcs"
-        self.path.setText(os.path.join(self.folder, f"{file_stem(stem)}-{what}.{ext}"))
+        self.path.setText(os.path.join(self.folder, events_file_name(file_stem(stem), kind, part, ext)))
 
     def _format_changed(self) -> None:
         stem, _ = os.path.splitext(self.path.text())
@@ -279,7 +278,7 @@ class BatchDialog(QDialog):
             if name:
                 text += ("" if text.endswith(".") else ".") + (
                     f" Each file gets a folder of results named by the batch, e.g. {name}/ with "
-                    f"'{name} rare.fcs' and one file per region.")
+                    f"'{events_file_name(name, 'rare')}' and one file per region.")
         self.files_label.setText(text if files else ("No FCS files in this folder." if folder else ""))
         self._n_files = len(runs)
 

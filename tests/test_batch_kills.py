@@ -1,4 +1,4 @@
-"""Kills and odd output folders for ``boscage batch`` (core/batch.py, core/write_guard.py).
+"""Kills and odd output folders for ``boscage batch`` (core/batch/, core/naming.py, core/write_guard.py).
 
 A ``kill -9`` of the batch leaves no process behind and no write after it;
 temporary files of a killed write are removed by the next run; an output
@@ -6,6 +6,7 @@ folder that cannot be created or would mix outputs with inputs gives exit
 code 2 and a sentence; names that clean to the same file never share one.
 """
 
+import hashlib
 import json
 import os
 import signal
@@ -48,7 +49,7 @@ def rect(name):
 # ----------------------------------------------------------------------------- folders and names
 
 def test_out_folder_that_contains_the_input_folder_is_refused_with_exit_2(tmp_path, capsys):
-    # finding: `batch X/run1 --out X` wrote 'run1 rare.fcs' and done.json into the input folder
+    # finding: `batch X/run1 --out X` wrote the rare events and done.json into the input folder
     run1 = tmp_path / "run1"
     run1.mkdir()
     write_events(run1 / "run1.fcs")
@@ -122,8 +123,8 @@ def test_output_folder_names_are_unique_stable_and_never_the_summary():
         assert all(f.casefold() not in (SUMMARY_NAME, "readme.txt", "recipe.json") for f in folders)
         # stable: the same input gets the same folder whatever else is in the run
         assert output_folder_names(names) == out
-    assert output_folder_names(["plain name.fcs"])["plain name.fcs"] == "plain name"
-    assert file_out_dir("o", "plain name.fcs") == os.path.join("o", "plain name")
+    assert output_folder_names(["plain name.fcs"])["plain name.fcs"] == "plain_name"
+    assert file_out_dir("o", "plain name.fcs") == os.path.join("o", "plain_name")
 
 
 def test_colliding_input_names_and_region_names_write_separate_files(tmp_path):
@@ -133,23 +134,29 @@ def test_colliding_input_names_and_region_names_write_separate_files(tmp_path):
     inp.mkdir()
     for k, name in enumerate(["x.fcs", "x.FCS", "a:b.fcs", "a_b.fcs", "summary.csv.fcs"]):
         write_events(inp / name, seed=k)
-    regions = [rect("a/b"), dict(rect("a_b"), x=[-10.0, 6.5])]
+    regions = [rect("a/b"), dict(rect("a_b"), x=[-10.0, 6.5]), dict(rect("top 5%"), x=[6.0, 100.0])]
     res = run_batch(str(inp), str(out), recipe=tiny_recipe(regions), workers=1)
     assert [r["status"] for r in res.rows] == ["ok"] * 5, res.rows
     assert os.path.isfile(out / SUMMARY_NAME)
+    # the naming rule (core/naming.py): no name written holds a space or '#'; '%' is kept as 'pct'
+    written = [n for _, dirs, files in os.walk(out) for n in dirs + files]
+    assert written and not [n for n in written if " " in n or "#" in n]
+    # 'x.fcs' meets 'x.FCS' ignoring case: its folder gets 8 hex digits of hashlib's SHA-256 of its name
+    stem = "x_" + hashlib.sha256(b"x.fcs").hexdigest()[:8]
+    assert f"{stem}_region_top_5pct.fcs" in written and f"{stem}_rare.fcs" in written
     folders = {r["file"]: file_out_dir(str(out), r["file"], output_folder_names(os.listdir(inp)))
                for r in res.rows}
     assert len(set(folders.values())) == 5
     for name, folder in folders.items():
         with open(os.path.join(folder, DONE_NAME), encoding="utf-8") as fh:
             assert json.load(fh)["row"]["file"] == name
-        rare = [f for f in os.listdir(folder) if f.endswith(" rare.fcs")]
-        region_files = sorted(f for f in os.listdir(folder) if " region " in f)
-        assert len(rare) == 1 and len(region_files) == 2
+        rare = [f for f in os.listdir(folder) if f.endswith("_rare.fcs")]
+        region_files = sorted(f for f in os.listdir(folder) if "_region_" in f)
+        assert len(rare) == 1 and len(region_files) == 3
         src = read_fcs(str(inp / name))
         counts = sorted(read_fcs(os.path.join(folder, f)).n_events for f in region_files)
         row = next(r for r in res.rows if r["file"] == name)
-        assert counts == sorted([row["region:a/b"], row["region:a_b"]])
+        assert counts == sorted([row["region:a/b"], row["region:a_b"], row["region:top 5%"]])
         assert read_fcs(os.path.join(folder, rare[0])).keywords["BOSCAGE_SOURCE"] == os.path.basename(src.path)
     # a re-run finds every file done (the markers are where the run left them)
     again = run_batch(str(inp), str(out), recipe=tiny_recipe(regions), workers=1)
@@ -254,8 +261,9 @@ def test_kill_9_of_the_batch_leaves_no_process_and_no_later_write(tmp_path):
                 os.kill(pid, signal.SIGKILL)
             except OSError:
                 pass
-    # the re-run removes what the kill left half-written and completes every file
-    res = run_batch(str(inp), str(out), recipe=str(recipe), workers=1)
+    # the re-run removes what the kill left half-written and completes every file (with the light
+    # recipe: every file is redone, none skipped, and the re-run takes seconds instead of a minute)
+    res = run_batch(str(inp), str(out), recipe=tiny_recipe(), workers=1)
     assert res.n_ok == 6
     assert not [f for f in _snapshot(out) if f.endswith(".part")]
     assert os.path.isfile(out / OUT_MARK)
@@ -263,9 +271,9 @@ def test_kill_9_of_the_batch_leaves_no_process_and_no_later_write(tmp_path):
 
 def test_names_that_cannot_be_made_distinct_are_reported_per_file(tmp_path, monkeypatch):
     # two hashed names can only meet if their 8 hex digits collide; force that to see the report
-    from core import write_guard
+    from core import naming
 
-    monkeypatch.setattr(write_guard, "short_hash", lambda text: "00000000")
+    monkeypatch.setattr(naming, "short_hash", lambda text: "00000000")
     inp, out = tmp_path / "in", tmp_path / "out"
     inp.mkdir()
     for k, name in enumerate(["a:b.fcs", "a;b.fcs", "plain.fcs"]):

@@ -202,12 +202,12 @@ def test_cancel_while_fitting_the_mixture_base_keeps_a_usable_model():
             return "2 components" not in info["stage"]
         return True
 
-    model = AdditiveTreeDensity(random_state=0).fit(X, progress)
+    model = AdditiveTreeDensity(random_state=0).fit(X, progress=progress)
     assert model.stopped_by_ == "cancelled" and model.n_trees_ == 0
-    assert model._gmm.n_components == 1
+    assert model.mixture_.n_components == 1
     assert any("1 component" in s for s in stages)
     full = AdditiveTreeDensity(random_state=0).fit(X)
-    assert full._gmm.n_components >= 2 and full.stopped_by_ != "cancelled"
+    assert full.mixture_.n_components >= 2 and full.stopped_by_ != "cancelled"
     ref = stats.multivariate_normal(X.mean(axis=0), np.cov(X.T)).logpdf(X)
     got = model.score_samples(X)
     assert np.isfinite(got).all()
@@ -242,12 +242,12 @@ def test_a_model_that_is_the_base_alone_scores_without_the_map():
     rng = np.random.default_rng(12)
     X = np.vstack([rng.normal(0.0, 1.0, size=(3000, 3)), rng.normal(3.0, 0.5, size=(1000, 3))])
     model = AdditiveTreeDensity(random_state=0).fit(X)
-    assert model.n_trees_ == 0 and model._density_is_base()
+    assert model.n_trees_ == 0 and model.chain_.density_is_base()
     assert model.heldout_loglik_ == model.base_heldout_loglik_
-    _, via_map = model._forward_chunk(np.ascontiguousarray(X))
+    _, via_map = model.chain_.forward(np.ascontiguousarray(X))
     np.testing.assert_array_equal(model.score_samples(X), via_map)
     path = os.path.join(tempfile.mkdtemp(), "base-only.npz")
     model.save(path)
     again = AdditiveTreeDensity.load(path)
-    assert again._density_is_base()
+    assert again.chain_.density_is_base()
     np.testing.assert_array_equal(again.score_samples(X), model.score_samples(X))

@@ -215,7 +215,7 @@ def test_save_load_identical(tmp_path, mix2_model, base):
     with np.load(path, allow_pickle=False) as z:
         meta = json.loads(str(z["metadata"][()]))
     # version 1: logistic base; version 2 adds the Gaussian-mixture arrays, version 3 skewed components
-    new_parts = model._gmm is not None and (model._gmm.skew is not None or model._gmm.background is not None)
+    new_parts = model.mixture_ is not None and (model.mixture_.skew is not None or model.mixture_.background is not None)
     assert meta["format_version"] == (1 if base == "logistic" else 3 if new_parts or base == "auto" else 2)
     assert meta["base_used"] == model.base_ == loaded.base_
     assert meta["n_features_in"] == 2
@@ -390,7 +390,7 @@ def test_rotation_layers_stay_exact(tmp_path, base):
     rng = np.random.default_rng(31)
     X = mix2_rvs(6000, rng)
     model = AdditiveTreeDensity(base=base, random_state=0, n_layers=3, layer_trees=4, layer_tol=-1e9).fit(X)
-    assert sum(Q is not None for Q, _, _ in model._layers) == 2
+    assert sum(layer.rotation is not None for layer in model.chain_.layers) == 2
     Xt = mix2_rvs(3000, rng)
     np.testing.assert_allclose(model.inverse_transform(model.transform(Xt)), Xt, rtol=0, atol=1e-9)
     U = model.transform(model.sample(20_000, random_state=2))

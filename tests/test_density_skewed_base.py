@@ -193,13 +193,13 @@ def test_model_file_keeps_the_skew(tmp_path):
     rng = np.random.default_rng(8)
     X = _rvs(12_000, rng)
     model = AdditiveTreeDensity(random_state=0).fit(X)
-    assert model.base_ == "skewed" and model._gmm.skew is not None and model._gmm.background is not None
+    assert model.base_ == "skewed" and model.mixture_.is_skewed and model.mixture_.background is not None
     path = tmp_path / "skewed.npz"
     model.save(path)
     with np.load(path, allow_pickle=False) as z:
         assert json.loads(str(z["metadata"][()]))["format_version"] == 3
-        np.testing.assert_array_equal(z["gmm_skew"], model._gmm.skew)
-        np.testing.assert_array_equal(z["gmm_background"], model._gmm.background)
+        np.testing.assert_array_equal(z["gmm_skew"], model.mixture_.skew)
+        np.testing.assert_array_equal(z["gmm_background"], model.mixture_.background)
     back = AdditiveTreeDensity.load(path)
     Xt = _rvs(2000, rng)
     np.testing.assert_array_equal(back.score_samples(Xt), model.score_samples(Xt))
@@ -288,3 +288,44 @@ def test_skew_search_residual_variance_matches_least_squares():
         y = (T[:, j] * np.cosh(e) - Rt[:, j] * np.sinh(e)) * np.sqrt(w)
         resid = y - A @ np.linalg.lstsq(A, y, rcond=None)[0]
         assert got[g] == pytest.approx(resid @ resid, rel=1e-9)
+
+
+def _skew_fits(X, Xva, counts):
+    from core.density.mixture_fit import MixtureSettings
+    from core.density.skew_fit import SkewFit
+    reg = 1e-6 * X.var(axis=0)
+    return [SkewFit(X, GaussianMixtureBase.fit(X, LOC, BG_SCALE, MixtureSettings(components=(k,), skew=False,
+                                                                                 random_state=0)),
+                    reg, 100, 1e-3, Xva) for k in counts]
+
+
+def test_skew_fit_keeps_its_best_heldout_step_and_stops_when_it_stalls():
+    rng = np.random.default_rng(9)
+    X, Xva = _rvs(6_000, rng), _rvs(3_000, rng)
+    (fit,) = _skew_fits(X, Xva, [2])
+    seen = []
+    while fit.step(lambda: True):
+        seen.append(fit.best_heldout)
+    seen.append(fit.best_heldout)
+    # the kept mixture is the best on the held-out events, and scoring it again agrees
+    assert fit.best.logpdf(Xva).mean() == pytest.approx(max(seen), abs=1e-12)
+    np.testing.assert_array_equal(fit.best.logpdf(Xva), fit.best_scores)
+    # it stopped because the held-out gain fell below tol (1e-3), well before max_iter
+    assert fit.done and fit.steps < 100 and fit.last_gain < 1e-3
+    # and it beats the Gaussian start it came from on the held-out events
+    assert fit.best_heldout > fit.gauss.logpdf(Xva).mean()
+
+
+def test_race_stops_the_clearly_worse_fit_early():
+    from core.density.mixture_fit import _race
+    rng = np.random.default_rng(10)
+    X, Xva = _rvs(6_000, rng), _rvs(3_000, rng)
+    alone = _skew_fits(X, Xva, [1])[0]
+    while alone.step(lambda: True):
+        pass
+    good, bad = _skew_fits(X, Xva, [2, 1])
+    _race([good, bad], lambda: True)
+    # one Gaussian copula cannot describe two populations: it trails clearly and is dropped
+    # before the steps it takes when fitted alone; the two-component fit runs to its end
+    assert bad.steps < alone.steps
+    assert good.best_heldout > bad.best_heldout and good.last_gain < 1e-3

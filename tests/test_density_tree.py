@@ -10,7 +10,7 @@ import pytest
 from scipy import special, stats
 
 from core.density import kernels
-from core.density.model import compose_1d
+from core.density.marginals import PiecewiseLinearMap, compose_1d
 from core.density.tree import Forest, fit_tree
 
 
@@ -91,10 +91,11 @@ def test_composed_one_channel_map_equals_sequential_trees():
     f.forward(seq, ld_seq)
     one = col.copy()
     ld_one = np.zeros(len(col))
-    kernels.pwl_forward(one, ld_one, np.array([0, xs.size]), xs, ys, sl, np.log(sl))
+    pwl = PiecewiseLinearMap.from_channels([(xs, ys, sl)])
+    pwl.forward(one, ld_one)
     np.testing.assert_allclose(one, seq, rtol=0, atol=1e-12)
     np.testing.assert_allclose(ld_one, ld_seq, rtol=0, atol=1e-9)
-    kernels.pwl_inverse(one, np.array([0, xs.size]), xs, ys, sl)
+    pwl.inverse(one)
     np.testing.assert_allclose(one, col, rtol=0, atol=1e-12)
 
 

@@ -229,7 +229,7 @@ def test_batch_dialog_defaults_and_control(qtbot, window, tmp_path):
     from core.batch import output_folder_names
 
     first = output_folder_names([str(folder / "s1.fcs")])["s1.fcs"]
-    assert f"{first}/" in text and f"'{first} rare.fcs'" in text
+    assert f"{first}/" in text and f"'{first}_rare.fcs'" in text
 
 
 def test_pairs_from_lists_scales_apply_and_fitted_mark(qtbot, window, tmp_path):

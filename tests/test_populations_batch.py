@@ -36,7 +36,7 @@ def test_batch_writes_populations_csv_and_rare_population_files(tmp_path):
     assert rare, "the spiked group should be a rare population"
     folder = file_out_dir(str(tmp_path / "out"), str(inp / "one.fcs"))
     for r in rare:
-        path = os.path.join(folder, f"one rare population {r['id'] + 1}.fcs")
+        path = os.path.join(folder, f"one_rare_population_{r['id'] + 1}.fcs")
         meta, df = fcsparser.parse(path, reformat_meta=True, channel_naming="$PnN")
         assert len(df) == r["count"]
         assert set(df["population"].to_numpy()) == {float(r["id"] + 1)}

@@ -38,7 +38,7 @@ No integration anywhere; sampling runs the chain backwards from a uniform draw.
 with a fitted parametric base measure: a full-covariance Gaussian mixture
 (plus a broad logistic background component, so tails stay finite) fitted
 by EM on the training share, pushed onto the cube by its Rosenblatt map
-(:mod:`core.density.gaussian_base`), whose log-Jacobian is exactly the
+(:mod:`core.density.mixture_base`), whose log-Jacobian is exactly the
 mixture's log density.  The trees then only correct what the mixture
 misses; held-out early stopping keeps the model from doing worse on the
 held-out share than the mixture itself.  ``"skewed"`` goes one step further:
@@ -57,134 +57,35 @@ Constant channels (max == min in the fitted events) are documented fallback:
 the channel is modelled as a logistic of scale 1e-3 * max(1, |value|) centred
 on the value, independent of the others (no trees split on it), so the
 model stays a valid density.
+
+Parts (each its own module): :mod:`.chain` (the fitted map: base, then
+:class:`~core.density.chain.Layer` records of rotation, marginal map and
+forest), :mod:`.fitting` (the fit by job, the automatic base), :mod:`.boosting`
+(the tree stage), :mod:`.marginals`, :mod:`.tree`, the mixture base
+(:mod:`.mixture_base`, :mod:`.mixture_fit`, :mod:`.em`, :mod:`.skew_fit`),
+:mod:`.kernels` (compiled loops), :mod:`.storage` (files), :mod:`.checks`
+(input checks) and :mod:`.estimator` (the settings' conventions).
 """
 
 from __future__ import annotations
 
-import math
-from typing import Any
-
 import numpy as np
 
 from ..errors import BoscageError, EventDataError, ParameterError
-from ..progress import keep_going
 from . import kernels
-from .gaussian_base import BASE_CHOICES, MIXTURE_BASES, GaussianMixtureBase
-from .tree import Forest, fit_tree
+from .boosting import EARLY_TREES, LOOKAHEAD_PAIR_BUDGET, MAP_COST_RATIO  # noqa: F401  (documented constants)
+from .checks import (ATOM_SHARE, FAR_SCALES, LOG_DENSITY_FLOOR, MAX_ABS_VALUE, MAX_SAMPLE,  # noqa: F401
+                     MIN_EVENTS, MIN_RELATIVE_SPREAD, check_matrix, check_value_range, chunk, largest_atom_share)
+from .estimator import Settings, fitted
+from .fitting import FittedDensity, fit_density
+from .marginals import compose_1d  # noqa: F401  (its former home)
+from .mixture_base import BASE_CHOICES
 
 #: Events per chunk when scoring/transforming (bounded memory).
 CHUNK = 1 << 16
-MIN_EVENTS = 50
-#: (nodes x channel pairs) per tree the two-level lookahead may examine.
-LOOKAHEAD_PAIR_BUDGET = 1200
-#: Scoring with the full map (Rosenblatt map, rotations, trees) costs about this
-#: many times the mixture's density alone (4.7x measured on 1,000,000 x 28, 3.4x
-#: on 1,000,000 x 10): the first layer of trees after a mixture base must gain
-#: ``layer_tol`` x this (nats per event) on the held-out share to be kept.
-MAP_COST_RATIO = 4.0
-#: After a mixture base, a layer whose first this-many trees have not reached
-#: its required held-out gain is abandoned at once (no patience run, nothing
-#: to roll back).  After the logistic base later layers keep their patience
-#: (slow starters may pay there; EXPERIMENTS.md section 22).
-EARLY_TREES = 3
-_LOGISTIC_IQR = 2.0 * math.log(3.0)
 
 
-def _check_matrix(X, what: str, n_features: int | None = None, min_events: int = 0) -> np.ndarray:
-    """Return X as a 2-D array (no copy when possible) after shape checks."""
-    X = np.asarray(X)
-    if X.ndim == 1 and n_features == 1:
-        X = X[:, None]
-    if X.ndim != 2:
-        raise EventDataError(f"{what}: expected a 2-D array of events x channels, got shape {X.shape}")
-    if not np.issubdtype(X.dtype, np.number) or np.iscomplexobj(X):
-        raise EventDataError(f"{what}: event values must be real numbers, got dtype {X.dtype}")
-    if n_features is not None and X.shape[1] != n_features:
-        raise EventDataError(
-            f"{what}: the model was fitted on {n_features} channels but the events have "
-            f"{X.shape[1]}; pass the same channels in the same order")
-    if X.shape[0] < min_events:
-        raise EventDataError(
-            f"{what}: {X.shape[0]} events is too few to fit a density; at least {min_events} are needed")
-    return X
-
-
-def _nonfinite_error(X: np.ndarray, what: str) -> EventDataError:
-    bad = ~np.isfinite(X)
-    rows = int(bad.any(axis=1).sum())
-    cols = np.flatnonzero(bad.any(axis=0)).tolist()
-    return EventDataError(
-        f"{what}: {rows} event(s) have missing or infinite values (NaN/inf) in column(s) "
-        f"{cols} (0-based); remove or clean them first (core.prepare.prepare_events does this)")
-
-
-def _chunk(X: np.ndarray, a: int, b: int, what: str) -> np.ndarray:
-    """Rows a:b of X as a fresh C-contiguous float64 array (never a view of X)."""
-    C = np.array(X[a:b], dtype=np.float64, order="C", copy=True)
-    if not np.isfinite(C).all():
-        raise _nonfinite_error(X, what)
-    return C
-
-
-#: Largest |value| fit accepts: beyond it squares and products in float64 overflow.
-MAX_ABS_VALUE = 1e100
-#: A channel whose values vary by less than this share of their size is below
-#: float64 resolution for the maps (the engine's scale floor is 1e-12 of the size).
-MIN_RELATIVE_SPREAD = 1e-12
-#: Scoring: values further than this many robust scales from a channel's centre are
-#: scored as if at that distance (their log density is then below -1e40 nats).
-FAR_SCALES = 1e40
-#: Scoring: the lowest log density reported (float64 cannot go below -1.8e308).
-LOG_DENSITY_FLOOR = -1e300
-#: Most events :meth:`AdditiveTreeDensity.sample` draws in one call.
-MAX_SAMPLE = 100_000_000
-
-
-def _check_value_range(X: np.ndarray) -> None:
-    """Refuse events the engine cannot represent (EventDataError naming the channel):
-    values beyond +-1e100, or a non-constant channel whose spread is below 1e-12 of its size."""
-    if X.shape[0] == 0 or X.shape[1] == 0:
-        return
-    with np.errstate(all="ignore"):
-        lo, hi = np.nanmin(X, axis=0).astype(np.float64), np.nanmax(X, axis=0).astype(np.float64)
-        size = np.maximum(np.abs(lo), np.abs(hi))
-        spread = hi - lo
-    for j in range(X.shape[1]):
-        if not np.isfinite(size[j]):
-            continue  # NaN/inf: reported by the fit's own check, with counts
-        if size[j] > MAX_ABS_VALUE:
-            raise EventDataError(
-                f"fit: column {j} (0-based) holds values up to {size[j]:.3g}; the density engine works with "
-                f"values within +-{MAX_ABS_VALUE:g} (transform or rescale the channel first)")
-        if 0 < spread[j] < MIN_RELATIVE_SPREAD * max(1.0, size[j]):
-            raise EventDataError(
-                f"fit: column {j} (0-based) varies by only {spread[j]:.3g} around {size[j]:.3g}, below what "
-                "float64 resolves for a density; rescale the channel or leave it out")
-
-
-#: With ``base="auto"``: a channel whose most frequent value holds at least this
-#: share of the events has an atom, and the logistic base is tried as well.
-ATOM_SHARE = 0.05
-#: Events looked at (evenly strided) to find atoms.
-_ATOM_SAMPLE = 50_000
-
-
-def largest_atom_share(X) -> float:
-    """Largest share of events (n_events, n_channels) sitting on one single value
-    in any channel, from at most 50,000 evenly strided events; 0 for none."""
-    X = np.asarray(X)
-    step = max(1, X.shape[0] // _ATOM_SAMPLE)
-    S = np.sort(X[::step], axis=0)
-    n = S.shape[0]
-    best = 0
-    for j in range(S.shape[1]):
-        col = S[:, j]
-        starts = np.flatnonzero(np.concatenate([[True], col[1:] != col[:-1], [True]]))
-        best = max(best, int(np.diff(starts).max()))
-    return best / n if n else 0.0
-
-
-class AdditiveTreeDensity:
+class AdditiveTreeDensity(Settings):
     """Density of events x channels by unsupervised tree boosting (see module docstring).
 
     Parameters
@@ -293,6 +194,12 @@ class AdditiveTreeDensity:
         "early stopping", "n_trees", "no split" or "cancelled".
     base_ : str
         The first map used ("logistic", "gmm" or "skewed"; ``base`` unless "auto").
+    fitted_ : FittedDensity
+        The fitted record (:class:`core.density.fitting.FittedDensity`): the map
+        chain (``fitted_.chain``: base, mixture, layers) and the values above.
+
+    The settings are the keyword arguments of ``__init__``; :meth:`param_names`
+    lists them (the recipe and the contour code read it).
     """
 
     def __init__(self, n_trees: int = 400, learning_rate: float = 0.9, max_depth: int = 14,
@@ -329,25 +236,33 @@ class AdditiveTreeDensity:
         self.base = base
         self.random_state = random_state
 
-    # ------------------------------------------------------------ params
-    _PARAMS = ("n_trees", "learning_rate", "max_depth", "n_bins", "min_leaf", "validation_fraction",
-               "patience", "max_fit_events", "marginal_trees", "marginal_learning_rate",
-               "marginal_depth", "n_layers", "layer_trees", "layer_tol", "alpha", "rotation", "jitter", "min_gain", "lookahead", "lookahead_bins", "marginal_alpha", "tol", "base", "random_state")
+    # ------------------------------------------------------------ fitted attributes
+    n_features_in_ = fitted("n_features", "Channels.")
+    bounds_ = fitted("bounds", "(2, n_channels) minimum and maximum of the fitted events.")
+    n_trees_ = fitted("n_trees", "Dependence trees kept (all layers).")
+    n_marginal_trees_ = fitted("n_marginal_trees", "(n_channels,) one-channel trees of the first layer.")
+    learning_curve_ = fitted("learning_curve", "Held-out mean log-likelihood after each step.")
+    heldout_loglik_ = fitted("heldout_loglik", "The kept model's held-out mean log-likelihood.")
+    base_heldout_loglik_ = fitted("base_heldout_loglik", "Held-out mean log-likelihood of the base alone.")
+    n_events_fitted_ = fitted("n_events", "Events used (after the max_fit_events subsample).")
+    stopped_by_ = fitted("stopped_by", '"early stopping", "n_trees", "no split" or "cancelled".')
+    base_ = fitted("base", 'The first map used ("logistic", "gmm" or "skewed").')
+    chain_ = fitted("chain", "The fitted map (core.density.chain.Chain).")
 
-    def get_params(self, deep: bool = True) -> dict[str, Any]:
-        return {k: getattr(self, k) for k in self._PARAMS}
+    @property
+    def mixture_(self):
+        """The fitted mixture base (core.density.mixture_base.MixtureBase) or None (logistic base)."""
+        return self.chain_.mixture
 
-    def set_params(self, **params) -> "AdditiveTreeDensity":
-        for k, v in params.items():
-            if k not in self._PARAMS:
-                raise ParameterError(f"unknown density engine setting {k!r}; settings: {', '.join(self._PARAMS)}")
-            setattr(self, k, v)
-        return self
+    # former private names, still read by code written before the fitted record
+    _gmm = mixture_
 
-    def __repr__(self) -> str:
-        return f"AdditiveTreeDensity(n_trees={self.n_trees}, learning_rate={self.learning_rate}, max_depth={self.max_depth})"
+    @property
+    def _frozen(self):
+        return self.chain_.constant
 
-    def _validate_params(self) -> None:
+    # ------------------------------------------------------------ settings
+    def validate_params(self) -> None:
         if not 0.0 < float(self.learning_rate) < 1.0:
             raise ValueError("learning_rate must be in (0, 1)")
         if not 0.0 < float(self.marginal_learning_rate) < 1.0:
@@ -371,397 +286,93 @@ class AdditiveTreeDensity:
         if int(self.n_trees) < 0 or int(self.marginal_trees) < -1 or int(self.patience) < 1:
             raise ValueError("n_trees must be >= 0, marginal_trees >= 0 (or -1: automatic) and patience >= 1")
 
+    _validate_params = validate_params  # its former name
+
     # ------------------------------------------------------------ fitting
-    def fit(self, X, progress=None) -> "AdditiveTreeDensity":
-        """Fit to events X (n_events, n_channels); returns self (see :meth:`_fit_checked`).
-
-        Every problem with X or the settings raises one of this program's errors
-        (EventDataError, ParameterError; both are ValueError too), never a bare
-        numpy or Python exception."""
-        try:
-            self._validate_params()
-        except (ValueError, TypeError, OverflowError) as exc:
-            if isinstance(exc, BoscageError):
-                raise
-            raise ParameterError(f"density engine setting: {exc}") from None
-        X = _check_matrix(X, "fit", min_events=MIN_EVENTS)
-        if X.shape[1] == 0:
-            raise EventDataError("fit: the events have no channels (0 columns)")
-        _check_value_range(X)
-        try:
-            return self._fit_checked(X, progress)
-        except BoscageError:
-            raise
-        except (ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:
-            raise EventDataError(f"fit: the density could not be fitted to these events ({exc})") from exc
-
-    def _fit_checked(self, X, progress=None) -> "AdditiveTreeDensity":
-        """Fit to events X (n_events, n_channels); returns self.
+    def fit(self, X, y=None, progress=None) -> "AdditiveTreeDensity":
+        """Fit to events X (n_events, n_channels); returns self.  ``y`` is ignored
+        (accepted for scikit-learn's model selection).
 
         ``progress(step, total, heldout_loglik)`` is called after the
         marginal stage (step 0) and after each dependence tree; returning
         False stops cleanly keeping the trees so far (the model is usable).
         With ``base="auto"`` the skewed-mixture model is fitted and, when a
-        channel has an atom (:func:`largest_atom_share` >= ``ATOM_SHARE``), the
-        logistic-base model too (its progress follows, with the stage named);
-        the one with the better held-out log-likelihood is kept (``base_``).
-        Stopped during that second fit, the skewed-mixture model is kept and
-        ``stopped_by_`` is "cancelled".
-        """
-        self._validate_params()
-        X = _check_matrix(X, "fit", min_events=MIN_EVENTS)
-        if self.base != "auto":
-            return self._fit_base(X, self.base, progress)
-        self._fit_base(X, "skewed", progress)
-        if self.stopped_by_ == "cancelled" or largest_atom_share(X) < ATOM_SHARE:
-            return self
-        if not keep_going(progress, 0, int(self.n_trees),
-                          {"stage": "Channels with atoms: fitting the logistic base as well"}):
-            self.stopped_by_ = "cancelled"  # the skewed-mixture model is complete and usable
-            return self
-        other = AdditiveTreeDensity(**self.get_params())
-        other._fit_base(X, "logistic", progress)
-        if other.stopped_by_ == "cancelled":
-            self.stopped_by_ = "cancelled"
-            return self
-        if other.heldout_loglik_ > self.heldout_loglik_:
-            # its fitted state (base_ "logistic" included), not its parameters
-            self.__dict__.update({k: v for k, v in other.__dict__.items() if k not in self._PARAMS})
+        channel has an atom, the logistic-base model too; the better on the
+        held-out share is kept (:func:`core.density.fitting.fit_auto`).
+
+        Every problem with X or the settings raises one of this program's errors
+        (EventDataError, ParameterError; both are ValueError too), never a bare
+        numpy or Python exception."""
+        if progress is None and callable(y):
+            y, progress = None, y  # the former signature fit(X, progress)
+        try:
+            self.validate_params()
+        except (ValueError, TypeError, OverflowError) as exc:
+            if isinstance(exc, BoscageError):
+                raise
+            raise ParameterError(f"density engine setting: {exc}") from None
+        X = check_matrix(X, "fit", min_events=MIN_EVENTS)
+        if X.shape[1] == 0:
+            raise EventDataError("fit: the events have no channels (0 columns)")
+        check_value_range(X)
+        try:
+            record = fit_density(self, X, progress)
+        except BoscageError:
+            raise
+        except (ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:
+            raise EventDataError(f"fit: the density could not be fitted to these events ({exc})") from exc
+        self.fitted_ = record
         return self
-
-    def _fit_base(self, X, base, progress) -> "AdditiveTreeDensity":
-        """:meth:`fit` with the first map ``base`` ("logistic", "gmm" or "skewed");
-        X already checked."""
-        rng = np.random.default_rng(self.random_state)
-        n_all = X.shape[0]
-        if n_all > int(self.max_fit_events):
-            idx = np.sort(rng.choice(n_all, int(self.max_fit_events), replace=False))
-            X = X[idx]
-        X = np.ascontiguousarray(X, dtype=np.float64)
-        if not np.isfinite(X).all():
-            raise _nonfinite_error(X, "fit")
-        n, d = X.shape
-        self.n_features_in_ = d
-        self.n_events_fitted_ = n
-        self.bounds_ = np.vstack([X.min(axis=0), X.max(axis=0)])
-
-        # 1. map into the cube
-        q25, med, q75 = np.percentile(X, [25.0, 50.0, 75.0], axis=0)
-        scale = (q75 - q25) / _LOGISTIC_IQR
-        std = X.std(axis=0) * math.sqrt(3.0) / math.pi
-        scale = np.where(scale > 0, scale, std)
-        frozen = self.bounds_[1] <= self.bounds_[0]
-        scale = np.where(frozen, 1e-3 * np.maximum(1.0, np.abs(med)), scale)
-        # std can be >0 yet tiny relative to the values; keep scale meaningful
-        scale = np.maximum(scale, 1e-12 * np.maximum(1.0, np.abs(med)))
-        self._loc = med.astype(np.float64)
-        self._scale = scale.astype(np.float64)
-        self._frozen = frozen
-
-        perm = rng.permutation(n)
-        n_val = max(1, int(round(float(self.validation_fraction) * n)))
-        va, tr = np.sort(perm[:n_val]), np.sort(perm[n_val:])
-        self._gmm = None
-        self.base_ = base
-        if base in MIXTURE_BASES and (~frozen).any():
-            free = ~frozen
-            self._gmm = GaussianMixtureBase.fit(
-                X[tr][:, free], self._loc[free], self._scale[free],
-                random_state=int(rng.integers(2 ** 31)), skew=base == "skewed",
-                flat_background=base == "skewed", validation=X[va][:, free],
-                progress=lambda step, total, info: keep_going(progress, 0, int(self.n_trees), info))
-        U_tr, ld_tr = self._base_forward(X[tr])
-        U_va, ld_va = self._base_forward(X[va])
-        self.base_heldout_loglik_ = float(ld_va.mean())
-
-        # 2. layers: [rotation] -> marginals -> block of dependence trees
-        self._layers = []
-        self.n_trees_ = 0
-        self.stopped_by_ = "n_trees"
-        total = int(self.n_trees)
-        allowed = ~frozen
-        if allowed.sum() < 2:
-            total = 0  # at most one free channel: the marginal stage is the whole model
-        curve = []
-        scratch = np.zeros(tr.size)
-        lr = float(self.learning_rate)
-        # lookahead costs channels^2 per node: fewer levels for many channels
-        # (3 levels up to 12 channels, 2 up to 20, only the root beyond)
-        free = int(allowed.sum())
-        look = int(self.lookahead)
-        if look > 0:
-            nodes = LOOKAHEAD_PAIR_BUDGET / max(1, free * free)
-            look = max(1, min(look, int(math.floor(math.log2(nodes + 1.0)))))
-        done = 0
-        n_layers = max(1, int(self.n_layers)) if total else 1
-        if self._gmm is not None and self._gmm.cancelled:
-            # stopped while fitting the mixture: it is the whole model, and the
-            # caller is not asked again
-            self.stopped_by_ = "cancelled"
-            n_layers = 0
-            self._keep_base_only(d)
-            curve.append(float(ld_va.mean()))
-        for layer in range(n_layers):
-            # after a Gaussian-mixture base the first layer must pay for itself too,
-            # and for the full map it forces on scoring (MAP_COST_RATIO)
-            start_ll = float(ld_va.mean()) if layer or self._gmm is not None else -np.inf
-            needed = float(self.layer_tol) * (MAP_COST_RATIO if layer == 0 else 1.0)
-            Q = None
-            if layer > 0:
-                Q = self._rotation(U_tr, allowed, rng)
-                kernels.rotate(U_tr, Q)
-                kernels.rotate(U_va, Q)
-            pwl = self._fit_marginals(U_tr, U_va, ld_va)
-            curve.append(float(ld_va.mean()))
-            forest = Forest()
-            self._layers.append((Q, pwl, forest))
-            if not keep_going(progress, done, total, curve[-1]):
-                self.stopped_by_ = "cancelled"
-                break
-            best_k, best_ll = 0, curve[-1]
-            best_state = pre_state = None
-            for k in range(1, min(total - done, int(self.layer_trees)) + 1):
-                tree = fit_tree(U_tr, lr, int(self.max_depth), int(self.n_bins), int(self.min_leaf),
-                                allowed, float(self.alpha), rng if self.jitter else None,
-                                float(self.min_gain), look, int(self.lookahead_bins))
-                if tree.n_nodes == 0:
-                    self.stopped_by_ = "no split"
-                    break
-                if best_state is None:
-                    pre_state = (U_tr.copy(), U_va.copy(), ld_va.copy())
-                tree.forward(U_tr, scratch)
-                tree.forward(U_va, ld_va)
-                forest.append(tree)
-                ll = float(ld_va.mean())
-                curve.append(ll)
-                if ll > best_ll + float(self.tol):
-                    best_k, best_ll = k, ll
-                    best_state = None
-                elif best_state is None:
-                    best_state = pre_state  # the state at the best prefix
-                pre_state = None
-                if not keep_going(progress, done + k, total, ll):
-                    self.stopped_by_ = "cancelled"
-                    break
-                if k - best_k >= int(self.patience) or (self._gmm is not None and k >= EARLY_TREES
-                                                         and best_ll - start_ll < needed):
-                    # no patience run for a layer whose first trees do not pay
-                    self.stopped_by_ = "early stopping"
-                    break
-            if self.stopped_by_ == "cancelled":
-                done += forest.n_trees
-                break
-            if forest.n_trees > best_k:
-                # roll back to the best prefix (state saved when it was passed)
-                U_tr, U_va, ld_va = best_state
-                forest = forest.prefix(best_k)
-                self._layers[-1] = (Q, pwl, forest)
-                curve.append(best_ll)
-            done += best_k
-            gain = best_ll - start_ll
-            if gain < needed:
-                # a layer that does not pay for its scoring time; the first one
-                # (after a mixture base) leaves the base alone, whose density
-                # then needs no Rosenblatt map (gmm_logpdf, ~3x faster)
-                if layer > 0:
-                    self._layers.pop()
-                else:
-                    self._keep_base_only(d)
-                curve.append(start_ll)
-                break
-            if done >= total or self.stopped_by_ == "no split":
-                break
-        self.n_trees_ = sum(f.n_trees for _, _, f in self._layers)
-        self.learning_curve_ = np.array(curve)
-        self.heldout_loglik_ = float(curve[-1])
-        return self
-
-    def _rotation(self, U: np.ndarray, allowed: np.ndarray, rng) -> np.ndarray:
-        """Orthogonal d x d matrix: principal axes of the events in Gaussianised
-        coordinates (probit of each cube coordinate), acting on the free channels."""
-        d = U.shape[1]
-        if self.rotation == "random":
-            k = int(allowed.sum())
-            vecs, r = np.linalg.qr(rng.normal(size=(k, k)))
-            vecs = vecs * np.sign(np.diag(r))
-        else:
-            Z = kernels.probit_matrix(U)[:, allowed]
-            C = np.cov(Z, rowvar=False)
-            _, vecs = np.linalg.eigh(C)
-            vecs = vecs[:, ::-1]
-        # fix signs so the result does not depend on the eigen-solver's choice
-        vecs = vecs * np.where(vecs[np.abs(vecs).argmax(axis=0), np.arange(vecs.shape[1])] < 0, -1.0, 1.0)
-        Q = np.eye(d)
-        idx = np.flatnonzero(allowed)
-        Q[np.ix_(idx, idx)] = vecs.T
-        return Q
-
-    def _keep_base_only(self, d: int) -> None:
-        """Make the base the whole model: one layer with no rotation, identity
-        marginals and no trees (:meth:`_density_is_base` then holds)."""
-        self._layers = [(None, _identity_pwl(d), Forest())]
-        self.n_marginal_trees_ = np.zeros(d, np.int64)
-
-    def _marginal_tree_count(self) -> int:
-        """Most one-channel trees per channel (resolves the automatic -1)."""
-        m = int(self.marginal_trees)
-        if m >= 0:
-            return m
-        return 0 if getattr(self, "base_", self.base) in MIXTURE_BASES else 100
-
-    def _fit_marginals(self, U_tr: np.ndarray, U_va: np.ndarray, ld_va: np.ndarray):
-        """Boost one-channel trees per channel; compose each channel's trees into a
-        monotone piecewise-linear map; apply it to U_tr/U_va in place (adding to ld_va).
-        Returns the map as (offsets, xs, ys, slopes, log_slopes)."""
-        d = U_tr.shape[1]
-        xs_all, ys_all, sl_all = [], [], []
-        offsets = [0]
-        counts = np.zeros(d, np.int64)
-        lr = float(self.marginal_learning_rate)
-        for j in range(d):
-            if self._frozen[j] or self._marginal_tree_count() == 0:
-                xs = np.array([0.0, 1.0])
-                ys = xs.copy()
-                sl = np.ones(2)
-            else:
-                col_tr = U_tr[:, j:j + 1].copy()
-                col_va = U_va[:, j:j + 1].copy()
-                ld = np.zeros(col_va.shape[0])
-                scratch = np.zeros(col_tr.shape[0])
-                forest = Forest()
-                best_k, best_ll = 0, 0.0
-                for k in range(1, self._marginal_tree_count() + 1):
-                    tree = fit_tree(col_tr, lr, int(self.marginal_depth), int(self.n_bins),
-                                    int(self.min_leaf), None, float(self.marginal_alpha))
-                    if tree.n_nodes == 0:
-                        break
-                    tree.forward(col_tr, scratch)
-                    tree.forward(col_va, ld)
-                    forest.append(tree)
-                    ll = float(ld.mean())
-                    if ll > best_ll:
-                        best_k, best_ll = k, ll
-                    if k - best_k >= int(self.patience):
-                        break
-                forest = forest.prefix(best_k)
-                counts[j] = best_k
-                xs, ys, sl = compose_1d(forest)
-            offsets.append(offsets[-1] + xs.size)
-            xs_all.append(xs)
-            ys_all.append(ys)
-            sl_all.append(sl)
-        sl = np.concatenate(sl_all)
-        pwl = (np.array(offsets, np.int64), np.concatenate(xs_all), np.concatenate(ys_all), sl, np.log(sl))
-        self.n_marginal_trees_ = counts if not hasattr(self, "_layers") or not self._layers \
-            else self.n_marginal_trees_
-        kernels.pwl_forward(U_tr, np.zeros(U_tr.shape[0]), *pwl)
-        kernels.pwl_forward(U_va, ld_va, *pwl)
-        return pwl
 
     # ------------------------------------------------------------ using
-    def _check_fitted(self) -> None:
-        if not hasattr(self, "_layers"):
-            raise EventDataError("the density model is not fitted yet; call fit(events) first")
-
-    def _base_forward(self, C: np.ndarray, want_u: bool = True):
-        """The base map into the cube: (U (m, d), log-Jacobian (m,)); with
-        ``want_u=False`` only the log density (U is None), which for the
-        Gaussian-mixture base skips the CDFs of its Rosenblatt map."""
-        m, d = C.shape
-        U = np.empty((m, d))
-        logd = np.zeros(m)
-        gmm = getattr(self, "_gmm", None)
-        if gmm is None:
-            kernels.base_forward(C, U, logd, self._loc, self._scale, np.log(self._scale))
-            return (U if want_u else None), logd
-        fr = self._frozen
-        if fr.any():
-            Uf = np.empty((m, int(fr.sum())))
-            kernels.base_forward(np.ascontiguousarray(C[:, fr]), Uf, logd, self._loc[fr],
-                                 self._scale[fr], np.log(self._scale[fr]))
-            U[:, fr] = Uf
-        if not want_u:
-            return None, logd + gmm.logpdf(C[:, ~fr])
-        Ug, lg = gmm.forward(C[:, ~fr])
-        U[:, ~fr] = Ug
-        logd += lg
-        return U, logd
-
-    def _density_is_base(self) -> bool:
-        """True when nothing follows a Gaussian-mixture base (no rotation, identity
-        marginals, no trees): the log density is then the base's alone."""
-        if getattr(self, "_gmm", None) is None or len(self._layers) != 1:
-            return False
-        Q, pwl, forest = self._layers[0]
-        return Q is None and forest.n_trees == 0 and bool(np.all(pwl[3] == 1.0))
-
-    def _base_inverse(self, C: np.ndarray, out: np.ndarray) -> None:
-        gmm = getattr(self, "_gmm", None)
-        kernels.base_inverse(C, out, self._loc, self._scale)
-        if gmm is not None:
-            out[:, ~self._frozen] = gmm.inverse(C[:, ~self._frozen])
-
-    def _forward_chunk(self, C: np.ndarray):
-        U, logd = self._base_forward(C)
-        for Q, pwl, forest in self._layers:
-            if Q is not None:
-                kernels.rotate(U, Q)
-            kernels.pwl_forward(U, logd, *pwl)
-            forest.forward(U, logd)
-        return U, logd
+    def _check_fitted(self) -> FittedDensity:
+        """The fitted record (NotFittedError before :meth:`fit`)."""
+        self.chain_  # noqa: B018  (raises when not fitted)
+        return self.fitted_
 
     def score_samples(self, X) -> np.ndarray:
         """Natural-log density of each event (n_events,), per unit volume of X's units.
 
         Streams X in chunks of 65,536 events (memory bounded by the chunk)."""
-        self._check_fitted()
-        X = _check_matrix(X, "score", self.n_features_in_)
+        chain = self._check_fitted().chain
+        X = check_matrix(X, "score", self.n_features_in_)
         out = np.empty(X.shape[0])
-        base_only = self._density_is_base()
+        reach = FAR_SCALES * chain.scale
         for a in range(0, X.shape[0], CHUNK):
             b = min(X.shape[0], a + CHUNK)
-            C = _chunk(X, a, b, "score")
-            self._clip_far(C)
-            out[a:b] = self._base_forward(C, want_u=False)[1] if base_only else self._forward_chunk(C)[1]
+            C = chunk(X, a, b, "score")
+            # values further than FAR_SCALES robust scales from a channel's centre are
+            # scored at that distance, so every finite event gets a finite log density
+            np.clip(C, chain.loc - reach, chain.loc + reach, out=C)
+            out[a:b] = chain.log_density(C)
         np.maximum(out, LOG_DENSITY_FLOOR, out=out)  # finite for every finite event
         return out
 
-    def _clip_far(self, C: np.ndarray) -> None:
-        """Move values further than FAR_SCALES robust scales from each channel's centre to that
-        distance (in place), so every finite event gets a finite log density."""
-        reach = FAR_SCALES * self._scale
-        np.clip(C, self._loc - reach, self._loc + reach, out=C)
-
-    def score(self, X) -> float:
-        """Mean log density of the events X (nats per event)."""
+    def score(self, X, y=None) -> float:
+        """Mean log density of the events X (nats per event); ``y`` is ignored."""
         return float(np.mean(self.score_samples(X)))
 
     def transform(self, X) -> np.ndarray:
         """The full map into the unit cube (base, marginals, all trees): (n, d) in [0, 1]."""
-        self._check_fitted()
-        X = _check_matrix(X, "transform", self.n_features_in_)
+        chain = self._check_fitted().chain
+        X = check_matrix(X, "transform", self.n_features_in_)
         out = np.empty(X.shape, dtype=np.float64)
         for a in range(0, X.shape[0], CHUNK):
             b = min(X.shape[0], a + CHUNK)
-            out[a:b], _ = self._forward_chunk(_chunk(X, a, b, "transform"))
+            out[a:b], _ = chain.forward(chunk(X, a, b, "transform"))
         return out
 
     def inverse_transform(self, U) -> np.ndarray:
         """Inverse of :meth:`transform`: points of [0, 1]^d back to event space (n, d)."""
-        self._check_fitted()
-        U = _check_matrix(U, "inverse_transform", self.n_features_in_)
+        chain = self._check_fitted().chain
+        U = check_matrix(U, "inverse_transform", self.n_features_in_)
         out = np.empty(U.shape, dtype=np.float64)
         for a in range(0, U.shape[0], CHUNK):
             b = min(U.shape[0], a + CHUNK)
-            C = _chunk(U, a, b, "inverse_transform")
+            C = chunk(U, a, b, "inverse_transform")
             if (C < 0).any() or (C > 1).any():
                 raise EventDataError("inverse_transform: values must lie in the unit cube [0, 1]")
-            for Q, pwl, forest in reversed(self._layers):
-                forest.inverse(C)
-                kernels.pwl_inverse(C, *pwl[:4])
-                if Q is not None:
-                    kernels.rotate(C, np.ascontiguousarray(Q.T))
-            self._base_inverse(C, out[a:b])
+            chain.inverse(C, out[a:b])
         return out
 
     def sample(self, n: int, random_state=None) -> np.ndarray:
@@ -784,55 +395,12 @@ class AdditiveTreeDensity:
     # ------------------------------------------------------------ files
     def save(self, path) -> None:
         """Write the fitted model to one ``.npz`` file (see :mod:`core.density.storage`)."""
-        from .storage import save_model
+        from .storage import save_model  # storage imports this module's package: import at use
         self._check_fitted()
         save_model(self, path)
 
     @classmethod
     def load(cls, path) -> "AdditiveTreeDensity":
         """Read a model written by :meth:`save`; raises ModelFileError for a bad file."""
-        from .storage import load_model
+        from .storage import load_model  # storage imports this module's package: import at use
         return load_model(cls, path)
-
-
-def _identity_pwl(d: int):
-    """The marginal stage's map with no trees: identity on each of d channels,
-    as (offsets, xs, ys, slopes, log_slopes) like :meth:`AdditiveTreeDensity._fit_marginals`."""
-    xs = np.tile([0.0, 1.0], d)
-    sl = np.ones(2 * d)
-    return (np.arange(0, 2 * d + 1, 2, dtype=np.int64), xs, xs.copy(), sl, np.log(sl))
-
-
-def compose_1d(forest: Forest):
-    """Compose a sequence of one-dimensional tree-CDFs on [0, 1] into one
-    monotone piecewise-linear map.
-
-    Returns knots ``xs`` (increasing, 0 .. 1), the map's values ``ys`` at the
-    knots and the exact slope of each piece (last entry unused, set to 1):
-    the slope is evaluated at the piece's midpoint as the product of the
-    trees' local slopes, so log densities are exact, not differences of
-    rounded values.
-    """
-    if forest.n_trees == 0 or forest.n_nodes == 0:
-        return np.array([0.0, 1.0]), np.array([0.0, 1.0]), np.ones(2)
-    knots = [np.array([0.0, 1.0])]
-    for t in range(forest.n_trees):
-        r = forest.roots[t]
-        if r < 0:
-            continue
-        stop = forest.roots[t + 1:]
-        stop = stop[stop >= 0]
-        end = int(stop.min()) if stop.size else forest.n_nodes
-        cuts = forest.cut[r:end].reshape(-1, 1).copy()
-        forest.prefix(t).inverse(cuts)
-        knots.append(cuts[:, 0])
-    xs = np.unique(np.clip(np.concatenate(knots), 0.0, 1.0))
-    mids = np.ascontiguousarray(((xs[:-1] + xs[1:]) / 2).reshape(-1, 1))
-    lmid = np.zeros(mids.shape[0])
-    forest.forward(mids, lmid)
-    ys = np.ascontiguousarray(xs.reshape(-1, 1)).copy()
-    forest.forward(ys, np.zeros(xs.size))
-    ys = np.maximum.accumulate(np.clip(ys[:, 0], 0.0, 1.0))
-    ys[0], ys[-1] = 0.0, 1.0
-    slopes = np.append(np.exp(lmid), 1.0)
-    return xs, ys, slopes

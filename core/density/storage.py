@@ -33,7 +33,10 @@ from ..atomic import atomic_write
 from ..write_guard import path_text
 from ..errors import ModelFileError
 from . import kernels
-from .gaussian_base import BASE_CHOICES, BASES, MIXTURE_BASES, GaussianMixtureBase
+from .chain import Chain, Layer
+from .fitting import FittedDensity
+from .marginals import PiecewiseLinearMap
+from .mixture_base import BASE_CHOICES, BASES, MIXTURE_BASES, MixtureBase
 from .tree import Forest
 
 FORMAT_NAME = "boscage-additive-tree-density"
@@ -56,8 +59,10 @@ _ARRAYS = ("loc", "scale", "frozen", "bounds", "rot", "has_rot", "m_off", "m_xs"
 
 def save_model(model, path) -> None:
     """Write ``model`` to ``path`` (.npz) atomically, replacing an existing file."""
-    d = int(model.n_features_in_)
-    layers = model._layers
+    fit = model.fitted_
+    chain = fit.chain
+    d = fit.n_features
+    layers = chain.layers
     L = len(layers)
     rot = np.zeros((L, d, d))
     has_rot = np.zeros(L, np.bool_)
@@ -66,17 +71,18 @@ def save_model(model, path) -> None:
     forest = Forest()
     layer_trees = [0]
     base = 0
-    for i, (Q, pwl, f) in enumerate(layers):
-        rot[i] = np.eye(d) if Q is None else Q
-        has_rot[i] = Q is not None
-        m_off[i] = pwl[0] + base
-        base += pwl[1].size
-        xs.append(pwl[1])
-        ys.append(pwl[2])
-        sl.append(pwl[3])
-        forest.append(f)
+    for i, layer in enumerate(layers):
+        rot[i] = np.eye(d) if layer.rotation is None else layer.rotation
+        has_rot[i] = layer.rotation is not None
+        pwl = layer.marginal
+        m_off[i] = pwl.offsets + base
+        base += pwl.xs.size
+        xs.append(pwl.xs)
+        ys.append(pwl.ys)
+        sl.append(pwl.slopes)
+        forest.append(layer.forest)
         layer_trees.append(forest.n_trees)
-    gmm = getattr(model, "_gmm", None)
+    gmm = chain.mixture
     meta = {
         "format": FORMAT_NAME,
         # 3 whenever a version-2 reader would misread it (new arrays, or the "auto" base)
@@ -87,21 +93,20 @@ def save_model(model, path) -> None:
         "params": model.get_params(),
         "n_features_in": d,
         "n_layers": L,
-        "n_trees": int(model.n_trees_),
-        "heldout_loglik": float(model.heldout_loglik_),
-        "base_heldout_loglik": (float(model.base_heldout_loglik_)
-                                if hasattr(model, "base_heldout_loglik_") else None),
-        "n_events_fitted": int(getattr(model, "n_events_fitted_", 0)),
-        "stopped_by": getattr(model, "stopped_by_", ""),
-        "base_used": getattr(model, "base_", model.base),
+        "n_trees": int(fit.n_trees),
+        "heldout_loglik": float(fit.heldout_loglik),
+        "base_heldout_loglik": None if fit.base_heldout_loglik is None else float(fit.base_heldout_loglik),
+        "n_events_fitted": int(fit.n_events),
+        "stopped_by": fit.stopped_by,
+        "base_used": fit.base,
     }
     f = forest
-    arrays = dict(loc=model._loc, scale=model._scale, frozen=model._frozen, bounds=model.bounds_,
+    arrays = dict(loc=chain.loc, scale=chain.scale, frozen=chain.constant, bounds=fit.bounds,
                   rot=rot, has_rot=has_rot, m_off=m_off, m_xs=np.concatenate(xs),
                   m_ys=np.concatenate(ys), m_sl=np.concatenate(sl),
-                  n_marginal_trees=model.n_marginal_trees_, layer_trees=np.array(layer_trees, np.int64),
+                  n_marginal_trees=fit.n_marginal_trees, layer_trees=np.array(layer_trees, np.int64),
                   roots=f.roots, dim=f.dim, cut=f.cut, lo=f.lo, hi=f.hi, theta=f.theta, left=f.left,
-                  right=f.right, learning_curve=model.learning_curve_)
+                  right=f.right, learning_curve=fit.learning_curve)
     if gmm is not None:
         arrays.update(gmm_weights=gmm.weights, gmm_means=gmm.means, gmm_covariances=gmm.covariances,
                       gmm_loc=gmm.loc, gmm_scale=gmm.scale)
@@ -254,13 +259,13 @@ def _build(cls, meta, a):
     if not 1 <= d <= 100_000:
         raise ValueError(f"{d} channels")
     params = dict(meta["params"])
-    model = cls(**{k: v for k, v in params.items() if k in cls._PARAMS})
-    model._validate_params()
+    model = cls(**{k: v for k, v in params.items() if k in cls.param_names()})
+    model.validate_params()
     # files written before the base became a parameter used the logistic base;
     # "base_used" (the map "auto" chose) is in files since format 3
     model.base = params.get("base", "logistic")
-    model.base_ = meta.get("base_used", model.base)
-    for value, allowed in ((model.base, BASE_CHOICES), (model.base_, BASES)):
+    base_used = meta.get("base_used", model.base)
+    for value, allowed in ((model.base, BASE_CHOICES), (base_used, BASES)):
         if value not in allowed:
             raise ValueError(f"unknown base measure {value!r}")
     loc = _arr(a, "loc", np.float64, (d,))
@@ -324,9 +329,8 @@ def _build(cls, meta, a):
     n_trees = int(meta["n_trees"])
     if n_trees != roots.size:
         raise ValueError("tree count does not match the metadata")
-    model._loc, model._scale, model._frozen = loc, scale, frozen
-    model._gmm = None
-    if model.base_ in MIXTURE_BASES and not frozen.all():
+    chain = Chain(loc, scale, frozen)
+    if base_used in MIXTURE_BASES and not frozen.all():
         if "gmm_weights" not in a:
             raise ValueError("the Gaussian mixture base is missing")
         k_free = int((~frozen).sum())
@@ -334,7 +338,7 @@ def _build(cls, meta, a):
         if means.ndim != 2 or means.shape[1] != k_free:
             raise ValueError("Gaussian mixture means do not match the free channels")
         K = means.shape[0]
-        model._gmm = GaussianMixtureBase(
+        chain.mixture = MixtureBase(
             _arr(a, "gmm_weights", np.float64, (K + 1,)), means,
             _arr(a, "gmm_covariances", np.float64, (K, k_free, k_free)),
             _arr(a, "gmm_loc", np.float64, (k_free,)), _arr(a, "gmm_scale", np.float64, (k_free,)),
@@ -342,24 +346,20 @@ def _build(cls, meta, a):
             background=_arr(a, "gmm_background", np.float64, (3, k_free)) if "gmm_background" in a else None)
     elif "gmm_weights" in a:
         raise ValueError("a Gaussian mixture base is stored but the model does not use one")
-    model.bounds_ = bounds
     layer_trees = _arr(a, "layer_trees", np.int64, (L + 1,))
     if layer_trees[0] != 0 or layer_trees[-1] != roots.size or (np.diff(layer_trees) < 0).any():
         raise ValueError("inconsistent layer tree counts")
     m_lsl = np.log(m_sl)
-    layers = []
     for i in range(L):
-        pwl = (np.ascontiguousarray(m_off[i]), m_xs, m_ys, m_sl, m_lsl)
+        # each layer's own knots (sharing the whole arrays made a loaded model save wrong offsets)
+        a0, a1 = int(m_off[i, 0]), int(m_off[i, -1])
+        pwl = PiecewiseLinearMap(np.ascontiguousarray(m_off[i] - a0), m_xs[a0:a1], m_ys[a0:a1], m_sl[a0:a1],
+                                 m_lsl[a0:a1])
         Q = np.ascontiguousarray(rot[i]) if has_rot[i] else None
-        layers.append((Q, pwl, forest.slice_trees(int(layer_trees[i]), int(layer_trees[i + 1]))))
-    model._layers = layers
-    model.n_marginal_trees_ = _arr(a, "n_marginal_trees", np.int64, (d,))
-    model.n_features_in_ = d
-    model.n_trees_ = n_trees
-    model.learning_curve_ = curve
-    model.heldout_loglik_ = float(meta["heldout_loglik"])
-    if meta.get("base_heldout_loglik") is not None:
-        model.base_heldout_loglik_ = float(meta["base_heldout_loglik"])
-    model.n_events_fitted_ = int(meta.get("n_events_fitted", 0))
-    model.stopped_by_ = str(meta.get("stopped_by", ""))
+        chain.layers.append(Layer(Q, pwl, forest.slice_trees(int(layer_trees[i]), int(layer_trees[i + 1]))))
+    base_ll = meta.get("base_heldout_loglik")
+    model.fitted_ = FittedDensity(
+        chain, base_used, bounds, int(meta.get("n_events_fitted", 0)),
+        _arr(a, "n_marginal_trees", np.int64, (d,)), curve, float(meta["heldout_loglik"]),
+        None if base_ll is None else float(base_ll), str(meta.get("stopped_by", "")))
     return model

@@ -77,6 +77,8 @@ class Forest:
             self.slope[0::2] = self.theta * width / (self.cut - self.lo)
             self.slope[1::2] = (1.0 - self.theta) * width / (self.hi - self.cut)
         self.lslope = np.log(self.slope)
+        self.arrays = kernels.ForestArrays(self.roots, self.dim, self.cut, self.mid, self.child, self.base,
+                                           self.anchor, self.slope, self.lslope)
 
     def append(self, tree: "Forest") -> None:
         """Append the trees of ``tree`` (node indices shifted)."""
@@ -129,14 +131,12 @@ class Forest:
     def forward(self, U: np.ndarray, logd: np.ndarray) -> None:
         """Apply all trees to U (n, d) in place, adding log densities to logd (n,)."""
         if self.n_trees:
-            kernels.forest_forward(U, logd, self.roots, self.dim, self.cut, self.child, self.base,
-                                   self.anchor, self.slope, self.lslope)
+            kernels.forest_forward(U, logd, self.arrays)
 
     def inverse(self, U: np.ndarray) -> None:
         """Undo :meth:`forward` in place."""
         if self.n_trees:
-            kernels.forest_inverse(U, self.roots, self.dim, self.mid, self.child, self.base,
-                                   self.anchor, self.slope)
+            kernels.forest_inverse(U, self.arrays)
 
     def max_depth(self) -> int:
         """Depth of the deepest path (number of split nodes on it)."""
@@ -182,6 +182,7 @@ def fit_tree(R: np.ndarray, learning_rate: float, max_depth: int, n_bins: int, m
     parent_gid = np.array([-1], np.int64)   # global id of each active node's parent
     parent_left = np.array([False])         # is the active node its parent's left child
 
+    rule = kernels.SplitRule(lr, float(alpha), int(min_leaf), float(min_gain), float(n))
     dims, cuts, los, his, thetas = [], [], [], [], []
     lefts = np.zeros(0, np.int64)
     rights = np.zeros(0, np.int64)
@@ -196,8 +197,7 @@ def fit_tree(R: np.ndarray, learning_rate: float, max_depth: int, n_bins: int, m
         shift = rng.random(n_nodes) if rng is not None else np.zeros(n_nodes)
         hist = kernels.level_histogram(R, node_of, box_lo, 1.0 / width, n_nodes, int(n_bins),
                                        allowed, shift)
-        bdim, bbin, _gain, nleft = kernels.best_splits(hist, counts, vol, lr, float(n), int(min_leaf),
-                                                       allowed, float(alpha), shift, float(min_gain))
+        bdim, bbin, _gain, nleft = kernels.best_splits(hist, counts, vol, shift, allowed, rule)
         cut_frac = (bbin + 1.0 - shift) / n_bins
         if _level < lookahead and alpha >= 0:
             inv = 1.0 / width

@@ -106,8 +106,8 @@ def main(argv=None):
             print(rows[-1], file=sys.stderr, flush=True)
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
-        from core.batch import _limit_numba_threads
-        _limit_numba_threads(cores)
+        from core.batch.workers import limit_numba_threads
+        limit_numba_threads(cores)
     base = float(rows[0][2])
     for row in rows:
         row.append(f"{base / float(row[2]):.2f} x")

@@ -15,6 +15,7 @@ import sys
 import time
 
 import numpy as np
+from scipy import stats
 from scipy.special import logsumexp
 
 HERE = os.path.dirname(os.path.abspath(__file__))
@@ -112,7 +113,7 @@ def main(argv):
     scale = (np.percentile(tr, 75, 0) - np.percentile(tr, 25, 0)) / (2 * np.log(3))
 
     def bgf(Z):
-        return np.sum(gb._logistic_logpdf((Z - loc) / scale) - np.log(scale), axis=1)
+        return np.sum(stats.logistic.logpdf((Z - loc) / scale) - np.log(scale), axis=1)
 
     t = time.perf_counter()
     lp, g = fit(tr, K, bgf, iters=iters)
