@@ -111,26 +111,11 @@ def compensated_and_transformed(event_file: Any, recipe: Any, raw: np.ndarray | 
     values.  ``raw`` replaces ``event_file.data`` (same shape), e.g. de-quantised
     raw values; the file's data are never modified.
     """
-    from .compensation import compensate
-    from .transforms import make_transform
+    from .prepare_file import transformed_values
 
     names = list(event_file.channel_names)
-    data = np.asarray(event_file.data if raw is None else raw, dtype=np.float64)
-    if data.ndim != 2 or data.shape[1] != len(names):
-        raise EventDataError(f"{os.path.basename(event_file.path)}: event values of shape {data.shape} do not "
-                             f"match {len(names)} channels")
-    S = _spillover(event_file, recipe)
-    values = compensate(data, names, S, source=os.path.basename(event_file.path)) if S is not None else data.copy()
-    transforms = _get(recipe, "transforms", None) or {}
-    for ch, spec in transforms.items():
-        if spec is None:
-            continue
-        if ch not in names:
-            raise ChannelError(f"{os.path.basename(event_file.path)}: the recipe transforms channel {ch!r} "
-                               f"which the file lacks; the file's channels are {', '.join(names)}")
-        j = names.index(ch)
-        with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-            values[:, j] = make_transform(spec).forward(values[:, j])
+    values = transformed_values(event_file.data if raw is None else raw, names, _spillover(event_file, recipe),
+                                _get(recipe, "transforms", None) or {}, os.path.basename(event_file.path))
     return names, values
 
 
@@ -168,99 +153,16 @@ def density_input(event_file: Any, recipe: Any):
        columns are compensated (when compensating) and transformed again.
        Every other density column is taken from ``values``.
     """
-    from .compensation import compensate
-    from .prepare import (MAX_UNIQUE_FRACTION, PreparedEvents, REASON_KEPT, REASON_NON_FINITE,
-                          clean_events, jittered_column, plan_jitter)
-    from .transforms import make_transform
+    from .prepare_file import prepare_file_events
 
     cleaning = dict(_get(recipe, "cleaning", None) or {})
-    drop_piles = bool(cleaning.get("drop_piles", True))
-    do_jitter = bool(cleaning.get("dequantise", True))
-    seed = _engine_kwargs(recipe)["random_state"]
-    where = os.path.basename(event_file.path)
     idx = density_channel_indices(event_file, recipe)
     names, values = compensated_and_transformed(event_file, recipe)
-    raw = np.asarray(event_file.data, dtype=np.float64)
-    n, k = raw.shape
-    S = _spillover(event_file, recipe)
-    detectors = [names.index(d) for d in S.detectors if d in names] if S is not None else []
-    # raw channels that feed the density: a compensated density channel mixes every detector
-    mixes = S is not None and any(j in detectors for j in idx)
-    feeders = sorted(set(idx) | (set(detectors) if mixes else set()))
-    reason, saturated, sat_cells, floor_cells, ceiling_cells = clean_events(
-        raw, feeders, event_file.channel_ranges, drop_saturated=bool(cleaning.get("drop_saturated", True)),
-        drop_piles=drop_piles)
-    kept = reason == REASON_KEPT
-    decoding = getattr(event_file, "decoding", None)
-    plans = {}
-    if do_jitter:
-        for j in feeders:
-            plan = plan_jitter(raw[:, j] if kept.all() else raw[kept, j], None if decoding is None else decoding[j],
-                               MAX_UNIQUE_FRACTION)
-            if plan is not None:
-                plans[j] = plan
-    spread = set() if drop_piles else {j for j in feeders
-                                       if floor_cells[j][kept].any() or ceiling_cells[j][kept].any()}
-    changed = set(plans) | spread
-
-    all_kept = bool(kept.all())
-
-    def column(j: int) -> np.ndarray:
-        """Raw channel j over the kept events, jittered / piles spread as planned."""
-        if j not in changed:
-            return raw[:, j] if all_kept else raw[kept, j]
-        fl = floor_cells.get(j)
-        ce = ceiling_cells.get(j)
-        # uniforms are drawn for every event of the file, then the kept ones taken
-        full = raw[:, j].copy()
-        if not all_kept:
-            full[~kept] = 0.0
-        out = jittered_column(full, j, plans.get(j), seed, None if fl is None else fl & kept,
-                              None if ce is None else ce & kept, spread_piles=j in spread)
-        return out if all_kept else out[kept]
-
-    transforms = _get(recipe, "transforms", None) or {}
-    matrix = np.empty((int(kept.sum()), len(idx)))
-    redo = [c for c, j in enumerate(idx) if (j in changed) or (mixes and j in detectors and changed & set(detectors))]
-    compensated = None
-    if mixes and any(idx[c] in detectors for c in redo):
-        sub = np.column_stack([column(d) for d in detectors])
-        compensated = compensate(sub, [names[d] for d in detectors], S, source=where)
-    for c, j in enumerate(idx):
-        if c not in redo:
-            matrix[:, c] = values[:, j] if all_kept else values[kept, j]
-            continue
-        col = compensated[:, detectors.index(j)] if (compensated is not None and j in detectors) else column(j)
-        spec = transforms.get(names[j])
-        if spec is not None:
-            with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-                col = make_transform(spec).forward(col)
-        matrix[:, c] = col
-    bad = ~np.isfinite(matrix).all(axis=1)
-    if bad.any():
-        rows = np.flatnonzero(kept)[bad]
-        reason = reason.astype(object)
-        reason[rows] = REASON_NON_FINITE
-        reason = reason.astype(str)
-        kept = reason == REASON_KEPT
-        matrix = matrix[~bad]
-    steps = np.zeros(k)
-    grids = [""] * k
-    for j, plan in plans.items():
-        steps[j], grids[j] = plan.step, plan.grid
-    finite_rows = reason != REASON_NON_FINITE
-
-    def per_channel(cells, rows=None):
-        out = np.zeros(k, dtype=np.int64)
-        for j, m in cells.items():
-            out[j] = int(np.count_nonzero(m if rows is None else m & rows))
-        return out
-
-    prepared = PreparedEvents(matrix=matrix, kept=kept, reason=reason, steps=steps,
-                              saturated=saturated & finite_rows,
-                              saturated_per_channel=per_channel(sat_cells, finite_rows), grids=grids,
-                              floor_per_channel=per_channel(floor_cells),
-                              ceiling_per_channel=per_channel(ceiling_cells))
+    prepared = prepare_file_events(
+        event_file, idx, _spillover(event_file, recipe), _get(recipe, "transforms", None) or {}, values,
+        drop_saturated=bool(cleaning.get("drop_saturated", True)), drop_piles=bool(cleaning.get("drop_piles", True)),
+        dequantise=bool(cleaning.get("dequantise", True)), random_state=_engine_kwargs(recipe)["random_state"],
+        where=os.path.basename(event_file.path))
     return prepared, values
 
 

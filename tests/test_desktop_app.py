@@ -544,7 +544,7 @@ def test_scale_editor_keeps_small_factors(qtbot, window, tmp_path):
     qtbot.waitUntil(lambda: tube.recipe.transforms["FSC-A"]["scale"] == pytest.approx(3.914697265625e-06, rel=1e-9),
                     timeout=3000)
     scale = tube.recipe.transforms["FSC-A"]["scale"]
-    np.testing.assert_allclose(tube.values[:, 0], tube.event_file.data[:, 0] * scale, rtol=1e-12)
+    np.testing.assert_allclose(tube.values[:, 0], tube.event_file.data[:, 0].astype(np.float64) * scale, rtol=1e-12)
 
 
 def test_populations_list_highlight_keep_as_region_and_export(qtbot, window, tmp_path, messages):
