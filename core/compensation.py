@@ -312,8 +312,19 @@ def match_detectors(channel_names: list[str], S: SpilloverMatrix, source: str = 
     return idx
 
 
+def checked_detectors(channel_names: list[str], S: SpilloverMatrix, source: str = "") -> list[int]:
+    """:func:`match_detectors`, after refusing a singular or ill-conditioned matrix (CompensationError)."""
+    idx = match_detectors(channel_names, S, source)
+    cond = S.condition_number()
+    if not np.isfinite(cond) or cond > MAX_CONDITION_NUMBER:
+        raise CompensationError(
+            f"{source + ': ' if source else ''}the spillover matrix is singular or nearly so (condition number "
+            f"{cond:.3g}); it cannot be inverted reliably. Check the matrix for duplicated or empty rows.")
+    return idx
+
+
 def compensate(data: np.ndarray, channel_names: list[str], S: SpilloverMatrix, source: str = "") -> np.ndarray:
-    """Compensated copy of ``data`` (events x channels, float64).
+    """Compensated copy of ``data`` (events x channels, any float type), float64.
 
     On the matrix's detectors, compensated = observed @ inverse(S); other
     channels are copied unchanged.  ``data`` is never modified.  ``source``
@@ -324,18 +335,38 @@ def compensate(data: np.ndarray, channel_names: list[str], S: SpilloverMatrix, s
     the matrix is singular / too ill-conditioned (condition number above
     :data:`MAX_CONDITION_NUMBER`).
     """
-    x = np.asarray(data, dtype=np.float64)
+    x = np.asarray(data)
+    if x.dtype.kind != "f":
+        x = x.astype(np.float64)
     where = f"{source}: " if source else ""
     if x.ndim != 2 or x.shape[1] != len(channel_names):
         raise CompensationError(
             f"{where}event data of shape {x.shape} do not match {len(channel_names)} channel names")
-    idx = match_detectors(channel_names, S, source)
-    cond = S.condition_number()
-    if not np.isfinite(cond) or cond > MAX_CONDITION_NUMBER:
-        raise CompensationError(
-            f"{where}the spillover matrix is singular or nearly so (condition number {cond:.3g}); "
-            "it cannot be inverted reliably. Check the matrix for duplicated or empty rows.")
-    out = x.copy()
-    # observed @ inv(S) == solve(S.T, observed.T).T, without forming the inverse.
-    out[:, idx] = np.linalg.solve(S.matrix.T, x[:, idx].T).T
+    idx = checked_detectors(channel_names, S, source)
+    out = np.array(x, dtype=np.float64)   # the one copy (float32 data become float64 here)
+    out[:, idx] = compensate_columns(x, idx, S)
+    return out
+
+
+#: Events per block of the compensation solve (bounds its temporaries).
+CHUNK_EVENTS = 1 << 17
+
+
+def compensate_columns(data: np.ndarray, idx: list[int], S: SpilloverMatrix, out: np.ndarray | None = None
+                       ) -> np.ndarray:
+    """The compensated detector columns ``idx`` of ``data`` (events x channels, any float type).
+
+    Returns (n_events, len(idx)) float64, or writes into ``out`` (any array
+    of that shape, e.g. a column slice of a larger matrix).  observed @ inv(S)
+    is computed as solve(S.T, observed.T).T, without forming the inverse, in
+    blocks of :data:`CHUNK_EVENTS` events converted to float64 one block at a
+    time (no full-size float64 copy of ``data``).  No checks: :func:`compensate`
+    and :func:`match_detectors` give ``idx`` and refuse a bad matrix.
+    """
+    n = data.shape[0]
+    if out is None:
+        out = np.empty((n, len(idx)))
+    for start in range(0, n, CHUNK_EVENTS):
+        block = np.asarray(data[start:start + CHUNK_EVENTS][:, idx], dtype=np.float64)
+        out[start:start + CHUNK_EVENTS] = np.linalg.solve(S.matrix.T, block.T).T
     return out

@@ -31,7 +31,7 @@ import numpy as np
 
 from . import RESEARCH_USE_NOTE, SOFTWARE_NAME, __version__
 from . import write_guard
-from .atomic import atomic_write, unique_path
+from .atomic import atomic_write
 from .errors import BoscageError, ExportError
 
 #: Source keywords copied to an exported FCS file (acquisition context, when present).
@@ -42,31 +42,9 @@ CARRIED_KEYWORDS = ("$CYT", "$CYTSN", "$DATE", "$BTIM", "$ETIM", "$INST", "$OP",
 _CSV_BLOCK = 50_000
 
 
-def _same_file(a: str, b: str) -> bool:
-    """True when paths ``a`` and ``b`` resolve to the same file (links followed, case ignored)."""
-    return write_guard._same(os.fspath(a), os.fspath(b))
-
-
 def _refuse_source(path: str, sources: Sequence[str], overwrite: bool = True) -> None:
     """The write guard's verdict on ``path`` before any work (ExportError); see :mod:`core.write_guard`."""
     write_guard.check_target(path, overwrite, [s for s in sources if s])
-
-
-def export_path_beside(source_path: str | os.PathLike, suffix: str) -> str:
-    """A new, not yet existing path in the source's folder: ``<stem><suffix>``.
-
-    ``suffix`` includes the extension, e.g. ``"-rare.fcs"`` turns
-    ``/data/a.fcs`` into ``/data/a-rare.fcs`` (or ``a-rare-2.fcs`` when that
-    exists, see :func:`core.atomic.unique_path`).
-    """
-    source_path = os.fspath(source_path)
-    if not suffix or os.sep in suffix or (os.altsep and os.altsep in suffix):
-        raise ExportError(f"{suffix!r} is not a usable file-name suffix (for example '-rare.fcs')")
-    stem, _ = os.path.splitext(source_path)
-    path = unique_path(stem + suffix)
-    if _same_file(path, source_path):  # e.g. suffix ".fcs" on a.fcs
-        path = unique_path(stem + "-export" + suffix)
-    return path
 
 
 def _selection(mask: Any, n_events: int) -> np.ndarray:

@@ -5,7 +5,8 @@ and transforms are resolved for an event file (the spillover matrix looked
 up, each channel's transform built), once per file: it returns a
 :class:`CompensateTransform` that the desktop app, the batch and
 :func:`core.analysis.analyse` apply.  :func:`density_input` cleans and
-de-quantises the density channels (rules in :mod:`core.prepare`).
+de-quantises the density channels (one pass in :mod:`core.prepare_file`,
+rules in :mod:`core.prepare`).
 
 Shapes: ``values`` is (n_events, n_channels) over ALL the file's channels;
 ``prepared.matrix`` is (n_kept, n_density_channels).
@@ -15,11 +16,12 @@ from __future__ import annotations
 
 import os
 from dataclasses import dataclass
-from typing import Any, Callable
+from typing import Any
 
 import numpy as np
 
-from .errors import ChannelError, EventDataError, RecipeError
+from .errors import ChannelError, RecipeError
+from .prepare_file import prepare_file_events, transformed_values
 from .recipe import Recipe, as_recipe
 
 
@@ -29,9 +31,10 @@ class CompensateTransform:
 
     ``names``: the file's channel names ($PnN) in column order; ``spillover``:
     the :class:`core.compensation.SpilloverMatrix` the recipe asks for, or None;
-    ``transforms``: column index -> forward function of that channel's
-    transform (channels without one keep their compensated values);
-    ``source``: the file's name for messages.
+    ``transforms``: channel -> the recipe's :class:`core.recipe.TransformSpec`
+    (channels without one keep their compensated values); ``source``: the
+    file's name for messages.  Applied by :mod:`core.prepare_file` (one pass,
+    in blocks, float32 files not copied whole).
     """
 
     names: tuple
@@ -39,45 +42,13 @@ class CompensateTransform:
     transforms: dict
     source: str
 
-    @property
-    def detectors(self) -> list:
-        """Column indices of the spillover matrix's detectors (empty without compensation)."""
-        if self.spillover is None:
-            return []
-        return [self.names.index(d) for d in self.spillover.detectors if d in self.names]
+    def apply(self, data: np.ndarray) -> np.ndarray:
+        """``data`` (n_events, n_channels) compensated, then each channel transformed (new float64 array)."""
+        return transformed_values(data, self.names, self.spillover, self.transforms, self.source)
 
     def compensated(self, data: np.ndarray) -> np.ndarray:
-        """``data`` (n_events, n_channels) compensated (a new float64 array; a copy without compensation)."""
-        from .compensation import compensate
-
-        data = np.asarray(data, dtype=np.float64)
-        if data.ndim != 2 or data.shape[1] != len(self.names):
-            raise EventDataError(f"{self.source}: event values of shape {data.shape} do not match "
-                                 f"{len(self.names)} channels")
-        if self.spillover is None:
-            return data.copy()
-        return compensate(data, list(self.names), self.spillover, source=self.source)
-
-    def compensated_detectors(self, columns: np.ndarray) -> np.ndarray:
-        """The detectors' columns (n, k; in :attr:`detectors` order) compensated."""
-        from .compensation import compensate
-
-        return compensate(columns, [self.names[d] for d in self.detectors], self.spillover, source=self.source)
-
-    def forward(self, j: int, column: np.ndarray) -> np.ndarray:
-        """Channel ``j``'s transform applied to ``column`` (returned as is when untransformed)."""
-        f = self.transforms.get(j)
-        if f is None:
-            return column
-        with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-            return f(column)
-
-    def apply(self, data: np.ndarray) -> np.ndarray:
-        """``data`` (n_events, n_channels) compensated, then each channel transformed."""
-        values = self.compensated(data)
-        for j in self.transforms:
-            values[:, j] = self.forward(j, values[:, j])
-        return values
+        """``data`` (n_events, n_channels) compensated only (new float64 array)."""
+        return transformed_values(data, self.names, self.spillover, {}, self.source)
 
 
 def _spillover(event_file: Any, recipe: Recipe):
@@ -103,21 +74,15 @@ def compensate_transform(event_file: Any, recipe: Recipe) -> CompensateTransform
     ChannelError when the recipe transforms a channel the file lacks;
     RecipeError when the file cannot supply the spillover matrix asked for.
     """
-    from .transforms import make_transform
-
     recipe = as_recipe(recipe)
     names = tuple(str(c) for c in event_file.channel_names)
     fname = os.path.basename(event_file.path)
-    transforms: dict[int, Callable] = {}
-    for ch, spec in recipe.transforms.items():
-        if spec is None:
-            continue
-        if ch not in names:
-            raise ChannelError(f"{fname}: the recipe transforms channel {ch!r} which the file lacks; "
-                               f"the file's channels are {', '.join(names)}")
-        transforms[names.index(ch)] = make_transform(spec).forward
-    return CompensateTransform(names=names, spillover=_spillover(event_file, recipe), transforms=transforms,
-                               source=fname)
+    missing = [ch for ch in recipe.transforms if ch not in names]
+    if missing:
+        raise ChannelError(f"{fname}: the recipe transforms channel {missing[0]!r} which the file lacks; "
+                           f"the file's channels are {', '.join(names)}")
+    return CompensateTransform(names=names, spillover=_spillover(event_file, recipe),
+                               transforms=dict(recipe.transforms), source=fname)
 
 
 def compensated_and_transformed(event_file: Any, recipe: Recipe, raw: np.ndarray | None = None,
@@ -171,90 +136,12 @@ def density_input(event_file: Any, recipe: Recipe, step: CompensateTransform | N
        columns are compensated (when compensating) and transformed again.
        Every other density column is taken from ``values``.
     """
-    from .prepare import (MAX_UNIQUE_FRACTION, PreparedEvents, REASON_KEPT, REASON_NON_FINITE,
-                          clean_events, jittered_column, plan_jitter)
-
     recipe = as_recipe(recipe)
-    cleaning = recipe.cleaning
-    drop_piles = cleaning.drop_piles
-    seed = recipe.engine.random_state
-    idx = density_channel_indices(event_file, recipe)
     step = step or compensate_transform(event_file, recipe)
+    idx = density_channel_indices(event_file, recipe)
     names, values = compensated_and_transformed(event_file, recipe, step=step)
-    raw = np.asarray(event_file.data, dtype=np.float64)
-    n, k = raw.shape
-    S = step.spillover
-    detectors = step.detectors
-    # raw channels that feed the density: a compensated density channel mixes every detector
-    mixes = S is not None and any(j in detectors for j in idx)
-    feeders = sorted(set(idx) | (set(detectors) if mixes else set()))
-    reason, saturated, sat_cells, floor_cells, ceiling_cells = clean_events(
-        raw, feeders, event_file.channel_ranges, drop_saturated=cleaning.drop_saturated,
-        drop_piles=drop_piles)
-    kept = reason == REASON_KEPT
-    decoding = getattr(event_file, "decoding", None)
-    plans = {}
-    if cleaning.dequantise:
-        for j in feeders:
-            plan = plan_jitter(raw[:, j] if kept.all() else raw[kept, j], None if decoding is None else decoding[j],
-                               MAX_UNIQUE_FRACTION)
-            if plan is not None:
-                plans[j] = plan
-    spread = set() if drop_piles else {j for j in feeders
-                                       if floor_cells[j][kept].any() or ceiling_cells[j][kept].any()}
-    changed = set(plans) | spread
-
-    all_kept = bool(kept.all())
-
-    def column(j: int) -> np.ndarray:
-        """Raw channel j over the kept events, jittered / piles spread as planned."""
-        if j not in changed:
-            return raw[:, j] if all_kept else raw[kept, j]
-        fl = floor_cells.get(j)
-        ce = ceiling_cells.get(j)
-        # uniforms are drawn for every event of the file, then the kept ones taken
-        full = raw[:, j].copy()
-        if not all_kept:
-            full[~kept] = 0.0
-        out = jittered_column(full, j, plans.get(j), seed, None if fl is None else fl & kept,
-                              None if ce is None else ce & kept, spread_piles=j in spread)
-        return out if all_kept else out[kept]
-
-    matrix = np.empty((int(kept.sum()), len(idx)))
-    redo = [c for c, j in enumerate(idx) if (j in changed) or (mixes and j in detectors and changed & set(detectors))]
-    compensated = None
-    if mixes and any(idx[c] in detectors for c in redo):
-        sub = np.column_stack([column(d) for d in detectors])
-        compensated = step.compensated_detectors(sub)
-    for c, j in enumerate(idx):
-        if c not in redo:
-            matrix[:, c] = values[:, j] if all_kept else values[kept, j]
-            continue
-        col = compensated[:, detectors.index(j)] if (compensated is not None and j in detectors) else column(j)
-        matrix[:, c] = step.forward(j, col)
-    bad = ~np.isfinite(matrix).all(axis=1)
-    if bad.any():
-        rows = np.flatnonzero(kept)[bad]
-        reason = reason.astype(object)
-        reason[rows] = REASON_NON_FINITE
-        reason = reason.astype(str)
-        kept = reason == REASON_KEPT
-        matrix = matrix[~bad]
-    steps = np.zeros(k)
-    grids = [""] * k
-    for j, plan in plans.items():
-        steps[j], grids[j] = plan.step, plan.grid
-    finite_rows = reason != REASON_NON_FINITE
-
-    def per_channel(cells, rows=None):
-        out = np.zeros(k, dtype=np.int64)
-        for j, m in cells.items():
-            out[j] = int(np.count_nonzero(m if rows is None else m & rows))
-        return out
-
-    prepared = PreparedEvents(matrix=matrix, kept=kept, reason=reason, steps=steps,
-                              saturated=saturated & finite_rows,
-                              saturated_per_channel=per_channel(sat_cells, finite_rows), grids=grids,
-                              floor_per_channel=per_channel(floor_cells),
-                              ceiling_per_channel=per_channel(ceiling_cells))
+    c = recipe.cleaning
+    prepared = prepare_file_events(event_file, idx, step.spillover, step.transforms, values,
+                                   drop_saturated=c.drop_saturated, drop_piles=c.drop_piles, dequantise=c.dequantise,
+                                   random_state=recipe.engine.random_state, where=step.source)
     return prepared, values

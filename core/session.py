@@ -35,6 +35,21 @@ MAX_PAIRS = 9
 
 # --------------------------------------------------------------------- session
 
+def share_values(tube: Tube, analysis) -> bool:
+    """Let ``analysis`` use the tube's values (events x channels) when they are
+    the same numbers, so the session holds one copy of the events and not two
+    (a fit computes its own from the same file and recipe).  Returns whether
+    the copy was dropped."""
+    values = getattr(analysis, "values", None)
+    mine = tube.values
+    if values is None or mine is None or values is mine:
+        return False
+    if values.shape != mine.shape or values.dtype != mine.dtype or not np.array_equal(values, mine, equal_nan=True):
+        return False
+    analysis.values = mine
+    return True
+
+
 class Session:
     """The opened tubes and the current one, with every operation on them."""
 
@@ -199,6 +214,7 @@ class Session:
         if (tube.recipe.transforms != recipe.transforms or tube.recipe.compensation != recipe.compensation
                 or list(tube.recipe.channels) != list(recipe.channels)):
             return "the scales, channels or compensation changed during the fit; fit again"
+        share_values(tube, analysis)
         tube.analysis = analysis
         tube.recipe.engine = recipe.engine
         tube.contours = None

@@ -27,6 +27,10 @@ from .regions import Region, RegionSet, region_from_dict
 
 #: Default share of events highlighted as rare: the recipe's default rare rule (core.recipe.RareRule).
 DEFAULT_SHARE = RareRule().share
+#: Transform kinds that map every real number to a distinct value (their
+#: inverse gives back the compensated values); log is not (values below its
+#: floor are raised to it).
+INVERTIBLE_KINDS = ("linear", "arcsinh", "fasinh", "logicle")
 
 
 # --------------------------------------------------------------------- regions
@@ -156,7 +160,7 @@ class Tube:
     highlight_enriched: bool = False  # enriched events shown instead of rare ones
     fit_note: str = ""  # why the last fit was discarded ("" when none was)
     dirty: bool = False  # regions changed since the recipe was last saved
-    _compensated: np.ndarray | None = None
+    _compensated: tuple | None = None  # (channel, compensated column) when it had to be recomputed
     _rare_order: np.ndarray | None = None
     _rare_for: Any = None
 
@@ -204,16 +208,38 @@ class Tube:
         """Compensate and transform every channel as the recipe says (core.file_values)."""
         from .file_values import compensated_and_transformed
 
-        self.names, self.values = compensated_and_transformed(self.event_file, self.recipe)
+        self.names, values = compensated_and_transformed(self.event_file, self.recipe)
+        # column-major: every use here takes whole channels (plots, regions, previews), and a
+        # contiguous column is read 5-10x faster than a strided one at millions of events
+        self.values = np.asfortranarray(values)
+        del values
         self._compensated = None
 
     def compensated(self, channel: str) -> np.ndarray:
-        """Compensated, untransformed values of one channel (for scale previews)."""
-        if self._compensated is None:
+        """Compensated, untransformed values of one channel (n_events,), for scale previews.
+
+        Read back from ``values`` (no copy for an untransformed channel; the
+        inverse transform for the scales that map every real number one to one,
+        :data:`INVERTIBLE_KINDS`, exact to about 1e-14).  For other scales (log
+        raises values below its floor) the file is compensated again and only
+        this channel's column is kept: the tube holds no second events x
+        channels matrix."""
+        j = self.names.index(channel)
+        spec = self.spec(channel)
+        if spec is None:
+            return self.values[:, j]
+        if str(spec.get("kind", "")).lower() in INVERTIBLE_KINDS:
+            from .transforms import make_transform
+
+            with np.errstate(invalid="ignore", over="ignore"):
+                return np.asarray(make_transform(spec).inverse(self.values[:, j]), dtype=np.float64)
+        if self._compensated is None or self._compensated[0] != channel:
             from .file_values import compensate_transform
 
-            self._compensated = compensate_transform(self.event_file, self.recipe).compensated(self.event_file.data)
-        return self._compensated[:, self.names.index(channel)]
+            full = compensate_transform(self.event_file, self.recipe).compensated(self.event_file.data)
+            self._compensated = (channel, full[:, j].copy())
+            del full
+        return self._compensated[1]
 
     def by_channel(self) -> dict:
         return {name: self.values[:, j] for j, name in enumerate(self.names)}

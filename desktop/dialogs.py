@@ -94,6 +94,7 @@ class ExportDialog(QDialog):
                                "keyword; CSV holds the values as plotted")
         self.folder = default_folder(settings)
         self.path = QLineEdit()
+        self.path.setMinimumWidth(440)  # the proposed name is read whole, not from its middle
         self.which.currentIndexChanged.connect(self._propose_name)
         self._propose_name()
         form.addRow("Events", self.which)

@@ -82,13 +82,15 @@ class FitController(QObject):
         return self.job is not None and self.job.running
 
     def recipe_for_fit(self, tube):
-        """The tube's recipe with its regions and the Fit panel's engine settings."""
+        """The tube's recipe with its regions, the Fit panel's engine settings and the Contrast panel's
+        false discovery rate and minimum fold."""
         from core.recipe import Engine
 
         recipe = tube.recipe_with_regions()
         engine = {k: v for k, v in recipe.engine.items() if k not in PANEL_KEYS}
         engine.update(self.win.fit_panel.engine_settings())
         recipe.engine = Engine(engine)
+        recipe.comparison = self.win.contrast_panel.comparison_settings()
         return recipe
 
     def start_fit(self, control: str | None = None) -> bool:

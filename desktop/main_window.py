@@ -264,6 +264,7 @@ class MainWindow(QMainWindow):
                                           tube.recipe.channels, tube.compensated)
         self.comp_panel.show_for_tube(tube)
         self.fit_panel.set_engine_settings(tube.recipe.engine)
+        self.contrast_panel.show_recipe(tube.recipe)
         self.rarity_bar.set_share(tube.share, emit=False)
         self.map_view.draw_map(tube)
         self.show_fit(tube, redraw=False)
@@ -349,4 +350,9 @@ class MainWindow(QMainWindow):
         if self.interactive:
             self.settings.set_value("window/geometry", self.saveGeometry())
         self.settings.sync()
+        # the events go with the window: a closed window whose Python wrapper
+        # lives on (signal connections) must not keep every tube's arrays
+        for path in list(self.session.tubes):
+            self.session.close(path)
+        self.density_map.release()
         event.accept()

@@ -171,6 +171,11 @@ class DensityMap(QWidget):
         self._redraw_images()
         self._redraw_highlight()
 
+    def release(self) -> None:
+        """Drop every per-event array (the window is closing); the plots keep their pictures."""
+        self.values = self.colour_values = self.highlight_mask = self.only = None
+        self.cells = []  # each held a bin number and an inside flag per event
+
     def _build_grid(self, n: int, columns: int) -> None:
         """Lay out ``n`` plots in ``columns``; plots made before are reused
         (making one is the slow part), new ones are added to the pool."""

@@ -62,6 +62,9 @@ def apply(app) -> None:
     """Apply the Boscage palette to a QApplication and pyqtgraph defaults."""
     import pyqtgraph as pg
 
-    app.setStyle("Fusion")
-    app.setStyleSheet(STYLESHEET)
+    # once per application: setting them again re-polishes every live widget (seconds when many)
+    if app.property("boscage_style") != STYLESHEET:
+        app.setStyle("Fusion")
+        app.setStyleSheet(STYLESHEET)
+        app.setProperty("boscage_style", STYLESHEET)
     pg.setConfigOptions(antialias=True, background=SLATE, foreground="#c9d1cc")

@@ -208,3 +208,23 @@ def test_csv_in_percent(tmp_path):
     p.write_text("A,B\n100,12.5\n3,100\n")
     S = read_spillover_csv(p)
     np.testing.assert_allclose(S.matrix, [[1.0, 0.125], [0.03, 1.0]], rtol=1e-15)
+
+
+def test_float32_events_compensate_in_blocks_like_numpy_inverse():
+    # float32 event matrices (as read_fcs holds float files) are compensated block by block
+    # without a float64 copy of the whole matrix; reference: observed @ numpy.linalg.inv(S)
+    # on the same values in float64 (FCS 3.1 spillover: observed = true @ S)
+    from core.compensation import CHUNK_EVENTS, compensate_columns
+
+    rng = np.random.default_rng(5)
+    names = ["FSC-A", "FL1-A", "FL2-A", "FL3-A"]
+    S = SpilloverMatrix(["FL1-A", "FL2-A", "FL3-A"],
+                        np.array([[1.0, 0.12, 0.02], [0.05, 1.0, 0.2], [0.0, 0.07, 1.0]]))
+    data = rng.lognormal(6.0, 1.0, (2 * CHUNK_EVENTS + 17, 4)).astype(np.float32)
+    out = compensate(data, names, S)
+    assert out.dtype == np.float64 and data.dtype == np.float32
+    expected = data.astype(np.float64)
+    expected[:, 1:] = expected[:, 1:] @ np.linalg.inv(S.matrix)
+    np.testing.assert_allclose(out, expected, rtol=1e-12, atol=1e-9)
+    np.testing.assert_array_equal(out[:, 1:], compensate_columns(data, [1, 2, 3], S))
+    np.testing.assert_array_equal(out, compensate(data.astype(np.float64), names, S))

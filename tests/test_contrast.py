@@ -41,7 +41,10 @@ def null_run():
     # control and test drawn from the same distribution (the complete null)
     rng = np.random.default_rng(11)
     control, test = background(3000, rng), background(3000, rng)
-    return contrast(test, control, engine=SMALL_ENGINE, random_state=0)
+    pc = prepare_control(control, engine=SMALL_ENGINE, random_state=0)
+    res = contrast(test, None, engine=SMALL_ENGINE, random_state=0, prepared_control=pc)
+    res.info["control_part"] = pc.part
+    return res
 
 
 def test_conformal_pvalue_is_the_rank_formula():
@@ -67,6 +70,11 @@ def test_pvalues_are_uniform_under_the_null(null_run):
     # exchangeability itself: test and control scores from one distribution
     # (reference: scipy.stats.ks_2samp)
     assert stats.ks_2samp(null_run.score, null_run.control_scores).pvalue > 0.05
+    # within one part the pair of models saw neither the test nor the control events of that
+    # part, so there the two are exactly exchangeable (3 parts, so each at 0.05 / 3)
+    part, c_part = null_run.info["part"], null_run.info["control_part"]
+    for k in range(3):
+        assert stats.ks_2samp(null_run.score[part == k], null_run.control_scores[c_part == k]).pvalue > 0.05 / 3
 
 
 def test_nothing_is_flagged_under_the_null(null_run):

@@ -18,7 +18,7 @@ import pytest
 
 from core import RESEARCH_USE_NOTE, __version__
 from core.errors import ExportError
-from core.export import export_events_csv, export_events_fcs, export_path_beside
+from core.export import export_events_csv, export_events_fcs
 from core.fcs import read_fcs, write_fcs
 from tests.bundled_files import bundled, pick
 
@@ -179,19 +179,6 @@ def test_never_overwrites_the_input(tmp_path):
         export_events_fcs(out, ef, None, {}, "d")
     export_events_fcs(out, ef, ef.data[:, 0] > 500, {}, "d", overwrite=True)
     assert int(_parse(out)[0]["$TOT"]) == int((ef.data[:, 0] > 500).sum())
-
-
-def test_export_path_beside(tmp_path):
-    src = tmp_path / "tube.fcs"
-    src.write_bytes(b"")
-    first = export_path_beside(src, "-rare.fcs")
-    assert first == str(tmp_path / "tube-rare.fcs")
-    (tmp_path / "tube-rare.fcs").write_bytes(b"")
-    assert export_path_beside(src, "-rare.fcs") == str(tmp_path / "tube-rare-2.fcs")
-    same = export_path_beside(src, ".fcs")
-    assert same != str(src) and not os.path.exists(same)
-    with pytest.raises(ExportError):
-        export_path_beside(src, "/etc/x.fcs")
 
 
 @pytest.mark.parametrize("kind", ["fcs", "csv"])

@@ -104,7 +104,7 @@ def test_bundled_file_matches_fcsparser(rel):
     n_par = int(meta["$PAR"])
     # reference: fcsparser parse(); FCS 3.1 $TOT/$PAR
     assert isinstance(ef, EventFile)
-    assert ef.data.dtype == np.float64 and ef.data.flags.c_contiguous
+    assert ef.data.flags.c_contiguous
     assert ef.data.shape == (int(meta["$TOT"]), n_par) == raw.shape
     assert ef.n_events == raw.shape[0] and ef.n_channels == n_par
     assert ef.version == meta["__header__"]["FCS format"].decode()
@@ -112,6 +112,12 @@ def test_bundled_file_matches_fcsparser(rel):
     assert ef.channel_labels == [meta.get(f"$P{n}S", "").strip() for n in range(1, n_par + 1)]
 
     expected, decoded = _fcs31_scale(raw, meta)
+    # held as float32 where float32 holds every value exactly: float files and integer files of
+    # at most 24 bits (FCS 3.1 $PnB; IEEE 754 single precision is exact on integers below 2^24),
+    # when no channel is decoded by $PnE/$PnG arithmetic; float64 otherwise
+    datatype = meta["$DATATYPE"].strip().upper()
+    exact32 = datatype == "F" or datatype == "I" and all(int(meta[f"$P{n}B"]) <= 24 for n in range(1, n_par + 1))
+    assert ef.data.dtype == (np.float32 if exact32 and not decoded else np.float64)
     for j in range(n_par):
         if j in decoded:
             # decoded channels: FCS 3.1 formula applied to fcsparser's raw values

@@ -14,6 +14,7 @@ import numpy as np
 import pytest
 
 import core.fcs as fcs
+import core.fcs_write as fcs_write
 from core.errors import ChannelError, EventDataError, ExportError
 from core.fcs import header_offset_fields, read_fcs, write_fcs
 from tests.test_fcs_read import FCS_DATA, READABLE
@@ -143,7 +144,7 @@ def test_header_fields_beyond_99999999_bytes():
 
 def test_large_offset_layout_is_readable(tmp_path, monkeypatch):
     # shrink the HEADER limit so a small file exercises the beyond-the-limit layout
-    monkeypatch.setattr(fcs, "MAX_HEADER_OFFSET", 1500)
+    monkeypatch.setattr(fcs_write, "MAX_HEADER_OFFSET", 1500)
     path = tmp_path / "big.fcs"
     data = _events(n=200, p=3, seed=2)
     write_fcs(path, data, ["A", "B", "C"])

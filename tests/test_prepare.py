@@ -350,7 +350,7 @@ def test_one_pass_equals_the_pipeline_form_on_a_demo_tube():
     expected = truth["saturated"] & np.any(ef.data[:, judged] >= ef.channel_ranges[judged], axis=1)
     np.testing.assert_array_equal(prepared.reason == REASON_SATURATED, expected)
     assert prepared.set_aside()["floor pile"] == prepared.set_aside()["ceiling pile"] == 0
-    raw = ef.data.copy()
+    raw = ef.data.astype(np.float64)          # the file holds float32; jitter is added in float64
     for j in set(idx) | {ef.channel_names.index(d) for d in S.detectors}:
         assert prepared.grids[j] == "linear" and prepared.steps[j] == pytest.approx(1.0, rel=1e-6)
         raw[:, j] += channel_uniforms(0, j, ef.n_events) * prepared.steps[j]
@@ -376,3 +376,27 @@ def test_analysis_counts_reasons_for_the_app_and_exports():
     assert text.startswith("2 of 7 events kept") and "2 floor pile" in text and "1 ceiling pile" in text
     assert "A (0.4 % of the kept events on one value)" in text
     np.testing.assert_array_equal(an.export_columns()["cleaning flag"], [0, 3, 4, 1, 2, 0, 3])
+
+
+def test_float32_event_file_prepares_like_its_float64_values():
+    # read_fcs holds a float file as float32; the preparation converts column by column and
+    # block by block, so every consumer sees the values a float64 copy would give.
+    # Reference: the same tube with its event matrix converted to float64 beforehand.
+    import dataclasses
+
+    from core.analysis import compensated_and_transformed, density_input
+    from core.fcs import read_fcs
+    from core.recipe import default_recipe
+
+    root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    ef = read_fcs(os.path.join(root, "sample_events", "tube_B_treated_low.fcs"))
+    assert ef.data.dtype == np.float32                      # FCS 3.1 $DATATYPE F, no decoding
+    ef64 = dataclasses.replace(ef, data=ef.data.astype(np.float64))
+    recipe = default_recipe(ef)
+    prepared, values = density_input(ef, recipe)
+    prepared64, values64 = density_input(ef64, recipe)
+    np.testing.assert_array_equal(values, values64)
+    np.testing.assert_array_equal(prepared.matrix, prepared64.matrix)
+    np.testing.assert_array_equal(prepared.reason, prepared64.reason)
+    assert prepared.grids == prepared64.grids
+    np.testing.assert_array_equal(compensated_and_transformed(ef, recipe)[1], values)

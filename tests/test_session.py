@@ -153,3 +153,46 @@ def test_apply_scale_to_all_fluorescence_channels(tmp_path):
     # reference: numpy's arcsinh of the compensated values over the cofactor
     np.testing.assert_allclose(t.values[:, 3], np.arcsinh(t.compensated("FL2-A") / 150.0), rtol=1e-12)
     assert make_transform(spec).kind == "arcsinh"
+    # reference: fcsparser reads the file's own values (no spillover here, so compensated == stored)
+    import fcsparser
+
+    _, df = fcsparser.parse(t.path, reformat_meta=True, channel_naming="$PnN")
+    np.testing.assert_allclose(t.compensated("FL2-A"), df["FL2-A"].to_numpy(np.float64), rtol=1e-9)
+
+
+def test_tube_holds_one_copy_of_the_events(tmp_path):
+    """Scale previews read values back through the inverse transform (no second
+    events x channels matrix); a log scale, which loses negative values, falls
+    back to compensating again and keeps only that channel; a finished fit uses
+    the tube's values instead of its own equal copy."""
+    import fcsparser
+
+    from core.session import Session, share_values
+
+    rng = np.random.default_rng(3)
+    n = 600
+    data = np.column_stack([rng.normal(60000, 9000, n), rng.normal(30000, 5000, n),
+                            rng.normal(200, 400, n), rng.lognormal(7, 0.5, n)])  # FL1-A has negative values
+    path = str(tmp_path / "neg.fcs")
+    write_fcs(path, data, CHANNELS, channel_ranges=[262144] * 4)
+    _, df = fcsparser.parse(path, reformat_meta=True, channel_naming="$PnN")  # reference reader
+    s = Session()
+    s.open([path])
+    t = s.current
+    specs = dict(t.recipe.transforms)
+    specs["FL1-A"] = {"kind": "log"}
+    s.set_scales(specs, t.recipe.channels)
+    assert (t.values[:, 2] == 0).sum() == (df["FL1-A"].to_numpy() < 1).sum()  # raised to the floor (core.transforms)
+    np.testing.assert_allclose(t.compensated("FL1-A"), df["FL1-A"].to_numpy(np.float64), rtol=1e-9)
+    np.testing.assert_allclose(t.compensated("FL2-A"), df["FL2-A"].to_numpy(np.float64), rtol=1e-9)
+    held = [v for v in vars(t).values() if isinstance(v, np.ndarray) and v.ndim == 2]
+    assert len(held) == 1 and held[0] is t.values  # the fallback kept one column, not a matrix
+
+    class Fitted:  # what a fit hands back: its own, equal, values
+        values = t.values.copy()
+
+    a = Fitted()
+    assert share_values(t, a) and a.values is t.values
+    b = Fitted()
+    b.values = t.values + 1.0  # other numbers are never replaced
+    assert not share_values(t, b) and b.values is not t.values

@@ -305,3 +305,12 @@ def test_one_registry_of_kinds_read_by_transforms_recipe_panel_and_docs(qtbot):
     root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
     with open(os.path.join(root, "DEVELOPERS.md"), encoding="utf-8") as fh:
         assert transform_kinds_markdown() in fh.read()
+
+
+def test_logicle_reads_float32_input_as_its_float64_values():
+    # float32 event files are transformed without a float64 copy; the result must be the
+    # logicle of the exact float32 values (reference: the same values given as float64)
+    x = np.random.default_rng(3).lognormal(6.0, 1.5, 5000).astype(np.float32) - np.float32(200.0)
+    y32 = logicle(x, 262144.0, 0.5, 4.5, 0.0)
+    assert y32.dtype == np.float64
+    np.testing.assert_array_equal(y32, logicle(x.astype(np.float64), 262144.0, 0.5, 4.5, 0.0))

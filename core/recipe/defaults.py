@@ -51,7 +51,7 @@ def default_recipe(event_file: Any) -> Recipe:
     notes = [f"Default recipe made from {fname}."]
     from ..prepare import pile_masks
 
-    raw = np.asarray(event_file.data, dtype=np.float64)
+    raw = np.asarray(event_file.data)   # float32 files stay float32: pile_masks converts one column
     piled = {}
     for c in channels:
         j = names.index(c)
@@ -70,7 +70,7 @@ def default_recipe(event_file: Any) -> Recipe:
                      + ", ".join(c for c in channels if c not in single) + ".")
         channels = single
 
-    data = np.asarray(event_file.data, dtype=np.float64)
+    data = np.asarray(event_file.data)  # compensate returns float64; transforms read float32 as is
     comp = "none"
     try:
         S = spillover_from_keywords(dict(event_file.keywords), source=fname)

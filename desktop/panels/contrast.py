@@ -7,6 +7,12 @@ against the control at the chosen false discovery rate, their count with its
 95 % interval, the expected number of false discoveries and, beside them, the
 whole-sample shift warning.  The numbers all come from core; this panel only
 shows them.
+
+Two settings sit above the button: the false discovery rate and the minimum
+fold (density ratio) of a new event.  Their defaults are the recipe's
+(:func:`core.analysis.comparison_settings` of a default recipe); their ranges
+are the ones :func:`core.contrast.check_settings` accepts; the window writes
+them into the recipe of the next contrast (and of a saved recipe).
 """
 
 from __future__ import annotations
@@ -16,7 +22,16 @@ import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
 import os
 
 from PySide6.QtCore import Signal
-from PySide6.QtWidgets import QLabel, QProgressBar, QPushButton, QVBoxLayout, QWidget
+from PySide6.QtWidgets import QDoubleSpinBox, QFormLayout, QLabel, QProgressBar, QPushButton, QVBoxLayout, QWidget
+
+from core.analysis import comparison_settings
+from core.contrast import MAX_MIN_FOLD, MAX_RATE, MIN_RATE
+from core.recipe import Recipe
+
+
+def recipe_defaults() -> dict:
+    """``{"rate", "min_fold"}`` of a recipe nobody changed: the one place the defaults live."""
+    return comparison_settings(Recipe())
 
 
 class ContrastPanel(QWidget):
@@ -33,12 +48,33 @@ class ContrastPanel(QWidget):
         head.setObjectName("Heading")
         lay.addWidget(head)
         self.note = QLabel("Fits densities to this tube and to a control tube and marks the events that are "
-                           "new here: far denser than in the control, at the recipe's false discovery "
-                           "rate (5 % unless changed: about 5 % of the marked events may be control-like). "
+                           "new here: at least the minimum fold denser than in the control, at the false "
+                           "discovery rate set below (at 5 %, about 5 % of the marked events may be "
+                           "control-like). "
                            "Populations that only grew are not the question here.")
         self.note.setObjectName("Note")
         self.note.setWordWrap(True)
         lay.addWidget(self.note)
+        form = QFormLayout()
+        self.rate = QDoubleSpinBox()
+        self.rate.setDecimals(2)
+        self.rate.setRange(100 * MIN_RATE, 100 * MAX_RATE)
+        self.rate.setSingleStep(1.0)
+        self.rate.setSuffix(" %")
+        self.rate.setToolTip("False discovery rate: about this share of the events marked as new may in fact be "
+                             "control-like. Lower it to mark fewer, surer events.")
+        form.addRow("False discovery rate", self.rate)
+        self.min_fold = QDoubleSpinBox()
+        self.min_fold.setDecimals(1)
+        self.min_fold.setRange(1.0, MAX_MIN_FOLD)
+        self.min_fold.setSingleStep(0.5)
+        self.min_fold.setSuffix(" x")
+        self.min_fold.setToolTip("Minimum fold: an event is marked as new only where this tube is at least this "
+                                 "many times denser than the control. 1 keeps every significant difference, "
+                                 "however small.")
+        form.addRow("Minimum fold", self.min_fold)
+        lay.addLayout(form)
+        self.set_comparison(recipe_defaults())
         self.choose = QPushButton("Choose control tube and contrast...")
         self.choose.setToolTip("Pick the control FCS file; the fits and the contrast run in the background (Ctrl+K)")
         lay.addWidget(self.choose)
@@ -72,6 +108,20 @@ class ContrastPanel(QWidget):
         self.show_enriched.toggled.connect(self.showRequested)
         self.keep_button.clicked.connect(self.keepRequested)
 
+    # -- settings ----------------------------------------------------------
+    def comparison_settings(self) -> dict:
+        """``{"rate": fraction, "min_fold": ratio}`` as set here (the recipe's ``comparison`` section)."""
+        return {"rate": round(self.rate.value() / 100.0, 6), "min_fold": float(self.min_fold.value())}
+
+    def set_comparison(self, settings: dict) -> None:
+        """Show a recipe's ``comparison`` settings (``{"rate", "min_fold"}``)."""
+        self.rate.setValue(100.0 * float(settings["rate"]))
+        self.min_fold.setValue(float(settings["min_fold"]))
+
+    def show_recipe(self, recipe) -> None:
+        """Show ``recipe``'s comparison settings (its defaults where it has none)."""
+        self.set_comparison(comparison_settings(recipe))
+
     # -- a run -------------------------------------------------------------
     def started(self, control_path: str) -> None:
         """A contrast with ``control_path`` has started."""
@@ -82,6 +132,8 @@ class ContrastPanel(QWidget):
         self.result.setText(f"Contrasting with {os.path.basename(control_path)}...")
         self.warning.setVisible(False)
         self.choose.setEnabled(False)
+        self.rate.setEnabled(False)
+        self.min_fold.setEnabled(False)
         self.show_enriched.setEnabled(False)
         self.keep_button.setEnabled(False)
 
@@ -100,6 +152,8 @@ class ContrastPanel(QWidget):
         self.progress.setVisible(False)
         self.stage.setVisible(False)
         self.choose.setEnabled(True)
+        self.rate.setEnabled(True)
+        self.min_fold.setEnabled(True)
         self.result.setText(text)
 
     # -- results -----------------------------------------------------------
@@ -108,6 +162,8 @@ class ContrastPanel(QWidget):
         self.progress.setVisible(False)
         self.stage.setVisible(False)
         self.choose.setEnabled(True)
+        self.rate.setEnabled(True)
+        self.min_fold.setEnabled(True)
         c = None if analysis is None else analysis.contrast
         if c is None:
             self.result.setText("No control chosen" if not control_path else "Fit again to contrast")

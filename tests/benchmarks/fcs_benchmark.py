@@ -1,10 +1,18 @@
 """Speed of FCS reading and writing; prints a table (no assertions).
 
 Run: python tests/benchmarks/fcs_benchmark.py [--events 1000000]
+     python tests/benchmarks/fcs_benchmark.py --memory 5000000 [--channels 30]
 
 Rows: every readable file fcsparser ships (read in place) and synthetic float32
 files of growing size written by write_fcs, each read by read_fcs and by
 fcsparser.parse alone (the difference is our checks and $PnE/$PnG decoding).
+
+``--memory N``: one float32 file of N events x ``--channels`` channels, read in
+fresh processes by read_fcs and by fcsparser.parse: seconds and the peak
+resident memory the read added to the process (peak resident memory, reset
+after the imports, minus the resident memory then), best of ``--repeat``.
+``core`` comes from PYTHONPATH when it is set, so an older checkout can be
+measured in the same run.
 """
 
 from __future__ import annotations
@@ -19,7 +27,7 @@ import warnings
 import fcsparser
 import numpy as np
 
-sys.path.insert(0, os.path.abspath(os.path.join(os.path.dirname(__file__), "..", "..")))
+sys.path.append(os.path.abspath(os.path.join(os.path.dirname(__file__), "..", "..")))
 
 from core.errors import FcsFileError  # noqa: E402
 from core.fcs import read_fcs, write_fcs  # noqa: E402
@@ -40,10 +48,70 @@ def _fcsparser(path):
         fcsparser.parse(path, channel_naming="$PnN", dtype=None, encoding="latin-1")
 
 
+def _memory_child(reader: str, path: str) -> None:
+    """Print seconds and MB the read added (peak RSS minus RSS after the imports) as JSON."""
+    import json
+
+    import fcsparser.api  # noqa: F401  (both readers use it: imported before the base is taken)
+    import pandas  # noqa: F401
+    # the peak resident memory is reset here (Linux: "5" to clear_refs), since a forked child
+    # starts with its parent's peak, and read afterwards as VmHWM
+    with open("/proc/self/clear_refs", "w") as fh:
+        fh.write("5")
+    base = _status_mb("VmRSS")
+    t0 = time.perf_counter()
+    kept = read_fcs(path).data if reader == "read_fcs" else _fcsparser_frame(path)
+    seconds = time.perf_counter() - t0
+    print(json.dumps({"seconds": seconds, "added_mb": _status_mb("VmHWM") - base, "held_mb": kept.nbytes / 2 ** 20}))
+
+
+def _status_mb(key: str) -> float:
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith(key + ":"):
+                return int(line.split()[1]) / 1024.0
+    return float("nan")
+
+
+def _fcsparser_frame(path):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return fcsparser.parse(path, channel_naming="$PnN", dtype=None, encoding="latin-1")[1].to_numpy()
+
+
+def memory_rows(n: int, d: int, repeat: int) -> None:
+    import json
+    import subprocess
+    import core
+    with tempfile.TemporaryDirectory() as tmp:
+        path = os.path.join(tmp, f"synthetic_{n}x{d}.fcs")
+        rng = np.random.default_rng(0)
+        write_fcs(path, rng.lognormal(6.0, 1.5, size=(n, d)).astype(np.float32), [f"C{j}" for j in range(d)])
+        print(f"core from {os.path.dirname(core.__file__)}; {n:,} events x {d} channels float32, "
+              f"{os.path.getsize(path) / 2 ** 20:.0f} MB")
+        print(f"{'reader':10s} {'seconds':>8s} {'added MB':>9s} {'held MB':>8s}")
+        for reader in ("read_fcs", "fcsparser"):
+            runs = [json.loads(subprocess.run([sys.executable, os.path.abspath(__file__), "--child", reader, path],
+                                              capture_output=True, text=True, check=True).stdout)
+                    for _ in range(repeat)]
+            print(f"{reader:10s} {min(r['seconds'] for r in runs):8.2f} {min(r['added_mb'] for r in runs):9.0f} "
+                  f"{runs[0]['held_mb']:8.0f}")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--events", type=int, default=1_000_000, help="largest synthetic file")
+    parser.add_argument("--memory", type=int, default=0, help="events of the memory comparison")
+    parser.add_argument("--channels", type=int, default=30)
+    parser.add_argument("--repeat", type=int, default=3)
+    parser.add_argument("--child", nargs=2, help=argparse.SUPPRESS)
     args = parser.parse_args()
+    if args.child:
+        _memory_child(*args.child)
+        return
+    if args.memory:
+        memory_rows(args.memory, args.channels, args.repeat)
+        return
 
     rows = []
     root = os.path.join(os.path.dirname(fcsparser.__file__), "tests", "data")

@@ -5,11 +5,17 @@ on a made-up acquisition of 1,000,000 events x 30 channels.
 Channels: 2 scatter, 26 fluorescence, Time, one width; 20 fluorescence channels
 hold whole numbers (a grid of step 1, as float files store them), the others are
 continuous.  Recipe: the 26 fluorescence channels, logicle on them, linear on the
-rest; without and with a 10-detector spillover matrix.  Prints one row per case:
+rest; without and with a 10-detector spillover matrix.  First prints the logicle's
+time per value against numpy's arcsinh (core.transforms, same 1,000,000 values,
+best of 9 alternated runs), then one row per case:
 seconds (best of ``--repeat``) and the peak of numpy's allocations during the call
 (tracemalloc), beyond the event file itself.
 
-    python tests/benchmarks/prepare_benchmark.py [--events 1000000] [--repeat 2]
+    python tests/benchmarks/prepare_benchmark.py [--events 1000000] [--repeat 2] [--dtype float32]
+
+``--dtype``: the type the event matrix is held in (float64, what read_fcs gave
+before it kept float files as float32; float32, what it gives for a float file
+now).  The whole-number channels are exact in both.
 
 Runs with whatever ``core`` is first on PYTHONPATH, so the same script measures an
 older checkout too (it only uses EventFile's first fields, Recipe and density_input).
@@ -31,11 +37,12 @@ if ROOT not in sys.path:
     sys.path.append(ROOT)
 
 from core.analysis import density_input  # noqa: E402
+from core.transforms import arcsinh, logicle  # noqa: E402
 from core.fcs import EventFile  # noqa: E402
 from core.recipe import Recipe  # noqa: E402
 
 
-def make_file(n: int, seed: int = 0):
+def make_file(n: int, seed: int = 0, dtype=np.float64):
     rng = np.random.default_rng(seed)
     names = ["FSC-A", "SSC-A"] + [f"FL{i}-A" for i in range(1, 27)] + ["Time", "FL1-W"]
     data = np.empty((n, len(names)))
@@ -51,7 +58,8 @@ def make_file(n: int, seed: int = 0):
     det = names[2:12]
     S = np.eye(10) + np.triu(rng.uniform(0.0, 0.08, (10, 10)), 1)
     kw["$SPILLOVER"] = ",".join([str(len(det))] + det + [f"{v:.6g}" for v in S.ravel()])
-    return EventFile(path="made-up.fcs", data=data, channel_names=names, channel_labels=[""] * len(names),
+    return EventFile(path="made-up.fcs", data=data.astype(dtype, copy=False), channel_names=names,
+                     channel_labels=[""] * len(names),
                      channel_ranges=np.full(len(names), 262144.0), keywords=kw, version="FCS3.1")
 
 
@@ -63,16 +71,35 @@ def recipe(names, compensate: bool) -> Recipe:
                   compensation={"source": "file" if compensate else "none", "csv_path": None})
 
 
+def logicle_against_arcsinh(n: int = 1_000_000, repeat: int = 9) -> tuple[float, float]:
+    """Nanoseconds per value of core.transforms' logicle (T 262144, W 0.5, M 4.5) and arcsinh
+    (cofactor 150) on the same n fluorescence-like values, best of ``repeat`` runs of each, alternated."""
+    x = np.random.default_rng(1).lognormal(6.0, 1.5, n) - 200.0
+    logicle(x[:100], 262144.0, 0.5)   # compile / warm up
+    best_l = best_a = np.inf
+    for _ in range(repeat):
+        t = time.perf_counter()
+        arcsinh(x, 150.0)
+        best_a = min(best_a, time.perf_counter() - t)
+        t = time.perf_counter()
+        logicle(x, 262144.0, 0.5, 4.5, 0.0)
+        best_l = min(best_l, time.perf_counter() - t)
+    return best_l * 1e9 / n, best_a * 1e9 / n
+
+
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--events", type=int, default=1_000_000)
     p.add_argument("--repeat", type=int, default=2)
+    p.add_argument("--dtype", default="float64", choices=("float64", "float32"))
     args = p.parse_args(argv)
-    ef = make_file(args.events)
+    ef = make_file(args.events, dtype=np.dtype(args.dtype))
     import core
 
     print(f"core from {os.path.dirname(core.__file__)}; {args.events:,} events x {ef.n_channels} channels "
-          f"({ef.data.nbytes / 1e6:.0f} MB)")
+          f"{ef.data.dtype} ({ef.data.nbytes / 1e6:.0f} MB)")
+    ns_l, ns_a = logicle_against_arcsinh()
+    print(f"logicle {ns_l:.1f} ns per value, arcsinh {ns_a:.1f} ns per value: ratio {ns_l / ns_a:.2f}")
     print(f"{'case':<22} {'seconds':>8} {'peak MB':>8} {'kept':>9} {'d':>3}")
     for comp in (False, True):
         r = recipe(ef.channel_names, comp)

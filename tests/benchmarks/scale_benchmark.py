@@ -24,9 +24,15 @@ better).  The machine is shared: compare the ratios measured in the same run.
 
 Analyse table (``--analyse``): ``core.analysis.analyse`` on an FCS file of
 ``--analyse-events`` events x d channels written by ``core.fcs.write_fcs``
-(two scatter channels, the rest fluorescence), with the default recipe; the
-stages of ``Analysis.timing`` and the peak resident memory of the process
-(``resource.getrusage``, so measured in a fresh subprocess per file).
+(two scatter channels, the rest fluorescence; float32) in one subprocess, then
+read and analysed with the default recipe in a fresh subprocess: the stages of
+``Analysis.timing`` plus the read, the peak resident memory of that process
+(``resource.getrusage``; the file's generation is not in it), the resident
+memory after the imports ("base MB") and the highest resident memory seen
+during each stage (sampled every 20 ms; "peak MB by stage").
+
+``core`` is imported from PYTHONPATH when it is set (else from this checkout),
+so the same script measures an older checkout in the same run.
 """
 
 from __future__ import annotations
@@ -45,7 +51,7 @@ import numpy as np
 HERE = os.path.dirname(os.path.abspath(__file__))
 ROOT = os.path.dirname(os.path.dirname(HERE))
 if ROOT not in sys.path:
-    sys.path.insert(0, ROOT)
+    sys.path.append(ROOT)
 
 N_POPULATIONS = 16
 DEBRIS_SHARE = 0.02
@@ -121,35 +127,68 @@ def fit_rows(sizes, channels, repeats, log=print):
     return rows
 
 
-def _analyse_child(n: int, d: int) -> dict:
-    """Write an FCS file of n x d events, run analyse() on it; stage seconds and peak memory."""
-    import resource
-    from core.analysis import analyse
-    from core.fcs import read_fcs, write_fcs
-    from core.recipe import default_recipe
+def _write_child(n: int, d: int, path: str) -> None:
+    """Write the n x d panel (float32) as an FCS file (a process of its own: its memory is not measured)."""
+    from core.fcs import write_fcs
     raw = raw_panel(n, d, seed=7)
     names = ["FSC-A", "SSC-A"] + [f"FL{j}-A" for j in range(1, d - 1)]
     raw[:, :2] = np.abs(raw[:, :2]) * 5.0
-    with tempfile.TemporaryDirectory() as tmp:
-        path = os.path.join(tmp, f"panel_{n}x{d}.fcs")
-        write_fcs(path, raw.astype(np.float32), names,
-                  channel_ranges=np.full(d, 262144.0))
-        del raw
-        t = time.perf_counter()
-        ef = read_fcs(path)
-        read_s = time.perf_counter() - t
-        recipe = default_recipe(ef)
-        a = analyse(ef, recipe)
-        timing = {"read": read_s, **{k: float(v) for k, v in a.timing.items()}}
+    write_fcs(path, raw.astype(np.float32), names, channel_ranges=np.full(d, 262144.0))
+
+
+def _rss_mb() -> float:
+    with open("/proc/self/statm") as fh:
+        return int(fh.read().split()[1]) * os.sysconf("SC_PAGE_SIZE") / 2 ** 20
+
+
+def _analyse_child(path: str) -> dict:
+    """Read ``path`` and run analyse() on it: stage seconds, peak memory, memory per stage."""
+    import resource
+    import threading
+
+    from core.analysis import analyse
+    from core.fcs import read_fcs
+    from core.recipe import default_recipe
+    base = _rss_mb()
+    samples, done = [], threading.Event()
+
+    def sample():
+        while not done.is_set():
+            samples.append((time.perf_counter(), _rss_mb()))
+            time.sleep(0.02)
+    thread = threading.Thread(target=sample, daemon=True)
+    thread.start()
+    t = time.perf_counter()
+    ef = read_fcs(path)
+    read_s = time.perf_counter() - t
+    t_recipe = time.perf_counter()
+    recipe = default_recipe(ef)
+    t_analyse = time.perf_counter()
+    a = analyse(ef, recipe)
+    done.set()
+    thread.join()
+    timing = {"read": read_s, **{k: float(v) for k, v in a.timing.items()}}
+    bounds = [("read", t, t_recipe), ("recipe", t_recipe, t_analyse)]
+    at = t_analyse
+    for k, v in a.timing.items():
+        if k != "total":
+            bounds.append((k, at, at + float(v)))
+            at += float(v)
+    by_stage = {k: max([m for s, m in samples if lo <= s <= hi] or [float("nan")]) for k, lo, hi in bounds}
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # kB -> MB (Linux)
-    return {"n": n, "d": d, "timing": timing, "peak_mb": peak}
+    return {"n": ef.n_events, "d": ef.n_channels, "timing": timing, "peak_mb": peak, "base_mb": base,
+            "stage_mb": by_stage, "dtype": str(ef.data.dtype)}
 
 
 def analyse_rows(channels, n, log=print):
     rows = []
     for d in channels:
-        out = subprocess.run([sys.executable, os.path.abspath(__file__), "--child", f"{n},{d}"],
-                             capture_output=True, text=True, cwd=ROOT)
+        with tempfile.TemporaryDirectory() as tmp:
+            path = os.path.join(tmp, f"panel_{n}x{d}.fcs")
+            subprocess.run([sys.executable, os.path.abspath(__file__), "--write", f"{n},{d},{path}"],
+                           check=True, cwd=ROOT)
+            out = subprocess.run([sys.executable, os.path.abspath(__file__), "--child", path],
+                                 capture_output=True, text=True, cwd=ROOT)
         if out.returncode != 0:
             log(out.stderr[-2000:])
             continue
@@ -180,7 +219,7 @@ def format_analyse(rows, markdown=False) -> str:
         for k in r["timing"]:
             if k not in stages:
                 stages.append(k)
-    head = ["events x channels"] + [f"{s} s" for s in stages] + ["peak MB"]
+    head = ["events x channels"] + [f"{s} s" for s in stages] + ["peak MB", "base MB", "peak MB by stage"]
     lines = []
     if markdown:
         lines += ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
@@ -188,7 +227,8 @@ def format_analyse(rows, markdown=False) -> str:
         lines.append("  ".join(head))
     for r in rows:
         vals = [f"{r['n']:,} x {r['d']}"] + [f"{r['timing'].get(s, float('nan')):.1f}" for s in stages] \
-            + [f"{r['peak_mb']:.0f}"]
+            + [f"{r['peak_mb']:.0f}", f"{r.get('base_mb', float('nan')):.0f}",
+               ", ".join(f"{k} {v:.0f}" for k, v in r.get("stage_mb", {}).items())]
         lines.append(("| " + " | ".join(vals) + " |") if markdown else "  ".join(vals))
     return "\n".join(lines)
 
@@ -202,10 +242,14 @@ def main(argv=None):
     ap.add_argument("--analyse-events", type=int, default=1_000_000)
     ap.add_argument("--markdown", default="")
     ap.add_argument("--child", default="", help=argparse.SUPPRESS)
+    ap.add_argument("--write", default="", help=argparse.SUPPRESS)
     a = ap.parse_args(argv)
+    if a.write:
+        n, d, path = a.write.split(",", 2)
+        _write_child(int(n), int(d), path)
+        return 0
     if a.child:
-        n, d = (int(v) for v in a.child.split(","))
-        print(json.dumps(_analyse_child(n, d)))
+        print(json.dumps(_analyse_child(a.child)))
         return 0
     out = []
     sizes = [int(v) for v in a.sizes.split(",") if v]
