@@ -59,10 +59,13 @@ import numpy as np
 
 from .analysis_stages import (channel_labels, comparison_settings, contrast_stage, inverse_transforms,
                               populations_stage)
-from .errors import EventDataError
+from .density import AdditiveTreeDensity
+from .errors import Cancelled, EventDataError
 from .file_values import (CompensateTransform, compensate_transform, compensated_and_transformed,
-                          density_channel_indices, density_input)
+                          as_event_file, density_channel_indices, density_input)
+from .prepare import CLEANING_FLAGS, REASONS, atoms as find_atoms
 from .progress import stop_relay
+from .rare import rare_events, rarity_percentile
 from .recipe import Recipe, validate_recipe
 from .regions import RegionSet
 
@@ -135,8 +138,6 @@ class Analysis:
     @property
     def set_aside(self) -> dict:
         """Events set aside per reason, every reason of ``core.prepare.REASONS`` (zeros included)."""
-        from .prepare import REASONS
-
         return {r: int(np.count_nonzero(self.reason == r)) for r in REASONS}
 
     def cleaning_text(self) -> str:
@@ -162,8 +163,6 @@ class Analysis:
         event's population number as users see it (id + 1; 0 for none or
         removed) when populations were found.
         """
-        from .prepare import CLEANING_FLAGS
-
         kept = self.kept
         flag = np.zeros(self.n_events)
         for r, f in CLEANING_FLAGS.items():
@@ -190,6 +189,7 @@ class Analysis:
         ``reason``, ``population`` (id, -1 none), one bool column per region (``region: NAME``) and, when
         contrasted, ``contrast score``, ``contrast p``, ``contrast q`` and ``enriched``.
         """
+        # imported here: pandas adds ~0.4 s to importing core.analysis; only table() needs it
         import pandas as pd
 
         cols: dict[str, Any] = {"event": np.arange(self.n_events)}
@@ -212,14 +212,6 @@ class Analysis:
         return pd.DataFrame(cols)
 
 
-def _as_event_file(obj: Any):
-    if isinstance(obj, (str, os.PathLike)):
-        from .fcs import read_fcs
-
-        return read_fcs(obj)
-    return obj
-
-
 def prepare_control_file(control: Any, recipe: Recipe, progress=None):
     """The control's part of the contrast, computed once for many test files.
 
@@ -230,9 +222,10 @@ def prepare_control_file(control: Any, recipe: Recipe, progress=None):
     the control file's path; pass it to :func:`analyse` as ``control``.
     ``progress(step, total, info)`` goes to the control fit (False: Cancelled).
     """
+    # imported here: core.contrast loads scipy.stats (~1.3 s); only a contrast needs it
     from .contrast import prepare_control
 
-    control_file = _as_event_file(control)
+    control_file = as_event_file(control)
     recipe = validate_recipe(recipe, control_file)
     c_prepared, _ = density_input(control_file, recipe)
     engine = recipe.engine_arguments()
@@ -259,14 +252,9 @@ def analyse(event_file: Any, recipe: Recipe, progress=None, control: Any = None,
     a control they, and regions built on them, are left out of ``region_masks``
     (named in ``info["regions_without_control"]``).
     """
-    from .density import AdditiveTreeDensity
-    from .errors import Cancelled
-    from .prepare import atoms as find_atoms
-    from .rare import rare_events, rarity_percentile
-
     timing: dict[str, float] = {}
     t0 = time.perf_counter()
-    event_file = _as_event_file(event_file)
+    event_file = as_event_file(event_file)
     recipe = validate_recipe(recipe, event_file)
     prepared, values = density_input(event_file, recipe)   # the file's compensate-and-transform step, once
     n = values.shape[0]

@@ -4,11 +4,16 @@ contrast with a control, grown and shrunk populations."""
 from __future__ import annotations
 
 import os
+import time
 from typing import Any
 
 import numpy as np
 
-from .recipe import Recipe, as_recipe
+from .file_values import as_event_file, density_input
+from .populations import (PopulationDefinition, assign_populations, count_populations, find_populations,
+                          population_changes)
+from .recipe import Recipe, as_recipe, validate_recipe
+from .transforms import make_transform
 
 
 def channel_labels(event_file: Any, channels: list) -> list:
@@ -21,8 +26,6 @@ def populations_stage(event_file, recipe, model, prepared, log_density, progress
     """Populations of the kept events (:mod:`core.populations`): counted with the
     recipe's stored definition when it has one, else found on the fitted model.
     Returns (Populations, labels (n_events,) with -1 for removed events)."""
-    from .populations import count_populations, find_populations
-
     settings = recipe.populations.settings
     chans = list(recipe.channels)
     labels = channel_labels(event_file, chans)
@@ -46,9 +49,6 @@ def population_change_stage(result, event_file, recipe, res, control) -> None:
     definition found is kept on it as ``populations_definition`` for the next
     file).  The control's model is its first part model (the contrast fits K
     part models of the control, each without one part of its events)."""
-    from .populations import (PopulationDefinition, assign_populations, count_populations,
-                              find_populations, population_changes)
-
     settings = recipe.populations.settings
     chans = list(recipe.channels)
     labels = channel_labels(event_file, chans)
@@ -93,8 +93,6 @@ def comparison_settings(recipe: Recipe, rate: float | None = None, min_fold: flo
 
 def inverse_transforms(recipe: Recipe, channels: list) -> list:
     """Per density channel, the inverse of its transform (None when untransformed): instrument units."""
-    from .transforms import make_transform
-
     specs = recipe.transforms
     out = []
     for c in channels:
@@ -111,19 +109,15 @@ def contrast_stage(result, event_file, recipe: Recipe, control, rate, min_fold, 
     """Contrast ``result`` (an :class:`core.analysis.Analysis`) with ``control`` (an
     EventFile, a path or a PreparedControl; :func:`core.contrast.contrast`), fill its
     contrast arrays, evaluate regions of new events and the grown and shrunk populations."""
-    import time
-
-    from .analysis import _as_event_file
+    # imported here: core.contrast loads scipy.stats (~1.3 s); only a contrast needs it
     from .contrast import PreparedControl, contrast
-    from .file_values import density_input
-    from .recipe import validate_recipe
 
     t4 = time.perf_counter()
     prepared, n = result.prepared, result.n_events
     if isinstance(control, PreparedControl):
         pc, c_matrix, control_path = control, None, control.source
     else:
-        control_file = _as_event_file(control)
+        control_file = as_event_file(control)
         validate_recipe(recipe, control_file)
         c_matrix = density_input(control_file, recipe)[0].matrix
         pc, control_path = None, os.fspath(control_file.path)

@@ -100,6 +100,7 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
+from .density import AdditiveTreeDensity
 from .errors import EventDataError
 # The levels are computed in core.rare (one implementation for the contours and
 # the rare rule "mass"); re-exported here.
@@ -173,8 +174,6 @@ def fit_pair_model(xy: np.ndarray, engine: Mapping | None = None, random_state: 
 
     Settings: :data:`PAIR_ENGINE` (those the engine accepts), overridden by ``engine``.
     """
-    from .density import AdditiveTreeDensity
-
     known = set(AdditiveTreeDensity.param_names())
     kwargs = {k: v for k, v in PAIR_ENGINE.items() if k in known}
     kwargs.update(engine or {})

@@ -96,12 +96,14 @@ NaN, get p = q = NaN and are never enriched.
 from __future__ import annotations
 
 import math
+import os
 from dataclasses import dataclass, field
 from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
 from scipy import stats
 
+from .density import AdditiveTreeDensity
 from .errors import Cancelled, EventDataError
 from .fdr import bh_qvalues
 from .progress import stop_relay
@@ -256,8 +258,6 @@ def contrast_keywords(res: ContrastResult, control: str | None) -> dict:
     """FCS TEXT keywords recording a contrast in an export: ``BOSCAGE_CONTROL`` (the control's
     file name), ``BOSCAGE_FDR``, ``BOSCAGE_MIN_FOLD``, ``BOSCAGE_ENRICHED`` and, when raised,
     ``BOSCAGE_SHIFT_WARNING``."""
-    import os
-
     kw = {"BOSCAGE_CONTROL": os.path.basename(str(control or "")) or "unknown",
           "BOSCAGE_FDR": repr(float(res.rate)), "BOSCAGE_MIN_FOLD": repr(float(res.min_fold)),
           "BOSCAGE_ENRICHED": f"{res.count} of {res.info.get('n_test', '')} kept events; about "
@@ -269,8 +269,6 @@ def contrast_keywords(res: ContrastResult, control: str | None) -> dict:
 
 def _default_factory(engine: Mapping | None, random_state: int) -> Callable:
     def fit(X, progress=None):
-        from .density import AdditiveTreeDensity
-
         kwargs = dict(engine or {})
         kwargs.setdefault("random_state", random_state)
         return AdditiveTreeDensity(**kwargs).fit(X, progress=progress)

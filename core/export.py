@@ -32,7 +32,9 @@ import numpy as np
 from . import RESEARCH_USE_NOTE, SOFTWARE_NAME, __version__
 from . import write_guard
 from .atomic import atomic_write
+from .compensation import SPILLOVER_KEYWORDS, spillover_from_keywords, spillover_to_keyword
 from .errors import BoscageError, ExportError
+from .fcs import write_fcs
 
 #: Source keywords copied to an exported FCS file (acquisition context, when present).
 CARRIED_KEYWORDS = ("$CYT", "$CYTSN", "$DATE", "$BTIM", "$ETIM", "$INST", "$OP", "$SRC",
@@ -83,8 +85,6 @@ def _extra_arrays(extra_columns: Mapping[str, Any] | None, n_events: int,
 
 def _spillover_keyword(keywords: Mapping[str, str], source: str) -> dict[str, str]:
     """The source's spillover matrix as an FCS 3.1 ``$SPILLOVER`` keyword (empty dict when none)."""
-    from .compensation import SPILLOVER_KEYWORDS, spillover_from_keywords, spillover_to_keyword
-
     try:
         S = spillover_from_keywords(dict(keywords), source=source)
         if S is None:
@@ -124,8 +124,6 @@ def export_events_fcs(path: str | os.PathLike, event_file: Any, mask: Any,
     a target that is an input file, an existing target without ``overwrite``,
     or a folder that cannot be written.
     """
-    from .fcs import write_fcs
-
     path = os.fspath(path)
     source = os.fspath(getattr(event_file, "path", "") or "")
     _refuse_source(path, [source], overwrite)

@@ -84,6 +84,7 @@ def _decode_text(path: str, raw: bytes, notes: list) -> tuple[str, str]:
 
 def _split_text(path: str, text: str, notes: list) -> dict:
     """TEXT segment -> keyword dict, using fcsparser's own splitter (delimiter doubling)."""
+    # imported here: fcsparser loads pandas (~0.4 s); keeps importing core light
     from fcsparser.api import FCSParser
 
     if len(text) < 2:

@@ -20,7 +20,9 @@ from typing import Any
 
 import numpy as np
 
+from . import compensation
 from .errors import ChannelError, RecipeError
+from .fcs import read_fcs
 from .prepare_file import prepare_file_events, transformed_values
 from .recipe import Recipe, as_recipe
 
@@ -53,8 +55,6 @@ class CompensateTransform:
 
 def _spillover(event_file: Any, recipe: Recipe):
     """The spillover matrix the recipe asks for, or None."""
-    from . import compensation
-
     source = recipe.compensation.source
     fname = os.path.basename(event_file.path)
     if source == "file":
@@ -145,3 +145,11 @@ def density_input(event_file: Any, recipe: Recipe, step: CompensateTransform | N
                                    drop_saturated=c.drop_saturated, drop_piles=c.drop_piles, dequantise=c.dequantise,
                                    random_state=recipe.engine.random_state, where=step.source)
     return prepared, values
+
+
+def as_event_file(obj: Any):
+    """``obj`` as an EventFile: a path (str or os.PathLike) is read with
+    :func:`core.fcs.read_fcs`; anything else is returned as it is."""
+    if isinstance(obj, (str, os.PathLike)):
+        return read_fcs(obj)
+    return obj

@@ -11,7 +11,8 @@ from typing import Any, Mapping
 
 import numpy as np
 
-from .errors import RegionError
+from .errors import RecipeError, RegionError
+from .populations import PopulationDefinition, assign_populations
 from .region_geometry import (_KEYS, COMBINATION_KINDS, GEOMETRIC_KINDS, KINDS, IntervalRegion, PolygonRegion,
                               RectangleRegion, Region, _channel_values, _finite_number)
 
@@ -135,9 +136,6 @@ class PopulationRegion(Region):
     kind = "population"
 
     def __post_init__(self):
-        from .errors import RecipeError
-        from .populations import PopulationDefinition
-
         self._check_common()
         try:
             pd = PopulationDefinition.from_dict(self.definition)
@@ -160,8 +158,6 @@ class PopulationRegion(Region):
         return tuple(self._pd.channels)
 
     def own_mask(self, values, rarity, masks, n):
-        from .populations import assign_populations
-
         X = np.column_stack([_channel_values(values, c, self.name, n) for c in self._pd.channels])
         m = assign_populations(self._pd, X) == self.population
         if rarity is not None:

@@ -22,10 +22,13 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
+from .atomic import unique_path
+from .compensation import write_spillover_csv
 from .errors import BoscageError, ChannelError, RegionError
 from .files import expand_paths
-from .recipe import Compensation
+from .recipe import Compensation, load_recipe, validate_recipe
 from .regions import Region, region_from_dict
+from .transforms import is_scatter_or_time
 from .tube import (Tube, default_pairs, region_closure, region_name, rescale_region,  # noqa: F401 (re-exported)
                    uses_rarity)
 
@@ -127,8 +130,6 @@ class Session:
     def apply_scale_to_all(self, channel: str) -> str:
         """Give every fluorescence channel (not scatter or time, by
         :func:`core.transforms.is_scatter_or_time`) the scale of ``channel``."""
-        from .transforms import is_scatter_or_time
-
         tube = self.require()
         spec = tube.spec(channel)
         specs = dict(tube.recipe.transforms)
@@ -142,9 +143,6 @@ class Session:
         """Compensate the current tube from ``source`` ("none", "file" or "csv").
         An ``edited`` SpilloverMatrix is first written as a new CSV file in
         ``matrix_folder``.  Returns the reason the fit was discarded."""
-        from .atomic import unique_path
-        from .compensation import write_spillover_csv
-
         tube = self.require()
         if edited is not None:
             stem = os.path.splitext(os.path.basename(tube.path))[0]
@@ -192,8 +190,6 @@ class Session:
 
     def load_recipe(self, path: str) -> Tube:
         """Apply a saved recipe to the current tube (its fit is discarded)."""
-        from .recipe import load_recipe, validate_recipe
-
         tube = self.require()
         recipe = load_recipe(path)
         validate_recipe(recipe, tube.event_file)

@@ -24,6 +24,7 @@ from typing import Any, Callable
 
 import numpy as np
 
+from .channel_kinds import FLUORESCENCE, SCATTER, TIME, channel_kind
 from .errors import TransformError
 from .logicle import (  # noqa: F401  (re-exported: the old import path)
     check_logicle_parameters, logicle, logicle_auto_w, logicle_constants, logicle_inverse)
@@ -207,8 +208,6 @@ def _build(kind: str, params: dict) -> Transform:
 
 def is_scatter_or_time(channel_name: str, label: str | None = None) -> bool:
     """True for scatter and time channels (:func:`core.channel_kinds.channel_kind`)."""
-    from .channel_kinds import SCATTER, TIME, channel_kind
-
     return channel_kind(channel_name, label) in (SCATTER, TIME)
 
 
@@ -230,7 +229,6 @@ def default_transform_spec(channel_name: str, values=None, channel_range: float 
             rng = None
         if rng is not None and not (math.isfinite(rng) and rng > 0):
             rng = None
-    from .channel_kinds import FLUORESCENCE, channel_kind
 
     if channel_kind(channel_name, label) != FLUORESCENCE:
         if rng is None and values is not None:

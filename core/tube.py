@@ -21,9 +21,12 @@ import numpy as np
 
 from .channel_kinds import scatter_direction
 from .errors import ChannelError, RegionError
+from .fcs import read_fcs
+from .file_values import compensate_transform, compensated_and_transformed
 from .rare import share_mask, share_order
-from .recipe import RareRule
+from .recipe import RareRule, default_recipe
 from .regions import Region, RegionSet, region_from_dict
+from .transforms import make_transform
 
 #: Default share of events highlighted as rare: the recipe's default rare rule (core.recipe.RareRule).
 DEFAULT_SHARE = RareRule().share
@@ -62,8 +65,6 @@ def rescale_region(region: Region, old_specs: Mapping, new_specs: Mapping) -> Re
     """``region`` carried onto new scales: its bounds or vertices go back to
     instrument units through the old transform and forward through the new
     one (channels whose spec did not change are left as they are)."""
-    from .transforms import make_transform
-
     chans = region.channels_used()
     if not chans or all(old_specs.get(c) == new_specs.get(c) for c in chans):
         return region
@@ -166,9 +167,6 @@ class Tube:
 
     @classmethod
     def open(cls, path: str) -> "Tube":
-        from .fcs import read_fcs
-        from .recipe import default_recipe
-
         ef = read_fcs(path)
         recipe = default_recipe(ef)
         share = recipe.rare.share
@@ -206,8 +204,6 @@ class Tube:
     # -- values -----------------------------------------------------------
     def recompute_values(self) -> None:
         """Compensate and transform every channel as the recipe says (core.file_values)."""
-        from .file_values import compensated_and_transformed
-
         self.names, values = compensated_and_transformed(self.event_file, self.recipe)
         # column-major: every use here takes whole channels (plots, regions, previews), and a
         # contiguous column is read 5-10x faster than a strided one at millions of events
@@ -229,13 +225,9 @@ class Tube:
         if spec is None:
             return self.values[:, j]
         if str(spec.get("kind", "")).lower() in INVERTIBLE_KINDS:
-            from .transforms import make_transform
-
             with np.errstate(invalid="ignore", over="ignore"):
                 return np.asarray(make_transform(spec).inverse(self.values[:, j]), dtype=np.float64)
         if self._compensated is None or self._compensated[0] != channel:
-            from .file_values import compensate_transform
-
             full = compensate_transform(self.event_file, self.recipe).compensated(self.event_file.data)
             self._compensated = (channel, full[:, j].copy())
             del full

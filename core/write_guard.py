@@ -29,6 +29,7 @@ import os
 import threading
 from typing import Callable, Iterable, Sequence
 
+from . import SOFTWARE_NAME
 from .errors import ExportError
 from .naming import file_names, file_part, short_hash  # noqa: F401  (re-exported: old import path)
 
@@ -169,8 +170,6 @@ def _same(a: str, b: str) -> bool:
 
 
 def _software() -> str:
-    from . import SOFTWARE_NAME
-
     return SOFTWARE_NAME
 
 

@@ -17,6 +17,10 @@ from PySide6.QtCore import QEventLoop, QTimer
 from PySide6.QtWidgets import QApplication
 
 from core import RESEARCH_USE_NOTE, SOFTWARE_NAME
+from core.errors import ExportError
+from core.write_guard import check_target
+from desktop import style
+from desktop.main_window import MainWindow
 from desktop.messages import error_text, icon, show_error
 
 def _excepthook(exc_type, exc, tb) -> None:
@@ -37,8 +41,6 @@ def install_excepthook() -> None:
 
 def make_app(argv: list[str] | None = None) -> QApplication:
     """The QApplication with our name, icon and look (created once)."""
-    from desktop import style
-
     app = QApplication.instance()
     if app is None:
         app = QApplication(list(argv or [sys.argv[0] if sys.argv else "boscage"]))
@@ -53,7 +55,6 @@ def make_app(argv: list[str] | None = None) -> QApplication:
 def run_gui(paths: list[str]) -> int:
     """Open the main window with ``paths`` and run the event loop."""
     app = make_app()
-    from desktop.main_window import MainWindow
 
     win = MainWindow()
     win.show()
@@ -73,7 +74,6 @@ def run_screenshot(out_path: str, paths: list[str], size=(1400, 900), timeout_s:
     if not os.environ.get("DISPLAY") and not os.environ.get("WAYLAND_DISPLAY"):
         os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
     app = make_app()
-    from desktop.main_window import MainWindow
 
     win = MainWindow(interactive=False)
     win.resize(*size)
@@ -108,8 +108,6 @@ def run_screenshot(out_path: str, paths: list[str], size=(1400, 900), timeout_s:
         pause.exec()
     app.processEvents()
     pixmap = win.grab()
-    from core.errors import ExportError
-    from core.write_guard import check_target
 
     try:  # the one write guard: never over an input or an acquisition
         check_target(out_path, overwrite=True)

@@ -18,6 +18,8 @@ import math
 import numpy as np
 import pyqtgraph as pg
 
+from core.transforms import make_transform
+
 SUPERSCRIPT = str.maketrans("0123456789-", "⁰¹²³⁴⁵⁶⁷⁸⁹⁻")
 
 
@@ -51,8 +53,6 @@ def axis_ticks(spec: dict | None, lo: float, hi: float, target: int = 5, min_gap
     Returns (major, minor): major is [(position, label)], minor [position];
     positions in transformed units, labels in original units; labelled ticks
     are at least ``min_gap`` of the range apart (0 first, then the largest)."""
-    from core.transforms import make_transform
-
     if not (np.isfinite(lo) and np.isfinite(hi)) or hi <= lo:
         return [], []
     kind = None if spec is None else spec.get("kind")

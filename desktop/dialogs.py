@@ -15,8 +15,8 @@ from PySide6.QtWidgets import (QComboBox, QDialog, QDialogButtonBox, QFileDialog
                                QMessageBox, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget, QCheckBox)
 
 from core import RESEARCH_USE_NOTE
-from core.batch import output_folder_names
-from core.errors import ExportError
+from core.batch import output_folder_names, run_batch
+from core.errors import ExportError, RecipeError
 from core.files import list_fcs_files
 from core.naming import events_file_name, file_part
 
@@ -49,6 +49,9 @@ def default_folder(settings) -> str:
 
 from desktop.messages import guarded, show_error
 from desktop.workers import Job
+from core.export import export_events_csv, export_events_fcs
+from core.recipe import recipe_digest
+from core.contrast import contrast_keywords
 
 
 def _path_row(parent: QWidget, edit: QLineEdit, choose) -> QWidget:
@@ -146,9 +149,6 @@ class ExportDialog(QDialog):
 
     @guarded("export")
     def export(self) -> None:
-        from core.export import export_events_csv, export_events_fcs
-        from core.recipe import recipe_digest
-
         path = self.path.text().strip()
         if not path:
             raise ExportError("choose a file to write")
@@ -170,7 +170,6 @@ class ExportDialog(QDialog):
             a = t.analysis
             kw = None
             if a is not None and getattr(a, "contrast", None) is not None:  # name the control and the rate
-                from core.contrast import contrast_keywords
 
                 kw = contrast_keywords(a.contrast, t.control_path or a.info.get("control"))
             self.written = export_events_fcs(path, t.event_file, mask, extra, digest, overwrite=overwrite,
@@ -302,9 +301,6 @@ class BatchDialog(QDialog):
 
     @guarded("batch")
     def run(self) -> None:
-        from core.batch import run_batch
-        from core.errors import RecipeError
-
         src, out = self.input.text().strip(), self.output.text().strip()
         if not src or not out:
             raise RecipeError("choose the folder of FCS files and an output folder")

@@ -12,6 +12,9 @@ import os
 from PySide6.QtCore import QObject, QStandardPaths
 from PySide6.QtWidgets import QFileDialog
 
+from core.compensation import read_spillover_csv
+from core.recipe import save_recipe
+from desktop.dialogs import BatchDialog, ExportDialog, PairsDialog
 from desktop.messages import guarded
 
 
@@ -78,8 +81,6 @@ class EditsController(QObject):
 
     @guarded("load spillover CSV")
     def load_spillover_csv(self) -> None:
-        from core.compensation import read_spillover_csv
-
         path, _ = QFileDialog.getOpenFileName(self.win, "Spillover matrix (CSV)",
                                               self.win.settings.value("folders/open", ""),
                                               "CSV files (*.csv *.txt);;All files (*)")
@@ -89,8 +90,6 @@ class EditsController(QObject):
     # -- pairs ---------------------------------------------------------------------
     @guarded("plot pairs")
     def choose_pairs(self) -> None:
-        from desktop.dialogs import PairsDialog
-
         tube = self.session.require()
         dlg = PairsDialog(self.win, tube)
         if dlg.exec():
@@ -107,8 +106,6 @@ class EditsController(QObject):
     # -- recipes -------------------------------------------------------------------
     @guarded("save recipe")
     def save_recipe(self, path: str | None = None) -> str | None:
-        from core.recipe import save_recipe
-
         tube = self.session.require()
         if path is None:
             start = os.path.join(self.win.settings.value("folders/recipe", os.path.expanduser("~")),
@@ -138,15 +135,11 @@ class EditsController(QObject):
     # -- export and batch --------------------------------------------------------------
     @guarded("export")
     def export(self) -> None:
-        from desktop.dialogs import ExportDialog
-
         tube = self.session.require()
         ExportDialog(self.win, tube, self.win.selections.selected_names(), self.win.settings).exec()
 
     @guarded("batch")
     def batch(self) -> None:
-        from desktop.dialogs import BatchDialog
-
         tube = self.session.current
         recipe = self.win.fitting.recipe_for_fit(tube) if tube is not None else None
         BatchDialog(self.win, recipe, folder=os.path.dirname(tube.path) if tube is not None else "",

@@ -13,6 +13,10 @@ import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
 import numpy as np
 from PySide6.QtCore import QObject, Signal
 
+from core.analysis import analyse
+from core.contours import pair_density
+from core.progress import keep_going
+from core.recipe import Engine, validate_recipe
 from desktop.messages import error_text, show_error
 from desktop.panels.fit import PANEL_KEYS
 from desktop.plot_items import contour_lines
@@ -46,9 +50,6 @@ def compute_contours(analysis, pairs, extents, progress=None) -> list:
     Each pair gets a small 2-D additive tree density fitted by
     :func:`core.contours.pair_density` to at most ``CONTOUR_EVENTS`` kept
     events (fixed seed).  Returns [((ix, iy), lines)]."""
-    from core.contours import pair_density
-    from core.progress import keep_going
-
     kept = np.flatnonzero(analysis.reason == "")
     if kept.size > CONTOUR_EVENTS:
         kept = np.sort(np.random.default_rng(0).choice(kept, CONTOUR_EVENTS, replace=False))
@@ -84,8 +85,6 @@ class FitController(QObject):
     def recipe_for_fit(self, tube):
         """The tube's recipe with its regions, the Fit panel's engine settings and the Contrast panel's
         false discovery rate and minimum fold."""
-        from core.recipe import Engine
-
         recipe = tube.recipe_with_regions()
         engine = {k: v for k, v in recipe.engine.items() if k not in PANEL_KEYS}
         engine.update(self.win.fit_panel.engine_settings())
@@ -94,8 +93,6 @@ class FitController(QObject):
         return recipe
 
     def start_fit(self, control: str | None = None) -> bool:
-        from core.recipe import validate_recipe
-
         tube = self.win.session.require()
         if self.running():
             self.win.statusBar().showMessage("A fit is already running: wait for it or press Stop", 4000)
@@ -105,8 +102,6 @@ class FitController(QObject):
         ef = tube.event_file
 
         def work(progress):
-            from core.analysis import analyse
-
             return analyse(ef, recipe, progress=progress, control=control)
 
         self._start("contrast" if control else "fit", work,

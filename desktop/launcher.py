@@ -14,10 +14,10 @@ from __future__ import annotations
 import argparse
 import sys
 
+from core import RESEARCH_USE_NOTE, __version__
+
 
 def _parse(argv: list[str]) -> argparse.Namespace:
-    from core import RESEARCH_USE_NOTE, __version__
-
     parser = argparse.ArgumentParser(
         prog="boscage",
         description="Look at flow cytometry events through an additive tree density. "
@@ -46,6 +46,7 @@ def main(argv: list[str] | None = None) -> int:
         return int(result or 0)
 
     args = _parse(argv)
+    # imported here: desktop.app loads Qt, which the batch path must not import
     from desktop.app import run_gui, run_screenshot
 
     if args.screenshot:

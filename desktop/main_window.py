@@ -23,9 +23,9 @@ from PySide6.QtWidgets import (QDockWidget, QFileDialog, QLabel, QMainWindow, QM
 
 from core import RESEARCH_USE_NOTE, SOFTWARE_NAME, __version__
 from core.errors import BoscageError
+from core.files import FCS_SUFFIXES
 from core.recipe import RareRule
 from core.session import Session
-
 from desktop.actions import build_actions
 from desktop.edits import EditsController
 from desktop.fitting import FitController, fit_text
@@ -196,8 +196,6 @@ class MainWindow(QMainWindow):
 
     @guarded("open")
     def open_dialog(self) -> None:
-        from core.files import FCS_SUFFIXES
-
         start = self.settings.value("folders/open", os.path.expanduser("~"))
         pattern = " ".join(f"*{s} *{s.upper()}" for s in FCS_SUFFIXES)
         paths, _ = QFileDialog.getOpenFileNames(self, "Open tubes", start, f"FCS files ({pattern});;All files (*)")

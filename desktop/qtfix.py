@@ -26,6 +26,7 @@ applied = False
 
 def leaks() -> bool:
     """True when Qt calls and signal emits steal references to None / True."""
+    # imported here: Qt is probed only on CPython < 3.12
     from PySide6.QtCore import QObject, Signal
 
     class _Probe(QObject):

@@ -7,6 +7,10 @@ and rare events are drawn in a coral that viridis never uses.
 
 from __future__ import annotations
 
+import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
+
+import pyqtgraph as pg
+
 #: Window colours (hex RGB).
 PAPER = "#f4f1ea"
 PAPER_DARK = "#e6e1d5"
@@ -60,8 +64,6 @@ QSlider::handle:horizontal {{ background: {MOSS}; width: 14px; margin: -5px 0; b
 
 def apply(app) -> None:
     """Apply the Boscage palette to a QApplication and pyqtgraph defaults."""
-    import pyqtgraph as pg
-
     # once per application: setting them again re-polishes every live widget (seconds when many)
     if app.property("boscage_style") != STYLESHEET:
         app.setStyle("Fusion")

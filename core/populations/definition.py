@@ -8,6 +8,7 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
+from ..density.gaussian_base import GaussianMixtureBase
 from ..errors import EventDataError, RecipeError
 from .settings import _CHUNK, DEFINITION_VERSION
 
@@ -85,8 +86,6 @@ class PopulationDefinition:
     def mixture_model(self):
         """The stored mixture as a :class:`~core.density.gaussian_base.GaussianMixtureBase` (cached)."""
         if self._mix is None:
-            from ..density.gaussian_base import GaussianMixtureBase
-
             m = self.mixture
             self._mix = GaussianMixtureBase(
                 np.asarray(m["weights"], float), np.asarray(m["means"], float),

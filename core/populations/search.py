@@ -6,7 +6,8 @@ import math
 
 import numpy as np
 
-from ..errors import EventDataError
+from ..density.gaussian_base import GaussianMixtureBase
+from ..errors import Cancelled, EventDataError
 from ..progress import keep_going
 from .definition import PopulationDefinition, _mixture_dict, assign_populations, component_posteriors
 from .modes import _hill_climb, _merge, _node_of_events, _saddles, _same_place, _spread_starts
@@ -16,8 +17,6 @@ from .table import Populations, population_table
 
 def _mixture_for(model, X: np.ndarray, seed: int):
     """The model's mixture base and the columns it covers; fitted here when the model has none."""
-    from ..density.gaussian_base import GaussianMixtureBase
-
     mix = getattr(model, "_gmm", None)
     frozen = np.asarray(getattr(model, "_frozen", np.zeros(X.shape[1], bool)), bool)
     cols = np.flatnonzero(~frozen)
@@ -45,8 +44,6 @@ def find_populations(model, values, channel_names, channel_labels=None, transfor
     info)`` is called between stages (False stops: :class:`core.errors.Cancelled`).
     Deterministic for ``settings['random_state']``.
     """
-    from ..errors import Cancelled
-
     st = check_settings(settings)
     X = np.ascontiguousarray(values, dtype=np.float64)
     if X.ndim != 2 or X.shape[1] != len(channel_names):

@@ -7,6 +7,7 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
+from ..transforms import Transform, make_transform
 from .definition import PopulationDefinition, assign_populations
 from .profiles import channel_splits, marker_level, population_stats, profile_text
 from .settings import check_settings
@@ -35,6 +36,7 @@ class Populations:
 
 
 def _share_ci(count: int, n: int) -> tuple[float, float]:
+    # imported here: scipy.stats adds ~1.3 s to importing core
     from scipy import stats
 
     if n <= 0:
@@ -49,8 +51,6 @@ def population_table(values: np.ndarray, labels: np.ndarray, definition: Populat
                      splits: list | None = None) -> list:
     """One record per population of ``definition`` counted on ``values``/``labels``
     (see the module docstring for the fields), rare populations first."""
-    from ..transforms import Transform, make_transform
-
     st = check_settings(settings)
     X = np.asarray(values, dtype=np.float64)
     n = X.shape[0]

@@ -5,10 +5,15 @@ from __future__ import annotations
 import os
 from typing import Any
 
+import numpy as np
+
 from ..channel_kinds import FLUORESCENCE, SCATTER, channel_kind, one_measure_per_detector
+from ..compensation import compensate, spillover_from_keywords
 from ..errors import CompensationError, RecipeError
-from .model import Recipe
+from ..prepare import pile_masks
+from ..transforms import default_transform_spec
 from .keyed import Engine
+from .model import Recipe
 from .records import Compensation
 
 #: default_recipe leaves out a channel whose floor or ceiling pile holds more than this share.
@@ -31,11 +36,6 @@ def default_recipe(event_file: Any) -> Recipe:
       channel, from its kind, the (compensated, when compensating) values and $PnR.
     * cleaning, rare rule: the defaults; engine: ``{"random_state": 0}``; no regions.
     """
-    import numpy as np
-
-    from ..compensation import compensate, spillover_from_keywords
-    from ..transforms import default_transform_spec
-
     path = str(getattr(event_file, "path", "") or "")
     fname = os.path.basename(path) or "the event file"
     names = [str(c) for c in event_file.channel_names]
@@ -49,7 +49,6 @@ def default_recipe(event_file: Any) -> Recipe:
                           f"its channels are: {', '.join(names)}")
 
     notes = [f"Default recipe made from {fname}."]
-    from ..prepare import pile_masks
 
     raw = np.asarray(event_file.data)   # float32 files stay float32: pile_masks converts one column
     piled = {}

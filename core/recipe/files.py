@@ -11,6 +11,7 @@ from typing import Any, Mapping
 from .. import SOFTWARE_NAME, __version__
 from .. import safe_json
 from ..atomic import atomic_write
+from ..compensation import match_detectors, spillover_from_keywords
 from ..errors import CompensationError, RecipeError
 from .model import Recipe, where as _where
 
@@ -50,7 +51,6 @@ def validate_recipe(recipe: Recipe | Mapping[str, Any], event_file: Any = None) 
 
     comp = checked.compensation.source
     if comp == "file":
-        from ..compensation import match_detectors, spillover_from_keywords
         try:
             S = spillover_from_keywords(dict(event_file.keywords), source=fname)
             if S is None:

@@ -12,11 +12,13 @@ Only what the recipe gives is kept, so the stored form is unchanged.
 
 from __future__ import annotations
 
+import copy
 import math
 from typing import Any, Iterator, Mapping
 
 from ..errors import BoscageError, RecipeError
-from ..transforms import TRANSFORM_KINDS
+from ..populations import PopulationDefinition, check_settings
+from ..transforms import TRANSFORM_KINDS, make_transform
 from .records import NOWHERE, _Bad, build, typename
 
 
@@ -62,7 +64,6 @@ class TransformSpec(dict):
         if kind not in TRANSFORM_KINDS:
             raise _Bad(f"the transform of channel {channel!r} has unknown kind {kind!r}; "
                        f"use one of {', '.join(TRANSFORM_KINDS)}")
-        from ..transforms import make_transform
 
         try:
             make_transform(dict(spec))
@@ -181,8 +182,6 @@ class Populations(_ReadOnlyMapping):
     populations."""
 
     def __init__(self, entry: Mapping | None = None):
-        from ..populations import PopulationDefinition, check_settings
-
         entry = {} if entry is None else entry
         if not isinstance(entry, Mapping):
             raise _Bad(f"'populations' must be an object like {{\"rare_share\": 0.01}}; got {typename(entry)}")
@@ -211,8 +210,6 @@ class Populations(_ReadOnlyMapping):
         return Populations({**self.settings, **({} if definition is None else {"definition": definition})})
 
     def to_dict(self) -> dict:
-        import copy
-
         return copy.deepcopy(self._data)
 
     @classmethod

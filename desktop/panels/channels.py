@@ -12,13 +12,13 @@ import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
 import numpy as np
 import pyqtgraph as pg
 from PySide6.QtCore import Qt, QTimer, Signal
+from PySide6.QtGui import QValidator
 from PySide6.QtWidgets import (QAbstractItemView, QComboBox, QDoubleSpinBox, QFormLayout, QHBoxLayout,
                                QHeaderView, QLabel, QPushButton, QTableWidget, QTableWidgetItem,
                                QVBoxLayout, QWidget)
 
+from core.transforms import DEFAULT_M, TRANSFORM_KINDS, logicle_auto_w, make_transform
 from desktop import style
-
-from core.transforms import TRANSFORM_KINDS
 
 
 def parameters(kind: str) -> list:
@@ -45,8 +45,6 @@ class NumberBox(QDoubleSpinBox):
             return self.value()
 
     def validate(self, text: str, pos: int):
-        from PySide6.QtGui import QValidator
-
         t = text.strip()
         try:
             v = float(t)
@@ -236,7 +234,6 @@ class ChannelsPanel(QWidget):
             if p.key == "T":   # the top of scale defaults to the channel's range ($PnR)
                 spec["T"] = float(self._range_of(row) or 262144.0)
             elif p.key == "W":  # logicle's linear width from the channel's negative values
-                from core.transforms import DEFAULT_M, logicle_auto_w
 
                 values = self._values(name) if self._values is not None else None
                 spec["W"] = logicle_auto_w(values, spec["T"], DEFAULT_M) if values is not None else 0.0
@@ -278,7 +275,6 @@ class ChannelsPanel(QWidget):
         name = self.current_channel()
         if name is None or self._values is None:
             return
-        from core.transforms import make_transform
 
         raw = np.asarray(self._values(name), dtype=np.float64)
         spec = self._specs.get(name)
@@ -304,7 +300,6 @@ def describe(spec: dict | None) -> str:
     """Short text of a transform spec, e.g. ``arcsinh (cofactor 150)`` (core's label)."""
     if not spec:
         return "linear"
-    from core.transforms import make_transform
 
     try:
         return make_transform(spec).label

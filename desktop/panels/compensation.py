@@ -18,8 +18,8 @@ from PySide6.QtGui import QColor
 from PySide6.QtWidgets import (QAbstractItemView, QComboBox, QHBoxLayout, QHeaderView, QLabel, QPushButton,
                                QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget)
 
-from core.compensation import read_spillover_csv, spillover_from_keywords
-from core.errors import BoscageError
+from core.compensation import SpilloverMatrix, read_spillover_csv, spillover_from_keywords
+from core.errors import BoscageError, CompensationError
 
 SOURCES = [("none", "No compensation"), ("file", "The file's spillover keyword"), ("csv", "A CSV file")]
 
@@ -120,9 +120,6 @@ class CompensationPanel(QWidget):
 
     def matrix(self):
         """The SpilloverMatrix in the table (CompensationError if a value is not a number)."""
-        from core.compensation import SpilloverMatrix
-        from core.errors import CompensationError
-
         k = len(self._detectors)
         m = np.zeros((k, k))
         for i in range(k):

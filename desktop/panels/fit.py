@@ -19,6 +19,7 @@ from PySide6.QtCore import Qt, Signal
 from PySide6.QtWidgets import (QComboBox, QDoubleSpinBox, QFormLayout, QHBoxLayout, QLabel, QProgressBar,
                                QPushButton, QSpinBox, QToolButton, QVBoxLayout, QWidget)
 
+from core.density import AdditiveTreeDensity, kernels
 from desktop import style
 
 #: Engine keywords this panel owns (the rest of a recipe's engine is kept as is).
@@ -35,16 +36,12 @@ STAGE_SPANS = {"mixture": (0, 30), "skew": (30, 45), "trees": (45, 100)}
 
 def engine_defaults() -> dict:
     """The engine's own default keyword arguments (core.density), so the panel starts there."""
-    from core.density import AdditiveTreeDensity
-
     return AdditiveTreeDensity().get_params()
 
 
 def engine_limits() -> dict:
     """Ranges the engine accepts (its parameter checks): learning rate in the
     open interval (0, 1), depth 1 .. half the compiled path length."""
-    from core.density import kernels
-
     return {"learning_rate": (0.01, 0.99), "max_depth": (1, int(kernels.MAX_PATH) // 2),
             "n_trees": (0, 5000), "max_fit_events": (1000, 10_000_000)}
 

@@ -22,6 +22,7 @@ from PySide6.QtGui import QColor
 from PySide6.QtWidgets import (QAbstractItemView, QHBoxLayout, QHeaderView, QLabel, QPushButton,
                                QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget)
 
+from core.populations import check_settings
 from desktop import style
 
 #: Rows of rare populations get this background (a pale tint of the rare colour).
@@ -196,8 +197,6 @@ class PopulationsPanel(QWidget):
 
 
 def _rare_share(populations) -> float:
-    from core.populations import check_settings
-
     return float(check_settings(populations.info.get("settings")).get("rare_share"))
 
 
