@@ -4,7 +4,6 @@ tested without importing Qt."""
 from __future__ import annotations
 
 import os
-import sys
 
 import numpy as np
 import pytest
@@ -20,14 +19,6 @@ def make_fcs(path, n=800, seed=0):
                             rng.lognormal(6, 0.6, n), rng.lognormal(7, 0.5, n)])
     write_fcs(path, data, CHANNELS, channel_labels=["", "", "CD3", "CD4"], channel_ranges=[262144] * 4)
     return str(path)
-
-
-def test_session_does_not_import_qt():
-    import subprocess
-
-    code = "import sys, core.session, core.files\nprint(any(m.startswith('PySide6') for m in sys.modules))"
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
-    assert out.stdout.strip() == "False"
 
 
 def test_fcs_file_rule_is_shared_by_batch(tmp_path):
