@@ -8,6 +8,7 @@ from typing import Iterable, Mapping, Sequence
 
 import numpy as np
 
+from . import __version__
 from .atomic import atomic_write
 from .errors import ChannelError, EventDataError, ExportError
 from .fcs_text import _PARAM_KEY, HEADER_LENGTH, MAX_HEADER_OFFSET
@@ -182,7 +183,6 @@ def write_fcs(path: str | os.PathLike, data, channel_names: Sequence[str],
     keywords = dict(keywords or {})
     if not any(str(k).strip().upper() == "BOSCAGE_VERSION" for k in keywords):
         # marks the file as written here: core.write_guard lets only such FCS files be replaced
-        from . import __version__
         keywords = {"BOSCAGE_VERSION": __version__, **keywords}
     # the mark first, so a reader of the first bytes finds it whatever follows
     for key, value in sorted(keywords.items(), key=lambda kv: str(kv[0]).strip().upper() != "BOSCAGE_VERSION"):

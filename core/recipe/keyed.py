@@ -116,6 +116,7 @@ def transforms_from_dict(d: Any, where: str = NOWHERE) -> dict:
 def _engine_parameters() -> tuple | None:
     """The additive tree density's parameter names (its one list), or None when the engine cannot be imported."""
     try:
+        # imported here: a recipe must load even when the density engine cannot be imported
         from ..density import AdditiveTreeDensity  # type: ignore[attr-defined]
     except ImportError:
         return None
