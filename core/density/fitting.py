@@ -16,7 +16,7 @@ from .boosting import Shares, fit_layers
 from .chain import Chain
 from .checks import ATOM_SHARE, largest_atom_share, nonfinite_error
 from .mixture_base import MIXTURE_BASES, MixtureBase
-from .mixture_fit import MixtureSettings
+from .mixture_fit import MixtureSettings, fit_mixture
 
 _LOGISTIC_IQR = 2.0 * math.log(3.0)
 
@@ -81,9 +81,9 @@ def fit_mixture_base(chain: Chain, base: str, X_tr, X_va, rng, progress, n_trees
     free = ~chain.constant
     settings = MixtureSettings(random_state=int(rng.integers(2 ** 31)), skew=base == "skewed",
                                flat_background=base == "skewed")
-    return MixtureBase.fit(X_tr[:, free], chain.loc[free], chain.scale[free], settings,
-                           validation=X_va[:, free],
-                           progress=lambda step, total, info: keep_going(progress, 0, n_trees, info))
+    return fit_mixture(X_tr[:, free], chain.loc[free], chain.scale[free], settings,
+                       validation=X_va[:, free],
+                       progress=lambda step, total, info: keep_going(progress, 0, n_trees, info))
 
 
 def fit_with_base(p, X, base: str, progress) -> FittedDensity:

@@ -16,12 +16,12 @@ __all__ = ["GaussianMixtureBase", "MixtureBase", "MixtureSettings", "fit_mixture
 
 
 class GaussianMixtureBase(MixtureBase):
-    """:class:`MixtureBase` whose :meth:`fit` also takes the settings as keywords
+    """:class:`MixtureBase` with a ``fit`` classmethod that takes the settings as keywords
     (the former signature), for callers written before :class:`MixtureSettings`."""
 
     @classmethod
     def fit(cls, X, loc, scale, settings=None, validation=None, progress=None, **keywords):
-        """As :meth:`MixtureBase.fit`; ``keywords`` are fields of :class:`MixtureSettings`."""
+        """As :func:`fit_mixture`; ``keywords`` are fields of :class:`MixtureSettings`."""
         if keywords:
             settings = MixtureSettings(**{**(settings.__dict__ if settings else {}), **keywords})
         return fit_mixture(X, loc, scale, settings, validation=validation, progress=progress, cls=cls)

@@ -267,15 +267,6 @@ class MixtureBase:
         kernels.gmm_inverse(U, X, self._components, self._bg, U_CLIP, _Z_MAX)
         return X
 
-    # ------------------------------------------------------------ fitting
-    @classmethod
-    def fit(cls, X, loc, scale, settings=None, validation=None, progress=None) -> "MixtureBase":
-        """Fit to events X (n, d) with the background logistic's ``loc``, ``scale`` (d,);
-        ``settings`` a :class:`core.density.mixture_fit.MixtureSettings` (None: defaults).
-        See :func:`core.density.mixture_fit.fit_mixture`."""
-        from .mixture_fit import fit_mixture  # the fitting modules import this one
-        return fit_mixture(X, loc, scale, settings, validation=validation, progress=progress, cls=cls)
-
 
 def background_logpdf(X, loc, scale, flat=None):
     """Log density (n,) of events X (n, d) under the background component alone:
