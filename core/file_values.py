@@ -23,7 +23,7 @@ import numpy as np
 from . import compensation
 from .errors import ChannelError, RecipeError
 from .fcs import read_fcs
-from .prepare_file import prepare_file_events, transformed_values
+from .prepare_file import check_transform_channels, prepare_file_events, transformed_values
 from .recipe import Recipe, as_recipe
 
 
@@ -77,10 +77,7 @@ def compensate_transform(event_file: Any, recipe: Recipe) -> CompensateTransform
     recipe = as_recipe(recipe)
     names = tuple(str(c) for c in event_file.channel_names)
     fname = os.path.basename(event_file.path)
-    missing = [ch for ch in recipe.transforms if ch not in names]
-    if missing:
-        raise ChannelError(f"{fname}: the recipe transforms channel {missing[0]!r} which the file lacks; "
-                           f"the file's channels are {', '.join(names)}")
+    check_transform_channels(names, recipe.transforms, fname)
     return CompensateTransform(names=names, spillover=_spillover(event_file, recipe),
                                transforms=dict(recipe.transforms), source=fname)
 

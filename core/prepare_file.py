@@ -28,6 +28,14 @@ def _forward(spec, col: np.ndarray) -> np.ndarray:
         return make_transform(spec).forward(col)
 
 
+def check_transform_channels(names: Sequence[str], transforms: Mapping, where: str) -> None:
+    """ChannelError naming the file when ``transforms`` has a spec for a channel not in ``names``."""
+    for ch, spec in transforms.items():
+        if spec is not None and ch not in names:
+            raise ChannelError(f"{where}: the recipe transforms channel {ch!r} which the file lacks; the "
+                               f"file's channels are {', '.join(names)}")
+
+
 def transformed_values(data, names: Sequence[str], S, transforms: Mapping, where: str) -> np.ndarray:
     """(n_events, n_channels) float64: ``data`` compensated by ``S`` (or None), then transformed.
 
@@ -40,10 +48,7 @@ def transformed_values(data, names: Sequence[str], S, transforms: Mapping, where
     names = list(names)
     if x.shape[1] != len(names):
         raise EventDataError(f"{where}: event values of shape {x.shape} do not match {len(names)} channels")
-    for ch, spec in transforms.items():
-        if spec is not None and ch not in names:
-            raise ChannelError(f"{where}: the recipe transforms channel {ch!r} which the file lacks; the "
-                               f"file's channels are {', '.join(names)}")
+    check_transform_channels(names, transforms, where)
     det = checked_detectors(names, S, where) if S is not None else []
     values = np.empty(x.shape)
     for start in range(0, x.shape[0] if det else 0, BLOCK_EVENTS):   # in blocks: no full-size temporaries
