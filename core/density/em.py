@@ -6,6 +6,7 @@ compiled kernel (:func:`core.density.kernels.em_stats`).  A mixture here is
 from __future__ import annotations
 
 import math
+from typing import NamedTuple
 
 import numpy as np
 
@@ -13,6 +14,20 @@ from . import kernels
 
 #: Smallest weight of the broad background component.
 MIN_BACKGROUND = 1e-4
+#: A count that must reach a held-out target is abandoned once its held-out
+#: value plus this many times its latest gain per EM step stays below the target
+#: (successive gains shrink by about a third a step, so what is left is about
+#: twice the latest: EXPERIMENTS.md sections 24 and 25).
+ABANDON_GAP = 3.0
+
+
+class HeldOut(NamedTuple):
+    """Held-out events followed during EM: X (m, d), their background log density
+    bg (m,), and ``target``, the mean log-likelihood (nats per event) the mixture
+    must reach for its count to be kept (-inf: always run to the end)."""
+    X: np.ndarray
+    bg: np.ndarray
+    target: float
 
 
 def nearest(X, C):
@@ -52,7 +67,7 @@ def split_components(w, mu, cov):
     return np.array(w2), np.array(mu2), np.array(cov2)
 
 
-def em_from_kmeans(X, bg, k, reg, rng, max_iter, tol, going=None):
+def em_from_kmeans(X, bg, k, reg, rng, max_iter, tol, going=None, heldout=None):
     """EM for background + k Gaussians from a k-means++ start; returns (mean
     log-lik, weights, means, covs).
 
@@ -83,25 +98,44 @@ def em_from_kmeans(X, bg, k, reg, rng, max_iter, tol, going=None):
         mu[c] = Xc.mean(axis=0) if Xc.shape[0] else C[c]
         D = Xc - mu[c]
         cov[c] = D.T @ D / max(1, Xc.shape[0]) + np.diag(reg)
-    return em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going)
+    return em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going, heldout)
 
 
-def em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going):
+def em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going, heldout=None):
     """EM from the mixture (w, mu, cov) until the mean log-likelihood rises by less
-    than tol; returns (mean log-lik, weights, means, covs).  Each iteration is one
-    compiled pass over the events (E step and the M step's weighted moments,
-    :func:`core.density.kernels.em_stats`), then the M step in numpy.
-    ``going()`` is asked after each iteration; False ends EM there."""
+    than tol; returns (mean log-lik, weights, means, covs, abandoned).  Each
+    iteration is one compiled pass over the events (E step and the M step's
+    weighted moments, :func:`core.density.kernels.em_stats`), then the M step in
+    numpy.  ``going()`` is asked after each iteration; False ends EM there.
+
+    With ``heldout`` (:class:`HeldOut`) the held-out mean log-likelihood of each
+    iterate is followed (E step only, :func:`core.density.kernels.em_loglik`),
+    and EM is abandoned (``abandoned`` True, the mixture unusable for the
+    count search) as soon as that value plus ``ABANDON_GAP`` times its latest
+    rise stays below ``heldout.target``: a count that will not be kept is not
+    run to convergence."""
     n = X.shape[0]
     prev = -np.inf
     ll = -np.inf
     X = np.ascontiguousarray(X)
     bg = np.ascontiguousarray(bg)
     hint = np.zeros(n, np.int64)
+    follow = heldout is not None and np.isfinite(heldout.target)
+    if follow:
+        hint_va = np.zeros(heldout.X.shape[0], np.int64)
+        prev_va = None
     for _ in range(max_iter):
         chol = np.ascontiguousarray(np.linalg.cholesky(cov))
         log_det = np.log(np.diagonal(chol, axis1=1, axis2=2)).sum(axis=1)
-        total, N, S, M = kernels.em_stats(X, bg, np.log(w), np.ascontiguousarray(mu), chol, log_det, hint=hint)
+        logw = np.log(w)
+        mu = np.ascontiguousarray(mu)
+        if follow:
+            va = kernels.em_loglik(heldout.X, heldout.bg, logw, mu, chol, log_det, hint=hint_va) \
+                / heldout.X.shape[0]
+            if prev_va is not None and va + ABANDON_GAP * max(va - prev_va, 0.0) < heldout.target:
+                return ll, w, mu, cov, True
+            prev_va = va
+        total, N, S, M = kernels.em_stats(X, bg, logw, mu, chol, log_det, hint=hint)
         ll = total / n
         # M step (moments were taken about the current means)
         Nk = N + 1e-12
@@ -116,7 +150,7 @@ def em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going):
         if ll - prev < tol or (going is not None and not going()):
             break
         prev = ll
-    return ll, w, mu, cov
+    return ll, w, mu, cov, False
 
 
 # ------------------------------------------------------------ skewed components

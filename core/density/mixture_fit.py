@@ -11,7 +11,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..progress import keep_going
-from .em import em_from_kmeans, em_iterations, split_components
+from .em import HeldOut, em_from_kmeans, em_iterations, split_components
 from .mixture_base import MixtureBase, background_logpdf
 from .skew_fit import SkewFit, initial_flat_background
 
@@ -157,6 +157,7 @@ def _search_count(cls, X, Xva, loc, scale, reg, s, rng, stop):
     components = s.components
     bgr = initial_flat_background(X) if s.flat_background else None
     bg = background_logpdf(X, loc, scale, bgr)
+    bg_va = background_logpdf(Xva, loc, scale, bgr)
     best, best_scores, runner_up = None, None, None
     prev_fit, prev_fresh = None, False
     for step, k in enumerate(components):
@@ -173,11 +174,12 @@ def _search_count(cls, X, Xva, loc, scale, reg, s, rng, stop):
         if prev_fit is not None and (prev_fresh or k >= SPLIT_SPLIT_FROM) \
                 and k == 2 * prev_fit[2].shape[0]:
             parent = split_components(prev_fit[1], prev_fit[2], prev_fit[3])
-        fit_k, fit_fresh = _fit_count(X, bg, k, parent, reg, rng, s, going, stop)
-        if stop.stopped and best is not None:
-            break
+        target = -np.inf if best is None else float(best_scores.mean()) + s.min_gain
+        fit_k, fit_fresh = _fit_count(X, bg, k, parent, reg, rng, s, going, stop, HeldOut(Xva, bg_va, target))
+        if fit_k[4] or (stop.stopped and best is not None):
+            break  # abandoned: it would not have reached the held-out gain it needs
         prev_fit, prev_fresh = fit_k, fit_fresh
-        _, w, mu, cov = fit_k
+        _, w, mu, cov, _ = fit_k
         model = cls(w, mu, cov, loc, scale, background=bgr)
         scores = model.logpdf(Xva)
         if best is not None and not clearly_better(scores, best_scores, s.min_gain, k >= SPLIT_SPLIT_FROM):
@@ -189,17 +191,22 @@ def _search_count(cls, X, Xva, loc, scale, reg, s, rng, stop):
     return best, best_scores, runner_up
 
 
-def _fit_count(X, bg, k, parent, reg, rng, s, going, stop):
+def _fit_count(X, bg, k, parent, reg, rng, s, going, stop, heldout=None):
     """EM for k components, ``n_init`` times (the first from ``parent``, the split
-    of the previous mixture, when given); returns (best fit, started fresh)."""
+    of the previous mixture, when given); returns (best fit, started fresh).  With
+    ``heldout`` (:class:`core.density.em.HeldOut`) an attempt that cannot reach
+    its target is abandoned (:func:`core.density.em.em_iterations`); the fit is
+    marked abandoned (its fifth entry) only when every attempt was."""
     fit_k, fit_fresh = None, False
     for attempt in range(max(1, int(s.n_init))):
         split_start = parent is not None and attempt == 0
         if split_start:
-            cand = em_iterations(X, bg, *parent, reg, s.max_iter, s.tol, going)
+            cand = em_iterations(X, bg, *parent, reg, s.max_iter, s.tol, going, heldout)
         else:
-            cand = em_from_kmeans(X, bg, k, reg, rng, s.max_iter, s.tol, going)
-        if fit_k is None or cand[0] > fit_k[0]:
+            cand = em_from_kmeans(X, bg, k, reg, rng, s.max_iter, s.tol, going, heldout)
+        if fit_k is not None and cand[4]:
+            continue
+        if fit_k is None or fit_k[4] or cand[0] > fit_k[0]:
             fit_k, fit_fresh = cand, not split_start
         if stop.stopped:
             break

@@ -226,14 +226,10 @@ class SkewFit:
         self.mu, self.cov, self.eps = self.mu.copy(), self.cov.copy(), self.eps.copy()
         if self.bgr is not None:
             self.bgr = flat_background_step(X, R[:, 0], self.bgr)
-        for k in range(self.n_components):
-            rk = R[:, k + 1]
-            sel = rk > 1e-3 * max(rk.max(), 1e-300)
-            n_k = float(rk[sel].sum())
-            if n_k < 2 * (d + 1):
-                continue  # too little weight to move this component's shape
-            self.mu[k], self.cov[k] = _component_shape((X[sel] - self.centre[k]) / self.scale[k], rk[sel],
-                                                       self.eps[k], self.reg_y[k])
+        # each component's events: responsibility above 1e-3 of its largest
+        thr = 1e-3 * np.maximum(R[:, 1:].max(axis=0), 1e-300)
+        kernels.component_shapes(X, R, thr, self.centre, self.scale, self.eps, self.reg_y, _SKEW_GRID,
+                                 _SKEW_MOVES, MAX_SKEW, _SKEW_JAC_BINS, self.mu, self.cov)
 
 
 def skew_em(X, gauss, reg, max_iter, tol, going, Xva=None):

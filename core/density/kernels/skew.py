@@ -7,7 +7,9 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit
+from numba import njit, prange
+
+from .common import parallel
 
 @njit(cache=True, error_model="numpy")
 def skew_residual_variance(CZ, b_t, b_r, j, ch, sh):
@@ -83,3 +85,136 @@ def skew_residual_variance(CZ, b_t, b_r, j, ch, sh):
         var[g] -= ch[g] * ch[g] * tt - 2.0 * ch[g] * sh[g] * tr + sh[g] * sh[g] * rr
     return var
 
+
+
+@njit(cache=True, error_model="numpy")
+def _one_shape(X, R, k, thr, centre, scale, eps, reg, grid, moves, max_skew, nb, mean_out, cov_out):
+    """:func:`component_shapes` for component k (its events: R[:, k + 1] > thr).
+    Returns False (nothing changed) when they weigh less than 2 (d + 1)."""
+    n, d = X.shape
+    d2 = 2 * d
+    n_k = 0.0
+    for i in range(n):
+        r = R[i, k + 1]
+        if r > thr:
+            n_k += r
+    if not n_k >= 2 * (d + 1):
+        return False
+    # weighted mean of z = [t, sqrt(1 + t^2)], then the weighted covariance about it
+    mz = np.zeros(d2)
+    z = np.empty(d2)
+    for i in range(n):
+        r = R[i, k + 1]
+        if r > thr:
+            wi = r / n_k
+            for j in range(d):
+                t = (X[i, j] - centre[j]) / scale[j]
+                mz[j] += wi * t
+                mz[d + j] += wi * math.sqrt(1.0 + t * t)
+    CZ = np.zeros((d2, d2))
+    HW = np.zeros((d, nb))
+    HU = np.zeros((d, nb))
+    for i in range(n):
+        r = R[i, k + 1]
+        if not r > thr:
+            continue
+        wi = r / n_k
+        for j in range(d):
+            t = (X[i, j] - centre[j]) / scale[j]
+            rt = math.sqrt(1.0 + t * t)
+            z[j] = t - mz[j]
+            z[d + j] = rt - mz[d + j]
+            u = t / rt
+            b = min(max(int((u + 1.0) * (0.5 * nb)), 0), nb - 1)
+            HW[j, b] += r
+            HU[j, b] += u * r
+        for a in range(d2):
+            wa = wi * z[a]
+            for c in range(a + 1):
+                CZ[a, c] += wa * z[c]
+    for a in range(d2):
+        for c in range(a):
+            CZ[c, a] = CZ[a, c]
+    bt = np.cosh(eps)
+    br = -np.sinh(eps)
+    ng = grid.shape[0] + moves.shape[0]
+    raw = np.empty(ng)
+    for j in range(d):
+        for g in range(grid.shape[0]):
+            raw[g] = min(max(grid[g], -max_skew), max_skew)
+        for g in range(moves.shape[0]):
+            raw[grid.shape[0] + g] = min(max(eps[j] + moves[g], -max_skew), max_skew)
+        cand = np.unique(raw)
+        ch = np.cosh(cand)
+        sh = np.sinh(cand)
+        var = skew_residual_variance(CZ, bt, br, j, ch, sh)
+        finite = True
+        for g in range(cand.shape[0]):
+            if not np.isfinite(var[g]):
+                finite = False
+        if not finite:
+            continue  # the other channels' covariance is singular here: keep this skew
+        best = -np.inf
+        gbest = 0
+        for g in range(cand.shape[0]):
+            jac = 0.0
+            for b in range(nb):
+                hw = HW[j, b]
+                if hw > 0:
+                    jac += hw * math.log(ch[g] - (HU[j, b] / hw) * sh[g])
+            score = -0.5 * n_k * math.log(max(var[g], 1e-300)) + jac
+            if score > best:
+                best = score
+                gbest = g
+        eps[j] = cand[gbest]
+        bt[j] = ch[gbest]
+        br[j] = -sh[gbest]
+    for a in range(d):
+        mean_out[a] = mz[a] * bt[a] + mz[d + a] * br[a]
+        for c in range(d):
+            cov_out[a, c] = (bt[a] * (bt[c] * CZ[a, c] + br[c] * CZ[a, d + c])
+                             + br[a] * (bt[c] * CZ[d + a, c] + br[c] * CZ[d + a, d + c]))
+    for a in range(d):
+        for c in range(a):
+            v = 0.5 * (cov_out[a, c] + cov_out[c, a])
+            cov_out[a, c] = v
+            cov_out[c, a] = v
+        cov_out[a, a] += reg[a]
+    return True
+
+
+@njit(cache=True, parallel=True, error_model="numpy")
+def _shapes_par(X, R, thr, centre, scale, eps, reg, grid, moves, max_skew, nb, mean, cov, moved):
+    for k in prange(centre.shape[0]):
+        moved[k] = _one_shape(X, R, k, thr[k], centre[k], scale[k], eps[k], reg[k], grid, moves, max_skew, nb,
+                              mean[k], cov[k])
+
+
+@njit(cache=True, error_model="numpy")
+def _shapes_seq(X, R, thr, centre, scale, eps, reg, grid, moves, max_skew, nb, mean, cov, moved):
+    for k in range(centre.shape[0]):
+        moved[k] = _one_shape(X, R, k, thr[k], centre[k], scale[k], eps[k], reg[k], grid, moves, max_skew, nb,
+                              mean[k], cov[k])
+
+
+def component_shapes(X, R, thr, centre, scale, eps, reg, grid, moves, max_skew, nb, mean, cov):
+    """One generalised-EM step of every skewed component's shape (compiled; one
+    component per thread, so the result does not depend on the thread count).
+
+    X (n, d) events; R (n, K + 1) responsibilities (background first); thr (K,)
+    each component's least responsibility counted; centre, scale (K, d) its
+    transform; eps (K, d) skews, updated in place; reg (K, d) diagonal floor in
+    transformed units; grid, moves: candidate skews (fixed, and moves from the
+    current value), clipped to +-max_skew; nb: histogram bins of t / sqrt(1 + t^2).
+    Writes each moved component's transformed mean into mean (K, d) and
+    covariance into cov (K, d, d); returns moved (K,) bool (False: too little
+    weight, left as it was).  See :func:`core.density.skew_fit._component_shape`
+    for the arithmetic (the same, summed event by event)."""
+    K, d = centre.shape
+    moved = np.zeros(K, np.bool_)
+    args = (X, R, thr, centre, scale, eps, reg, grid, moves, float(max_skew), int(nb), mean, cov, moved)
+    if K > 1 and parallel(X.shape[0], 4 * d * d):
+        _shapes_par(*args)
+    else:
+        _shapes_seq(*args)
+    return moved
