@@ -29,6 +29,12 @@ MAP_COST_RATIO = 4.0
 #: to roll back).  After the logistic base later layers keep their patience
 #: (slow starters may pay there; EXPERIMENTS.md section 22).
 EARLY_TREES = 3
+#: Before that, after a mixture base, a layer is abandoned as soon as its best
+#: held-out value plus this many times the latest tree's gain stays below the
+#: required gain (the same projection as the mixture stage's count search,
+#: :data:`core.density.em.ABANDON_GAP`: a first tree that loses on the held-out
+#: share ends a layer that must gain 0.04 nats; EXPERIMENTS.md section 25).
+TREE_ABANDON_GAP = 3.0
 
 
 @dataclass
@@ -171,11 +177,13 @@ def _fit_trees(p, shares, budget, allowed, look, start_ll, needed, mixture, rng,
     """Boost up to ``budget`` dependence trees on ``shares``; returns (forest cut back
     to its best prefix, trees kept, held-out value reached, and the shares at that
     prefix when trees were rolled back, else None: ``shares`` moved on in place).  Stops on patience, on a cancel (forest as fitted) or, after a mixture
-    base, once ``EARLY_TREES`` trees have not reached the layer's ``needed`` gain."""
+    base, once ``EARLY_TREES`` trees have not reached the layer's ``needed`` gain or
+    sooner when the latest tree's gain projects short of it (``TREE_ABANDON_GAP``)."""
     forest = Forest()
     stop = EarlyStopping(stage.curve[-1], p.patience, p.tol)
     scratch = np.zeros(shares.U_tr.shape[0])
     best_state = pre_state = None
+    prev_ll = stage.curve[-1]
     for k in range(1, budget + 1):
         tree = fit_tree(shares.U_tr, float(p.learning_rate), int(p.max_depth), int(p.n_bins), int(p.min_leaf),
                         allowed, float(p.alpha), rng if p.jitter else None, float(p.min_gain), look,
@@ -198,7 +206,10 @@ def _fit_trees(p, shares, budget, allowed, look, start_ll, needed, mixture, rng,
         if not keep_going(progress, done + k, int(p.n_trees), ll):
             stage.stopped_by = "cancelled"
             return forest, forest.n_trees, ll, None
-        if stop.exhausted(k) or (mixture and k >= EARLY_TREES and stop.best_ll - start_ll < needed):
+        short = stop.best_ll - start_ll < needed
+        hopeless = stop.best_ll + TREE_ABANDON_GAP * max(ll - prev_ll, 0.0) - start_ll < needed
+        prev_ll = ll
+        if stop.exhausted(k) or (mixture and short and (k >= EARLY_TREES or hopeless)):
             # no patience run for a layer whose first trees do not pay
             stage.stopped_by = "early stopping"
             break

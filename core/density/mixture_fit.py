@@ -24,6 +24,10 @@ SPLIT_SPLIT_FROM = 64
 #: From ``SPLIT_SPLIT_FROM`` components on, a larger count must beat the
 #: smaller by this many standard errors of the paired held-out difference.
 COUNT_SE = 2.0
+#: Held-out events followed during each count's EM (evenly spread over the
+#: held-out subsample): a count is abandoned once it projects short of the best
+#: count's value on the same events plus ``min_gain`` (:func:`core.density.em.em_iterations`).
+FOLLOW_EVENTS = 4096
 
 
 @dataclass(frozen=True)
@@ -157,7 +161,9 @@ def _search_count(cls, X, Xva, loc, scale, reg, s, rng, stop):
     components = s.components
     bgr = initial_flat_background(X) if s.flat_background else None
     bg = background_logpdf(X, loc, scale, bgr)
-    bg_va = background_logpdf(Xva, loc, scale, bgr)
+    # the held-out events an EM run follows (every other count's target is taken on the same ones)
+    follow = np.linspace(0, Xva.shape[0] - 1, min(Xva.shape[0], FOLLOW_EVENTS)).astype(np.int64)
+    bg_va = background_logpdf(Xva[follow], loc, scale, bgr)
     best, best_scores, runner_up = None, None, None
     prev_fit, prev_fresh = None, False
     for step, k in enumerate(components):
@@ -174,8 +180,9 @@ def _search_count(cls, X, Xva, loc, scale, reg, s, rng, stop):
         if prev_fit is not None and (prev_fresh or k >= SPLIT_SPLIT_FROM) \
                 and k == 2 * prev_fit[2].shape[0]:
             parent = split_components(prev_fit[1], prev_fit[2], prev_fit[3])
-        target = -np.inf if best is None else float(best_scores.mean()) + s.min_gain
-        fit_k, fit_fresh = _fit_count(X, bg, k, parent, reg, rng, s, going, stop, HeldOut(Xva, bg_va, target))
+        target = -np.inf if best is None else float(best_scores[follow].mean()) + s.min_gain
+        fit_k, fit_fresh = _fit_count(X, bg, k, parent, reg, rng, s, going, stop,
+                                      HeldOut(np.ascontiguousarray(Xva[follow]), bg_va, target))
         if fit_k[4] or (stop.stopped and best is not None):
             break  # abandoned: it would not have reached the held-out gain it needs
         prev_fit, prev_fresh = fit_k, fit_fresh
