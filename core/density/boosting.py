@@ -176,9 +176,9 @@ def fit_layers(p, chain: Chain, base: str, shares: Shares, rng, progress) -> Tre
 def _fit_trees(p, shares, budget, allowed, look, start_ll, needed, mixture, rng, progress, done, stage):
     """Boost up to ``budget`` dependence trees on ``shares``; returns (forest cut back
     to its best prefix, trees kept, held-out value reached, and the shares at that
-    prefix when trees were rolled back, else None: ``shares`` moved on in place).  Stops on patience, on a cancel (forest as fitted) or, after a mixture
-    base, once ``EARLY_TREES`` trees have not reached the layer's ``needed`` gain or
-    sooner when the latest tree's gain projects short of it (``TREE_ABANDON_GAP``)."""
+    prefix when trees were rolled back, else None: ``shares`` moved on in place).
+    Stops on patience, on a cancel (forest as fitted) or, after a mixture base,
+    once ``EARLY_TREES`` trees have not reached the layer's ``needed`` gain or sooner when the latest tree's gain projects short of it (``TREE_ABANDON_GAP``)."""
     forest = Forest()
     stop = EarlyStopping(stage.curve[-1], p.patience, p.tol)
     scratch = np.zeros(shares.U_tr.shape[0])

@@ -88,36 +88,37 @@ def skew_residual_variance(CZ, b_t, b_r, j, ch, sh):
 
 
 @njit(cache=True, error_model="numpy")
-def _one_shape(X, R, k, thr, centre, scale, eps, reg, grid, moves, max_skew, nb, mean_out, cov_out):
-    """:func:`component_shapes` for component k (its events: R[:, k + 1] > thr).
+def _one_shape(X, rk, thr, centre, scale, eps, reg, grid, moves, max_skew, nb, mean_out, cov_out):
+    """:func:`component_shapes` for one component (its events: rk (n,) > thr).
     Returns False (nothing changed) when they weigh less than 2 (d + 1)."""
     n, d = X.shape
     d2 = 2 * d
     n_k = 0.0
+    rows = np.empty(n, np.int64)
+    n_sel = 0
     for i in range(n):
-        r = R[i, k + 1]
-        if r > thr:
-            n_k += r
+        if rk[i] > thr:
+            n_k += rk[i]
+            rows[n_sel] = i
+            n_sel += 1
     if not n_k >= 2 * (d + 1):
         return False
     # weighted mean of z = [t, sqrt(1 + t^2)], then the weighted covariance about it
     mz = np.zeros(d2)
     z = np.empty(d2)
-    for i in range(n):
-        r = R[i, k + 1]
-        if r > thr:
-            wi = r / n_k
-            for j in range(d):
-                t = (X[i, j] - centre[j]) / scale[j]
-                mz[j] += wi * t
-                mz[d + j] += wi * math.sqrt(1.0 + t * t)
+    for s in range(n_sel):
+        i = rows[s]
+        wi = rk[i] / n_k
+        for j in range(d):
+            t = (X[i, j] - centre[j]) / scale[j]
+            mz[j] += wi * t
+            mz[d + j] += wi * math.sqrt(1.0 + t * t)
     CZ = np.zeros((d2, d2))
     HW = np.zeros((d, nb))
     HU = np.zeros((d, nb))
-    for i in range(n):
-        r = R[i, k + 1]
-        if not r > thr:
-            continue
+    for s in range(n_sel):
+        i = rows[s]
+        r = rk[i]
         wi = r / n_k
         for j in range(d):
             t = (X[i, j] - centre[j]) / scale[j]
@@ -184,16 +185,16 @@ def _one_shape(X, R, k, thr, centre, scale, eps, reg, grid, moves, max_skew, nb,
 
 
 @njit(cache=True, parallel=True, error_model="numpy")
-def _shapes_par(X, R, thr, centre, scale, eps, reg, grid, moves, max_skew, nb, mean, cov, moved):
+def _shapes_par(X, RT, thr, centre, scale, eps, reg, grid, moves, max_skew, nb, mean, cov, moved):
     for k in prange(centre.shape[0]):
-        moved[k] = _one_shape(X, R, k, thr[k], centre[k], scale[k], eps[k], reg[k], grid, moves, max_skew, nb,
+        moved[k] = _one_shape(X, RT[k + 1], thr[k], centre[k], scale[k], eps[k], reg[k], grid, moves, max_skew, nb,
                               mean[k], cov[k])
 
 
 @njit(cache=True, error_model="numpy")
-def _shapes_seq(X, R, thr, centre, scale, eps, reg, grid, moves, max_skew, nb, mean, cov, moved):
+def _shapes_seq(X, RT, thr, centre, scale, eps, reg, grid, moves, max_skew, nb, mean, cov, moved):
     for k in range(centre.shape[0]):
-        moved[k] = _one_shape(X, R, k, thr[k], centre[k], scale[k], eps[k], reg[k], grid, moves, max_skew, nb,
+        moved[k] = _one_shape(X, RT[k + 1], thr[k], centre[k], scale[k], eps[k], reg[k], grid, moves, max_skew, nb,
                               mean[k], cov[k])
 
 
@@ -212,7 +213,8 @@ def component_shapes(X, R, thr, centre, scale, eps, reg, grid, moves, max_skew, 
     for the arithmetic (the same, summed event by event)."""
     K, d = centre.shape
     moved = np.zeros(K, np.bool_)
-    args = (X, R, thr, centre, scale, eps, reg, grid, moves, float(max_skew), int(nb), mean, cov, moved)
+    RT = np.ascontiguousarray(R.T)  # each component's responsibilities contiguous
+    args = (X, RT, thr, centre, scale, eps, reg, grid, moves, float(max_skew), int(nb), mean, cov, moved)
     if K > 1 and parallel(X.shape[0], 4 * d * d):
         _shapes_par(*args)
     else:
