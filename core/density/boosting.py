@@ -178,7 +178,8 @@ def _fit_trees(p, shares, budget, allowed, look, start_ll, needed, mixture, rng,
     to its best prefix, trees kept, held-out value reached, and the shares at that
     prefix when trees were rolled back, else None: ``shares`` moved on in place).
     Stops on patience, on a cancel (forest as fitted) or, after a mixture base,
-    once ``EARLY_TREES`` trees have not reached the layer's ``needed`` gain or sooner when the latest tree's gain projects short of it (``TREE_ABANDON_GAP``)."""
+    once ``EARLY_TREES`` trees have not reached the layer's ``needed`` gain, or sooner
+    when the latest tree's gain projects short of it (``TREE_ABANDON_GAP``)."""
     forest = Forest()
     stop = EarlyStopping(stage.curve[-1], p.patience, p.tol)
     scratch = np.zeros(shares.U_tr.shape[0])
