@@ -11,7 +11,9 @@ import pytest
 from scipy import special, stats
 
 from core.density import AdditiveTreeDensity, kernels
+from core.density import em as em_module
 from core.density import model as model_module
+from core.density.kernels import em as em_kernels
 from core.density.gaussian_base import GaussianMixtureBase
 
 
@@ -40,7 +42,10 @@ def _draw(n, params, seed):
     return X
 
 
-def test_pruned_e_step_matches_scipy_responsibilities():
+@pytest.mark.parametrize("vector_max", [0, 12])
+def test_pruned_e_step_matches_scipy_responsibilities(monkeypatch, vector_max):
+    # both layouts of the pass: pruned (vector_max 0) and component-innermost (6 channels <= 12)
+    monkeypatch.setattr(em_kernels, "VECTOR_MAX_CHANNELS", vector_max)
     d, k = 6, 5
     w, means, covs = _separated_mixture(d, k, 3)
     X = _draw(4000, (w, means, covs), 4)
@@ -59,13 +64,52 @@ def test_pruned_e_step_matches_scipy_responsibilities():
     for _ in range(2):  # the second call starts from each event's most probable component
         total, N, S, M = kernels.em_stats(X, bg, logw, means, np.ascontiguousarray(chol), log_det, hint=hint)
         assert total == pytest.approx(ll_ref.sum(), rel=1e-12)
+        # the E step alone (held-out events during EM) gives the same total
+        assert kernels.em_loglik(X, bg, logw, means, np.ascontiguousarray(chol), log_det) == \
+            pytest.approx(ll_ref.sum(), rel=1e-12)
         np.testing.assert_allclose(N, R.sum(axis=0), rtol=1e-10, atol=1e-9)
         for c in range(k):
             D = X - means[c]
             np.testing.assert_allclose(S[c], R[:, c + 1] @ D, rtol=1e-9, atol=1e-7)
             np.testing.assert_allclose(M[c], (D * R[:, c + 1, None]).T @ D, rtol=1e-9, atol=1e-7)
-    # the hints are the most probable Gaussian components
-    assert np.mean(hint == R[:, 1:].argmax(axis=1)) > 0.999
+    # the hints are the most probable Gaussian components (the pruned layout uses them)
+    if vector_max < d:
+        assert np.mean(hint == R[:, 1:].argmax(axis=1)) > 0.999
+
+
+def test_count_search_abandons_a_losing_count_and_keeps_the_same_mixture(monkeypatch):
+    # four clear populations: the search stops after the count that fails to gain; abandoning
+    # that count's EM once it cannot reach its target must leave the chosen mixture unchanged
+    d, k = 4, 4
+    params = _separated_mixture(d, k, 5)
+    X, Xva = _draw(8000, params, 6), _draw(2000, params, 7)
+    passes = []
+    real = kernels.em_stats
+
+    def counted(*args, **kw):
+        passes.append(args[3].shape[0])
+        return real(*args, **kw)
+
+    def fit():
+        passes.clear()
+        gm = GaussianMixtureBase.fit(X, np.median(X, axis=0), np.full(d, 5.0), random_state=0, skew=False,
+                                     validation=Xva)
+        return gm, list(passes)
+
+    monkeypatch.setattr(em_module.kernels, "em_stats", counted)
+    fast, fast_passes = fit()
+    monkeypatch.setattr(em_module, "ABANDON_GAP", np.inf)   # never abandon: every count runs to convergence
+    full, full_passes = fit()
+    assert fast.n_components == full.n_components == k
+    np.testing.assert_array_equal(fast.means, full.means)
+    np.testing.assert_array_equal(fast.covariances, full.covariances)
+    # the count after k (2k, started from the split) stopped sooner
+    assert fast_passes.count(2 * k) < full_passes.count(2 * k)
+    assert fast_passes[:fast_passes.index(2 * k)] == full_passes[:full_passes.index(2 * k)]
+    # reference: scikit-learn's GaussianMixture with the true count scores the held-out events alike
+    from sklearn.mixture import GaussianMixture
+    ref = GaussianMixture(k, covariance_type="full", random_state=0).fit(X)
+    assert fast.logpdf(Xva).mean() == pytest.approx(ref.score(Xva), abs=0.01)
 
 
 def test_count_search_finds_the_number_of_populations():

@@ -15,9 +15,10 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from core.density import AdditiveTreeDensity
+from core.density import AdditiveTreeDensity, kernels
 from core.density.gaussian_base import BACKGROUND_LOGISTIC_SHARE as ETA
 from core.density.gaussian_base import MAX_SKEW, GaussianMixtureBase
+from core.density.skew_fit import _SKEW_GRID, _SKEW_JAC_BINS, _SKEW_MOVES
 from tests.test_density_gaussian_base import triangular_log_jacobian
 
 W = np.array([2e-3, 0.45, 0.548])
@@ -329,3 +330,95 @@ def test_race_stops_the_clearly_worse_fit_early():
     # before the steps it takes when fitted alone; the two-component fit runs to its end
     assert bad.steps < alone.steps
     assert good.best_heldout > bad.best_heldout and good.last_gain < 1e-3
+
+
+def _shape_reference(T, rs, eps, reg, grid, moves, nb=512):
+    """The skewed M step of one component written with numpy (the form it had
+    before it was compiled): each channel's skew in turn, then the transformed
+    mean and covariance.
+
+    T (n, d): the component's events standardised by its transform centres and
+    scales; rs (n,) their responsibilities; eps (d,) the current skews (updated
+    in place); reg (d,) diagonal floor.  Returns (mean (d,), covariance (d, d)).
+
+    y_j = t_j cosh(eps_j) - r_j sinh(eps_j) with r_j = sqrt(1 + t_j^2) is linear
+    in (t_j, r_j), so every candidate skew's weighted moments come from one
+    weighted covariance of [t, r] (2d x 2d).  With the Gaussian's mean and
+    covariance at their closed-form maximum, channel j's share of the log
+    likelihood is -n_k/2 log(residual variance of y_j on the other y) +
+    sum rs log(cosh eps - u sinh eps), u = t / r; that sum is taken over a
+    512-bin weighted histogram of u (bin means; it only ranks the candidates,
+    the density itself is exact).  The best of a fixed grid and small moves
+    from the current value is kept."""
+    n, d = T.shape
+    n_k = float(rs.sum())
+    wk = rs / n_k
+    Rt = np.sqrt(1.0 + T * T)
+    Z = np.hstack([T, Rt])
+    mz = wk @ Z
+    Zc = Z - mz
+    CZ = (Zc * wk[:, None]).T @ Zc
+    Uq = T / Rt
+    idx = np.clip(((Uq + 1.0) * (0.5 * nb)).astype(np.int64), 0, nb - 1)
+    diag = np.arange(d)
+    B = np.zeros((2 * d, d))
+    B[diag, diag] = np.cosh(eps)
+    B[d + diag, diag] = -np.sinh(eps)
+    # every channel's weighted histogram in one pass (bin j * nb + b)
+    flat = (idx + nb * diag[None, :]).ravel()
+    HW = np.bincount(flat, weights=np.repeat(rs, d), minlength=nb * d).reshape(d, nb)
+    HU = np.bincount(flat, weights=(Uq * rs[:, None]).ravel(), minlength=nb * d).reshape(d, nb)
+    for j in range(d):
+        hw = HW[j]
+        keep = hw > 0
+        hu = HU[j][keep] / hw[keep]
+        hw = hw[keep]
+        cand = np.unique(np.clip(np.concatenate([grid, eps[j] + moves]), -MAX_SKEW, MAX_SKEW))
+        ch, sh = np.cosh(cand), np.sinh(cand)
+        var = kernels.skew_residual_variance(CZ, B[diag, diag], B[d + diag, diag], j, ch, sh)
+        if not np.isfinite(var).all():
+            continue  # the other channels' covariance is singular here: keep this skew
+        jac = hw @ np.log(ch[None, :] - hu[:, None] * sh[None, :])
+        score = -0.5 * n_k * np.log(np.maximum(var, 1e-300)) + jac
+        g = int(np.argmax(score))
+        eps[j] = cand[g]
+        B[j, j], B[d + j, j] = ch[g], -sh[g]
+    mean = mz @ B
+    cov = B.T @ CZ @ B
+    return mean, 0.5 * (cov + cov.T) + np.diag(reg)
+
+
+def test_compiled_skew_step_matches_numpy_and_weighted_moments():
+    rng = np.random.default_rng(12)
+    n, d, k = 3_000, 4, 3
+    X = rng.normal(size=(n, d)) @ rng.normal(size=(d, d)) * 0.5 + rng.exponential(size=(n, d))
+    R = rng.dirichlet(np.full(k + 1, 0.3), size=n)
+    centre, scale = rng.normal(size=(k, d)), rng.uniform(0.5, 2.0, size=(k, d))
+    eps0, reg = rng.uniform(-1.0, 1.0, size=(k, d)), np.full((k, d), 1e-6)
+    thr = 1e-3 * R[:, 1:].max(axis=0)
+    eps, mean, cov = eps0.copy(), np.zeros((k, d)), np.zeros((k, d, d))
+    moved = kernels.component_shapes(X, R, thr, centre, scale, eps, reg, _SKEW_GRID, _SKEW_MOVES, MAX_SKEW,
+                                     _SKEW_JAC_BINS, mean, cov)
+    assert moved.all()
+    for c in range(k):
+        sel = R[:, c + 1] > thr[c]
+        T = (X[sel] - centre[c]) / scale[c]
+        e = eps0[c].copy()
+        m_ref, c_ref = _shape_reference(T, R[sel, c + 1], e, reg[c], _SKEW_GRID, _SKEW_MOVES)
+        np.testing.assert_array_equal(eps[c], e)            # the same skews chosen
+        np.testing.assert_allclose(mean[c], m_ref, rtol=1e-10, atol=1e-12)
+        np.testing.assert_allclose(cov[c], c_ref, rtol=1e-10, atol=1e-12)
+        # reference: numpy's weighted mean and covariance of the transformed channels
+        Y = T * np.cosh(eps[c]) - np.sqrt(1.0 + T * T) * np.sinh(eps[c])
+        np.testing.assert_allclose(mean[c], np.average(Y, axis=0, weights=R[sel, c + 1]), rtol=1e-10, atol=1e-12)
+        np.testing.assert_allclose(cov[c] - np.diag(reg[c]), np.cov(Y, rowvar=False, aweights=R[sel, c + 1],
+                                                                   bias=True), rtol=1e-9, atol=1e-12)
+    # a component with too little weight is left as it was
+    R2 = R.copy()
+    R2[:, 1] = 1e-9
+    eps2, mean2, cov2 = eps0.copy(), np.zeros((k, d)), np.zeros((k, d, d))
+    moved = kernels.component_shapes(X, R2, 1e-3 * R2[:, 1:].max(axis=0), centre, scale, eps2, reg, _SKEW_GRID,
+                                     _SKEW_MOVES, MAX_SKEW, _SKEW_JAC_BINS, mean2, cov2)
+    assert not moved[0] and moved[1:].all()
+    np.testing.assert_array_equal(eps2[0], eps0[0])
+    assert not mean2[0].any()

@@ -84,62 +84,6 @@ def flat_background_step(X, r0, bgr):
 _SKEW_JAC_BINS = 512
 
 
-def _component_shape(T, rs, eps, reg):
-    """One generalised-EM step of a component's shape: each channel's skew in
-    turn (coordinate-wise), then the transformed mean and covariance.
-
-    T (n, d): the component's events standardised by its transform centres and
-    scales; rs (n,) their responsibilities; eps (d,) the current skews (updated
-    in place); reg (d,) diagonal floor.  Returns (mean (d,), covariance (d, d)).
-
-    y_j = t_j cosh(eps_j) - r_j sinh(eps_j) with r_j = sqrt(1 + t_j^2) is linear
-    in (t_j, r_j), so every candidate skew's weighted moments come from one
-    weighted covariance of [t, r] (2d x 2d).  With the Gaussian's mean and
-    covariance at their closed-form maximum, channel j's share of the log
-    likelihood is -n_k/2 log(residual variance of y_j on the other y) +
-    sum rs log(cosh eps - u sinh eps), u = t / r; that sum is taken over a
-    512-bin weighted histogram of u (bin means; it only ranks the candidates,
-    the density itself is exact).  The best of a fixed grid and small moves
-    from the current value is kept."""
-    n, d = T.shape
-    n_k = float(rs.sum())
-    wk = rs / n_k
-    Rt = np.sqrt(1.0 + T * T)
-    Z = np.hstack([T, Rt])
-    mz = wk @ Z
-    Zc = Z - mz
-    CZ = (Zc * wk[:, None]).T @ Zc
-    Uq = T / Rt
-    nb = _SKEW_JAC_BINS
-    idx = np.clip(((Uq + 1.0) * (0.5 * nb)).astype(np.int64), 0, nb - 1)
-    diag = np.arange(d)
-    B = np.zeros((2 * d, d))
-    B[diag, diag] = np.cosh(eps)
-    B[d + diag, diag] = -np.sinh(eps)
-    # every channel's weighted histogram in one pass (bin j * nb + b)
-    flat = (idx + nb * diag[None, :]).ravel()
-    HW = np.bincount(flat, weights=np.repeat(rs, d), minlength=nb * d).reshape(d, nb)
-    HU = np.bincount(flat, weights=(Uq * rs[:, None]).ravel(), minlength=nb * d).reshape(d, nb)
-    for j in range(d):
-        hw = HW[j]
-        keep = hw > 0
-        hu = HU[j][keep] / hw[keep]
-        hw = hw[keep]
-        cand = np.unique(np.clip(np.concatenate([_SKEW_GRID, eps[j] + _SKEW_MOVES]), -MAX_SKEW, MAX_SKEW))
-        ch, sh = np.cosh(cand), np.sinh(cand)
-        var = kernels.skew_residual_variance(CZ, B[diag, diag], B[d + diag, diag], j, ch, sh)
-        if not np.isfinite(var).all():
-            continue  # the other channels' covariance is singular here: keep this skew
-        jac = hw @ np.log(ch[None, :] - hu[:, None] * sh[None, :])
-        score = -0.5 * n_k * np.log(np.maximum(var, 1e-300)) + jac
-        g = int(np.argmax(score))
-        eps[j] = cand[g]
-        B[j, j], B[d + j, j] = ch[g], -sh[g]
-    mean = mz @ B
-    cov = B.T @ CZ @ B
-    return mean, 0.5 * (cov + cov.T) + np.diag(reg)
-
-
 class SkewFit:
     """Generalised EM for background + K Gaussian copulas with sinh-arcsinh margins,
     started from the Gaussian mixture ``gauss`` (each transform centred and scaled
@@ -149,7 +93,7 @@ class SkewFit:
     Component k's density is N(y; m_k, S_k) prod_j dy_j/dx_j with
     y_j = sinh(asinh((x_j - c_kj) / s_kj) - eps_kj).  Each step: E step
     (:meth:`MixtureBase.logpdf_and_posteriors`), then per component
-    :func:`_component_shape` (each channel's skew in turn by the profile
+    :func:`core.density.kernels.component_shapes` (each channel's skew in turn by the profile
     likelihood over m_k and S_k, then m_k and S_k in closed form); a flat-top
     background's edges and softness are updated too (:func:`flat_background_step`).
 

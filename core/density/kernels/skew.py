@@ -209,8 +209,18 @@ def component_shapes(X, R, thr, centre, scale, eps, reg, grid, moves, max_skew, 
     current value), clipped to +-max_skew; nb: histogram bins of t / sqrt(1 + t^2).
     Writes each moved component's transformed mean into mean (K, d) and
     covariance into cov (K, d, d); returns moved (K,) bool (False: too little
-    weight, left as it was).  See :func:`core.density.skew_fit._component_shape`
-    for the arithmetic (the same, summed event by event)."""
+    weight, left as it was).
+
+    Per component and channel: y_j = t_j cosh(eps_j) - r_j sinh(eps_j) with
+    t_j = (x_j - centre_j) / scale_j and r_j = sqrt(1 + t_j^2) is linear in
+    (t_j, r_j), so every candidate skew's weighted moments come from one
+    weighted covariance of [t, r] (2d x 2d).  With the Gaussian's mean and
+    covariance at their closed-form maximum, channel j's share of the log
+    likelihood is -n_k/2 log(residual variance of y_j on the other y)
+    (:func:`skew_residual_variance`) + sum r log(cosh eps - u sinh eps), u = t / r,
+    that sum taken over an ``nb``-bin weighted histogram of u (bin means; it
+    only ranks the candidates, the density itself is exact).  Channels in
+    turn, each the best candidate; then the transformed mean and covariance."""
     K, d = centre.shape
     moved = np.zeros(K, np.bool_)
     RT = np.ascontiguousarray(R.T)  # each component's responsibilities contiguous
