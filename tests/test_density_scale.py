@@ -11,7 +11,9 @@ import pytest
 from scipy import special, stats
 
 from core.density import AdditiveTreeDensity, kernels
+from core.density import boosting as boosting_module
 from core.density import em as em_module
+from core.density import fitting as fitting_module
 from core.density import model as model_module
 from core.density.kernels import em as em_kernels
 from core.density.gaussian_base import GaussianMixtureBase
@@ -160,3 +162,44 @@ def test_first_tree_layer_must_pay_for_the_full_map():
     else:
         assert m.n_trees_ > 0
         assert m.heldout_loglik_ - m.base_heldout_loglik_ >= required
+
+
+def _l_bars(n, seed):
+    """n events (n, 2) on an L of two uniform bars (sharp edges a mixture only approximates)."""
+    rng = np.random.default_rng(seed)
+    arm = rng.random((n, 1)) < 0.5
+    return np.where(arm, np.c_[2.0 * rng.random(n), 0.3 * rng.random(n)],
+                    np.c_[0.3 * rng.random(n), 2.0 * rng.random(n)])
+
+
+def test_probe_tree_ends_the_tree_stage_only_when_trees_cannot_pay(monkeypatch):
+    called = []
+    real = fitting_module.fit_layers
+
+    def counted(*args, **kw):
+        called.append(True)
+        return real(*args, **kw)
+
+    monkeypatch.setattr(fitting_module, "fit_layers", counted)
+    # a mixture that is the truth: the probe (on 1,000 of the 4,800 training events) ends the stage
+    params = _separated_mixture(3, 2, 8, gap=4.0)
+    X = _draw(6000, params, 9)
+    without = AdditiveTreeDensity(base="gmm", random_state=0).fit(X)
+    assert called and without.n_trees_ == 0
+    called.clear()
+    monkeypatch.setattr(boosting_module, "PROBE_EVENTS", 1000)
+    probed = AdditiveTreeDensity(base="gmm", random_state=0).fit(X)
+    assert not called and probed.n_trees_ == 0 and probed.stopped_by_ == "early stopping"
+    Xt = _draw(3000, params, 10)
+    np.testing.assert_array_equal(probed.score_samples(Xt), without.score_samples(Xt))
+    # trees that pay (the L of two bars, layer_tol lowered so the first layer is kept): the probe
+    # lets the tree stage run, and the model is the one fitted without a probe
+    X = _l_bars(6000, 1)
+    called.clear()
+    probed = AdditiveTreeDensity(base="gmm", random_state=0, layer_tol=1e-4).fit(X)
+    assert called and probed.n_trees_ > 0
+    monkeypatch.setattr(boosting_module, "PROBE_EVENTS", 10 ** 9)
+    plain = AdditiveTreeDensity(base="gmm", random_state=0, layer_tol=1e-4).fit(X)
+    assert plain.n_trees_ == probed.n_trees_
+    Xt = _l_bars(2000, 2)
+    np.testing.assert_array_equal(probed.score_samples(Xt), plain.score_samples(Xt))

@@ -5,6 +5,7 @@ it pays for itself."""
 
 from __future__ import annotations
 
+import copy
 import math
 from dataclasses import dataclass, field
 
@@ -218,3 +219,39 @@ def _fit_trees(p, shares, budget, allowed, look, start_ll, needed, mixture, rng,
         # roll back to the best prefix (state saved when it was passed)
         return forest.prefix(stop.best_k), stop.best_k, stop.best_ll, best_state
     return forest, stop.best_k, stop.best_ll, None
+
+
+#: Above this many training events, the first tree after a mixture base is first
+#: fitted on an evenly spread probe of this many (its Rosenblatt map is the cost:
+#: 27 % of a 200,000 x 8 fit); a probe tree that does not raise the held-out
+#: log-likelihood ends the tree stage before the whole training share is mapped
+#: (:func:`probe_gain`; EXPERIMENTS.md section 25).
+PROBE_EVENTS = 50_000
+
+
+def probe_events(n_train: int) -> np.ndarray | None:
+    """Indices (evenly spread) of the training events the probe tree is fitted on,
+    or None when ``n_train`` <= ``PROBE_EVENTS`` (the tree stage runs as it is)."""
+    if n_train <= PROBE_EVENTS:
+        return None
+    return np.linspace(0, n_train - 1, PROBE_EVENTS).astype(np.int64)
+
+
+def probe_gain(p, chain: Chain, U_probe, U_va, ld_va, rng) -> float:
+    """Held-out gain (nats per event) of the first dependence tree the tree stage
+    would fit after a mixture base, fitted on the probe events ``U_probe`` (m, d)
+    (in the cube) and scored on the held-out share U_va (n, d), ld_va (n,) (neither
+    changed).  The first layer's marginal maps are the identity after a mixture base
+    (no one-channel trees), so the probe tree sees what the first tree would see.
+    A copy of ``rng`` serves the tree's jitter, so the tree stage that may follow
+    draws exactly as without the probe."""
+    allowed = ~chain.constant
+    look = lookahead_levels(p, int(allowed.sum()))
+    tree = fit_tree(np.array(U_probe), float(p.learning_rate), int(p.max_depth), int(p.n_bins),
+                    int(p.min_leaf), allowed, float(p.alpha), copy.deepcopy(rng) if p.jitter else None,
+                    float(p.min_gain), look, int(p.lookahead_bins))
+    if tree.n_nodes == 0:
+        return 0.0
+    U, ld = U_va.copy(), ld_va.copy()
+    tree.forward(U, ld)
+    return float(ld.mean() - ld_va.mean())
