@@ -280,7 +280,8 @@ class Tube:
             self.rare_mask = None
             return
         if self._rare_for is not a:
-            self._rare_order = share_order(a.log_density)
+            order = getattr(a, "density_order", None)   # sorted once by analyse
+            self._rare_order = order if order is not None else share_order(a.log_density)
             self._rare_for = a
         self.rare_mask = share_mask(self._rare_order, self.share, self.n_events)
 
