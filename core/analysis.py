@@ -328,7 +328,7 @@ def analyse(event_file: Any, recipe: Recipe, progress=None, control: Any = None,
     result = Analysis(path=os.fspath(event_file.path), channel_names=list(event_file.channel_names),
                       values=values, density_channels=list(recipe.channels), prepared=prepared,
                       model=model, log_density=log_density, rarity=rarity, rare=rare_res.mask,
-                      rare_level=rare_res.log_level, reason=np.asarray(prepared.reason).astype(str),
+                      rare_level=rare_res.log_level, reason=np.asarray(prepared.reason).astype(str, copy=False),
                       region_masks=masks, heldout_loglik=float(getattr(model, "heldout_loglik_", np.nan)),
                       timing=timing, recipe=recipe, cancelled=bool(stopped), atoms=atoms,
                       populations=populations, population_labels=population_labels, density_order=order)

@@ -100,7 +100,8 @@ from __future__ import annotations
 # The package's modules by role (each re-exported here, so ``core.populations.X`` keeps working):
 # settings (defaults and their check), definition (stored form and assignment), modes (hill
 # climbing, saddles, merging), profiles (marker levels and names), table (the result and its
-# table), search (find_populations; find_populations_and_score scores and assigns in one pass), changes (grown and shrunk populations).
+# table), search (find_populations; find_populations_and_score scores and assigns in one
+# pass), changes (grown and shrunk populations).
 from .changes import population_changes
 from .definition import (PopulationDefinition, _group_matrix, _labels_from_posteriors, _mixture_dict,
                          assign_populations, component_posteriors)
