@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from core.analysis import analyse
+from core.analysis import analyse, compensated_and_transformed
 from core.density import AdditiveTreeDensity
 from core.fcs import read_fcs
 from core.populations import (assign_populations, find_populations, find_populations_and_score,
@@ -22,6 +22,7 @@ from core.populations.search import _column_iqr
 from core.populations.table import _share_ci
 from core.prepare_file import transformed_values
 from core.rare import rarity_percentile, share_order
+from core.tube import Tube
 
 from .test_analysis import MARKERS, make_file, recipe
 
@@ -180,3 +181,12 @@ def test_column_major_values_equal_row_major_ones(tmp_path):
     assert f_order.flags.f_contiguous and c_order.flags.c_contiguous
     assert np.array_equal(c_order, f_order)
     np.testing.assert_allclose(c_order[:, 2], np.arcsinh(ef.data[:, 2].astype(np.float64) / 150.0), rtol=1e-14)
+
+
+def test_a_tube_holds_its_values_column_major_and_equal_to_the_analysis_values(tmp_path):
+    path = tmp_path / "tube.fcs"
+    make_file(path, n=500)
+    tube = Tube.open(str(path))
+    names, want = compensated_and_transformed(tube.event_file, tube.recipe)
+    assert tube.values.flags.f_contiguous and names == tube.names
+    assert np.array_equal(tube.values, want)
