@@ -6,7 +6,6 @@ from dataclasses import dataclass, field
 from typing import Mapping, Sequence
 
 import numpy as np
-from scipy.special import betaincinv
 
 from ..transforms import Transform, make_transform
 from .definition import PopulationDefinition, assign_populations
@@ -42,6 +41,9 @@ def _share_ci(count: int, n: int, confidence: float = 0.95) -> tuple[float, floa
     Beta(count + 1, n - count) (0 and 1 at the ends), the interval
     ``scipy.stats.binomtest(...).proportion_ci(method="exact")`` finds by root
     search; the closed form needs scipy.special only (scipy.stats takes ~2 s to import)."""
+    # imported here: scipy.special adds ~0.3 s to importing core.analysis; only the table needs it
+    from scipy.special import betaincinv
+
     if n <= 0:
         return (float("nan"), float("nan"))
     k, n = int(count), int(n)
