@@ -10,6 +10,7 @@ import math
 import numpy as np
 
 from . import kernels
+from .correlation_prior import shrink_correlations
 
 #: Smallest weight of the broad background component.
 MIN_BACKGROUND = 1e-4
@@ -86,12 +87,14 @@ def em_from_kmeans(X, bg, k, reg, rng, max_iter, tol, going=None):
     return em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going)
 
 
-def em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going):
+def em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going, shrink=None):
     """EM from the mixture (w, mu, cov) until the mean log-likelihood rises by less
     than tol; returns (mean log-lik, weights, means, covs).  Each iteration is one
     compiled pass over the events (E step and the M step's weighted moments,
     :func:`core.density.kernels.em_stats`), then the M step in numpy.
-    ``going()`` is asked after each iteration; False ends EM there."""
+    ``going()`` is asked after each iteration; False ends EM there.  ``shrink``
+    (groups (K,) int, pseudo-events): each M step pulls the correlations toward
+    the group's (:func:`shrink_correlations`); None: plain EM."""
     n = X.shape[0]
     prev = -np.inf
     ll = -np.inf
@@ -112,7 +115,10 @@ def em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going):
         delta = S / Nk[1:, None]
         mu = mu + delta
         cov = M / Nk[1:, None, None] - delta[:, :, None] * delta[:, None, :]
-        cov = 0.5 * (cov + np.swapaxes(cov, 1, 2)) + np.diag(reg)[None]
+        cov = 0.5 * (cov + np.swapaxes(cov, 1, 2))
+        if shrink is not None:
+            cov = shrink_correlations(cov, Nk[1:], *shrink)
+        cov = cov + np.diag(reg)[None]
         if ll - prev < tol or (going is not None and not going()):
             break
         prev = ll
