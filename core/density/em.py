@@ -115,10 +115,9 @@ def em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going, shrink=None):
         delta = S / Nk[1:, None]
         mu = mu + delta
         cov = M / Nk[1:, None, None] - delta[:, :, None] * delta[:, None, :]
-        cov = 0.5 * (cov + np.swapaxes(cov, 1, 2))
-        if shrink is not None:
+        cov = 0.5 * (cov + np.swapaxes(cov, 1, 2)) + np.diag(reg)[None]
+        if shrink is not None:  # after the floor: every correlation matrix is then positive definite
             cov = shrink_correlations(cov, Nk[1:], *shrink)
-        cov = cov + np.diag(reg)[None]
         if ll - prev < tol or (going is not None and not going()):
             break
         prev = ll
