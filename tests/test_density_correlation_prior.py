@@ -85,3 +85,25 @@ def test_em_with_a_strong_prior_shares_one_correlation_and_fits_the_truth():
     np.testing.assert_allclose(corr[0], R, atol=0.06)             # and it is the true one
     got = MixtureBase(w, mu, cov, loc, scale).logpdf(Xte).mean()
     assert abs(got - true_ll) < 0.03, (got, true_ll)
+
+
+def test_em_with_the_prior_survives_an_atom_and_a_copied_channel():
+    # a population with one channel on a single value and two identical channels
+    # (as an atom and a duplicated parameter in an FCS file, common practice to
+    # meet): its moment matrix is singular; EM with the prior must stay finite and
+    # every covariance positive definite (numpy's Cholesky factorisation succeeds)
+    rng = np.random.default_rng(5)
+    A = rng.normal(size=(800, 4))
+    A[:, 0] = 5.0
+    A[:, 2] = A[:, 1]
+    B = rng.normal(size=(800, 4)) + 6.0
+    X = np.vstack([A, B])
+    loc, scale = X.mean(axis=0), X.std(axis=0) * 3.0
+    reg = 1e-6 * X.var(axis=0)
+    bg = background_logpdf(X, loc, scale, None)
+    w0 = np.array([1e-3, 0.4995, 0.4995])
+    mu0 = np.array([A.mean(axis=0), B.mean(axis=0)])
+    cov0 = np.array([np.eye(4), np.eye(4)])
+    ll, w, mu, cov = em_iterations(X, bg, w0, mu0, cov0, reg, 30, 1e-6, None, (np.zeros(2, int), 50.0))
+    assert np.isfinite(ll)
+    np.linalg.cholesky(cov)
