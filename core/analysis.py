@@ -58,14 +58,14 @@ from typing import Any
 import numpy as np
 
 from .analysis_stages import (channel_labels, comparison_settings, contrast_stage, inverse_transforms,
-                              populations_stage)
+                              populations_stage, scores_with_populations, scoring_populations_stage)
 from .density import AdditiveTreeDensity
 from .errors import Cancelled, EventDataError
 from .file_values import (CompensateTransform, compensate_transform, compensated_and_transformed,
                           as_event_file, density_channel_indices, density_input)
 from .prepare import CLEANING_FLAGS, REASONS, atoms as find_atoms
 from .progress import stop_relay
-from .rare import rare_events, rarity_percentile
+from .rare import rare_events, rarity_percentile, share_order
 from .recipe import Recipe, validate_recipe
 from .regions import RegionSet
 
@@ -118,6 +118,9 @@ class Analysis:
     #: density channel -> share of the kept events on its most frequent value, for the
     #: channels above core.prepare.ATOM_SHARE (the atoms check before fitting)
     atoms: dict = field(default_factory=dict)
+    #: indices of the kept events from the lowest log density up, ties by event order
+    #: (core.rare.share_order of log_density; None when not computed)
+    density_order: np.ndarray | None = None
 
     @property
     def n_events(self) -> int:
@@ -273,22 +276,39 @@ def analyse(event_file: Any, recipe: Recipe, progress=None, control: Any = None,
     model.fit(prepared.matrix, progress=relay)
     timing["fit"] = time.perf_counter() - t1
 
-    t2 = time.perf_counter()
+    populations = population_labels = None
     log_density = np.full(n, np.nan)
-    log_density[prepared.kept] = model.score_samples(prepared.matrix)
-    rarity = rarity_percentile(log_density)
-    rare_res = rare_events(log_density, recipe.rare, model=model, random_state=engine["random_state"])
+    scored = False
+    if not stopped and scores_with_populations(recipe, model):
+        # a mixture alone: one pass over the kept events scores them and assigns them
+        # to the populations (the populations stage's seconds include that pass)
+        t_pop = time.perf_counter()
+        try:
+            populations, population_labels, log_density[prepared.kept] = scoring_populations_stage(
+                event_file, recipe, model, prepared, relay)
+            scored = True
+        except Cancelled:
+            pass   # stopped while finding populations: scored below, the rest of the analysis stands
+        timing["populations"] = time.perf_counter() - t_pop
+
+    t2 = time.perf_counter()
+    if not scored:
+        log_density[prepared.kept] = model.score_samples(prepared.matrix)
+    order = share_order(log_density)      # one sort serves the rarity, the rare rule and the app's share
+    rarity = rarity_percentile(log_density, order)
+    rare_res = rare_events(log_density, recipe.rare, model=model, random_state=engine["random_state"],
+                           order=order)
     timing["score"] = time.perf_counter() - t2
 
-    t_pop = time.perf_counter()
-    populations = population_labels = None
-    if not stopped:
-        try:
-            populations, population_labels = populations_stage(event_file, recipe, model, prepared,
-                                                               log_density, relay)
-        except Cancelled:
-            pass   # stopped while finding populations: the rest of the analysis stands
-    timing["populations"] = time.perf_counter() - t_pop
+    if "populations" not in timing:
+        t_pop = time.perf_counter()
+        if not stopped:
+            try:
+                populations, population_labels = populations_stage(event_file, recipe, model, prepared,
+                                                                   log_density, relay)
+            except Cancelled:
+                pass   # stopped while finding populations: the rest of the analysis stands
+        timing["populations"] = time.perf_counter() - t_pop
 
     t3 = time.perf_counter()
     masks: dict = {}
@@ -308,10 +328,10 @@ def analyse(event_file: Any, recipe: Recipe, progress=None, control: Any = None,
     result = Analysis(path=os.fspath(event_file.path), channel_names=list(event_file.channel_names),
                       values=values, density_channels=list(recipe.channels), prepared=prepared,
                       model=model, log_density=log_density, rarity=rarity, rare=rare_res.mask,
-                      rare_level=rare_res.log_level, reason=np.asarray(prepared.reason).astype(str),
+                      rare_level=rare_res.log_level, reason=np.asarray(prepared.reason).astype(str, copy=False),
                       region_masks=masks, heldout_loglik=float(getattr(model, "heldout_loglik_", np.nan)),
                       timing=timing, recipe=recipe, cancelled=bool(stopped), atoms=atoms,
-                      populations=populations, population_labels=population_labels)
+                      populations=populations, population_labels=population_labels, density_order=order)
     if regions is not None and control is None and regions.depending_on("enriched"):
         result.info["regions_without_control"] = regions.depending_on("enriched")
     if control is not None and not stopped:

@@ -11,7 +11,7 @@ import numpy as np
 
 from .file_values import as_event_file, density_input
 from .populations import (PopulationDefinition, assign_populations, count_populations, find_populations,
-                          population_changes)
+                          find_populations_and_score, population_changes)
 from .recipe import Recipe, as_recipe, validate_recipe
 from .transforms import make_transform
 
@@ -39,6 +39,25 @@ def populations_stage(event_file, recipe, model, prepared, log_density, progress
     full = np.full(prepared.kept.shape[0], -1, dtype=np.int64)
     full[prepared.kept] = pops.labels
     return pops, full
+
+
+def scores_with_populations(recipe, model) -> bool:
+    """True when :func:`scoring_populations_stage` saves a pass: the populations are
+    to be found (no stored definition) on a model that is a skewed mixture alone."""
+    return recipe.populations.definition is None and bool(getattr(model, "scores_with_posteriors", False))
+
+
+def scoring_populations_stage(event_file, recipe, model, prepared, progress):
+    """:func:`populations_stage` and the model's log density of the kept events in
+    one pass over them (:func:`core.populations.find_populations_and_score`).
+    Returns (Populations, labels (n_events,) -1 for removed events, log density
+    of the kept events (n_kept,)); the same as scoring, then :func:`populations_stage`."""
+    chans = list(recipe.channels)
+    pops, scores = find_populations_and_score(model, prepared.matrix, chans, channel_labels(event_file, chans),
+                                              recipe.transforms, recipe.populations.settings, progress=progress)
+    full = np.full(prepared.kept.shape[0], -1, dtype=np.int64)
+    full[prepared.kept] = pops.labels
+    return pops, full, scores
 
 
 def population_change_stage(result, event_file, recipe, res, control) -> None:

@@ -212,6 +212,8 @@ def atoms(matrix, names: Sequence[str], share: float = ATOM_SHARE) -> dict[str, 
     of the events: name -> that share (the atoms check before fitting)."""
     m = _as_matrix(matrix, "the density's events")
     rows = _tie_rows(m.shape[0], 400_000, 0)   # the same seeded subsample for every channel, drawn once
+    if rows is not None:
+        rows = np.sort(rows)   # read in order (the share does not depend on the order): fewer cache misses
     out = {}
     for j, name in enumerate(names):
         t = largest_tie_share(m[:, j], rows=rows)

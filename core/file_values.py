@@ -44,9 +44,10 @@ class CompensateTransform:
     transforms: dict
     source: str
 
-    def apply(self, data: np.ndarray) -> np.ndarray:
-        """``data`` (n_events, n_channels) compensated, then each channel transformed (new float64 array)."""
-        return transformed_values(data, self.names, self.spillover, self.transforms, self.source)
+    def apply(self, data: np.ndarray, order: str = "C") -> np.ndarray:
+        """``data`` (n_events, n_channels) compensated, then each channel transformed (new float64
+        array; ``order`` "F" lays it out column by column, see core.prepare_file.transformed_values)."""
+        return transformed_values(data, self.names, self.spillover, self.transforms, self.source, order=order)
 
     def compensated(self, data: np.ndarray) -> np.ndarray:
         """``data`` (n_events, n_channels) compensated only (new float64 array)."""
@@ -83,7 +84,8 @@ def compensate_transform(event_file: Any, recipe: Recipe) -> CompensateTransform
 
 
 def compensated_and_transformed(event_file: Any, recipe: Recipe, raw: np.ndarray | None = None,
-                                step: CompensateTransform | None = None) -> tuple[list[str], np.ndarray]:
+                                step: CompensateTransform | None = None,
+                                order: str = "C") -> tuple[list[str], np.ndarray]:
     """All channels of ``event_file`` compensated and transformed as ``recipe`` says.
 
     Returns ``(channel_names, values)`` with values (n_events, n_channels)
@@ -92,10 +94,11 @@ def compensated_and_transformed(event_file: Any, recipe: Recipe, raw: np.ndarray
     that transform's ``forward``; channels without one keep their compensated
     values.  ``raw`` replaces ``event_file.data`` (same shape), e.g. de-quantised
     raw values; the file's data are never modified.  ``step``: the file's
-    :func:`compensate_transform` when already built.
+    :func:`compensate_transform` when already built; ``order`` "F": values laid out
+    column by column (the app's layout; no copy to get there).
     """
     step = step or compensate_transform(event_file, recipe)
-    return list(step.names), step.apply(event_file.data if raw is None else raw)
+    return list(step.names), step.apply(event_file.data if raw is None else raw, order=order)
 
 
 def density_channel_indices(event_file: Any, recipe: Recipe) -> list[int]:

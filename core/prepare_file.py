@@ -36,13 +36,17 @@ def check_transform_channels(names: Sequence[str], transforms: Mapping, where: s
                                f"file's channels are {', '.join(names)}")
 
 
-def transformed_values(data, names: Sequence[str], S, transforms: Mapping, where: str) -> np.ndarray:
+def transformed_values(data, names: Sequence[str], S, transforms: Mapping, where: str,
+                       order: str = "C") -> np.ndarray:
     """(n_events, n_channels) float64: ``data`` compensated by ``S`` (or None), then transformed.
 
     Only ``S``'s detectors change under compensation; each channel with a spec
     in ``transforms`` is mapped by that transform's ``forward``, the others keep
     their (compensated) values.  The result is the one full-size float64 matrix;
     ``data`` is never modified.  ``where`` (the file name) goes into errors.
+    ``order``: "C" (rows contiguous: the density's row-wise gathers) or "F"
+    (columns contiguous: what the app's plots and regions read; each channel
+    is then written in place, with no strided writes and no second copy).
     """
     x = _as_events(data, "event values")
     names = list(names)
@@ -50,7 +54,7 @@ def transformed_values(data, names: Sequence[str], S, transforms: Mapping, where
         raise EventDataError(f"{where}: event values of shape {x.shape} do not match {len(names)} channels")
     check_transform_channels(names, transforms, where)
     det = checked_detectors(names, S, where) if S is not None else []
-    values = np.empty(x.shape)
+    values = np.empty(x.shape, order=order)
     for start in range(0, x.shape[0] if det else 0, BLOCK_EVENTS):   # in blocks: no full-size temporaries
         values[start:start + BLOCK_EVENTS, det] = compensate_columns(x[start:start + BLOCK_EVENTS], det, S)
     # one call per channel (the logicle's compiled solver runs in parallel over a whole column)

@@ -108,20 +108,29 @@ class RareResult:
     count: int
 
 
-def rarity_percentile(log_density: np.ndarray) -> np.ndarray:
+def rarity_percentile(log_density: np.ndarray, order: np.ndarray | None = None) -> np.ndarray:
     """Share (0-100) of finite entries of ``log_density`` strictly below each entry.
 
     ``log_density``: (n_events,) float; NaN marks removed events, which get NaN.
-    Returns float64 (n_events,).
+    ``order``: :func:`share_order` of the same array when already computed (one
+    sort serves the rarity and the rare rule).  Returns float64 (n_events,).
+    An entry's count of strictly lower entries is the position of the first
+    of its ties in the sorted order (one pass over the order, no search).
     """
     ld = np.asarray(log_density, dtype=np.float64).ravel()
     out = np.full(ld.shape, np.nan)
-    ok = np.isfinite(ld)
-    n = int(ok.sum())
+    if order is None:
+        order = share_order(ld)
+    n = int(order.size)
     if n == 0:
         return out
-    srt = np.sort(ld[ok])
-    out[ok] = 100.0 * np.searchsorted(srt, ld[ok], side="left") / n
+    srt = ld[order]
+    first = np.empty(n, dtype=np.int64)
+    first[0] = 0
+    new = srt[1:] != srt[:-1]                      # where a run of ties starts
+    first[1:] = np.where(new, np.arange(1, n), 0)
+    np.maximum.accumulate(first, out=first)        # position of the run's first entry
+    out[order] = 100.0 * first / n
     return out
 
 
@@ -143,10 +152,12 @@ def share_mask(order: np.ndarray, share: float, n_events: int) -> np.ndarray:
     return mask
 
 
-def rare_by_share(log_density: np.ndarray, share: float = RareRule.share) -> RareResult:
+def rare_by_share(log_density: np.ndarray, share: float = RareRule.share,
+                  order: np.ndarray | None = None) -> RareResult:
     """The ``round(share * n_kept)`` events with the lowest finite log density.
 
-    ``share`` is a fraction in [0, 1] (0.005 = 0.5 %).
+    ``share`` is a fraction in [0, 1] (0.005 = 0.5 %); ``order``: :func:`share_order`
+    of the same array when already computed.
     """
     share = float(share)
     if not (0.0 <= share <= 1.0):
@@ -157,7 +168,8 @@ def rare_by_share(log_density: np.ndarray, share: float = RareRule.share) -> Rar
     k = int(round(share * ok.size))
     level = float("nan")
     if k > 0:
-        order = share_order(ld)
+        if order is None:
+            order = share_order(ld)
         mask[order[:k]] = True
         level = float(ld[order[k]]) if k < ok.size else float("inf")
     elif ok.size:
@@ -247,15 +259,17 @@ def rare_by_mass(log_density: np.ndarray, model: Any, mass: float = RareRule.mas
 
 
 def rare_events(log_density: np.ndarray, rule: RareRule | Mapping | None = None, model: Any = None,
-                random_state: int | None = 0, n_samples: int = DEFAULT_LEVEL_SAMPLES) -> RareResult:
+                random_state: int | None = 0, n_samples: int = DEFAULT_LEVEL_SAMPLES,
+                order: np.ndarray | None = None) -> RareResult:
     """Apply a recipe's rare rule (see module docstring); ``model`` is needed for "mass".
 
     ``rule``: a :class:`core.recipe.RareRule` (its stored-form dict is checked into
-    one; None: the default rule)."""
+    one; None: the default rule); ``order``: :func:`share_order` of ``log_density``
+    when already computed (the share rule then does not sort again)."""
     if not isinstance(rule, RareRule):
         rule = RareRule() if rule is None else RareRule.from_dict(rule)
     if rule.rule == "share":
-        return rare_by_share(log_density, rule.share)
+        return rare_by_share(log_density, rule.share, order=order)
     if model is None:
         raise RecipeError("the rare rule 'mass' needs the fitted density model")
     return rare_by_mass(log_density, model, rule.mass, n_samples=n_samples, random_state=random_state)

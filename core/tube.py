@@ -204,11 +204,10 @@ class Tube:
     # -- values -----------------------------------------------------------
     def recompute_values(self) -> None:
         """Compensate and transform every channel as the recipe says (core.file_values)."""
-        self.names, values = compensated_and_transformed(self.event_file, self.recipe)
         # column-major: every use here takes whole channels (plots, regions, previews), and a
-        # contiguous column is read 5-10x faster than a strided one at millions of events
-        self.values = np.asfortranarray(values)
-        del values
+        # contiguous column is read 5-10x faster than a strided one at millions of events;
+        # built that way (each channel written in place), not copied into it
+        self.names, self.values = compensated_and_transformed(self.event_file, self.recipe, order="F")
         self._compensated = None
 
     def compensated(self, channel: str) -> np.ndarray:
@@ -280,7 +279,8 @@ class Tube:
             self.rare_mask = None
             return
         if self._rare_for is not a:
-            self._rare_order = share_order(a.log_density)
+            order = getattr(a, "density_order", None)   # sorted once by analyse
+            self._rare_order = order if order is not None else share_order(a.log_density)
             self._rare_for = a
         self.rare_mask = share_mask(self._rare_order, self.share, self.n_events)
 

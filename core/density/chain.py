@@ -68,17 +68,33 @@ class Chain:
             kernels.base_forward(C, U, logd, self.loc, self.scale, np.log(self.scale))
             return (U if want_u else None), logd
         fr = self.constant
-        if fr.any():
-            Uf = np.empty((m, int(fr.sum())))
-            kernels.base_forward(np.ascontiguousarray(C[:, fr]), Uf, logd, self.loc[fr],
-                                 self.scale[fr], np.log(self.scale[fr]))
-            U[:, fr] = Uf
+        self._constant_forward(C, U, logd)
         if not want_u:
             return None, logd + mix.logpdf(C[:, ~fr])
         Ug, lg = mix.forward(C[:, ~fr])
         U[:, ~fr] = Ug
         logd += lg
         return U, logd
+
+    def _constant_forward(self, C: np.ndarray, U: np.ndarray | None, logd: np.ndarray) -> None:
+        """The logistic map of the constant channels (under a mixture base): their U
+        columns (when U is given) and their log-Jacobian added to logd."""
+        fr = self.constant
+        if fr.any():
+            Uf = np.empty((C.shape[0], int(fr.sum())))
+            kernels.base_forward(np.ascontiguousarray(C[:, fr]), Uf, logd, self.loc[fr],
+                                 self.scale[fr], np.log(self.scale[fr]))
+            if U is not None:
+                U[:, fr] = Uf
+
+    def base_log_density_and_posteriors(self, C: np.ndarray):
+        """A skewed mixture base's log density (m,), bit-identical to
+        ``base_forward(C, want_u=False)``, and the mixture's posterior component
+        probabilities (m, K + 1), background first, from the same compiled pass."""
+        logd = np.zeros(C.shape[0])
+        self._constant_forward(C, None, logd)
+        lm, R = self.mixture.logpdf_and_posteriors(C[:, ~self.constant])
+        return logd + lm, R
 
     def base_inverse(self, C: np.ndarray, out: np.ndarray) -> None:
         """Inverse of the base map: C (m, d) in the cube to events in ``out`` (m, d)."""

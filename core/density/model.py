@@ -330,23 +330,45 @@ class AdditiveTreeDensity(Settings):
         self.chain_  # noqa: B018  (raises when not fitted)
         return self.fitted_
 
-    def score_samples(self, X) -> np.ndarray:
+    def score_samples(self, X, posteriors=None) -> np.ndarray:
         """Natural-log density of each event (n_events,), per unit volume of X's units.
 
-        Streams X in chunks of 65,536 events (memory bounded by the chunk)."""
+        Streams X in chunks of 65,536 events (memory bounded by the chunk).
+        ``posteriors(a, b, R)``: called for each chunk of rows a:b.  When the model
+        is a skewed mixture alone (:attr:`scores_with_posteriors`), R (b - a, K + 1)
+        holds the mixture's posterior component probabilities of those rows
+        (background first, as ``mixture_.posteriors``), computed in the same
+        compiled pass as their log density (which stays bit-identical); R is None
+        otherwise, and for a chunk holding a value beyond the far-value clip."""
         chain = self._check_fitted().chain
         X = check_matrix(X, "score", self.n_features_in_)
         out = np.empty(X.shape[0])
         reach = FAR_SCALES * chain.scale
+        lo, hi = chain.loc - reach, chain.loc + reach
+        with_r = posteriors is not None and self.scores_with_posteriors
         for a in range(0, X.shape[0], CHUNK):
             b = min(X.shape[0], a + CHUNK)
             C = chunk(X, a, b, "score")
             # values further than FAR_SCALES robust scales from a channel's centre are
             # scored at that distance, so every finite event gets a finite log density
-            np.clip(C, chain.loc - reach, chain.loc + reach, out=C)
+            far = with_r and bool(((C < lo) | (C > hi)).any())
+            np.clip(C, lo, hi, out=C)
+            if with_r:
+                out[a:b], R = chain.base_log_density_and_posteriors(C)
+                posteriors(a, b, None if far else R)
+                continue
             out[a:b] = chain.log_density(C)
+            if posteriors is not None:
+                posteriors(a, b, None)
         np.maximum(out, LOG_DENSITY_FLOOR, out=out)  # finite for every finite event
         return out
+
+    @property
+    def scores_with_posteriors(self) -> bool:
+        """True when the model is a skewed mixture alone: :meth:`score_samples` then
+        gives the mixture's posteriors from the pass that scores (see there)."""
+        chain = self._check_fitted().chain
+        return chain.density_is_base() and chain.mixture.is_skewed
 
     def score(self, X, y=None) -> float:
         """Mean log density of the events X (nats per event); ``y`` is ignored."""

@@ -100,13 +100,14 @@ from __future__ import annotations
 # The package's modules by role (each re-exported here, so ``core.populations.X`` keeps working):
 # settings (defaults and their check), definition (stored form and assignment), modes (hill
 # climbing, saddles, merging), profiles (marker levels and names), table (the result and its
-# table), search (find_populations), changes (grown and shrunk populations).
+# table), search (find_populations; find_populations_and_score scores and assigns in one
+# pass), changes (grown and shrunk populations).
 from .changes import population_changes
 from .definition import (PopulationDefinition, _group_matrix, _labels_from_posteriors, _mixture_dict,
                          assign_populations, component_posteriors)
 from .modes import _hill_climb, _merge, _node_of_events, _saddles, _same_place, _spread_starts
 from .profiles import _weighted_median, channel_splits, marker_level, population_stats, profile_text
-from .search import _mixture_for, find_populations
+from .search import _mixture_for, find_populations, find_populations_and_score, score_and_assign
 from .settings import (_CHUNK, _MINUS, BEND_STEPS, BRIGHT_ABOVE, CHANGE_RATE, DEFAULT_SETTINGS, DEFINITION_VERSION,
                        DIM_BELOW, MAX_STEP, MIN_GAP, MODES_ON, check_settings)
 from .table import Populations, _share_ci, count_populations, population_table
@@ -114,4 +115,6 @@ from .table import Populations, _share_ci, count_populations, population_table
 __all__ = ["BEND_STEPS", "BRIGHT_ABOVE", "CHANGE_RATE", "DEFAULT_SETTINGS", "DEFINITION_VERSION", "DIM_BELOW",
            "MAX_STEP", "MIN_GAP", "MODES_ON", "PopulationDefinition", "Populations", "assign_populations",
            "channel_splits", "check_settings", "component_posteriors", "count_populations", "find_populations",
-           "marker_level", "population_changes", "population_stats", "population_table", "profile_text"]
+           "find_populations_and_score",
+           "marker_level", "population_changes", "population_stats", "population_table", "profile_text",
+           "score_and_assign"]

@@ -11,21 +11,24 @@ from .settings import _MINUS, BRIGHT_ABOVE, DIM_BELOW, MIN_GAP
 
 def population_stats(values: np.ndarray, labels: np.ndarray, n_populations: int):
     """Per population: counts (P,), channel medians (P, d) and robust standard
-    deviations 1.4826 MAD (P, d); NaN rows for empty populations.  One sort of
-    the events by label, then contiguous slices."""
-    X = np.asarray(values, dtype=np.float64)
-    ok = labels >= 0
-    counts = np.bincount(labels[ok], minlength=n_populations)
-    order = np.argsort(labels[ok], kind="stable")
-    Xs = X[ok][order]
+    deviations 1.4826 MAD (P, d); NaN rows for empty populations.  One stable
+    sort of the events by label, then per channel one gathered column (n,)
+    cut into contiguous slices: no copy of the whole matrix."""
+    X = np.asarray(values)
+    ok = np.flatnonzero(labels >= 0)
+    lab = labels[ok]
+    counts = np.bincount(lab, minlength=n_populations)
+    rows = ok[np.argsort(lab, kind="stable")]
     bounds = np.concatenate([[0], np.cumsum(counts)])
     med = np.full((n_populations, X.shape[1]), np.nan)
     sd = np.full((n_populations, X.shape[1]), np.nan)
-    for p in range(n_populations):
-        if counts[p]:
-            block = Xs[bounds[p]:bounds[p + 1]]
-            med[p] = np.median(block, axis=0)
-            sd[p] = 1.4826 * np.median(np.abs(block - med[p]), axis=0)
+    for j in range(X.shape[1]):
+        col = X[rows, j].astype(np.float64, copy=False)
+        for p in range(n_populations):
+            if counts[p]:
+                block = col[bounds[p]:bounds[p + 1]]
+                med[p, j] = np.median(block)
+                sd[p, j] = 1.4826 * np.median(np.abs(block - med[p, j]))
     return counts, med, sd
 
 

@@ -9,7 +9,8 @@ import numpy as np
 from ..density.gaussian_base import GaussianMixtureBase
 from ..errors import Cancelled, EventDataError
 from ..progress import keep_going
-from .definition import PopulationDefinition, _mixture_dict, assign_populations, component_posteriors
+from .definition import (PopulationDefinition, _group_matrix, _labels_from_posteriors, _mixture_dict,
+                         assign_populations, component_posteriors)
 from .modes import _hill_climb, _merge, _node_of_events, _saddles, _same_place, _spread_starts
 from .settings import BEND_STEPS, MODES_ON, check_settings
 from .table import Populations, population_table
@@ -32,6 +33,17 @@ def _mixture_for(model, X: np.ndarray, seed: int):
     return mix, cols, "fitted here"
 
 
+def _column_iqr(X: np.ndarray) -> np.ndarray:
+    """Inter-quartile range (d,) of each column of X (n, d), one column at a time
+    (a copy of one column, not of the matrix; the same values as np.percentile
+    over axis 0)."""
+    out = np.empty(X.shape[1])
+    for j in range(X.shape[1]):
+        q1, q3 = np.percentile(X[:, j], [25, 75])
+        out[j] = q3 - q1
+    return out
+
+
 def find_populations(model, values, channel_names, channel_labels=None, transforms=None,
                      settings=None, log_density=None, progress=None) -> Populations:
     """Populations of events ``values`` (n_events, n_channels; the model's channels,
@@ -44,6 +56,59 @@ def find_populations(model, values, channel_names, channel_labels=None, transfor
     info)`` is called between stages (False stops: :class:`core.errors.Cancelled`).
     Deterministic for ``settings['random_state']``.
     """
+    return _find(model, values, channel_names, channel_labels, transforms, settings, log_density, progress,
+                 fused=False)[1]
+
+
+def find_populations_and_score(model, values, channel_names, channel_labels=None, transforms=None,
+                               settings=None, progress=None):
+    """:func:`find_populations` of every event of ``values`` and the model's log
+    density of each, (Populations, log density (n_events,)): for a model that is a
+    skewed mixture alone (``model.scores_with_posteriors``) one compiled pass over
+    the events gives both the log density and the posteriors that assign them
+    (:func:`score_and_assign`), where scoring then assigning takes two.  The same
+    populations, labels and log densities (bit for bit) as ``model.score_samples``
+    followed by :func:`find_populations` with that log density."""
+    scores, pops = _find(model, values, channel_names, channel_labels, transforms, settings, None, progress,
+                         fused=bool(getattr(model, "scores_with_posteriors", False)))
+    if scores is None:
+        scores = model.score_samples(values)
+    return pops, scores
+
+
+def _scored_with_posteriors(model, X, mix, cols):
+    """Log density (n,) and posteriors (n, K + 1) of events X in one pass (fused models)."""
+    R = np.empty((X.shape[0], mix.n_components + 1))
+
+    def keep(a, b, Rc):
+        R[a:b] = Rc if Rc is not None else component_posteriors(mix, X[a:b][:, cols])
+    ld = model.score_samples(X, posteriors=keep)
+    return ld, R
+
+
+def score_and_assign(model, definition: PopulationDefinition, values):
+    """Population labels (n_events,) and the model's log density (n_events,) of
+    ``values`` from one compiled pass per chunk of events (``model.score_samples``
+    with its posteriors; see :func:`find_populations_and_score`); labels are those
+    of :func:`assign_populations`."""
+    X = np.asarray(values, dtype=np.float64)
+    labels = np.full(X.shape[0], -1, dtype=np.int64)
+    mix = definition.mixture_model()
+    G = _group_matrix(definition.groups, definition.n_populations)
+    cols = np.asarray(definition.columns, int)
+    scale = np.asarray(definition.scale, float)
+
+    def assign(a, b, R):
+        Xc = X[a:b]
+        if R is None:
+            R = component_posteriors(mix, Xc[:, cols])
+        labels[a:b] = _labels_from_posteriors(R, G, Xc, definition.split, scale)
+    scores = model.score_samples(X, posteriors=assign)
+    return labels, scores
+
+
+def _find(model, values, channel_names, channel_labels, transforms, settings, log_density, progress,
+          fused: bool):
     st = check_settings(settings)
     X = np.ascontiguousarray(values, dtype=np.float64)
     if X.ndim != 2 or X.shape[1] != len(channel_names):
@@ -61,6 +126,7 @@ def find_populations(model, values, channel_names, channel_labels=None, transfor
     going(0, "Populations: mixture components")
     mix, cols, origin = _mixture_for(model, X, st["random_state"])
     K = mix.n_components
+    fused = fused and origin == "model" and MODES_ON == "model"
     if origin == "model" and MODES_ON == "model":
         score = model.score_samples
     else:
@@ -74,11 +140,14 @@ def find_populations(model, values, channel_names, channel_labels=None, transfor
     # a seeded subsample starts the mode search
     sub = np.arange(n) if n <= st["mode_events"] else np.sort(rng.choice(n, st["mode_events"], replace=False))
     Xs = X[sub]
-    ld = np.asarray(log_density, float)[sub] if log_density is not None else score(Xs)
-    R = component_posteriors(mix, Xs[:, cols])
+    if log_density is None and fused:
+        ld, R = _scored_with_posteriors(model, Xs, mix, cols)
+    else:
+        ld = np.asarray(log_density, float)[sub] if log_density is not None else score(Xs)
+        R = component_posteriors(mix, Xs[:, cols])
     hard = np.argmax(R, axis=1) - 1                     # -1 background
     going(1, "Populations: modes of the density")
-    scale = np.maximum(np.percentile(X, 75, axis=0) - np.percentile(X, 25, axis=0), 1e-9)
+    scale = np.maximum(_column_iqr(X), 1e-9)
     starts, owner = [], []
     for k in range(-1, K):          # -1: the events the background holds
         idx = np.flatnonzero(hard == k)
@@ -145,12 +214,15 @@ def find_populations(model, values, channel_names, channel_labels=None, transfor
                                       names=[""] * n_pop, split=split, scale=[float(v) for v in scale])
     definition._mix = mix
     going(3, "Populations: assigning events")
-    labels = assign_populations(definition, X)
+    if fused:
+        labels, scores = score_and_assign(model, definition, X)
+    else:
+        labels, scores = assign_populations(definition, X), None
     table = population_table(X, labels, definition, channel_names, channel_labels, transforms, st)
     for r in table:
         definition.names[r["id"]] = r["profile"]
     going(4, "Populations: done")
-    return Populations(labels=labels, table=table, definition=definition,
+    return scores, Populations(labels=labels, table=table, definition=definition,
                        info={"components": K, "components_with_events": int(np.unique(owner[owner >= 0]).size),
                              "mixture": origin, "starts": int(starts.size), "modes": n_nodes,
                              "mode_events": np.bincount(ev_node, minlength=n_nodes).tolist(),

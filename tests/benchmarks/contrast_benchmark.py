@@ -37,6 +37,7 @@ nominal, points) and seconds.
 from __future__ import annotations
 
 import argparse
+import hashlib
 import os
 import sys
 import time
@@ -49,11 +50,31 @@ sys.path.insert(0, ROOT)
 
 from core.analysis import density_input  # noqa: E402
 from core.contrast import DEFAULT_MIN_FOLD, DEFAULT_RATE, contrast, prepare_control  # noqa: E402
+from core.density import AdditiveTreeDensity  # noqa: E402
 from core.fcs import read_fcs  # noqa: E402
 from core.recipe import default_recipe  # noqa: E402
 
 TUBES = {"B": "tube_B_treated_low", "C": "tube_C_treated_mid", "D": "tube_D_treated_high"}
 ENGINE = {"random_state": 0}
+
+
+def remembering_factory(engine):
+    """A model factory that fits each distinct event matrix once: a second contrast of the
+    same test file (the former score, ``reweight=False``) reuses the same fitted models."""
+    fitted = {}
+
+    def fit(X, progress=None):
+        key = (X.shape, hashlib.sha1(np.ascontiguousarray(X).tobytes()).hexdigest())
+        if key not in fitted:
+            fitted[key] = AdditiveTreeDensity(**engine).fit(X, progress=progress)
+        return fitted[key]
+    return fit
+
+
+def both_scores(T, pc, factory, **kw):
+    """(contrast with the control reweighted to the test's shares, the former contrast) on the same fits."""
+    return (contrast(T, None, prepared_control=pc, model_factory=factory, **kw),
+            contrast(T, None, prepared_control=pc, model_factory=factory, reweight=False, **kw))
 
 
 def table(header, rows):
@@ -85,7 +106,8 @@ def _f(v, d=3):
 # ---------------------------------------------------------------------------
 
 DEMO_HEADER = ["tube", "events", "new (truth)", "enriched", "recall", "precision", "precision (grown)",
-               "expected false", "min q of new", "shift warning", "seconds"]
+               "expected false", "max q of new", "shift warning", "former score: enriched / recall / precision",
+               "seconds"]
 
 
 def grown_populations(test_labels, control_labels, factor=2.0):
@@ -102,7 +124,8 @@ def demo_rows(folder, tubes, rate, min_fold):
                                   allow_pickle=False)["labels"]).astype(str)[c_prep.kept]
     engine = recipe.engine_arguments()
     t0 = time.perf_counter()
-    pc = prepare_control(c_prep.matrix, engine=engine, random_state=engine["random_state"])
+    factory = remembering_factory(engine)
+    pc = prepare_control(c_prep.matrix, model_factory=factory, random_state=engine["random_state"])
     print(f"control prepared in {time.perf_counter() - t0:.1f} s", file=sys.stderr, flush=True)
     rows = []
     for key in tubes:
@@ -113,9 +136,10 @@ def demo_rows(folder, tubes, rate, min_fold):
         new = np.asarray(truth["rare"], bool)[prep.kept]
         labels = np.asarray(truth["labels"]).astype(str)[prep.kept]
         t0 = time.perf_counter()
-        res = contrast(prep.matrix, None, rate=rate, min_fold=min_fold, engine=engine,
-                       random_state=engine["random_state"], prepared_control=pc, channel_names=recipe.channels)
+        res, former = both_scores(prep.matrix, pc, factory, rate=rate, min_fold=min_fold,
+                                  random_state=engine["random_state"], channel_names=recipe.channels)
         sec = time.perf_counter() - t0
+        f_prec, f_rec = _pr(former.enriched, new)
         prec, rec = _pr(res.enriched, new)
         hit = np.isin(labels, grown_populations(labels, c_labels)) | new
         prec_g = float(np.mean(hit[res.enriched])) if res.count else float("nan")
@@ -124,7 +148,7 @@ def demo_rows(folder, tubes, rate, min_fold):
         rows.append([stem, prep.matrix.shape[0], int(new.sum()), res.count, _f(rec), _f(prec), _f(prec_g),
                      _f(res.expected_false, 1), f"{np.nanmax(res.qvalue[new]):.2g}" if new.any() else "",
                      ", ".join(res.shift.moved[:3]) or ("many events" if res.shift.warn else "none"),
-                     f"{sec:.1f}"])
+                     f"{former.count} / {_f(f_rec)} / {_f(f_prec)}", f"{sec:.1f}"])
         print(table(DEMO_HEADER, rows[-1:]).splitlines()[-1] + (f"   (false: {note})" if note else ""),
               file=sys.stderr, flush=True)
     return rows
@@ -212,37 +236,41 @@ def _to_units():
 
 
 GEN_HEADER = ["new share", "test draw", "events", "new (truth)", "enriched", "false", "recall", "precision",
-              "expected false", "shift warning", "seconds"]
+              "expected false", "shift warning", "former score: recall / precision", "seconds"]
 
 
 def generator_rows(rate, min_fold, seeds=1, n=60_000):
     """One control; per share, ``seeds`` test draws and, with several, a mean row."""
     C, _ = draw(n, seed=101)
     t0 = time.perf_counter()
-    pc = prepare_control(C, engine=ENGINE)
+    factory = remembering_factory(ENGINE)
+    pc = prepare_control(C, model_factory=factory)
     print(f"generator control prepared in {time.perf_counter() - t0:.1f} s", file=sys.stderr, flush=True)
     rows = []
     for share in (0.0005, 0.002, 0.01):
-        precs, recs = [], []
+        precs, recs, f_precs, f_recs = [], [], [], []
         for seed in range(202, 202 + seeds):
             T, truth = draw(n, seed=seed, new_share=share)
             t0 = time.perf_counter()
-            res = contrast(T, None, rate=rate, min_fold=min_fold, engine=ENGINE, prepared_control=pc,
-                           channel_names=CHANNELS, to_units=_to_units())
+            res, former = both_scores(T, pc, factory, rate=rate, min_fold=min_fold, channel_names=CHANNELS,
+                                      to_units=_to_units())
             prec, rec = _pr(res.enriched, truth)
+            f_prec, f_rec = _pr(former.enriched, truth)
             precs.append(prec)
             recs.append(rec)
+            f_precs.append(f_prec)
+            f_recs.append(f_rec)
             rows.append([f"{100 * share:g} %", seed, n, int(truth.sum()), res.count, int(np.sum(res.enriched & ~truth)),
                          _f(rec), _f(prec), _f(res.expected_false, 1), ", ".join(res.shift.moved[:3]) or "none",
-                         f"{time.perf_counter() - t0:.1f}"])
+                         f"{_f(f_rec)} / {_f(f_prec)}", f"{time.perf_counter() - t0:.1f}"])
             print(table(GEN_HEADER, rows[-1:]).splitlines()[-1], file=sys.stderr, flush=True)
         if seeds > 1:
             rows.append([f"{100 * share:g} %", "mean", "", "", "", "", _f(np.nanmean(recs)), _f(np.nanmean(precs)),
-                         "", "", ""])
+                         "", "", f"{_f(np.nanmean(f_recs))} / {_f(np.nanmean(f_precs))}", ""])
     return rows, pc
 
 
-NULL_HEADER = ["seed", "events (each)", "flagged", "smallest p", "smallest q", "KS p, pooled scores",
+NULL_HEADER = ["seed", "events (each)", "flagged", "flagged (former score)", "smallest p", "smallest q", "KS p, pooled scores",
                "KS p, within parts (smallest of 3)", "p <= 0.001", "p <= 0.01", "p <= 0.05", "shift warning",
                "seconds"]
 
@@ -258,9 +286,10 @@ def null_rows(rate, min_fold, seeds, n):
         C, _ = draw(n, seed=1000 + seed)
         T, _ = draw(n, seed=2000 + seed)
         t0 = time.perf_counter()
-        pc = prepare_control(C, engine=ENGINE, random_state=seed)
-        res = contrast(T, None, rate=rate, min_fold=min_fold, engine=ENGINE, random_state=seed,
-                       prepared_control=pc, channel_names=CHANNELS, to_units=_to_units())
+        factory = remembering_factory(ENGINE)
+        pc = prepare_control(C, model_factory=factory, random_state=seed)
+        res, former = both_scores(T, pc, factory, rate=rate, min_fold=min_fold, random_state=seed,
+                                  channel_names=CHANNELS, to_units=_to_units())
         ok = np.isfinite(res.score)
         p, s, part = res.pvalue[ok], res.score[ok], res.info["part"]
         # reference: scipy.stats.ks_2samp -- under the null, test and control scores are exchangeable
@@ -270,15 +299,16 @@ def null_rows(rate, min_fold, seeds, n):
                       for k in range(res.folds))
         tail = [float(np.mean(p <= t)) for t in (0.001, 0.01, 0.05)]
         tails.append(tail)
-        rows.append([seed, n, res.count, f"{p.min():.2g}", f"{np.nanmin(res.qvalue):.3f}", f"{ks:.3f}",
+        rows.append([seed, n, res.count, former.count, f"{p.min():.2g}", f"{np.nanmin(res.qvalue):.3f}", f"{ks:.3f}",
                      f"{ks_part:.3f}", *(f"{v:.4f}" for v in tail),
                      ", ".join(res.shift.moved) or ("many events" if res.shift.warn else "none"),
                      f"{time.perf_counter() - t0:.1f}"])
         print(table(NULL_HEADER, rows[-1:]).splitlines()[-1], file=sys.stderr, flush=True)
     if seeds > 1:
         mean = np.mean(tails, axis=0)
-        rows.append(["all", n * seeds, sum(r[2] for r in rows), "", "", f"{sum(float(r[5]) < 0.05 for r in rows)} < 0.05",
-                     f"{sum(float(r[6]) < 0.05 for r in rows)} < 0.05", *(f"{v:.4f}" for v in mean), "", ""])
+        rows.append(["all", n * seeds, sum(r[2] for r in rows), sum(r[3] for r in rows), "", "",
+                     f"{sum(float(r[6]) < 0.05 for r in rows)} < 0.05",
+                     f"{sum(float(r[7]) < 0.05 for r in rows)} < 0.05", *(f"{v:.4f}" for v in mean), "", ""])
     return rows
 
 
