@@ -34,7 +34,7 @@ EARLY_TREES = 3
 #: held-out value plus this many times the latest tree's gain stays below the
 #: required gain (the same projection as the mixture stage's count search,
 #: :data:`core.density.em.ABANDON_GAP`: a first tree that loses on the held-out
-#: share ends a layer that must gain 0.04 nats; EXPERIMENTS.md section 25).
+#: share ends a layer that must gain 0.04 nats; EXPERIMENTS.md section 26).
 TREE_ABANDON_GAP = 3.0
 
 
@@ -225,7 +225,7 @@ def _fit_trees(p, shares, budget, allowed, look, start_ll, needed, mixture, rng,
 #: fitted on an evenly spread probe of this many (its Rosenblatt map is the cost:
 #: 27 % of a 200,000 x 8 fit); a probe tree that does not raise the held-out
 #: log-likelihood ends the tree stage before the whole training share is mapped
-#: (:func:`probe_gain`; EXPERIMENTS.md section 25).
+#: (:func:`probe_gain`; EXPERIMENTS.md section 26).
 PROBE_EVENTS = 50_000
 
 

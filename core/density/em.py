@@ -11,13 +11,14 @@ from typing import NamedTuple
 import numpy as np
 
 from . import kernels
+from .correlation_prior import shrink_correlations
 
 #: Smallest weight of the broad background component.
 MIN_BACKGROUND = 1e-4
 #: A count that must reach a held-out target is abandoned once its held-out
 #: value plus this many times its latest gain per EM step stays below the target
 #: (successive gains shrink by about a third a step, so what is left is about
-#: twice the latest: EXPERIMENTS.md sections 24 and 25).
+#: twice the latest: EXPERIMENTS.md sections 24 and 26).
 ABANDON_GAP = 3.0
 
 
@@ -101,7 +102,7 @@ def em_from_kmeans(X, bg, k, reg, rng, max_iter, tol, going=None, heldout=None):
     return em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going, heldout)
 
 
-def em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going, heldout=None):
+def em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going, heldout=None, shrink=None):
     """EM from the mixture (w, mu, cov) until the mean log-likelihood rises by less
     than tol; returns (mean log-lik, weights, means, covs, abandoned).  Each
     iteration is one compiled pass over the events (E step and the M step's
@@ -113,7 +114,9 @@ def em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going, heldout=None):
     and EM is abandoned (``abandoned`` True, the mixture unusable for the
     count search) as soon as that value plus ``ABANDON_GAP`` times its latest
     rise stays below ``heldout.target``: a count that will not be kept is not
-    run to convergence."""
+    run to convergence.  ``shrink`` (groups (K,) int, pseudo-events): each M step
+    pulls the correlations toward the group's (:func:`shrink_correlations`); None:
+    plain EM."""
     n = X.shape[0]
     prev = -np.inf
     ll = -np.inf
@@ -147,6 +150,8 @@ def em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going, heldout=None):
         mu = mu + delta
         cov = M / Nk[1:, None, None] - delta[:, :, None] * delta[:, None, :]
         cov = 0.5 * (cov + np.swapaxes(cov, 1, 2)) + np.diag(reg)[None]
+        if shrink is not None:  # after the floor: every correlation matrix is then positive definite
+            cov = shrink_correlations(cov, Nk[1:], *shrink)
         if ll - prev < tol or (going is not None and not going()):
             break
         prev = ll

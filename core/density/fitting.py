@@ -15,6 +15,7 @@ from ..progress import keep_going
 from .boosting import (MAP_COST_RATIO, TREE_ABANDON_GAP, Shares, TreeStage, fit_layers, marginal_tree_count,
                        probe_events, probe_gain)
 from .chain import Chain
+from .correlation_prior import CORR_PRIOR, PRIOR_COMPONENTS
 from .checks import ATOM_SHARE, largest_atom_share, nonfinite_error
 from .mixture_base import MIXTURE_BASES, MixtureBase
 from .mixture_fit import MixtureSettings, fit_mixture
@@ -84,7 +85,8 @@ def fit_mixture_base(chain: Chain, base: str, X_tr, X_va, rng, progress, n_trees
     a flat-top background), component count chosen on the held-out events."""
     free = ~chain.constant
     settings = MixtureSettings(random_state=int(rng.integers(2 ** 31)), skew=base == "skewed",
-                               flat_background=base == "skewed")
+                               flat_background=base == "skewed", components=PRIOR_COMPONENTS,
+                               corr_prior=CORR_PRIOR)
     return fit_mixture(X_tr[:, free], chain.loc[free], chain.scale[free], settings,
                        validation=X_va[:, free],
                        progress=lambda step, total, info: keep_going(progress, 0, n_trees, info))

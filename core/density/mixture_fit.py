@@ -11,6 +11,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..progress import keep_going
+from .correlation_prior import split_groups
 from .em import HeldOut, em_from_kmeans, em_iterations, split_components
 from .mixture_base import MixtureBase, background_logpdf
 from .skew_fit import SkewFit, initial_flat_background
@@ -39,7 +40,11 @@ class MixtureSettings:
     training mean log-likelihood rises by less than tol (nats per event);
     n_init: k-means++ restarts per count; min_gain: least held-out gain (nats
     per event) of a larger count or of the skewed refit; skew: refit with skewed
-    components; flat_background: a flat-top background instead of the logistic."""
+    components; flat_background: a flat-top background instead of the logistic;
+    corr_prior: from ``SPLIT_SPLIT_FROM`` components on, pseudo-events of the
+    pooled correlation of the components split from one ancestor (the last
+    k-means++ start) that each component's correlation is pulled toward, in the
+    Gaussian and the skewed EM (:mod:`core.density.correlation_prior`); 0: none."""
     components: tuple = DEFAULT_COMPONENTS
     random_state: int | None = None
     max_em_events: int = 50_000
@@ -49,6 +54,7 @@ class MixtureSettings:
     min_gain: float = 2e-3
     skew: bool = True
     flat_background: bool = False
+    corr_prior: float = 0.0
 
 
 def clearly_better(new, old, min_gain, strict):
@@ -165,7 +171,7 @@ def _search_count(cls, X, Xva, loc, scale, reg, s, rng, stop):
     follow = np.linspace(0, Xva.shape[0] - 1, min(Xva.shape[0], FOLLOW_EVENTS)).astype(np.int64)
     bg_va = background_logpdf(Xva[follow], loc, scale, bgr)
     best, best_scores, runner_up = None, None, None
-    prev_fit, prev_fresh = None, False
+    prev_fit, prev_fresh, groups = None, False, None
     for step, k in enumerate(components):
         if best is not None and k * (d + 1) > n:
             break  # too few events for this many components (k = 1 is always fitted)
@@ -180,14 +186,19 @@ def _search_count(cls, X, Xva, loc, scale, reg, s, rng, stop):
         if prev_fit is not None and (prev_fresh or k >= SPLIT_SPLIT_FROM) \
                 and k == 2 * prev_fit[2].shape[0]:
             parent = split_components(prev_fit[1], prev_fit[2], prev_fit[3])
+        shrink = None  # components split from one k-means++ start share a group
+        if parent is not None and s.corr_prior > 0 and k >= SPLIT_SPLIT_FROM:
+            shrink = (split_groups(groups), float(s.corr_prior))
         target = -np.inf if best is None else float(best_scores[follow].mean()) + s.min_gain
         fit_k, fit_fresh = _fit_count(X, bg, k, parent, reg, rng, s, going, stop,
-                                      HeldOut(np.ascontiguousarray(Xva[follow]), bg_va, target))
+                                      HeldOut(np.ascontiguousarray(Xva[follow]), bg_va, target), shrink)
         if fit_k[4] or (stop.stopped and best is not None):
             break  # abandoned: it would not have reached the held-out gain it needs
         prev_fit, prev_fresh = fit_k, fit_fresh
+        groups = np.arange(k) if fit_fresh else split_groups(groups)
         _, w, mu, cov, _ = fit_k
         model = cls(w, mu, cov, loc, scale, background=bgr)
+        model.shrink_groups = groups if shrink is not None else None
         scores = model.logpdf(Xva)
         if best is not None and not clearly_better(scores, best_scores, s.min_gain, k >= SPLIT_SPLIT_FROM):
             break
@@ -198,9 +209,10 @@ def _search_count(cls, X, Xva, loc, scale, reg, s, rng, stop):
     return best, best_scores, runner_up
 
 
-def _fit_count(X, bg, k, parent, reg, rng, s, going, stop, heldout=None):
+def _fit_count(X, bg, k, parent, reg, rng, s, going, stop, heldout=None, shrink=None):
     """EM for k components, ``n_init`` times (the first from ``parent``, the split
-    of the previous mixture, when given); returns (best fit, started fresh).  With
+    of the previous mixture, when given, with the correlation prior ``shrink``
+    (groups, pseudo-events) or None); returns (best fit, started fresh).  With
     ``heldout`` (:class:`core.density.em.HeldOut`) an attempt that cannot reach
     its target is abandoned (:func:`core.density.em.em_iterations`); the fit is
     marked abandoned (its fifth entry) only when every attempt was."""
@@ -208,7 +220,7 @@ def _fit_count(X, bg, k, parent, reg, rng, s, going, stop, heldout=None):
     for attempt in range(max(1, int(s.n_init))):
         split_start = parent is not None and attempt == 0
         if split_start:
-            cand = em_iterations(X, bg, *parent, reg, s.max_iter, s.tol, going, heldout)
+            cand = em_iterations(X, bg, *parent, reg, s.max_iter, s.tol, going, heldout, shrink)
         else:
             cand = em_from_kmeans(X, bg, k, reg, rng, s.max_iter, s.tol, going, heldout)
         if fit_k is not None and cand[4]:
@@ -231,7 +243,7 @@ def _skewed_candidate(X, Xva, best, best_scores, runner_up, reg, s, stop):
     starts = [best]
     if best.n_components >= SPLIT_SPLIT_FROM and runner_up is not None and runner_up.n_components:
         starts.append(runner_up)
-    fits = [SkewFit(X, start, reg, s.max_iter, s.tol, Xva) for start in starts]
+    fits = [SkewFit(X, start, reg, s.max_iter, s.tol, Xva, _shrink(start, s)) for start in starts]
     stage = {"stage": "Fitting the mixture base: skewed components "
                       f"({' and '.join(str(f.n_components) for f in fits)})"}
     if not stop.going(n_steps - 1, n_steps, stage):
@@ -243,6 +255,13 @@ def _skewed_candidate(X, Xva, best, best_scores, runner_up, reg, s, stop):
     if fits and float(fits[0][1].mean()) > float(best_scores.mean()) + s.min_gain:
         return fits[0][0]
     return best
+
+
+def _shrink(model, s):
+    """The correlation prior (groups, pseudo-events) a Gaussian mixture of the
+    search was fitted with, for its skewed refit; None when it had none."""
+    groups = getattr(model, "shrink_groups", None)
+    return None if groups is None else (groups, float(s.corr_prior))
 
 
 #: Two skewed fits run side by side; the one behind is dropped once the gap

@@ -8,6 +8,7 @@ from __future__ import annotations
 import numpy as np
 
 from . import kernels
+from .correlation_prior import shrink_correlations
 from .em import MIN_BACKGROUND
 from .mixture_base import MAX_SKEW, flat_top_log_norm
 
@@ -102,10 +103,13 @@ class SkewFit:
     mean log-likelihood rises by less than ``tol`` (held-out values peak several
     steps before training values settle, then fall: EXPERIMENTS.md section 24).
     ``best``: the mixture with the best held-out (else training) value so far,
-    ``best_scores`` its held-out log densities (m,) (None without ``Xva``)."""
+    ``best_scores`` its held-out log densities (m,) (None without ``Xva``).
+    ``shrink`` (groups (K,), pseudo-events): each M step pulls the components'
+    correlations toward their group's (:func:`core.density.correlation_prior.shrink_correlations`)."""
 
-    def __init__(self, X, gauss, reg, max_iter, tol, Xva=None):
+    def __init__(self, X, gauss, reg, max_iter, tol, Xva=None, shrink=None):
         self.X, self.Xva, self.tol, self.max_iter = X, Xva, float(tol), int(max_iter)
+        self.shrink = shrink
         K, d = gauss.means.shape
         self.gauss = gauss
         self.w = gauss.weights.copy()
@@ -174,6 +178,8 @@ class SkewFit:
         thr = 1e-3 * np.maximum(R[:, 1:].max(axis=0), 1e-300)
         kernels.component_shapes(X, R, thr, self.centre, self.scale, self.eps, self.reg_y, _SKEW_GRID,
                                  _SKEW_MOVES, MAX_SKEW, _SKEW_JAC_BINS, self.mu, self.cov)
+        if self.shrink is not None:
+            self.cov = shrink_correlations(self.cov, Nk[1:], *self.shrink)
 
 
 def skew_em(X, gauss, reg, max_iter, tol, going, Xva=None):

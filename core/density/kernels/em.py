@@ -226,7 +226,7 @@ def em_loglik(X, bg, logw, means, chol, log_det, n_parts=16, hint=None):
 
 #: Up to this many channels the EM pass is laid out with the component index
 #: innermost and unpruned (faster at 8 channels, equal at 16, slower at 30: the
-#: pruning saves more as channels grow; EXPERIMENTS.md section 25).
+#: pruning saves more as channels grow; EXPERIMENTS.md section 26).
 VECTOR_MAX_CHANNELS = 12
 
 
