@@ -78,7 +78,7 @@ def test_em_with_a_strong_prior_shares_one_correlation_and_fits_the_truth():
     loc, scale = X.mean(axis=0), X.std(axis=0) * 3.0
     reg = 1e-6 * X.var(axis=0)
     bg = background_logpdf(X, loc, scale, None)
-    _, w, mu, cov = em_iterations(X, bg, w0, mu0, cov0, reg, 100, 1e-6, None, (np.zeros(2, int), 1e9))
+    _, w, mu, cov, _ = em_iterations(X, bg, w0, mu0, cov0, reg, 100, 1e-6, None, (np.zeros(2, int), 1e9))
     corr = cov / np.sqrt(np.einsum("kii->ki", cov)[:, :, None] * np.einsum("kii->ki", cov)[:, None, :])
     # one shared correlation (up to the 1e-6 x variance floor added on the diagonal after it)
     np.testing.assert_allclose(corr[0], corr[1], atol=1e-3)
@@ -104,6 +104,6 @@ def test_em_with_the_prior_survives_an_atom_and_a_copied_channel():
     w0 = np.array([1e-3, 0.4995, 0.4995])
     mu0 = np.array([A.mean(axis=0), B.mean(axis=0)])
     cov0 = np.array([np.eye(4), np.eye(4)])
-    ll, w, mu, cov = em_iterations(X, bg, w0, mu0, cov0, reg, 30, 1e-6, None, (np.zeros(2, int), 50.0))
+    ll, w, mu, cov, _ = em_iterations(X, bg, w0, mu0, cov0, reg, 30, 1e-6, None, (np.zeros(2, int), 50.0))
     assert np.isfinite(ll)
     np.linalg.cholesky(cov)

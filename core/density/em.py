@@ -99,10 +99,10 @@ def em_from_kmeans(X, bg, k, reg, rng, max_iter, tol, going=None, heldout=None):
         mu[c] = Xc.mean(axis=0) if Xc.shape[0] else C[c]
         D = Xc - mu[c]
         cov[c] = D.T @ D / max(1, Xc.shape[0]) + np.diag(reg)
-    return em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going, heldout)
+    return em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going, heldout=heldout)
 
 
-def em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going, heldout=None, shrink=None):
+def em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going, shrink=None, heldout=None):
     """EM from the mixture (w, mu, cov) until the mean log-likelihood rises by less
     than tol; returns (mean log-lik, weights, means, covs, abandoned).  Each
     iteration is one compiled pass over the events (E step and the M step's

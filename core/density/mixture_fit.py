@@ -220,7 +220,7 @@ def _fit_count(X, bg, k, parent, reg, rng, s, going, stop, heldout=None, shrink=
     for attempt in range(max(1, int(s.n_init))):
         split_start = parent is not None and attempt == 0
         if split_start:
-            cand = em_iterations(X, bg, *parent, reg, s.max_iter, s.tol, going, heldout, shrink)
+            cand = em_iterations(X, bg, *parent, reg, s.max_iter, s.tol, going, shrink, heldout)
         else:
             cand = em_from_kmeans(X, bg, k, reg, rng, s.max_iter, s.tol, going, heldout)
         if fit_k is not None and cand[4]:
