@@ -119,6 +119,10 @@ def test_fit_panel_ranges_stages_and_sentences(qtbot, window):
     label = p.curve_plot.getAxis("bottom").labelText
     p.show_curve([1.0, 1.2, 1.3])
     assert p.curve_plot.getAxis("bottom").labelText == label  # one x-axis label
+    # fit steps are whole numbers: no tick between step 1 and 2 (pyqtgraph's own axis puts
+    # ticks at 0.5 steps over a range of 3)
+    ticks = [v for _, level in p.curve_plot.getAxis("bottom").tickValues(1.0, 4.0, 300.0) for v in level]
+    assert ticks and all(float(t).is_integer() for t in ticks)
     text = error_text(ValueError("learning_rate must be in (0, 1)"))
     assert "Traceback" not in text and "Unexpected" not in text and text.endswith((".", ")"))
 

@@ -63,6 +63,14 @@ def fit_stage(info) -> tuple[str, str]:
     return "trees", "Stage 3 of 3: boosting trees"
 
 
+
+class StepAxis(pg.AxisItem):
+    """An axis of fit steps: ticks only at whole steps (no 1.5 between step 1 and 2)."""
+
+    def tickSpacing(self, minVal, maxVal, size):
+        return [(max(1.0, float(spacing)), offset) for spacing, offset in super().tickSpacing(minVal, maxVal, size)]
+
+
 class FitPanel(QWidget):
     """Start / cancel a density fit and watch it learn.
 
@@ -165,7 +173,7 @@ class FitPanel(QWidget):
         self.status.setAlignment(Qt.AlignTop | Qt.AlignLeft)
         lay.addWidget(self.status)
 
-        self.curve_plot = pg.PlotWidget(background=style.PAPER)
+        self.curve_plot = pg.PlotWidget(background=style.PAPER, axisItems={"bottom": StepAxis("bottom")})
         self.curve_plot.setMinimumHeight(120)
         self.curve_plot.setMenuEnabled(False)
         self.curve_plot.hideButtons()
