@@ -133,7 +133,6 @@ import numpy as np
 from scipy import stats
 
 from .density import AdditiveTreeDensity
-from .density.checks import FAR_SCALES
 from .errors import Cancelled, EventDataError
 from .fdr import bh_qvalues
 from .progress import stop_relay
@@ -432,8 +431,7 @@ def mixture_posteriors(model, X: np.ndarray) -> tuple[np.ndarray, np.ndarray, in
     chain = getattr(model, "chain_", None)
     mix = getattr(chain, "mixture", None)
     if mix is not None:
-        reach = FAR_SCALES * chain.scale
-        C = np.clip(np.asarray(X, dtype=np.float64), chain.loc - reach, chain.loc + reach)
+        C = np.clip(np.asarray(X, dtype=np.float64), *chain.far_limits())  # as score_samples clips
         return mix.posteriors(np.ascontiguousarray(C[:, ~chain.constant])), mix.weights, 1
     if chain is None and hasattr(model, "weights_") and hasattr(model, "predict_proba"):
         return (np.asarray(model.predict_proba(np.asarray(X, dtype=np.float64)), dtype=np.float64),

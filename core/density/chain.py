@@ -11,6 +11,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import kernels
+from .checks import FAR_SCALES
 from .marginals import PiecewiseLinearMap
 from .mixture_base import MixtureBase
 from .tree import Forest
@@ -55,6 +56,13 @@ class Chain:
     @property
     def n_trees(self) -> int:
         return sum(layer.forest.n_trees for layer in self.layers)
+
+    def far_limits(self) -> tuple[np.ndarray, np.ndarray]:
+        """Lowest and highest value (d,) each channel is scored at: values further than
+        FAR_SCALES robust scales from a channel's centre are scored at that distance,
+        so every finite event gets a finite log density."""
+        reach = FAR_SCALES * self.scale
+        return self.loc - reach, self.loc + reach
 
     def base_forward(self, C: np.ndarray, want_u: bool = True):
         """The base map into the cube: (U (m, d), log-Jacobian (m,)); with

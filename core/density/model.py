@@ -343,8 +343,7 @@ class AdditiveTreeDensity(Settings):
         chain = self._check_fitted().chain
         X = check_matrix(X, "score", self.n_features_in_)
         out = np.empty(X.shape[0])
-        reach = FAR_SCALES * chain.scale
-        lo, hi = chain.loc - reach, chain.loc + reach
+        lo, hi = chain.far_limits()
         with_r = posteriors is not None and self.scores_with_posteriors
         for a in range(0, X.shape[0], CHUNK):
             b = min(X.shape[0], a + CHUNK)
