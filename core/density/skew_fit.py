@@ -41,22 +41,53 @@ _BG_ROUNDS = 1
 _BG_BINS = 2048
 
 
-def flat_background_step(X, r0, bgr):
-    """One generalised-EM step of the flat-top background: per channel, the
-    edges a, b and the softness s in turn (``_BG_ROUNDS`` rounds), each the best of a few moves by the
-    responsibility-weighted log likelihood (over a 2048-bin weighted
-    histogram of the channel; it only ranks the moves).  X (n, d), r0 (n,) the
-    background responsibilities, bgr (3, d).  Returns the new (3, d)."""
-    bgr = bgr.copy()
-    if r0.sum() <= 0:
-        return bgr
+def channel_bins(X):
+    """Per channel j, the index (n,) int of each event's bin among ``_BG_BINS`` equal
+    bins from the channel's min to its max (numpy's histogram rule: a bin holds its
+    left edge, the last bin its right edge too), or None for a constant channel.
+    The events of a skewed fit do not change between its steps, so
+    :func:`flat_background_step` reuses these instead of binning again."""
+    out = []
     for j in range(X.shape[1]):
         x = X[:, j]
         lo, hi = float(x.min()), float(x.max())
         if hi <= lo:
+            out.append(None)
             continue
-        h = np.histogram(x, bins=_BG_BINS, range=(lo, hi), weights=r0)[0]
-        hx = np.histogram(x, bins=_BG_BINS, range=(lo, hi), weights=r0 * x)[0]
+        edges = np.linspace(lo, hi, _BG_BINS + 1)
+        idx = np.searchsorted(edges, x, side="right") - 1
+        idx[idx == _BG_BINS] = _BG_BINS - 1
+        out.append(idx)
+    return out
+
+
+def _binned(idx, weights):
+    """Weighted histogram (``_BG_BINS``,) from bin indices, summed in numpy's
+    histogram blocks of 65,536 events (the same sums as ``np.histogram``)."""
+    h = np.zeros(_BG_BINS)
+    for i in range(0, idx.size, 65536):
+        h += np.bincount(idx[i:i + 65536], weights=weights[i:i + 65536], minlength=_BG_BINS)
+    return h
+
+
+def flat_background_step(X, r0, bgr, bins=None):
+    """One generalised-EM step of the flat-top background: per channel, the
+    edges a, b and the softness s in turn (``_BG_ROUNDS`` rounds), each the best of a few moves by the
+    responsibility-weighted log likelihood (over a 2048-bin weighted
+    histogram of the channel; it only ranks the moves).  X (n, d), r0 (n,) the
+    background responsibilities, bgr (3, d); ``bins``: :func:`channel_bins` of X
+    (computed here when None).  Returns the new (3, d)."""
+    bgr = bgr.copy()
+    if r0.sum() <= 0:
+        return bgr
+    if bins is None:
+        bins = channel_bins(X)
+    for j in range(X.shape[1]):
+        if bins[j] is None:
+            continue
+        x = X[:, j]
+        h = _binned(bins[j], r0)
+        hx = _binned(bins[j], r0 * x)
         keep = h > 0
         w, c = h[keep], hx[keep] / h[keep]
 
@@ -125,6 +156,7 @@ class SkewFit:
         self.steps = 0
         self.done = False
         self.last_gain = np.inf  # held-out gain of the latest step
+        self._bins = None  # channel_bins(X), for the flat-top background's steps
 
     @property
     def n_components(self) -> int:
@@ -173,7 +205,9 @@ class SkewFit:
         self.w = w / w.sum()
         self.mu, self.cov, self.eps = self.mu.copy(), self.cov.copy(), self.eps.copy()
         if self.bgr is not None:
-            self.bgr = flat_background_step(X, R[:, 0], self.bgr)
+            if self._bins is None:
+                self._bins = channel_bins(X)
+            self.bgr = flat_background_step(X, R[:, 0], self.bgr, self._bins)
         # each component's events: responsibility above 1e-3 of its largest
         thr = 1e-3 * np.maximum(R[:, 1:].max(axis=0), 1e-300)
         kernels.component_shapes(X, R, thr, self.centre, self.scale, self.eps, self.reg_y, _SKEW_GRID,
