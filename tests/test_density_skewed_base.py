@@ -422,3 +422,61 @@ def test_compiled_skew_step_matches_numpy_and_weighted_moments():
     assert not moved[0] and moved[1:].all()
     np.testing.assert_array_equal(eps2[0], eps0[0])
     assert not mean2[0].any()
+
+
+def test_wide_skewed_map_matches_conditional_cdfs_from_scipy():
+    # 40 channels (the map folds its running Jacobian products every 32 channels and
+    # leaves out components far behind without their log), 3 skewed components + a
+    # logistic background.  Reference, written directly: U_j = sum_k w_k(x_<j) F_k(x_j | x_<j)
+    # with w_k from scipy.stats.multivariate_normal (marginal of the first j transformed
+    # channels, with the transforms' Jacobians) and scipy.stats.logistic for the
+    # background; F_k the Gaussian conditional CDF (scipy.stats.norm) of y_j.
+    rng = np.random.default_rng(4)
+    d, K, n = 40, 3, 150
+    w = np.array([0.01, 0.3, 0.3, 0.39])
+    mu = rng.normal(scale=0.5, size=(K, d))
+    A = rng.normal(size=(K, d, d)) * 0.15 + np.eye(d)
+    cov = A @ np.swapaxes(A, 1, 2)
+    centre = rng.normal(scale=2.0, size=(K, d))
+    scale = rng.uniform(0.5, 2.0, size=(K, d))
+    eps = rng.uniform(-1.5, 1.5, size=(K, d))
+    loc, bgs = np.zeros(d), np.full(d, 6.0)
+    model = GaussianMixtureBase(w, mu, cov, loc, bgs, skew=np.stack([centre, scale, eps]))
+    lab = rng.choice(K, size=n, p=w[1:] / w[1:].sum())
+    Y = np.array([rng.multivariate_normal(mu[k], cov[k]) for k in lab])
+    X = centre[lab] + scale[lab] * np.sinh(np.arcsinh(Y) + eps[lab])
+    X[:5] = rng.uniform(-12, 12, (5, d))   # events where the background weighs in
+    U, logd = model.forward(X)
+
+    L = stats.logistic(loc, bgs)
+    ref = np.empty((n, d))
+    logjac, ys = [], []
+    for k in range(K):
+        t = (X - centre[k]) / scale[k]
+        a = np.arcsinh(t) - eps[k]
+        ys.append(np.sinh(a))
+        logjac.append(np.log(np.cosh(a)) - 0.5 * np.log1p(t * t) - np.log(scale[k]))
+    for j in range(d):
+        logw = [np.log(w[0]) + L.logpdf(X)[:, :j].sum(axis=1)]
+        cdfs = [L.cdf(X)[:, j]]
+        for k in range(K):
+            y = ys[k]
+            if j:
+                marg = stats.multivariate_normal(mu[k, :j], cov[k, :j, :j]).logpdf(y[:, :j]).reshape(n)
+                gain = np.linalg.solve(cov[k, :j, :j], cov[k, :j, j])
+                m = mu[k, j] + (y[:, :j] - mu[k, :j]) @ gain
+                v = cov[k, j, j] - cov[k, :j, j] @ gain
+            else:
+                marg, m, v = np.zeros(n), mu[k, 0], cov[k, 0, 0]
+            logw.append(np.log(w[k + 1]) + marg + logjac[k][:, :j].sum(axis=1))
+            cdfs.append(stats.norm.cdf((y[:, j] - m) / np.sqrt(v)))
+        lw = np.array(logw)
+        p = np.exp(lw - lw.max(axis=0))
+        ref[:, j] = (p * np.array(cdfs)).sum(axis=0) / p.sum(axis=0)
+    np.testing.assert_allclose(U, np.clip(ref, 1e-15, 1 - 1e-15), rtol=0, atol=1e-9)
+    # the log density is the mixture's (change of variables), as the density-only path gives it
+    np.testing.assert_allclose(logd, model.logpdf(X), rtol=0, atol=1e-10)
+    dens = w[0] * np.exp(L.logpdf(X).sum(axis=1))
+    for k in range(K):
+        dens += w[k + 1] * np.exp(stats.multivariate_normal(mu[k], cov[k]).logpdf(ys[k]) + logjac[k].sum(axis=1))
+    np.testing.assert_allclose(logd, np.log(dens), rtol=0, atol=1e-8)

@@ -256,6 +256,9 @@ class MixtureBase:
         n, d = X.shape
         U = np.empty((n, d))
         logd = np.zeros(n)
+        if self._skew is not None:   # components innermost, one log per component and event
+            kernels.skew_forward(X, U, logd, self._inner, self._bg, U_CLIP, _Z_MAX)
+            return U, logd
         kernels.gmm_forward(X, U, logd, self._components, self._bg, U_CLIP, _Z_MAX)
         return U, logd
 

@@ -299,6 +299,118 @@ def skew_logpdf(X, logd, comp, bg, z_max, R=None):
         _skew_logpdf_rows(0, X.shape[0], *args)
 
 
+#: The skewed map folds its running Jacobian products into log space every this many channels
+#: (each factor is within exp(+-MAX_SKEW), so a product of 32 stays far from overflow).
+_FOLD_CHANNELS = 32
+
+
+@njit(cache=True, error_model="numpy")
+def _skew_forward_rows(start, stop, X, U, logd, comp, bg, u_clip, z_max, eps_abs):
+    """Rosenblatt map of background + K skewed components laid out with the
+    component index innermost (``comp``, a :class:`ComponentsInner`): the same
+    map and log density as :func:`_gmm_forward_rows` with ``comp.skewed``, to
+    rounding (~1e-14).
+
+    Instead of one log per channel and component for the transforms' Jacobians,
+    their running product is kept per component and its log taken only for the
+    components that can weigh in a channel's CDF: ``eps_abs`` (d, K), each
+    transform's |skew| (+ a margin), bounds each factor's log, so a component
+    whose bound lies more than 40 nats below the best's lower bound is left out
+    without its log, as :func:`_gmm_forward_rows` leaves it out after it."""
+    logw, means_t, chol_t, inv_sd, log_sd, skew = (comp.logw, comp.means_t, comp.chol_t, comp.inv_sd,
+                                                   comp.log_sd, comp.skew)
+    d, K = means_t.shape
+    lwg = np.empty(K)    # log weight + the Gaussian terms so far (no Jacobians since the last fold)
+    jp = np.empty(K)     # product of the Jacobian factors since the last fold
+    bnd = np.empty(K)    # bound of |log jp|
+    lw = np.empty(K)
+    m = np.empty(K)
+    z = np.empty((d, K))
+    for i in range(start, stop):
+        lw0 = logw[0]
+        for k in range(K):
+            lwg[k] = logw[k + 1]
+            jp[k] = 1.0
+            bnd[k] = 0.0
+        for j in range(d):
+            x = X[i, j]
+            lbg = bg_logpdf(x, j, bg, z_max)
+            # the CDF weights given the channels before j
+            lo = lw0
+            for k in range(K):
+                lo = max(lo, lwg[k] - bnd[k])
+            mx = lw0
+            for k in range(K):
+                if lwg[k] + bnd[k] - lo >= -40.0:
+                    lw[k] = lwg[k] + math.log(jp[k])
+                    mx = max(mx, lw[k])
+                else:
+                    lw[k] = -np.inf
+            s = 0.0
+            acc = 0.0
+            g = lw0 - mx
+            if g >= -40.0:
+                p = math.exp(g)
+                s += p
+                acc += p * bg_cdf(x, j, bg, z_max)
+            for k in range(K):
+                m[k] = means_t[j, k]
+            for q in range(j):
+                for k in range(K):
+                    m[k] += chol_t[j, q, k] * z[q, k]
+            for k in range(K):
+                y, jac = skew_y(x, skew, j, k)
+                zz = min(max((y - m[k]) * inv_sd[j, k], -z_max), z_max)
+                z[j, k] = zz
+                lwg[k] += -0.5 * zz * zz - _LOG_SQRT_2PI - log_sd[j, k]
+                jp[k] *= jac
+                bnd[k] += eps_abs[j, k]
+            for k in range(K):
+                g = lw[k] - mx
+                if g < -40.0:
+                    continue
+                p = math.exp(g)
+                s += p
+                acc += p * ndtr(z[j, k])
+            u = acc / s
+            U[i, j] = min(max(u, u_clip), 1.0 - u_clip)
+            lw0 += lbg
+            if (j + 1) % _FOLD_CHANNELS == 0:
+                for k in range(K):
+                    lwg[k] += math.log(jp[k])
+                    jp[k] = 1.0
+                    bnd[k] = 0.0
+        mx = lw0
+        for k in range(K):
+            lw[k] = lwg[k] + math.log(jp[k])
+            mx = max(mx, lw[k])
+        acc = math.exp(lw0 - mx)
+        for k in range(K):
+            acc += math.exp(lw[k] - mx)
+        logd[i] += mx + math.log(acc)
+
+
+@njit(cache=True, parallel=True, error_model="numpy")
+def _skew_forward_par(X, U, logd, comp, bg, u_clip, z_max, eps_abs):
+    n = X.shape[0]
+    nb = (n + BLOCK - 1) // BLOCK
+    for b in prange(nb):
+        _skew_forward_rows(b * BLOCK, min(n, (b + 1) * BLOCK), X, U, logd, comp, bg, u_clip, z_max, eps_abs)
+
+
+def skew_forward(X, U, logd, comp, bg, u_clip, z_max):
+    """Rosenblatt map of a skewed-component mixture (``comp`` a :class:`ComponentsInner`):
+    U (n, d) written, its log density added to logd (n,); see :func:`_skew_forward_rows`."""
+    d, K = comp.means_t.shape
+    # |log J| <= |eps| for J = cosh(eps) - u sinh(eps), |u| < 1; the margin covers rounding
+    eps_abs = np.ascontiguousarray(np.arcsinh(np.abs(comp.skew[3])) + 1e-9)
+    args = (X, U, logd, comp, bg, float(u_clip), float(z_max), eps_abs)
+    if parallel(X.shape[0], 4 * (K + 1) * d * (d + 10)):
+        _skew_forward_par(*args)
+    else:
+        _skew_forward_rows(0, X.shape[0], *args)
+
+
 @njit(cache=True, parallel=True, error_model="numpy")
 def _gmm_forward_par(X, U, logd, comp, bg, u_clip, z_max, want_u):
     n = X.shape[0]
