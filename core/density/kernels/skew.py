@@ -140,6 +140,8 @@ def _one_shape(X, rk, thr, centre, scale, eps, reg, grid, moves, max_skew, nb, m
     br = -np.sinh(eps)
     ng = grid.shape[0] + moves.shape[0]
     raw = np.empty(ng)
+    hw_nz = np.empty(nb)   # the channel's non-empty bins: weight and mean u (the same values,
+    hu_nz = np.empty(nb)   # in the same order, as reading every bin and skipping the empty ones)
     for j in range(d):
         for g in range(grid.shape[0]):
             raw[g] = min(max(grid[g], -max_skew), max_skew)
@@ -155,14 +157,19 @@ def _one_shape(X, rk, thr, centre, scale, eps, reg, grid, moves, max_skew, nb, m
                 finite = False
         if not finite:
             continue  # the other channels' covariance is singular here: keep this skew
+        n_nz = 0
+        for b in range(nb):
+            hw = HW[j, b]
+            if hw > 0:
+                hw_nz[n_nz] = hw
+                hu_nz[n_nz] = HU[j, b] / hw
+                n_nz += 1
         best = -np.inf
         gbest = 0
         for g in range(cand.shape[0]):
             jac = 0.0
-            for b in range(nb):
-                hw = HW[j, b]
-                if hw > 0:
-                    jac += hw * math.log(ch[g] - (HU[j, b] / hw) * sh[g])
+            for b in range(n_nz):
+                jac += hw_nz[b] * math.log(ch[g] - hu_nz[b] * sh[g])
             score = -0.5 * n_k * math.log(max(var[g], 1e-300)) + jac
             if score > best:
                 best = score
