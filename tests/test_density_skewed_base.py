@@ -480,3 +480,23 @@ def test_wide_skewed_map_matches_conditional_cdfs_from_scipy():
     for k in range(K):
         dens += w[k + 1] * np.exp(stats.multivariate_normal(mu[k], cov[k]).logpdf(ys[k]) + logjac[k].sum(axis=1))
     np.testing.assert_allclose(logd, np.log(dens), rtol=0, atol=1e-8)
+
+
+def test_flat_background_bins_are_numpys_histogram():
+    # the flat-top background's step bins each channel once per fit; the weighted
+    # histograms it sums from those bins must be numpy's own (np.histogram with the
+    # channel's range), to the last bit, past numpy's 65,536-event blocks, for
+    # ties, values on the edges and a constant channel (no bins)
+    from core.density.skew_fit import _BG_BINS, _binned, channel_bins
+    rng = np.random.default_rng(5)
+    n = 70_000
+    X = np.column_stack([rng.normal(size=n), rng.integers(0, 5, n).astype(float),
+                         np.linspace(-1.0, 1.0, n), np.full(n, 2.0)])
+    r0 = rng.random(n)
+    bins = channel_bins(X)
+    assert bins[3] is None
+    for j in range(3):
+        x = X[:, j]
+        for wts in (r0, r0 * x):
+            ref = np.histogram(x, bins=_BG_BINS, range=(x.min(), x.max()), weights=wts)[0]
+            np.testing.assert_array_equal(_binned(bins[j], wts), ref)
