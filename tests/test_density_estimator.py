@@ -90,6 +90,13 @@ def test_model_files_of_the_earlier_layout_load_and_score_the_same(name):
     # written by the version before the engine's parts had names (same .npz layout)
     model = AdditiveTreeDensity.load(os.path.join(DATA, f"{name}.npz"))
     with np.load(os.path.join(DATA, "expected_scores.npz")) as ref:
+        if getattr(model, "_gmm", None) is not None and model._gmm.is_skewed:
+            # a skewed mixture's map now multiplies its transforms' Jacobians before one log
+            # (core/density/EXPERIMENTS.md section 27): the same map and scores to rounding (the
+            # trees after it stretch the map's 4e-16 to 2e-13)
+            np.testing.assert_allclose(model.score_samples(ref["events"]), ref[name], rtol=0, atol=1e-12)
+            np.testing.assert_allclose(model.transform(ref["events"]), ref[name + "_transform"], rtol=0, atol=1e-12)
+            return
         np.testing.assert_array_equal(model.score_samples(ref["events"]), ref[name])
         np.testing.assert_array_equal(model.transform(ref["events"]), ref[name + "_transform"])
 
