@@ -127,8 +127,10 @@ def _find(model, values, channel_names, channel_labels, transforms, settings, lo
     mix, cols, origin = _mixture_for(model, X, st["random_state"])
     K = mix.n_components
     fused = fused and origin == "model" and MODES_ON == "model"
+    probe = None
     if origin == "model" and MODES_ON == "model":
         score = model.score_samples
+        probe = getattr(model, "score_probes", None)   # the climbs' axis probes in one pass
     else:
         # a tree density on the per-channel map is piecewise constant: nearly every
         # cell is a local maximum, so modes and saddles are taken on the smooth
@@ -160,14 +162,14 @@ def _find(model, values, channel_names, channel_labels, transforms, settings, lo
         raise EventDataError("populations: no event belongs to any mixture component")
     starts = np.asarray(starts)
     owner = np.asarray(owner)
-    ends, peaks = _hill_climb(score, Xs[starts], ld[starts], scale)
+    ends, peaks = _hill_climb(score, Xs[starts], ld[starts], scale, probe=probe)
     # climbs that ended at the same place found the same mode
     node = _same_place(ends / scale, peaks)
     n_nodes = int(node.max()) + 1
     top = np.array([np.flatnonzero(node == q)[np.argmax(peaks[node == q])] for q in range(n_nodes)])
     modes, node_peaks = ends[top], peaks[top]
     going(2, "Populations: saddles between modes")
-    edges = _saddles(score, modes, st["segment_points"], scale, bend_steps=BEND_STEPS)
+    edges = _saddles(score, modes, st["segment_points"], scale, bend_steps=BEND_STEPS, probe=probe)
     # runt size: events of each mode's basin, sorted by log density
     ev_node = _node_of_events(Xs / scale, hard, starts, owner, node)
     by_node = [np.sort(ld[ev_node == q]) for q in range(n_nodes)]
