@@ -59,12 +59,13 @@ def _probe_rows(start, stop, X, H, lo, hi, S, comp, bg, z_max, B, nB, floor):
         for j in range(d):
             start_k[k] -= log_sd[j, k]
     y0 = np.empty((d, K))
-    lj0 = np.empty((d, K))
+    ij0 = np.empty((d, K))      # 1 / dy/dx (times scale) of each channel at x
     z = np.empty((d, K))
     a = np.empty((d, K))
     m = np.empty(K)
     q0 = np.empty(K)
-    lw = np.empty(K)
+    u = np.empty(K)
+    w = np.empty(K)
     base_k = np.empty(K)
     bgj = np.empty(d)
     for i in range(start, stop):
@@ -72,6 +73,7 @@ def _probe_rows(start, stop, X, H, lo, hi, S, comp, bg, z_max, B, nB, floor):
         for k in range(K):
             q0[k] = 0.0
             base_k[k] = start_k[k]
+            w[k] = 1.0
         for j in range(d):
             x = min(max(X[i, j], lo[j]), hi[j])
             bgj[j] = bg_logpdf(x, j, bg, z_max)
@@ -84,11 +86,13 @@ def _probe_rows(start, stop, X, H, lo, hi, S, comp, bg, z_max, B, nB, floor):
             for k in range(K):
                 y, jac = skew_y(x, skew, j, k)
                 y0[j, k] = y
-                lj0[j, k] = math.log(jac)
-                base_k[k] += lj0[j, k]
+                ij0[j, k] = 1.0 / jac
+                w[k] *= jac
                 zz = min(max((y - m[k]) * inv_sd[j, k], -z_max), z_max)
                 z[j, k] = zz
                 q0[k] += zz * zz
+        for k in range(K):
+            base_k[k] += math.log(w[k]) - 0.5 * q0[k]
         # a[j, k] = z_k . B[:, j, k] (B lower triangular: rows q >= j)
         for j in range(d):
             for k in range(K):
@@ -101,16 +105,19 @@ def _probe_rows(start, stop, X, H, lo, hi, S, comp, bg, z_max, B, nB, floor):
                 xr = X[i, j] + H[i, j] if side == 0 else X[i, j] - H[i, j]
                 xp = min(max(xr, lo[j]), hi[j])
                 l0 = lw0 - bgj[j] + bg_logpdf(xp, j, bg, z_max)
+                # per component: the log density without the moved channel's change of
+                # dy/dx (u), and that change as a factor (w, within exp(+-2|eps|))
+                for k in range(K):
+                    yp, jac = skew_y(xp, skew, j, k)
+                    w[k] = jac * ij0[j, k]
+                    dl = (yp - y0[j, k]) * inv_sd[j, k]
+                    u[k] = base_k[k] - dl * a[j, k] - 0.5 * dl * dl * nB[j, k]
                 mx = l0
                 for k in range(K):
-                    yp, jacp = skew_y(xp, skew, j, k)
-                    dl = (yp - y0[j, k]) * inv_sd[j, k]
-                    qq = q0[k] + 2.0 * dl * a[j, k] + dl * dl * nB[j, k]
-                    lw[k] = base_k[k] - lj0[j, k] + math.log(jacp) - 0.5 * qq
-                    mx = max(mx, lw[k])
+                    mx = max(mx, u[k])
                 acc = math.exp(l0 - mx)
                 for k in range(K):
-                    acc += math.exp(lw[k] - mx)
+                    acc += math.exp(u[k] - mx) * w[k]
                 S[i, side * d + j] = max(mx + math.log(acc), floor)
 
 
