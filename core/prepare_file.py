@@ -163,4 +163,47 @@ def prepare_file_events(event_file, idx: Sequence[int], S, transforms: Mapping, 
                           saturated=saturated & finite_rows,
                           saturated_per_channel=_per_channel(sat_cells, k, finite_rows), grids=grids,
                           floor_per_channel=_per_channel(floor_cells, k),
-                          ceiling_per_channel=_per_channel(ceiling_cells, k))
+                          ceiling_per_channel=_per_channel(ceiling_cells, k),
+                          from_values=tuple((c, idx[c]) for c in copied))
+
+
+class ValuesAside:
+    """The file's transformed values (n_events, n_channels) held without the columns
+    the density matrix already holds, while the fit and the populations run.
+
+    A density column copied from the values (``PreparedEvents.from_values``)
+    equals them at the kept events, so only its removed events' values are
+    kept here; every other channel is kept whole.  :meth:`restore` rebuilds
+    the same array (bit for bit, same memory order) from the matrix.  At 1M
+    events x 30 channels this frees 240 MB of 1M x 30 float64 during the fit.
+    """
+
+    def __init__(self, values: np.ndarray, prepared: PreparedEvents):
+        n, k = values.shape
+        self.shape, self.fortran = (n, k), bool(values.flags.f_contiguous and not values.flags.c_contiguous)
+        self.kept = prepared.kept
+        pairs = [(c, j) for c, j in prepared.from_values]
+        self.matrix_cols = [c for c, _ in pairs]
+        self.value_cols = [j for _, j in pairs]
+        self.other_cols = [j for j in range(k) if j not in set(self.value_cols)]
+        self.other = values[:, self.other_cols].copy()                 # (n, k - copied)
+        self.removed_rows = np.flatnonzero(~self.kept)
+        self.removed = values[self.removed_rows][:, self.value_cols]   # (n removed, copied)
+
+    def restore(self, matrix: np.ndarray) -> np.ndarray:
+        """The values (n_events, n_channels) again, from ``matrix`` (PreparedEvents.matrix)."""
+        n, k = self.shape
+        values = np.empty((n, k), order="F" if self.fortran else "C")
+        values[:, self.other_cols] = self.other
+        if self.value_cols:
+            all_kept = self.removed_rows.size == 0
+            rows = None if all_kept else np.flatnonzero(self.kept)
+            for start in range(0, matrix.shape[0], BLOCK_EVENTS):   # by blocks of whole rows
+                block = np.take(matrix[start:start + BLOCK_EVENTS], self.matrix_cols, axis=1)
+                if all_kept:
+                    values[start:start + BLOCK_EVENTS, self.value_cols] = block
+                else:
+                    values[rows[start:start + BLOCK_EVENTS][:, None], self.value_cols] = block
+            if not all_kept:
+                values[self.removed_rows[:, None], self.value_cols] = self.removed
+        return values
