@@ -86,11 +86,18 @@ def _scored_with_posteriors(model, X, mix, cols):
     return ld, R
 
 
-def score_and_assign(model, definition: PopulationDefinition, values):
+#: Events per pass of :func:`score_and_assign` over the events not scored yet.
+_REST_CHUNK = 1 << 16
+
+
+def score_and_assign(model, definition: PopulationDefinition, values, known=None):
     """Population labels (n_events,) and the model's log density (n_events,) of
     ``values`` from one compiled pass per chunk of events (``model.score_samples``
     with its posteriors; see :func:`find_populations_and_score`); labels are those
-    of :func:`assign_populations`."""
+    of :func:`assign_populations`.  ``known``: (rows (sorted), their log densities,
+    their posteriors (rows, K + 1)) already computed by the same pass (the mode
+    search's subsample): those rows are not scored again (same values: each
+    event's score and posteriors depend on that event alone)."""
     X = np.asarray(values, dtype=np.float64)
     labels = np.full(X.shape[0], -1, dtype=np.int64)
     mix = definition.mixture_model()
@@ -98,12 +105,28 @@ def score_and_assign(model, definition: PopulationDefinition, values):
     cols = np.asarray(definition.columns, int)
     scale = np.asarray(definition.scale, float)
 
-    def assign(a, b, R):
-        Xc = X[a:b]
+    def assign(a, b, R, Xc=None, rows=None):
+        Xc = X[a:b] if Xc is None else Xc
         if R is None:
             R = component_posteriors(mix, Xc[:, cols])
-        labels[a:b] = _labels_from_posteriors(R, G, Xc, definition.split, scale)
-    scores = model.score_samples(X, posteriors=assign)
+        labels[slice(a, b) if rows is None else rows] = _labels_from_posteriors(R, G, Xc, definition.split, scale)
+    if known is None:
+        scores = model.score_samples(X, posteriors=assign)
+        return labels, scores
+    rows, ld, R = known
+    scores = np.empty(X.shape[0])
+    scores[rows] = ld
+    for a in range(0, rows.size, _REST_CHUNK):
+        r = rows[a:a + _REST_CHUNK]
+        assign(0, 0, R[a:a + _REST_CHUNK], X[r], r)
+    rest = np.ones(X.shape[0], dtype=bool)
+    rest[rows] = False
+    rest = np.flatnonzero(rest)
+    for a in range(0, rest.size, _REST_CHUNK):
+        r = rest[a:a + _REST_CHUNK]
+        Xr = X[r]
+        scores[r] = model.score_samples(Xr, posteriors=lambda p, q, Rc, Xr=Xr, r=r: assign(
+            0, 0, Rc, Xr[p:q], r[p:q]))
     return labels, scores
 
 
@@ -216,8 +239,8 @@ def _find(model, values, channel_names, channel_labels, transforms, settings, lo
                                       names=[""] * n_pop, split=split, scale=[float(v) for v in scale])
     definition._mix = mix
     going(3, "Populations: assigning events")
-    if fused:
-        labels, scores = score_and_assign(model, definition, X)
+    if fused:   # the subsample's scores and posteriors are reused, the other events scored
+        labels, scores = score_and_assign(model, definition, X, known=(sub, ld, R))
     else:
         labels, scores = assign_populations(definition, X), None
     table = population_table(X, labels, definition, channel_names, channel_labels, transforms, st)
