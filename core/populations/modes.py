@@ -102,11 +102,14 @@ def _same_place(E: np.ndarray, f: np.ndarray, tol: float = 0.05) -> np.ndarray:
 
 
 def _saddles(score, modes: np.ndarray, n_points: int, scale: np.ndarray, neighbours: int = 12,
-             bend_steps: int = 0, probe=None):
+             bend_steps: int = 0, probe=None, peaks=None):
     """Edges (i, j, saddle) between each mode and its ``neighbours`` nearest modes
     (scaled distance; a neighbourhood graph): the lowest log density at
     ``n_points`` points of the straight segment between the two; ``probe`` as in
-    :func:`_hill_climb` (the bent path's climb)."""
+    :func:`_hill_climb` (the bent path's climb).  ``peaks`` (m,): the modes' log
+    densities; a join whose straight segment stays at or above the lower of its two
+    peaks needs no bent path (the merge takes min(saddle, peaks), so a higher
+    saddle cannot change it), and only the other joins are bent."""
     m, d = modes.shape
     Z = modes / scale
     D = ((Z[:, None, :] - Z[None, :, :]) ** 2).sum(axis=2)
@@ -129,10 +132,18 @@ def _saddles(score, modes: np.ndarray, n_points: int, scale: np.ndarray, neighbo
     # a bent path: the segment's midpoint moved up by a short hill climb, then
     # the two segments mode -> moved midpoint -> mode; any path's lowest point is
     # a lower bound of the true saddle, so the higher of the two is kept
-    mid = 0.5 * (modes[iu] + modes[ju])
+    bend = np.arange(iu.size) if peaks is None else np.flatnonzero(straight < np.minimum(peaks[iu], peaks[ju]))
+    saddle = straight.copy()
+    if bend.size == 0:
+        return iu, ju, saddle
+    a, b = modes[iu[bend]], modes[ju[bend]]
+    mid = 0.5 * (a + b)
+    # each row climbs on its own (fewer than 10 rounds never reach the all-rows stop), so bending
+    # only these joins gives each the same path as bending all of them
     top, _ = _hill_climb(score, mid, score(mid), scale, iters=bend_steps, probe=probe)
-    bent = np.minimum(lowest(modes[iu], top), lowest(top, modes[ju]))
-    return iu, ju, np.maximum(straight, bent)
+    bent = np.minimum(lowest(a, top), lowest(top, b))
+    saddle[bend] = np.maximum(straight[bend], bent)
+    return iu, ju, saddle
 
 
 def _merge(peaks: np.ndarray, edges, ratio: float, above=None, min_events: float = 0.0) -> np.ndarray:

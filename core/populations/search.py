@@ -192,7 +192,8 @@ def _find(model, values, channel_names, channel_labels, transforms, settings, lo
     top = np.array([np.flatnonzero(node == q)[np.argmax(peaks[node == q])] for q in range(n_nodes)])
     modes, node_peaks = ends[top], peaks[top]
     going(2, "Populations: saddles between modes")
-    edges = _saddles(score, modes, st["segment_points"], scale, bend_steps=BEND_STEPS, probe=probe)
+    edges = _saddles(score, modes, st["segment_points"], scale, bend_steps=BEND_STEPS, probe=probe,
+                     peaks=node_peaks)
     # runt size: events of each mode's basin, sorted by log density
     ev_node = _node_of_events(Xs / scale, hard, starts, owner, node)
     by_node = [np.sort(ld[ev_node == q]) for q in range(n_nodes)]
