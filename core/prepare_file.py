@@ -195,15 +195,29 @@ class ValuesAside:
         n, k = self.shape
         values = np.empty((n, k), order="F" if self.fortran else "C")
         values[:, self.other_cols] = self.other
-        if self.value_cols:
-            all_kept = self.removed_rows.size == 0
-            rows = None if all_kept else np.flatnonzero(self.kept)
-            for start in range(0, matrix.shape[0], BLOCK_EVENTS):   # by blocks of whole rows
-                block = np.take(matrix[start:start + BLOCK_EVENTS], self.matrix_cols, axis=1)
-                if all_kept:
-                    values[start:start + BLOCK_EVENTS, self.value_cols] = block
-                else:
-                    values[rows[start:start + BLOCK_EVENTS][:, None], self.value_cols] = block
-            if not all_kept:
-                values[self.removed_rows[:, None], self.value_cols] = self.removed
+        if not self.value_cols:
+            return values
+        vcols, mcols = _as_slice(self.value_cols), _as_slice(self.matrix_cols)
+        at = gone = 0                        # matrix rows and removed rows used so far
+        for a in range(0, n, BLOCK_EVENTS):  # by blocks of whole rows, in file order
+            b = min(n, a + BLOCK_EVENTS)
+            keep = self.kept[a:b]
+            nk = int(np.count_nonzero(keep))
+            src = matrix[at:at + nk, mcols]
+            if nk == b - a:
+                values[a:b, vcols] = src
+            else:
+                block = np.empty((b - a, len(self.value_cols)))
+                block[keep] = src
+                block[~keep] = self.removed[gone:gone + (b - a - nk)]
+                values[a:b, vcols] = block
+            at += nk
+            gone += b - a - nk
         return values
+
+
+def _as_slice(cols: list):
+    """``cols`` as a slice when they are consecutive (basic indexing: no gather), else as they are."""
+    if cols and cols == list(range(cols[0], cols[0] + len(cols))):
+        return slice(cols[0], cols[0] + len(cols))
+    return cols
