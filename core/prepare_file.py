@@ -97,9 +97,10 @@ def prepare_file_events(event_file, idx: Sequence[int], S, transforms: Mapping, 
     decoding = getattr(event_file, "decoding", None)
     plans = {}
     if dequantise:
+        kept_rows = None if all_kept else np.flatnonzero(kept)   # judged in place: only a sample is copied
         for j in feeders:
-            plan = plan_jitter(raw[:, j] if all_kept else raw[kept, j], None if decoding is None else decoding[j],
-                               MAX_UNIQUE_FRACTION)
+            plan = plan_jitter(raw[:, j], None if decoding is None else decoding[j], MAX_UNIQUE_FRACTION,
+                               rows=kept_rows)
             if plan is not None:
                 plans[j] = plan
     spread = set() if drop_piles else {j for j in feeders
