@@ -9,7 +9,9 @@ import numpy as np
 import pytest
 from scipy import stats
 
+import core.cleaning as cleaning
 from core.errors import EventDataError
+from core.grids import plan_jitter
 from core.prepare import (
     REASON_NON_FINITE,
     REASON_SATURATED,
@@ -406,7 +408,6 @@ def test_float32_event_file_prepares_like_its_float64_values():
 def test_plan_judged_on_kept_rows_in_place_equals_the_gathered_column(kind):
     # reference: the plan of the kept rows' values gathered first (the former call);
     # 300,000 rows, so the strided sample of GRID_SAMPLE values is taken
-    from core.grids import plan_jitter
     rng = np.random.default_rng(1)
     n = 300_000
     if kind == "linear grid":
@@ -432,3 +433,22 @@ def _same_plan(a, b) -> bool:
         return a is b
     same = lambda u, v: (u is None and v is None) or (u is not None and v is not None and np.array_equal(u, v))
     return a.grid == b.grid and a.step == b.step and same(a.values, b.values) and same(a.widths, b.widths)
+
+
+def test_atoms_check_on_two_threads_equals_counting_each_channel(monkeypatch):
+    # reference: numpy.unique's counts over the same seeded subsample of rows, channel by channel
+    rng = np.random.default_rng(4)
+    X = rng.normal(size=(500_000, 6))
+    X[:2000, 1] = 1.5                       # an atom of 0.4 %
+    X[:, 4] = np.round(X[:, 4], 1)          # a coarse grid: every value an atom
+    names = [f"ch{j}" for j in range(6)]
+    monkeypatch.setattr(cleaning, "ATOM_THREADS_MIN_WORK", 1)
+    got = cleaning.atoms(X, names)
+    rows = np.sort(cleaning._tie_rows(X.shape[0], 400_000, 0))
+    want = {}
+    for j, name in enumerate(names):
+        share = np.unique(X[rows, j], return_counts=True)[1].max() / rows.size
+        if share > cleaning.ATOM_SHARE:
+            want[name] = share
+    assert set(got) == {"ch1", "ch4"} == set(want)
+    assert all(abs(got[k] - want[k]) < 1e-15 for k in want)
