@@ -64,6 +64,7 @@ from .errors import Cancelled, EventDataError
 from .file_values import (CompensateTransform, compensate_transform, compensated_and_transformed,
                           as_event_file, density_channel_indices, density_input)
 from .prepare import CLEANING_FLAGS, REASONS, atoms as find_atoms
+from .prepare_file import ValuesAside
 from .progress import stop_relay
 from .rare import rare_events, rarity_percentile, share_order
 from .recipe import Recipe, validate_recipe
@@ -260,12 +261,16 @@ def analyse(event_file: Any, recipe: Recipe, progress=None, control: Any = None,
     event_file = as_event_file(event_file)
     recipe = validate_recipe(recipe, event_file)
     prepared, values = density_input(event_file, recipe)   # the file's compensate-and-transform step, once
-    n = values.shape[0]
+    n = prepared.kept.shape[0]
     n_kept = int(np.count_nonzero(prepared.kept))
     if n_kept < 50:
         raise EventDataError(f"{os.path.basename(event_file.path)}: only {n_kept} of {n} events are usable "
                              "after cleaning; at least 50 are needed to fit a density")
     atoms = find_atoms(prepared.matrix, list(recipe.channels))
+    # the values are not needed until the regions: held without the density matrix's
+    # columns through the fit and the populations (the fit's peak memory), rebuilt after
+    aside = ValuesAside(values, prepared)
+    del values
     timing["prepare"] = time.perf_counter() - t0
 
     relay, stopped = stop_relay(progress)
@@ -311,6 +316,8 @@ def analyse(event_file: Any, recipe: Recipe, progress=None, control: Any = None,
         timing["populations"] = time.perf_counter() - t_pop
 
     t3 = time.perf_counter()
+    values = aside.restore(prepared.matrix)
+    del aside
     masks: dict = {}
     regions = by_channel = None
     if recipe.regions:

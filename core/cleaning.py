@@ -7,6 +7,8 @@ event matrices column by column, in whatever float type they are held
 
 from __future__ import annotations
 
+import os
+from concurrent.futures import ThreadPoolExecutor
 from typing import Sequence
 
 import numpy as np
@@ -207,6 +209,10 @@ def _tie_rows(n: int, limit_events: int, random_state) -> np.ndarray | None:
     return np.random.default_rng(random_state).choice(n, limit_events, replace=False)
 
 
+#: Events x channels from which the atoms check runs its channels on two threads.
+ATOM_THREADS_MIN_WORK = 2_000_000
+
+
 def atoms(matrix, names: Sequence[str], share: float = ATOM_SHARE) -> dict[str, float]:
     """Channels of ``matrix`` (events x channels) where one value holds more than ``share``
     of the events: name -> that share (the atoms check before fitting)."""
@@ -214,12 +220,17 @@ def atoms(matrix, names: Sequence[str], share: float = ATOM_SHARE) -> dict[str, 
     rows = _tie_rows(m.shape[0], 400_000, 0)   # the same seeded subsample for every channel, drawn once
     if rows is not None:
         rows = np.sort(rows)   # read in order (the share does not depend on the order): fewer cache misses
-    out = {}
-    for j, name in enumerate(names):
-        t = largest_tie_share(m[:, j], rows=rows)
-        if t > share:
-            out[str(name)] = t
-    return out
+    names = [str(name) for name in names]
+
+    def tie(j):
+        return largest_tie_share(m[:, j], rows=rows)
+    if m.shape[0] * len(names) >= ATOM_THREADS_MIN_WORK and len(names) > 1:
+        # numpy's sorts release the GIL: channels on two threads (each channel's share is its own)
+        with ThreadPoolExecutor(max_workers=min(2, os.cpu_count() or 1)) as pool:
+            ties = list(pool.map(tie, range(len(names))))
+    else:
+        ties = [tie(j) for j in range(len(names))]
+    return {name: t for name, t in zip(names, ties) if t > share}
 
 
 def _per_channel(cells: dict, k: int, rows=None) -> np.ndarray:

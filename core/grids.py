@@ -141,19 +141,28 @@ class ChannelJitter:
         return out
 
 
-def plan_jitter(raw_col, decoding=None, max_unique_fraction: float = MAX_UNIQUE_FRACTION):
+def plan_jitter(raw_col, decoding=None, max_unique_fraction: float = MAX_UNIQUE_FRACTION, rows=None):
     """The :class:`ChannelJitter` for one raw channel, or None when it is continuous.
 
     Integer channels with their ``decoding`` are jittered by one stored unit
     (half either side); others by the grid :func:`detect_grid` finds.
+    ``rows``: the (sorted) rows of ``raw_col`` to judge (the kept events), the
+    same as passing ``raw_col[rows]`` without gathering the whole column; a column
+    of a matrix is read in place (only its sample is copied).
     """
     if decoding is not None and getattr(decoding, "integer", False):
         return ChannelJitter(GRID_STORED, 1.0, decoding)
-    col = np.asarray(raw_col).ravel()
+    col = np.asarray(raw_col)
+    if col.ndim != 1:
+        col = col.ravel()
+    n = col.size if rows is None else rows.size
     # the grid shows in an evenly strided share of at most GRID_SAMPLE values
     # (sorting a million values per channel would dominate the preparation)
-    sampled = col.size > GRID_SAMPLE
-    sample = col[::-(-col.size // GRID_SAMPLE)] if sampled else col
+    sampled = n > GRID_SAMPLE
+    if rows is None:
+        sample = col[::-(-n // GRID_SAMPLE)] if sampled else col
+    else:
+        sample = col[rows[::-(-n // GRID_SAMPLE)] if sampled else rows]
     if sample.dtype.kind != "f":
         sample = sample.astype(np.float64)
     sample = sample[np.isfinite(sample)]
@@ -173,7 +182,7 @@ def plan_jitter(raw_col, decoding=None, max_unique_fraction: float = MAX_UNIQUE_
     cells = _cells_of(u, counts, sample.size, max_unique_fraction)
     if not sampled or cells is None:
         return cells
-    return _cells(np.asarray(col, dtype=np.float64), max_unique_fraction)
+    return _cells(np.asarray(col if rows is None else col[rows], dtype=np.float64), max_unique_fraction)
 
 
 def _too_many_values(u: np.ndarray, counts: np.ndarray, n: int, max_unique_fraction: float) -> bool:

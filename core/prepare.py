@@ -81,6 +81,9 @@ class PreparedEvents:
     ``saturated_per_channel``, ``floor_per_channel``, ``ceiling_per_channel``:
     (n_channels,) events flagged in each channel (saturated cells among finite
     events; pile cells whether or not they were dropped).
+    ``from_values``: (column of ``matrix``, file channel) pairs whose matrix column
+    is the file's transformed values of that channel at the kept events, copied
+    (set by :func:`core.prepare_file.prepare_file_events`; empty otherwise).
     """
 
     matrix: np.ndarray
@@ -92,6 +95,7 @@ class PreparedEvents:
     grids: list = field(default_factory=list)
     floor_per_channel: np.ndarray = field(default=None)
     ceiling_per_channel: np.ndarray = field(default=None)
+    from_values: tuple = ()
 
     @property
     def n_events(self) -> int:

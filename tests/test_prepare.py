@@ -9,7 +9,9 @@ import numpy as np
 import pytest
 from scipy import stats
 
+import core.cleaning as cleaning
 from core.errors import EventDataError
+from core.grids import plan_jitter
 from core.prepare import (
     REASON_NON_FINITE,
     REASON_SATURATED,
@@ -400,3 +402,53 @@ def test_float32_event_file_prepares_like_its_float64_values():
     np.testing.assert_array_equal(prepared.reason, prepared64.reason)
     assert prepared.grids == prepared64.grids
     np.testing.assert_array_equal(compensated_and_transformed(ef, recipe)[1], values)
+
+
+@pytest.mark.parametrize("kind", ["linear grid", "log grid", "continuous", "ties without a grid"])
+def test_plan_judged_on_kept_rows_in_place_equals_the_gathered_column(kind):
+    # reference: the plan of the kept rows' values gathered first (the former call);
+    # 300,000 rows, so the strided sample of GRID_SAMPLE values is taken
+    rng = np.random.default_rng(1)
+    n = 300_000
+    if kind == "linear grid":
+        col = np.round(rng.normal(500, 80, n) / 2.5) * 2.5
+    elif kind == "log grid":
+        col = 10 ** (np.round(rng.uniform(0, 4, n) * 256) / 256)
+    elif kind == "continuous":
+        col = rng.lognormal(5, 1, n)
+    else:
+        col = rng.choice(rng.lognormal(5, 1, 3000), n)
+    X = np.column_stack([col, rng.normal(size=n)]).astype(np.float32)   # a column of a matrix, read in place
+    rows = np.flatnonzero(rng.random(n) < 0.9)
+    got = plan_jitter(X[:, 0], rows=rows)
+    want = plan_jitter(X[rows, 0])
+    assert _same_plan(got, want)
+    assert _same_plan(plan_jitter(X[:, 0]), plan_jitter(np.ascontiguousarray(X[:, 0])))
+    if kind != "continuous":
+        assert want is not None          # each grid kind is found, so the plans' fields are compared
+
+
+def _same_plan(a, b) -> bool:
+    if a is None or b is None:
+        return a is b
+    same = lambda u, v: (u is None and v is None) or (u is not None and v is not None and np.array_equal(u, v))
+    return a.grid == b.grid and a.step == b.step and same(a.values, b.values) and same(a.widths, b.widths)
+
+
+def test_atoms_check_on_two_threads_equals_counting_each_channel(monkeypatch):
+    # reference: numpy.unique's counts over the same seeded subsample of rows, channel by channel
+    rng = np.random.default_rng(4)
+    X = rng.normal(size=(500_000, 6))
+    X[:2000, 1] = 1.5                       # an atom of 0.4 %
+    X[:, 4] = np.round(X[:, 4], 1)          # a coarse grid: every value an atom
+    names = [f"ch{j}" for j in range(6)]
+    monkeypatch.setattr(cleaning, "ATOM_THREADS_MIN_WORK", 1)
+    got = cleaning.atoms(X, names)
+    rows = np.sort(cleaning._tie_rows(X.shape[0], 400_000, 0))
+    want = {}
+    for j, name in enumerate(names):
+        share = np.unique(X[rows, j], return_counts=True)[1].max() / rows.size
+        if share > cleaning.ATOM_SHARE:
+            want[name] = share
+    assert set(got) == {"ch1", "ch4"} == set(want)
+    assert all(abs(got[k] - want[k]) < 1e-15 for k in want)

@@ -14,7 +14,9 @@ Method (mode clustering on the fitted density; the choice is argued in DEVELOPER
 2. **Modes.**  Modes are found on the model's own fitted log density
    (``model.score_samples``: base, marginals and trees) by hill climbing
    (finite-difference gradient ascent; a step is kept only when the log
-   density rises, else it halves).  Up to ``starts_per_component`` (8) climbs
+   density rises, else it halves; on a skewed mixture alone the 2 d probes of a
+   row are scored in one compiled pass, ``AdditiveTreeDensity.score_probes``).
+   Up to ``starts_per_component`` (8) climbs
    start from the events each component holds (hard assignment, in a seeded
    subsample of at most ``mode_events``): its highest-density event, then
    farthest-point picks among its events, so a component that spans two hills

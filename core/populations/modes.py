@@ -9,7 +9,7 @@ import numpy as np
 from .settings import MAX_STEP
 
 
-def _hill_climb(score, starts: np.ndarray, f0: np.ndarray, step0: np.ndarray, iters: int = 60):
+def _hill_climb(score, starts: np.ndarray, f0: np.ndarray, step0: np.ndarray, iters: int = 60, probe=None):
     """Gradient ascent of ``score`` (log density) from each row of ``starts`` (m, d).
 
     Each round probes x +- h e_j on every channel (2 d points per row, one
@@ -21,7 +21,11 @@ def _hill_climb(score, starts: np.ndarray, f0: np.ndarray, step0: np.ndarray, it
     density rises, and the step grows by 1.5 after a rise (up to
     :data:`MAX_STEP` of the channel scales, so a climb does not leap over a
     valley) and halves otherwise.  ``step0`` (d,) is a channel's scale; the
-    first step is 0.05 of it.  Returns (x (m, d), log density (m,))."""
+    first step is 0.05 of it.  ``probe(x, h) -> (m, 2 d)``: the log densities
+    of the probes x + h_j e_j (columns j) and x - h_j e_j (columns d + j) in one
+    call, equal to ``score`` of them (``AdditiveTreeDensity.score_probes``: about
+    two evaluations per row instead of 2 d); None scores the probes with
+    ``score``.  Returns (x (m, d), log density (m,))."""
     x = starts.copy()
     f = f0.copy()
     m, d = x.shape
@@ -29,10 +33,13 @@ def _hill_climb(score, starts: np.ndarray, f0: np.ndarray, step0: np.ndarray, it
     rows = np.arange(m)
     for _ in range(iters):
         h = (0.5 * step)[:, None] * step0[None, :]             # (m, d)
-        P = np.repeat(x, 2 * d, axis=0).reshape(m, 2 * d, d)
-        P[:, np.arange(d), np.arange(d)] += h
-        P[:, d + np.arange(d), np.arange(d)] -= h
-        s = score(P.reshape(-1, d)).reshape(m, 2 * d)
+        if probe is None:
+            P = np.repeat(x, 2 * d, axis=0).reshape(m, 2 * d, d)
+            P[:, np.arange(d), np.arange(d)] += h
+            P[:, d + np.arange(d), np.arange(d)] -= h
+            s = score(P.reshape(-1, d)).reshape(m, 2 * d)
+        else:
+            s = probe(x, h)
         g = (s[:, :d] - s[:, d:]) / (2 * h)                     # (m, d)
         gn = np.sqrt(((g * step0) ** 2).sum(axis=1))
         gn[gn == 0] = 1.0
@@ -40,7 +47,14 @@ def _hill_climb(score, starts: np.ndarray, f0: np.ndarray, step0: np.ndarray, it
         ft = score(trial)
         best = np.argmax(s, axis=1)
         probe_better = s[rows, best] > ft
-        trial[probe_better] = P[rows, best][probe_better]
+        if probe is None:
+            trial[probe_better] = P[rows, best][probe_better]
+        else:   # the best probe: x with one channel moved by +-h
+            r = np.flatnonzero(probe_better)
+            c = best[r] % d
+            moved = x[r, c] + np.where(best[r] < d, h[r, c], -h[r, c])
+            trial[r] = x[r]
+            trial[r, c] = moved
         ft[probe_better] = s[rows, best][probe_better]
         up = ft > f
         x[up], f[up] = trial[up], ft[up]
@@ -88,10 +102,14 @@ def _same_place(E: np.ndarray, f: np.ndarray, tol: float = 0.05) -> np.ndarray:
 
 
 def _saddles(score, modes: np.ndarray, n_points: int, scale: np.ndarray, neighbours: int = 12,
-             bend_steps: int = 0):
+             bend_steps: int = 0, probe=None, peaks=None):
     """Edges (i, j, saddle) between each mode and its ``neighbours`` nearest modes
     (scaled distance; a neighbourhood graph): the lowest log density at
-    ``n_points`` points of the straight segment between the two."""
+    ``n_points`` points of the straight segment between the two; ``probe`` as in
+    :func:`_hill_climb` (the bent path's climb).  ``peaks`` (m,): the modes' log
+    densities; a join whose straight segment stays at or above the lower of its two
+    peaks needs no bent path (the merge takes min(saddle, peaks), so a higher
+    saddle cannot change it), and only the other joins are bent."""
     m, d = modes.shape
     Z = modes / scale
     D = ((Z[:, None, :] - Z[None, :, :]) ** 2).sum(axis=2)
@@ -114,10 +132,18 @@ def _saddles(score, modes: np.ndarray, n_points: int, scale: np.ndarray, neighbo
     # a bent path: the segment's midpoint moved up by a short hill climb, then
     # the two segments mode -> moved midpoint -> mode; any path's lowest point is
     # a lower bound of the true saddle, so the higher of the two is kept
-    mid = 0.5 * (modes[iu] + modes[ju])
-    top, _ = _hill_climb(score, mid, score(mid), scale, iters=bend_steps)
-    bent = np.minimum(lowest(modes[iu], top), lowest(top, modes[ju]))
-    return iu, ju, np.maximum(straight, bent)
+    bend = np.arange(iu.size) if peaks is None else np.flatnonzero(straight < np.minimum(peaks[iu], peaks[ju]))
+    saddle = straight.copy()
+    if bend.size == 0:
+        return iu, ju, saddle
+    a, b = modes[iu[bend]], modes[ju[bend]]
+    mid = 0.5 * (a + b)
+    # each row climbs on its own (fewer than 10 rounds never reach the all-rows stop), so bending
+    # only these joins gives each the same path as bending all of them
+    top, _ = _hill_climb(score, mid, score(mid), scale, iters=bend_steps, probe=probe)
+    bent = np.minimum(lowest(a, top), lowest(top, b))
+    saddle[bend] = np.maximum(straight[bend], bent)
+    return iu, ju, saddle
 
 
 def _merge(peaks: np.ndarray, edges, ratio: float, above=None, min_events: float = 0.0) -> np.ndarray:

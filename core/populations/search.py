@@ -86,11 +86,18 @@ def _scored_with_posteriors(model, X, mix, cols):
     return ld, R
 
 
-def score_and_assign(model, definition: PopulationDefinition, values):
+#: Events per pass of :func:`score_and_assign` over the events not scored yet.
+_REST_CHUNK = 1 << 16
+
+
+def score_and_assign(model, definition: PopulationDefinition, values, known=None):
     """Population labels (n_events,) and the model's log density (n_events,) of
     ``values`` from one compiled pass per chunk of events (``model.score_samples``
     with its posteriors; see :func:`find_populations_and_score`); labels are those
-    of :func:`assign_populations`."""
+    of :func:`assign_populations`.  ``known``: (rows (sorted), their log densities,
+    their posteriors (rows, K + 1)) already computed by the same pass (the mode
+    search's subsample): those rows are not scored again (same values: each
+    event's score and posteriors depend on that event alone)."""
     X = np.asarray(values, dtype=np.float64)
     labels = np.full(X.shape[0], -1, dtype=np.int64)
     mix = definition.mixture_model()
@@ -98,12 +105,28 @@ def score_and_assign(model, definition: PopulationDefinition, values):
     cols = np.asarray(definition.columns, int)
     scale = np.asarray(definition.scale, float)
 
-    def assign(a, b, R):
-        Xc = X[a:b]
+    def assign(a, b, R, Xc=None, rows=None):
+        Xc = X[a:b] if Xc is None else Xc
         if R is None:
             R = component_posteriors(mix, Xc[:, cols])
-        labels[a:b] = _labels_from_posteriors(R, G, Xc, definition.split, scale)
-    scores = model.score_samples(X, posteriors=assign)
+        labels[slice(a, b) if rows is None else rows] = _labels_from_posteriors(R, G, Xc, definition.split, scale)
+    if known is None:
+        scores = model.score_samples(X, posteriors=assign)
+        return labels, scores
+    rows, ld, R = known
+    scores = np.empty(X.shape[0])
+    scores[rows] = ld
+    for a in range(0, rows.size, _REST_CHUNK):
+        r = rows[a:a + _REST_CHUNK]
+        assign(0, 0, R[a:a + _REST_CHUNK], X[r], r)
+    rest = np.ones(X.shape[0], dtype=bool)
+    rest[rows] = False
+    rest = np.flatnonzero(rest)
+    for a in range(0, rest.size, _REST_CHUNK):
+        r = rest[a:a + _REST_CHUNK]
+        Xr = X[r]
+        scores[r] = model.score_samples(Xr, posteriors=lambda p, q, Rc, Xr=Xr, r=r: assign(
+            0, 0, Rc, Xr[p:q], r[p:q]))
     return labels, scores
 
 
@@ -127,8 +150,10 @@ def _find(model, values, channel_names, channel_labels, transforms, settings, lo
     mix, cols, origin = _mixture_for(model, X, st["random_state"])
     K = mix.n_components
     fused = fused and origin == "model" and MODES_ON == "model"
+    probe = None
     if origin == "model" and MODES_ON == "model":
         score = model.score_samples
+        probe = getattr(model, "score_probes", None)   # the climbs' axis probes in one pass
     else:
         # a tree density on the per-channel map is piecewise constant: nearly every
         # cell is a local maximum, so modes and saddles are taken on the smooth
@@ -160,14 +185,15 @@ def _find(model, values, channel_names, channel_labels, transforms, settings, lo
         raise EventDataError("populations: no event belongs to any mixture component")
     starts = np.asarray(starts)
     owner = np.asarray(owner)
-    ends, peaks = _hill_climb(score, Xs[starts], ld[starts], scale)
+    ends, peaks = _hill_climb(score, Xs[starts], ld[starts], scale, probe=probe)
     # climbs that ended at the same place found the same mode
     node = _same_place(ends / scale, peaks)
     n_nodes = int(node.max()) + 1
     top = np.array([np.flatnonzero(node == q)[np.argmax(peaks[node == q])] for q in range(n_nodes)])
     modes, node_peaks = ends[top], peaks[top]
     going(2, "Populations: saddles between modes")
-    edges = _saddles(score, modes, st["segment_points"], scale, bend_steps=BEND_STEPS)
+    edges = _saddles(score, modes, st["segment_points"], scale, bend_steps=BEND_STEPS, probe=probe,
+                     peaks=node_peaks)
     # runt size: events of each mode's basin, sorted by log density
     ev_node = _node_of_events(Xs / scale, hard, starts, owner, node)
     by_node = [np.sort(ld[ev_node == q]) for q in range(n_nodes)]
@@ -214,8 +240,8 @@ def _find(model, values, channel_names, channel_labels, transforms, settings, lo
                                       names=[""] * n_pop, split=split, scale=[float(v) for v in scale])
     definition._mix = mix
     going(3, "Populations: assigning events")
-    if fused:
-        labels, scores = score_and_assign(model, definition, X)
+    if fused:   # the subsample's scores and posteriors are reused, the other events scored
+        labels, scores = score_and_assign(model, definition, X, known=(sub, ld, R))
     else:
         labels, scores = assign_populations(definition, X), None
     table = population_table(X, labels, definition, channel_names, channel_labels, transforms, st)
