@@ -1,7 +1,7 @@
 """What precision can a comparison reach at a false discovery rate, with a PERFECT score?
 
     python tests/benchmarks/contrast_oracle.py [--seeds 200] [--rate 0.05] [--min-fold 2]
-        [--observed "B:3/37,C:12/117,D:14/193"] [--markdown OUT.md]
+        [--observed "B:3/37,C:12/117,D:14/193"] [--cases B,C,D] [--markdown OUT.md]
 
 Control and test events are drawn from a known model (scipy.stats): the
 control from f0, a mixture of four 6-channel clouds (Gaussian and Student-t,
@@ -134,9 +134,11 @@ HEADER = ["case", "control / test / new", "rule", "recall (mean)", "precision me
           "share of draws with precision < 0.93", "false: mean", "false: 90th pct"]
 
 
-def run(seeds, rate, min_fold):
+def run(seeds, rate, min_fold, cases=None):
     results = {}
     for name, nc, nt, nn in CASES:
+        if cases and not any(name.startswith(c) for c in cases):
+            continue
         per = {r: [] for r in RULES}
         for seed in range(seeds):
             got = one_draw(nc, nt, nn, 10_000 + seed, rate, min_fold)
@@ -193,9 +195,10 @@ def main(argv=None):
     ap.add_argument("--rate", type=float, default=0.05)
     ap.add_argument("--min-fold", type=float, default=2.0)
     ap.add_argument("--observed", default="", help='our tubes, e.g. "B:3/37,C:12/117,D:14/193"')
+    ap.add_argument("--cases", default="", help='only the cases whose names start so, e.g. "B,C,D"')
     ap.add_argument("--markdown")
     args = ap.parse_args(argv)
-    results = run(args.seeds, args.rate, args.min_fold)
+    results = run(args.seeds, args.rate, args.min_fold, [c.strip() for c in args.cases.split(",") if c.strip()])
     rows = rows_of(results)
     print(f"\nOracle score, {args.seeds} draws per case, FDR {100 * args.rate:g} %, minimum fold {args.min_fold:g}")
     print(table(HEADER, rows))
