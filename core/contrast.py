@@ -22,7 +22,8 @@ the test model of the same part was fitted on, by EM on the weights alone
 
     f_control'(x) = f_control(x) sum_k (w'_k / w_k) r_k(x)
 
-with r_k the posteriors under the control's mixture (:func:`reweighted_control`):
+with r_k the posteriors under the control's mixture (:func:`reweighted_control`;
+:func:`reweighted_log_density` scores log f_control' of the test events in one pass):
 exactly the mixture with the new weights when the model kept no tree (most fits),
 the base reweighted under the trees' correction otherwise.  The background keeps
 the control's weight: events no control population explains (a new population)
