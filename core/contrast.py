@@ -22,7 +22,8 @@ the test model of the same part was fitted on, by EM on the weights alone
 
     f_control'(x) = f_control(x) sum_k (w'_k / w_k) r_k(x)
 
-with r_k the posteriors under the control's mixture (:func:`reweighted_control`):
+with r_k the posteriors under the control's mixture (:func:`reweighted_control`;
+:func:`reweighted_log_density` scores log f_control' of the test events in one pass):
 exactly the mixture with the new weights when the model kept no tree (most fits),
 the base reweighted under the trees' correction otherwise.  The background keeps
 the control's weight: events no control population explains (a new population)
@@ -470,6 +471,22 @@ def population_shares(R: np.ndarray, weights: np.ndarray, n_fixed: int = 1, tol:
     return w * ratio
 
 
+def share_ratio(model, train: np.ndarray) -> np.ndarray | None:
+    """w' / w (m,): the control part model's mixture weights re-estimated on ``train``
+    (n_train, d; the test events the part's test model was fitted on) by
+    :func:`population_shares`, over the fitted weights; None when the model has no
+    mixture (:func:`mixture_posteriors`)."""
+    got = mixture_posteriors(model, train)
+    if got is None:
+        return None
+    R, w, n_fixed = got
+    return population_shares(R, w, n_fixed) / w
+
+
+def _log_factor(model, X: np.ndarray, ratio: np.ndarray) -> np.ndarray:
+    return np.log(np.maximum(mixture_posteriors(model, X)[0] @ ratio, 1e-300))
+
+
 def reweighted_control(model, train: np.ndarray) -> Callable | None:
     """The control part model's correction for the test's population shares: returns
     ``log_factor(X) -> (n,)`` with log f_c'(x) = log f_c(x) + log_factor(x), where
@@ -480,16 +497,34 @@ def reweighted_control(model, train: np.ndarray) -> Callable | None:
 
     f_c'(x) = f_c(x) sum_k (w'_k / w_k) r_k(x), r_k the posteriors under the control's
     mixture: exact for a model that is its mixture alone (then f_c' = sum_k w'_k f_k);
-    with trees, the trees' correction is kept and the base reweighted."""
-    got = mixture_posteriors(model, train)
-    if got is None:
+    with trees, the trees' correction is kept and the base reweighted.
+    :func:`reweighted_log_density` gives log f_c' in one pass."""
+    ratio = share_ratio(model, train)
+    if ratio is None:
         return None
-    R, w, n_fixed = got
-    ratio = population_shares(R, w, n_fixed) / w
+    return lambda X: _log_factor(model, X, ratio)
 
-    def log_factor(X: np.ndarray) -> np.ndarray:
-        return np.log(np.maximum(mixture_posteriors(model, X)[0] @ ratio, 1e-300))
-    return log_factor
+
+def reweighted_log_density(model, X: np.ndarray, ratio: np.ndarray | None) -> np.ndarray:
+    """log f_c'(x) (n,) of events X (n, d): the model's log density plus the log of
+    sum_k ratio_k r_k(x) (:func:`reweighted_control`; ``ratio`` from :func:`share_ratio`,
+    None: the model's log density alone).  When the model is a skewed mixture alone,
+    the posteriors come from the same compiled pass as the log density
+    (``score_samples(posteriors=...)``); otherwise, and for chunks holding a value
+    beyond the far-value clip, from a second pass (:func:`mixture_posteriors`)."""
+    X = np.asarray(X, dtype=np.float64)
+    if ratio is None:
+        return np.asarray(model.score_samples(X), dtype=np.float64)
+    if not getattr(model, "scores_with_posteriors", False):
+        return np.asarray(model.score_samples(X), dtype=np.float64) + _log_factor(model, X, ratio)
+    factor = np.empty(X.shape[0])
+
+    def take(a, b, R):
+        if R is None:
+            factor[a:b] = _log_factor(model, X[a:b], ratio)
+        else:
+            factor[a:b] = np.log(np.maximum(R @ ratio, 1e-300))
+    return np.asarray(model.score_samples(X, posteriors=take), dtype=np.float64) + factor
 
 
 def check_settings(rate: float, min_fold: float) -> None:
@@ -562,14 +597,13 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray | None, rate: f
         test_models.append(model)
         sel = part_t == k
         csel = pc.part == k
+        ratio = share_ratio(pc.models[k], Tk[part_t != k]) if reweight else None
+        reweighted.append(ratio is not None)
         s_test[sel] = (np.asarray(model.score_samples(Tk[sel]), dtype=np.float64)
-                       - np.asarray(pc.models[k].score_samples(Tk[sel]), dtype=np.float64))
+                       - reweighted_log_density(pc.models[k], Tk[sel], ratio))
         s_control[csel] = np.asarray(model.score_samples(pc.events[csel]), dtype=np.float64) - pc.log_control[csel]
-        factor = reweighted_control(pc.models[k], Tk[part_t != k]) if reweight else None
-        reweighted.append(factor is not None)
-        if factor is not None:
-            s_test[sel] -= factor(Tk[sel])
-            s_control[csel] -= factor(pc.events[csel])
+        if ratio is not None:
+            s_control[csel] -= _log_factor(pc.models[k], pc.events[csel], ratio)
 
     score = np.full(T.shape[0], np.nan)
     score[t_ok] = s_test

@@ -3,7 +3,8 @@
 The background of both samples is the same 3-channel correlated normal; the
 test sample also holds a spiked population of 1 % that the control lacks.
 References: scipy.stats (uniform distribution and kstest, binomtest, beta,
-ks_2samp, false_discovery_control), the conformal p-value's definition
+ks_2samp, false_discovery_control), fcsparser's bundled files (random halves of
+one real file: the complete null), the conformal p-value's definition
 ((1 + #{reference >= s}) / (n + 1), from memory) counted by brute force.
 """
 
@@ -11,8 +12,12 @@ import numpy as np
 import pytest
 from scipy import stats
 
+from core.analysis import density_input
 from core.contrast import (assign_parts, conformal_pvalues, contrast, prepare_control, shift_check)
 from core.errors import Cancelled, EventDataError
+from core.fcs import read_fcs
+from core.recipe import default_recipe
+from tests.bundled_files import pick
 
 MEAN = np.array([2.0, 2.0, 1.0])
 COV = np.array([[0.30, 0.15, 0.00], [0.15, 0.30, 0.05], [0.00, 0.05, 0.20]])
@@ -185,3 +190,23 @@ def test_nan_rows_are_never_enriched_and_cancel_stops():
         contrast(test, control, engine=SMALL_ENGINE, progress=lambda s, t, i: False)
     with pytest.raises(EventDataError, match="same channels"):
         contrast(test, control[:, :2])
+
+
+def test_random_halves_of_a_real_file_flag_nothing():
+    # fcsparser's smallest bundled FCS 3.0 integer file (725 events; the default recipe gives
+    # the density 6 fluorescence channels), chosen by its properties (tests/bundled_files.py):
+    # two random halves of one file are two draws of one sample (the complete null), so
+    # Benjamini-Hochberg at 5 % should flag nothing and no channel should have moved
+    ef = read_fcs(pick(version="FCS3.0", datatype="I", events=lambda n: n < 1000))
+    recipe = default_recipe(ef)
+    prep, _ = density_input(ef, recipe)
+    X = prep.matrix
+    assert X.shape[0] > 600 and X.shape[1] >= 3
+    perm = np.random.default_rng(0).permutation(X.shape[0])
+    half = X.shape[0] // 2
+    res = contrast(X[perm[half:]], X[perm[:half]], engine=SMALL_ENGINE, random_state=0,
+                   channel_names=recipe.channels)
+    assert res.count == 0 and not res.shift.warn, res.shift.text
+    # the conformal p-values of the test half against the control half: uniform
+    # (reference: scipy.stats.kstest against scipy.stats.uniform; every 4th, as above)
+    assert stats.kstest(res.pvalue[np.isfinite(res.pvalue)][::4], stats.uniform.cdf).pvalue > 0.05

@@ -105,3 +105,29 @@ def test_a_grown_population_is_not_new():
     assert np.sum(new.enriched & grown) == 0
     assert np.sum(new.enriched & novel) >= 0.95 * novel.sum()
     assert np.nanmedian(new.score[grown]) < 0.5 < np.log(4.0) < np.nanmedian(former.score[grown])
+
+
+def test_one_pass_reweighting_equals_the_two_pass_definition():
+    # the log density and the posteriors from one compiled pass (score_samples(posteriors=...))
+    # give the same log f_c' as the log density plus reweighted_control's factor (checked
+    # against scipy.stats above), also for a chunk with an event beyond the far-value clip
+    from core.contrast import reweighted_log_density, share_ratio
+    rng = np.random.default_rng(0)
+
+    def skewed(n, w):    # three gamma-skewed populations: the engine keeps skewed components
+        k = rng.multinomial(n, w)
+        return np.vstack([rng.gamma(2.0, 0.5, size=(k[0], 3)), rng.gamma(2.0, 0.5, size=(k[1], 3)) + [4, 0, 0],
+                          rng.gamma(2.0, 0.5, size=(k[2], 3)) + [0, 4, 0]])
+    control, test = skewed(4000, [0.8, 0.15, 0.05]), skewed(4000, [0.4, 0.15, 0.45])
+    model = AdditiveTreeDensity(random_state=0, n_trees=0, marginal_trees=0).fit(control)
+    assert model.scores_with_posteriors          # a skewed mixture alone: the one-pass route
+    ratio = share_ratio(model, test)
+    assert not np.allclose(ratio, 1.0)           # the shares did change
+    X = np.vstack([rng.normal(1.5, 2.0, size=(300, 3)), [[1e45, 0.0, 0.0]]])
+    two_pass = model.score_samples(X) + reweighted_control(model, test)(X)
+    np.testing.assert_allclose(reweighted_log_density(model, X, ratio), two_pass, rtol=0, atol=1e-9)
+    np.testing.assert_allclose(reweighted_log_density(model, X[:300], ratio), two_pass[:300], rtol=0, atol=1e-9)
+    gm = GaussianMixture(n_components=3, random_state=0).fit(control)   # a model without the one-pass route
+    np.testing.assert_allclose(reweighted_log_density(gm, X[:300], share_ratio(gm, test)),
+                               gm.score_samples(X[:300]) + reweighted_control(gm, test)(X[:300]), rtol=0, atol=1e-12)
+    np.testing.assert_array_equal(reweighted_log_density(model, X, None), model.score_samples(X))
