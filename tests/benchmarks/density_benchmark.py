@@ -815,8 +815,8 @@ def parse_args(argv=None):
     p.add_argument("--n-train", type=int, default=50000)
     p.add_argument("--n-test", type=int, default=50000)
     p.add_argument("--seed", type=int, default=0)
-    p.add_argument("--scenarios", default="",
-                   help="comma-separated names (all channel counts) or ids like panel-12d; default all")
+    p.add_argument("--scenarios", default="",  # "none": the real files only
+                   help="comma-separated names (all channel counts) or ids like panel-12d; default all; none: real files only")
     p.add_argument("--only", choices=["all", "ours", "baselines"], default="all")
     p.add_argument("--ours", default="", help="settings of 'ours' beyond the defaults, e.g. mixture_fits=2")
     p.add_argument("--no-cache", action="store_true", help="recompute the baselines and rewrite their cache")
@@ -834,6 +834,8 @@ def parse_args(argv=None):
 def select_cases(spec):
     if not spec:
         return list(CASES)
+    if spec.strip() == "none":
+        return []       # the real files only
     chosen = []
     for item in (s.strip() for s in spec.split(",") if s.strip()):
         hits = [(n, d) for n, d in CASES if item in (n, case_id(n, d))]
