@@ -170,9 +170,11 @@ class AdditiveTreeDensity(Settings):
         Mixture bases fitted from different seeds and averaged (equal shares;
         :mod:`core.density.mixture_average`); a further fit is kept only when the
         average gains on the held-out share.  1 (default): one fit.  With many
-        channels (16-24) two fits bring the model 0.05-0.1 nats per event closer
-        to the truth, for about twice the fit and scoring time (EXPERIMENTS.md
-        section 27).
+        channels the fit is mostly estimation noise: on cyto-16d / cyto-24d
+        (50,000 events) 2 fits took the gap to the truth from 0.275 / 0.468 to
+        0.238 / 0.413 nats per event, 3 fits to 0.228 / 0.376, for about that
+        many times the mixture stage's time and the scoring time
+        (EXPERIMENTS.md section 27).
 
     Attributes (after fit)
     ----------------------
