@@ -144,7 +144,7 @@ def _profile(theta, X, driver, rest, grad=False):
     return float(ll), (mu, sd, cov), np.concatenate([g_base, g_slope, g_growth, g_centre, g_logscale, g_eps])
 
 
-def refit_skewed_fan(true_pop, X):
+def refit_skewed_fan(true_pop, X, maxiter: int = 5000):
     """The truth's family (a sinh-arcsinh-warped fan, density_scenarios.SkewWarp
     of a Fan, driver channel known) refitted by maximum likelihood to one
     population's events X (n x d): L-BFGS (scipy.optimize, numerical gradient)
@@ -163,7 +163,7 @@ def refit_skewed_fan(true_pop, X):
         ll, _, g = _profile(theta, X, driver, rest, grad=True)
         return (-ll, -g) if np.isfinite(ll) else (1e10, np.zeros_like(theta))
 
-    res = minimize(loss, theta0, jac=True, method="L-BFGS-B", options={"maxiter": 5000, "maxfun": 20_000})
+    res = minimize(loss, theta0, jac=True, method="L-BFGS-B", options={"maxiter": int(maxiter), "maxfun": 4 * int(maxiter)})
     _, (mu, sd, cov), _ = _profile(res.x, X, driver, rest)
     base, slope, growth, centre, scale, eps = _unpack(res.x, d)
     spread0 = np.sqrt(np.diag(cov))
