@@ -17,6 +17,7 @@ from .boosting import (MAP_COST_RATIO, TREE_ABANDON_GAP, Shares, TreeStage, fit_
 from .chain import Chain
 from .correlation_prior import CORR_PRIOR, PRIOR_COMPONENTS
 from .checks import ATOM_SHARE, largest_atom_share, nonfinite_error
+from .mixture_average import fit_averaged
 from .mixture_base import MIXTURE_BASES, MixtureBase
 from .mixture_fit import MixtureSettings, fit_mixture
 
@@ -101,7 +102,8 @@ def fit_with_base(p, X, base: str, progress) -> FittedDensity:
     chain = Chain(*logistic_map(X, bounds))
     va, tr = heldout_split(X.shape[0], p.validation_fraction, rng)
     if base in MIXTURE_BASES and (~chain.constant).any():
-        chain.mixture = fit_mixture_base(chain, base, X[tr], X[va], rng, progress, int(p.n_trees))
+        chain.mixture = fit_averaged(lambda r: fit_mixture_base(chain, base, X[tr], X[va], r, progress, int(p.n_trees)),
+                                     int(getattr(p, "mixture_fits", 1)), rng, X[va][:, ~chain.constant])
     U_va, ld_va = chain.base_forward(X[va])
     base_ll = float(ld_va.mean())
     stage = _probe_says_no_trees(p, chain, base, X[tr], U_va, ld_va, rng)

@@ -5,7 +5,7 @@ Run from the repository root::
 
     python tests/benchmarks/density_benchmark.py [--n-train 50000 --n-test 50000]
         [--scenarios skewed,panel-12d] [--only ours|baselines] [--no-cache]
-        [--markdown PATH] [--no-files] [--no-speed]
+        [--markdown PATH] [--no-files] [--no-speed] [--ours mixture_fits=2]
 
 What it measures (all log-likelihoods are natural-log densities averaged over
 held-out events: nats per event, higher is better):
@@ -364,11 +364,27 @@ def engine_available():
     return AdditiveTreeDensity, ""
 
 
+#: Settings given to "ours" beyond random_state (``--ours KEY=VALUE,...``; empty: the defaults).
+OURS_SETTINGS: dict = {}
+
+
+def parse_settings(text: str) -> dict:
+    """"mixture_fits=2,n_trees=0" -> {"mixture_fits": 2, "n_trees": 0} (JSON values, else strings)."""
+    out = {}
+    for item in filter(None, (t.strip() for t in text.split(","))):
+        key, _, value = item.partition("=")
+        try:
+            out[key.strip()] = json.loads(value)
+        except json.JSONDecodeError:
+            out[key.strip()] = value.strip()
+    return out
+
+
 def run_ours(X_train, X_test, seed=0):
     cls, why = engine_available()
     if cls is None:
         return None, None, why
-    model = cls(random_state=seed)
+    model = cls(random_state=seed, **OURS_SETTINGS)
     _, fit_s = _timed(model.fit, X_train)
     scores, score_s = _timed(model.score_samples, X_test)
     return {"fit_s": fit_s, "score_s": score_s, "n_trees": int(getattr(model, "n_trees_", -1))}, scores, model
@@ -749,7 +765,8 @@ def report(rows, file_rows, speed, args, markdown=False) -> str:
 
     notes = [
         "truth: exact log density of the scenario (density_scenarios.py); the best any model can do on average.",
-        f"ours: core.density.AdditiveTreeDensity(random_state=seed) with default settings; core/density at "
+        f"ours: core.density.AdditiveTreeDensity(random_state=seed) with "
+        f"{', '.join(f'{k}={v!r}' for k, v in OURS_SETTINGS.items()) or 'default'} settings; core/density at "
         f"{ENGINE_VERSION}.",
         f"GMM-BIC: sklearn GaussianMixture, full covariance, components chosen by BIC on the training "
         f"events among {', '.join(map(str, GMM_CANDIDATES))} (from {WIDE_CHANNELS} channels on: {', '.join(map(str, GMM_CANDIDATES_WIDE))}; a subset to keep time); fit s is the "
@@ -798,9 +815,10 @@ def parse_args(argv=None):
     p.add_argument("--n-train", type=int, default=50000)
     p.add_argument("--n-test", type=int, default=50000)
     p.add_argument("--seed", type=int, default=0)
-    p.add_argument("--scenarios", default="",
-                   help="comma-separated names (all channel counts) or ids like panel-12d; default all")
+    p.add_argument("--scenarios", default="",  # "none": the real files only
+                   help="comma-separated names (all channel counts) or ids like panel-12d; default all; none: real files only")
     p.add_argument("--only", choices=["all", "ours", "baselines"], default="all")
+    p.add_argument("--ours", default="", help="settings of 'ours' beyond the defaults, e.g. mixture_fits=2")
     p.add_argument("--no-cache", action="store_true", help="recompute the baselines and rewrite their cache")
     p.add_argument("--cache", default=CACHE_PATH, help="baseline cache (JSON)")
     p.add_argument("--markdown", default=None, help="also write the tables as markdown to this path")
@@ -816,6 +834,8 @@ def parse_args(argv=None):
 def select_cases(spec):
     if not spec:
         return list(CASES)
+    if spec.strip() == "none":
+        return []       # the real files only
     chosen = []
     for item in (s.strip() for s in spec.split(",") if s.strip()):
         hits = [(n, d) for n, d in CASES if item in (n, case_id(n, d))]
@@ -836,6 +856,7 @@ ENGINE_VERSION = "not measured"
 def main(argv=None):
     global ENGINE_VERSION
     args = parse_args(argv)
+    OURS_SETTINGS.update(parse_settings(args.ours))
     ENGINE_VERSION = engine_version()
     cases = select_cases(args.scenarios)
     cache = load_cache(args.cache)     # --no-cache: entries are recomputed and replaced
