@@ -150,6 +150,19 @@ def skew_x(y, skew, j, k):
 
 
 @njit(cache=True, error_model="numpy")
+def conditional_means(m, means_t, chol_t, z, j):
+    """Each component's mean of channel j's whitened input given channels < j, into m (K).
+
+    means_t (d x K), chol_t (d x d x K) and z (d x K) are laid out component-innermost.
+    """
+    for k in range(m.shape[0]):
+        m[k] = means_t[j, k]
+    for q in range(j):
+        for k in range(m.shape[0]):
+            m[k] += chol_t[j, q, k] * z[q, k]
+
+
+@njit(cache=True, error_model="numpy")
 def _gmm_forward_rows(start, stop, X, U, logd, comp, bg, u_clip, z_max, want_u):
     """Rosenblatt map of background + K Gaussians (see core.density.gaussian_base).
 
@@ -251,11 +264,7 @@ def _skew_logpdf_rows(start, stop, X, logd, comp, bg, z_max, R):
         for j in range(d):
             x = X[i, j]
             lw0 += bg_logpdf(x, j, bg, z_max)
-            for k in range(K):
-                m[k] = means_t[j, k]
-            for q in range(j):
-                for k in range(K):
-                    m[k] += chol_t[j, q, k] * z[q, k]
+            conditional_means(m, means_t, chol_t, z, j)
             for k in range(K):
                 y, jac = skew_y(x, skew, j, k)
                 jp[k] *= jac
@@ -353,11 +362,7 @@ def _skew_forward_rows(start, stop, X, U, logd, comp, bg, u_clip, z_max, eps_abs
                 p = math.exp(g)
                 s += p
                 acc += p * bg_cdf(x, j, bg, z_max)
-            for k in range(K):
-                m[k] = means_t[j, k]
-            for q in range(j):
-                for k in range(K):
-                    m[k] += chol_t[j, q, k] * z[q, k]
+            conditional_means(m, means_t, chol_t, z, j)
             for k in range(K):
                 y, jac = skew_y(x, skew, j, k)
                 zz = min(max((y - m[k]) * inv_sd[j, k], -z_max), z_max)

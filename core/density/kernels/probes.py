@@ -29,7 +29,7 @@ from .common import _LOG_SQRT_2PI, parallel
 
 #: Rows per parallel block (a climb has a few hundred rows, each costing 2 evaluations).
 PROBE_BLOCK = 16
-from .mixture import bg_logpdf, skew_y
+from .mixture import bg_logpdf, conditional_means, skew_y
 
 
 def probe_factors(comp) -> tuple[np.ndarray, np.ndarray]:
@@ -78,11 +78,7 @@ def _probe_rows(start, stop, X, H, lo, hi, S, comp, bg, z_max, B, nB, floor):
             x = min(max(X[i, j], lo[j]), hi[j])
             bgj[j] = bg_logpdf(x, j, bg, z_max)
             lw0 += bgj[j]
-            for k in range(K):
-                m[k] = means_t[j, k]
-            for q in range(j):
-                for k in range(K):
-                    m[k] += chol_t[j, q, k] * z[q, k]
+            conditional_means(m, means_t, chol_t, z, j)
             for k in range(K):
                 y, jac = skew_y(x, skew, j, k)
                 y0[j, k] = y
