@@ -135,7 +135,7 @@ from scipy import stats
 
 from .density import AdditiveTreeDensity
 from .errors import Cancelled, EventDataError
-from .contrast_local import DEFAULT_SMALLEST, MIN_SCAN, local_scores, min_rank_pvalues, neighbours_for
+from .contrast_local import DEFAULT_SMALLEST, MIN_SCAN, TIE_BREAK, local_scores, min_rank_pvalues, neighbours_for
 from .fdr import bh_qvalues
 from .progress import stop_relay
 from .recipe.records import Comparison
@@ -639,6 +639,12 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray | None, rate: f
     score[t_ok] = s_test
     log_fold = score
     if k_local:
+        # the local score takes few distinct values (neighbour counts): break its ties at random, the
+        # same way for test and control events (seeded), so its conformal p-values are uniform, not
+        # merely valid (TIE_BREAK nats is far below any difference between distinct counts)
+        jitter = np.random.default_rng([int(random_state), 3])
+        l_test = l_test + TIE_BREAK * jitter.random(l_test.size)
+        l_control = l_control + TIE_BREAK * jitter.random(l_control.size)
         local = np.full(T.shape[0], np.nan)
         local[t_ok] = l_test
         local_fold = np.full(T.shape[0], np.nan)

@@ -64,6 +64,8 @@ DEFAULT_SMALLEST = Comparison().smallest_population
 MIN_SCAN = 5
 #: Events scored per neighbour query (bounds memory to ~ CHUNK x k indices).
 CHUNK = 50_000
+#: Random tie-break added to local scores (nats; uniform on [0, TIE_BREAK), seeded, test and control alike).
+TIE_BREAK = 1e-6
 #: Test events whose smaller rank is at most this get the exact tie-break (see :func:`min_rank_pvalues`).
 EXACT_TOP = 2000
 
