@@ -263,7 +263,7 @@ class ContrastResult:
     pvalue: np.ndarray         # conformal p-value against the control scores (both scores' when the local
     #                            score is on: core.contrast_local.min_rank_pvalues); NaN for removed rows
     qvalue: np.ndarray         # Benjamini-Hochberg q-value; NaN for removed rows
-    enriched: np.ndarray       # bool: q <= rate and max(score, local_fold) >= log(min_fold)
+    enriched: np.ndarray       # bool: q <= rate, score >= log(min_fold) and (local score on) local_fold too
     count: int
     share: float               # count / n_scored test events
     share_ci: tuple            # (low, high) 95 % Clopper-Pearson
@@ -297,12 +297,16 @@ class ContrastResult:
 
 def contrast_keywords(res: ContrastResult, control: str | None) -> dict:
     """FCS TEXT keywords recording a contrast in an export: ``BOSCAGE_CONTROL`` (the control's
-    file name), ``BOSCAGE_FDR``, ``BOSCAGE_MIN_FOLD``, ``BOSCAGE_ENRICHED`` and, when raised,
-    ``BOSCAGE_SHIFT_WARNING``."""
+    file name), ``BOSCAGE_FDR``, ``BOSCAGE_MIN_FOLD``, ``BOSCAGE_ENRICHED``,
+    ``BOSCAGE_CONTRAST_SCORES`` (the scores behind p: the density ratio, and the local
+    neighbour counts with their k when used) and, when raised, ``BOSCAGE_SHIFT_WARNING``."""
     kw = {"BOSCAGE_CONTROL": os.path.basename(str(control or "")) or "unknown",
           "BOSCAGE_FDR": repr(float(res.rate)), "BOSCAGE_MIN_FOLD": repr(float(res.min_fold)),
           "BOSCAGE_ENRICHED": f"{res.count} of {res.info.get('n_test', '')} kept events; about "
                               f"{res.expected_false:.1f} expected false discoveries"}
+    k = int(res.info.get("neighbours", 0) or 0)
+    kw["BOSCAGE_CONTRAST_SCORES"] = (f"density ratio and local neighbour counts (k = {k}), one conformal p-value"
+                                     if k else "density ratio")
     if res.shift is not None and res.shift.warn:
         kw["BOSCAGE_SHIFT_WARNING"] = res.shift.text
     return kw
@@ -650,7 +654,7 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray | None, rate: f
         local_fold = np.full(T.shape[0], np.nan)
         local_fold[t_ok] = f_test
         pvalue = min_rank_pvalues(score, s_control, local, l_control)
-        log_fold = np.fmax(score, local_fold)
+        log_fold = np.minimum(score, local_fold)   # both estimates of the ratio must reach the minimum fold
     else:
         local = local_fold = l_control = None
         pvalue = conformal_pvalues(score, s_control)
