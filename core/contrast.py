@@ -83,19 +83,37 @@ score before the population shares; with them, 10 null runs of 20,000 events:
 no event flagged, tail shares 0.0010 / 0.0104 / 0.0505, the KS test within every
 part above 0.05 / 3.)
 
+Local score (``smallest``, default 30 events: the recipe's
+``comparison.smallest_population``; 0 = off).  Beside the density score every
+event, test and control alike, gets a local neighbour score from the events
+outside its part (:mod:`core.contrast_local`: how unlikely so many test events
+are among its 5..k nearest, k = floor(smallest (K - 1) / K)), and the p-value
+becomes one conformal p-value of both (:func:`core.contrast_local.min_rank_pvalues`:
+the test event ranked with the control events by each score, the smaller rank
+first): an event first by either score gets the smallest p.  Why: a heavy-tailed
+control event whose two fitted tails differ scored 14 nats, above all 30 cells of
+a new population (generator draw 202 of the benchmark); by neighbour counts the 30
+cells rank first.  Measured (``tests/benchmarks/contrast_benchmark.py``): see
+tests/benchmarks/README.md, "Contrast benchmark".
+
 Minimum fold (``min_fold``, default 2): an enriched event must also be at
 least twice as dense in the test sample as in the control given the test's
 population shares (s >= log 2 = 0.69 nats).  With tens of thousands of events a tiny, systematic difference
 can be statistically significant; an event whose estimated density ratio is
 below 2 is not "new" in any sense a user cares about (the density estimates
-themselves are uncertain by a few tenths of a nat).
+themselves are uncertain by a few tenths of a nat).  With the local score the
+neighbour count ratio over its expectation (``local_fold``) must reach it too: an
+event is new only when both estimates of the ratio say so (events beside a new or
+grown population, and control-like events that one score ranks high by chance,
+usually fail one of them).
 
-Reported (:class:`ContrastResult`): per test event the score, p and q, the
-enriched mask; the count with its share of the test events and a 95 %
-Clopper-Pearson interval (``scipy.stats.binomtest``); the expected number of
-false discoveries (n_test x the share of control scores at or above the
-lowest enriched score: control-like events expected to pass; Benjamini-Hochberg
-bounds it by about rate x count); and the whole-sample shift check
+Reported (:class:`ContrastResult`): per test event the score, the local score
+and local fold, p and q, the enriched mask; the count with its share of the test
+events and a 95 % Clopper-Pearson interval (``scipy.stats.binomtest``); the
+expected number of false discoveries (n_test x the share of control events as
+extreme as the weakest enriched event -- by the density score alone, the control
+scores at or above the lowest enriched score: control-like events expected to
+pass; Benjamini-Hochberg bounds it by about rate x count); and the whole-sample shift check
 (:func:`shift_check`).
 
 Whole-sample shift.  When the two tubes differ as a whole (compensation,
