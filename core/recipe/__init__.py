@@ -53,7 +53,8 @@ Meaning of the entries:
   test / control of an enriched event (at least 1; default 2),
   ``smallest_population`` the smallest new population (events) the local
   neighbour score is sized for (10-1000, default 30; 0 turns it off:
-  :mod:`core.contrast_local`).
+  :mod:`core.contrast_local`; stored only when not 30, so older recipes keep
+  their digest).
 
 In code the sections are typed records (:mod:`core.recipe.records`:
 ``Compensation``, ``TransformSpec`` per channel, ``Cleaning``, ``Engine``,

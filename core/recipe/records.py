@@ -228,7 +228,12 @@ class Comparison:
                        f"{self.smallest_population}")
 
     def to_dict(self) -> dict:
-        return {f.name: getattr(self, f.name) for f in fields(self)}
+        """The stored form; ``smallest_population`` only when not its default, so recipes stored
+        before the setting existed keep their form and digest."""
+        d = {f.name: getattr(self, f.name) for f in fields(self)}
+        if d["smallest_population"] == Comparison.__dataclass_fields__["smallest_population"].default:
+            del d["smallest_population"]
+        return d
 
     @classmethod
     def from_dict(cls, d: Any, where: str = NOWHERE) -> "Comparison":
