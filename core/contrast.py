@@ -112,8 +112,8 @@ and local fold, p and q, the enriched mask; the count with its share of the test
 events and a 95 % Clopper-Pearson interval (``scipy.stats.binomtest``); the
 expected number of false discoveries (n_test x the share of control events as
 extreme as the weakest enriched event -- by the density score alone, the control
-scores at or above the lowest enriched score: control-like events expected to
-pass; Benjamini-Hochberg bounds it by about rate x count); and the whole-sample shift check
+scores at or above the lowest enriched score -- that pass the minimum fold too:
+control-like events expected to pass; Benjamini-Hochberg bounds it by about rate x count); and the whole-sample shift check
 (:func:`shift_check`).
 
 Whole-sample shift.  When the two tubes differ as a whole (compensation,
@@ -153,7 +153,7 @@ from scipy import stats
 
 from .density import AdditiveTreeDensity
 from .errors import Cancelled, EventDataError
-from .contrast_local import DEFAULT_SMALLEST, MIN_SCAN, TIE_BREAK, local_scores, min_rank_pvalues, neighbours_for
+from .contrast_local import DEFAULT_SMALLEST, MIN_SCAN, TIE_BREAK, as_extreme, local_scores, min_rank_pvalues, neighbours_for
 from .fdr import bh_qvalues
 from .progress import stop_relay
 from .recipe.records import Comparison
@@ -288,7 +288,8 @@ class ContrastResult:
     rate: float                # false discovery rate
     min_fold: float
     threshold: float           # lowest score of an enriched event (inf when none)
-    control_pass_share: float  # share of control events as extreme as the weakest enriched event
+    control_pass_share: float  # share of control events as extreme as the weakest enriched event that
+    #                            pass the minimum fold too
     n_control: int             # control events in the reference
     expected_false: float      # control_pass_share x n_scored test events
     folds: int = DEFAULT_FOLDS
@@ -302,6 +303,7 @@ class ContrastResult:
     local_score: np.ndarray | None = None      # (n_test,) local neighbour score, nats (core.contrast_local)
     local_fold: np.ndarray | None = None       # (n_test,) local log fold (neighbour count ratio / expected)
     local_control_scores: np.ndarray | None = None   # (n_control,) the local score's reference
+    local_control_fold: np.ndarray | None = None     # (n_control,) the control events' local log fold
 
     def summary(self) -> dict:
         """JSON-able numbers for tables and reports."""
@@ -633,7 +635,8 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray | None, rate: f
     s_test = np.empty(Tk.shape[0])
     s_control = np.empty(pc.n_events)
     k_local = neighbours_for(smallest, folds) if smallest else 0
-    l_test, f_test, l_control = np.empty(Tk.shape[0]), np.empty(Tk.shape[0]), np.empty(pc.n_events)
+    l_test, f_test = np.empty(Tk.shape[0]), np.empty(Tk.shape[0])
+    l_control, f_control = np.empty(pc.n_events), np.empty(pc.n_events)
     for k in range(folds):
         model = fit(Tk[part_t != k], progress=_staged(relay, f"Test model, part {k + 1} of {folds}"))
         if stopped:
@@ -655,7 +658,7 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray | None, rate: f
                 raise Cancelled("contrast with the control was cancelled while counting neighbours")
             train_t, train_c = Tk[part_t != k], pc.events[pc.part != k]
             l_test[sel], f_test[sel] = local_scores(train_t, train_c, Tk[sel], factor_t, k_local)
-            l_control[csel], _ = local_scores(train_t, train_c, pc.events[csel], factor_c, k_local)
+            l_control[csel], f_control[csel] = local_scores(train_t, train_c, pc.events[csel], factor_c, k_local)
 
     score = np.full(T.shape[0], np.nan)
     score[t_ok] = s_test
@@ -674,7 +677,7 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray | None, rate: f
         pvalue = min_rank_pvalues(score, s_control, local, l_control)
         log_fold = np.minimum(score, local_fold)   # both estimates of the ratio must reach the minimum fold
     else:
-        local = local_fold = l_control = None
+        local = local_fold = l_control = f_control = None
         pvalue = conformal_pvalues(score, s_control)
     qvalue = bh_qvalues(pvalue)
     with np.errstate(invalid="ignore"):
@@ -683,9 +686,18 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray | None, rate: f
     count = int(enriched.sum())
     ci = stats.binomtest(count, n).proportion_ci(confidence_level=confidence_level, method="exact")
     threshold = float(np.min(score[enriched])) if count else float("inf")
-    # control events as extreme as the weakest enriched event: p = (1 + that many) / (n_control + 1)
-    n_ref = pc.n_events
-    pass_share = float((np.max(pvalue[enriched]) * (n_ref + 1) - 1) / n_ref) if count else 0.0
+    # control events as extreme as the weakest enriched event (those its p counts) that also pass
+    # the minimum fold: the control-like events expected to pass
+    pass_share = 0.0
+    if count:
+        fold_ok = s_control >= math.log(min_fold)
+        if k_local:
+            weakest = int(np.flatnonzero(enriched)[np.argmax(pvalue[enriched])])
+            extreme = as_extreme(score[weakest], s_control, local[weakest], l_control)
+            fold_ok &= f_control >= math.log(min_fold)
+        else:
+            extreme = s_control >= threshold
+        pass_share = float(np.mean(extreme & fold_ok))
     shift = shift_check(Tk, pc.events, channel_names, enriched_share=count / n, to_units=to_units)
     return ContrastResult(score=score, pvalue=pvalue, qvalue=qvalue, enriched=enriched, count=count,
                           share=count / n, share_ci=(float(ci.low), float(ci.high)), rate=float(rate),
@@ -693,5 +705,6 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray | None, rate: f
                           n_control=int(pc.n_events), expected_false=pass_share * n, folds=folds, shift=shift,
                           test_model=test_models, control_model=list(pc.models), control_scores=s_control,
                           local_score=local, local_fold=local_fold, local_control_scores=l_control,
+                          local_control_fold=f_control,
                           info={"n_test": n, "control_prepared": shared, "part": part_t,
                                 "reweighted": reweighted, "neighbours": k_local})

@@ -210,3 +210,20 @@ def min_rank_pvalues(s1: np.ndarray, ref1: np.ndarray, s2: np.ndarray, ref2: np.
             count[t] = np.sum((lo_r < R[t]) | ((lo_r == R[t]) & (hi_r <= max(R1[t], R2[t]))))
     p[ok] = (1.0 + count) / (n + 1.0)
     return p
+
+
+def as_extreme(s1: float, ref1: np.ndarray, s2: float, ref2: np.ndarray) -> np.ndarray:
+    """Which reference events count against one test event in :func:`min_rank_pvalues` (its
+    statistic at most the test event's, among the n + 1): bool (n,), so that the test event's
+    p = (1 + sum) / (n + 1) (exact tie-break; finite reference events only, as there)."""
+    r1v, r2v = (np.asarray(r, dtype=np.float64) for r in (ref1, ref2))
+    ok = np.isfinite(r1v) & np.isfinite(r2v)
+    a1, a2 = np.sort(r1v[ok]), np.sort(r2v[ok])
+    R1, R2 = 1 + _ranks(a1, np.array([s1]))[0], 1 + _ranks(a2, np.array([s2]))[0]
+    q1 = _ranks(a1, r1v[ok]) + (r1v[ok] <= s1)
+    q2 = _ranks(a2, r2v[ok]) + (r2v[ok] <= s2)
+    lo, hi = np.minimum(q1, q2), np.maximum(q1, q2)
+    R = min(R1, R2)
+    out = np.zeros(r1v.shape, dtype=bool)
+    out[ok] = (lo < R) | ((lo == R) & (hi <= max(R1, R2)))
+    return out

@@ -132,11 +132,19 @@ def test_spiked_population_is_found_at_the_false_discovery_rate(spiked):
     assert precision >= 0.9, precision
     assert res.count == res.enriched.sum() and res.share == pytest.approx(res.count / labels.size)
     # every finite control event is in the reference; the expected false discoveries are the
-    # control share as extreme as the weakest enriched event (p = (1 + that many) / (n + 1)),
-    # times the test events
+    # control share as extreme as the weakest enriched event (the events its p counts) and
+    # passing the minimum fold by both estimates, times the test events.  Brute force: rank the
+    # weakest event among the control events by each score (reference: scipy.stats.rankdata,
+    # "max" = how many score at least as high)
     assert res.n_control == 12_000
-    weakest = np.max(res.pvalue[res.enriched])
-    assert res.expected_false == pytest.approx((weakest * 12_001 - 1) / 12_000 * labels.size)
+    t = np.flatnonzero(res.enriched)[np.argmax(res.pvalue[res.enriched])]
+    r1 = stats.rankdata(-np.r_[res.control_scores, res.score[t]], method="max")
+    r2 = stats.rankdata(-np.r_[res.local_control_scores, res.local_score[t]], method="max")
+    lo, hi = np.minimum(r1, r2), np.maximum(r1, r2)
+    counted = ((lo < lo[-1]) | ((lo == lo[-1]) & (hi <= hi[-1])))[:-1]
+    assert (1 + counted.sum()) / 12_001 == pytest.approx(res.pvalue[t], rel=1e-12)
+    fold_ok = np.minimum(res.control_scores, res.local_control_fold) >= np.log(2.0)
+    assert res.expected_false == pytest.approx(np.mean(counted & fold_ok) * labels.size)
     assert res.threshold == pytest.approx(res.score[res.enriched].min())
     # by the density score alone, that share is the control scores at or above the lowest enriched score
     alone = res.info["density alone"]
