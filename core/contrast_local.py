@@ -52,7 +52,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit
+from numba import get_num_threads, njit
 from scipy import stats
 from scipy.spatial import cKDTree
 
@@ -104,7 +104,8 @@ def local_scores(train_test: np.ndarray, train_control: np.ndarray, X: np.ndarra
     fold = np.empty(X.shape[0])
     for a in range(0, X.shape[0], CHUNK):
         b = min(a + CHUNK, X.shape[0])
-        _, idx = tree.query(X[a:b] / scale, k=k)
+        # threads: numba's budget (the batch sets it per worker), so both stay within the cores
+        _, idx = tree.query(X[a:b] / scale, k=k, workers=get_num_threads())
         idx = idx.reshape(b - a, k)
         hits = np.cumsum(idx < nt, axis=1)
         p = pi0[a:b, None]
