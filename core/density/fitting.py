@@ -101,12 +101,15 @@ def em_event_cap(setting, channels: int) -> int:
 def fit_mixture_base(chain: Chain, base: str, X_tr, X_va, rng, progress, n_trees: int,
                      max_em_events=EM_CAP_BASE) -> MixtureBase:
     """The mixture base on the channels that vary ("skewed": skewed components and
-    a flat-top background), component count chosen on the held-out events; the
-    EM on at most :func:`em_event_cap` (``max_em_events``) training events."""
+    a flat-top background), component count chosen on the held-out events, the
+    two raced skewed fits blended when that scores better (``blend_race``;
+    EXPERIMENTS.md section 30); the EM on at most :func:`em_event_cap`
+    (``max_em_events``) training events."""
     free = ~chain.constant
     settings = MixtureSettings(random_state=int(rng.integers(2 ** 31)), skew=base == "skewed",
                                flat_background=base == "skewed", components=PRIOR_COMPONENTS,
-                               corr_prior=CORR_PRIOR, max_em_events=em_event_cap(max_em_events, int(free.sum())))
+                               corr_prior=CORR_PRIOR, max_em_events=em_event_cap(max_em_events, int(free.sum())),
+                               blend_race=True)
     return fit_mixture(X_tr[:, free], chain.loc[free], chain.scale[free], settings,
                        validation=X_va[:, free],
                        progress=lambda step, total, info: keep_going(progress, 0, n_trees, info))
