@@ -19,11 +19,12 @@ from core.recipe import Recipe
 def test_cap_rule_by_channels():
     assert fitting.em_event_cap(50_000, 30) == 50_000
     assert fitting.em_event_cap(80_000, 4) == 80_000
-    # the rule: the base cap up to 12 channels, in proportion to the channels above
+    # the rule: the base cap up to 12 channels, 12,500 events more per channel above
     assert fitting.em_event_cap("by_channels", 1) == 50_000
     assert fitting.em_event_cap("by_channels", 12) == 50_000
-    assert fitting.em_event_cap("by_channels", 24) == 100_000
-    assert fitting.em_event_cap("by_channels", 30) == 125_000
+    assert fitting.em_event_cap("by_channels", 13) == 62_500
+    assert fitting.em_event_cap("by_channels", 16) == 100_000
+    assert fitting.em_event_cap("by_channels", 24) == 200_000
 
 
 def test_setting_validated_and_accepted_by_the_recipe():
