@@ -4,7 +4,7 @@ share from different seeds, merged into one mixture with equal shares.
 With many channels the chosen mixture has about as many parameters as events
 (128 components x 16-24 channels for 40,000 events), so two fits from
 different starts differ mostly in their estimation noise, and their average
-is closer to the truth than either (EXPERIMENTS.md section 27: on cyto-16d and
+is closer to the truth than either (EXPERIMENTS.md section 28: on cyto-16d and
 cyto-24d, 50,000 events, 0.275 -> 0.228 and 0.468 -> 0.376 nats from the truth
 with three fits).  The
 average of mixtures is again a mixture: the merged model keeps the base's form

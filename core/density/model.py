@@ -175,7 +175,7 @@ class AdditiveTreeDensity(Settings):
         (50,000 events) 2 fits took the gap to the truth from 0.275 / 0.468 to
         0.238 / 0.413 nats per event, 3 fits to 0.228 / 0.376, for about that
         many times the mixture stage's time and the scoring time
-        (EXPERIMENTS.md section 27).
+        (EXPERIMENTS.md section 28).
     max_em_events : int or "by_channels"
         Most training events the mixture base's EM runs on (a seeded
         subsample of the training share; the trees see all of it).  50,000
