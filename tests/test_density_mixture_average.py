@@ -7,7 +7,7 @@ import pytest
 from scipy import stats
 from scipy.special import logsumexp
 
-from core.density.mixture_average import average_mixtures, fit_averaged, skew_arrays
+from core.density.mixture_average import average_mixtures, blend_pair, blend_share, fit_averaged, skew_arrays
 from core.density.mixture_base import MixtureBase
 from core.density.model import AdditiveTreeDensity
 from core.errors import ParameterError
@@ -95,3 +95,40 @@ def test_estimator_setting():
     assert two.heldout_loglik_ >= plain.heldout_loglik_
     with pytest.raises(ParameterError, match="mixture_fits"):
         AdditiveTreeDensity(mixture_fits=0).fit(X)
+
+
+def test_weighted_average_is_the_share_weighted_mixture():
+    rng = np.random.default_rng(6)
+    loc, scale = rng.normal(size=D), rng.uniform(0.5, 1.5, size=D)
+    members = [_random_mixture(rng, K, loc, scale, True) for K in (2, 3)]
+    X = rng.normal(size=(300, D)) * 1.5
+    merged = average_mixtures(members, [0.3, 0.7])
+    # reference: log(0.3 p1 + 0.7 p2), each member's density from scipy.stats
+    ref = np.logaddexp(np.log(0.3) + _scipy_logpdf(members[0], X), np.log(0.7) + _scipy_logpdf(members[1], X))
+    np.testing.assert_allclose(merged.logpdf(X), ref, rtol=0, atol=1e-9)
+
+
+def test_blend_share_is_the_maximum_likelihood_weight():
+    # reference: scipy.optimize.minimize_scalar (bounded) on the same objective
+    from scipy.optimize import minimize_scalar  # test-only reference
+    rng = np.random.default_rng(7)
+    x = np.concatenate([rng.normal(0.0, 1.0, 700), rng.normal(2.0, 0.5, 300)])
+    a, b = stats.norm(0.0, 1.0).logpdf(x), stats.norm(2.0, 0.5).logpdf(x)
+    ref = minimize_scalar(lambda w: -np.mean(np.logaddexp(np.log(w) + a, np.log1p(-w) + b)),
+                          bounds=(1e-9, 1 - 1e-9), method="bounded", options={"xatol": 1e-10}).x
+    assert abs(blend_share(a, b) - ref) < 1e-6
+    assert abs(blend_share(a, b) - 0.7) < 0.05          # the events' own share
+    assert blend_share(a, a - 1.0) == 1.0 and blend_share(a - 1.0, a) == 0.0
+
+
+def test_blend_pair_kept_only_when_it_gains():
+    rng = np.random.default_rng(8)
+    loc, scale = np.zeros(D), np.ones(D)
+    one, two = _random_mixture(rng, 2, loc, scale, False), _random_mixture(rng, 2, loc, scale, False)
+    truth = average_mixtures([one, two])
+    X = truth.inverse(rng.uniform(size=(3000, D)))                 # events of the equal-share blend
+    s1, s2 = one.logpdf(X), two.logpdf(X)
+    mixture, scores = blend_pair((one, s1), (two, s2))
+    np.testing.assert_allclose(scores, mixture.logpdf(X), rtol=0, atol=1e-9)
+    assert scores.mean() > max(s1.mean(), s2.mean())
+    assert blend_pair((one, s1), (one, s1)) is None                # the same fit twice gains nothing

@@ -81,13 +81,37 @@ def heldout_split(n: int, fraction: float, rng):
     return np.sort(perm[:n_val]), np.sort(perm[n_val:])
 
 
-def fit_mixture_base(chain: Chain, base: str, X_tr, X_va, rng, progress, n_trees: int) -> MixtureBase:
+#: ``max_em_events="by_channels"``: the mixture EM's event cap is ``EM_CAP_BASE``
+#: up to ``EM_CAP_CHANNELS`` fitted channels and grows by ``EM_CAP_PER_CHANNEL``
+#: events per channel above (16 channels: 100,000; 24 and more: 200,000, i.e. the
+#: whole training share of a 200,000-event fit; EXPERIMENTS.md section 30).
+EM_CAP_BY_CHANNELS = "by_channels"
+EM_CAP_BASE = 50_000
+EM_CAP_CHANNELS = 12
+EM_CAP_PER_CHANNEL = 12_500
+
+
+def em_event_cap(setting, channels: int) -> int:
+    """Most training events the mixture EM runs on: ``setting`` itself when a
+    number, else (``EM_CAP_BY_CHANNELS``) ``EM_CAP_BASE`` + ``EM_CAP_PER_CHANNEL`` x
+    max(0, channels - ``EM_CAP_CHANNELS``), for ``channels`` the channels the mixture fits."""
+    if setting == EM_CAP_BY_CHANNELS:
+        return EM_CAP_BASE + EM_CAP_PER_CHANNEL * max(0, int(channels) - EM_CAP_CHANNELS)
+    return int(setting)
+
+
+def fit_mixture_base(chain: Chain, base: str, X_tr, X_va, rng, progress, n_trees: int,
+                     max_em_events=EM_CAP_BASE) -> MixtureBase:
     """The mixture base on the channels that vary ("skewed": skewed components and
-    a flat-top background), component count chosen on the held-out events."""
+    a flat-top background), component count chosen on the held-out events, the
+    two raced skewed fits blended when that scores better (``blend_race``;
+    EXPERIMENTS.md section 30); the EM on at most :func:`em_event_cap`
+    (``max_em_events``) training events."""
     free = ~chain.constant
     settings = MixtureSettings(random_state=int(rng.integers(2 ** 31)), skew=base == "skewed",
                                flat_background=base == "skewed", components=PRIOR_COMPONENTS,
-                               corr_prior=CORR_PRIOR)
+                               corr_prior=CORR_PRIOR, max_em_events=em_event_cap(max_em_events, int(free.sum())),
+                               blend_race=True)
     return fit_mixture(X_tr[:, free], chain.loc[free], chain.scale[free], settings,
                        validation=X_va[:, free],
                        progress=lambda step, total, info: keep_going(progress, 0, n_trees, info))
@@ -102,7 +126,8 @@ def fit_with_base(p, X, base: str, progress) -> FittedDensity:
     chain = Chain(*logistic_map(X, bounds))
     va, tr = heldout_split(X.shape[0], p.validation_fraction, rng)
     if base in MIXTURE_BASES and (~chain.constant).any():
-        chain.mixture = fit_averaged(lambda r: fit_mixture_base(chain, base, X[tr], X[va], r, progress, int(p.n_trees)),
+        cap = getattr(p, "max_em_events", EM_CAP_BASE)
+        chain.mixture = fit_averaged(lambda r: fit_mixture_base(chain, base, X[tr], X[va], r, progress, int(p.n_trees), cap),
                                      int(getattr(p, "mixture_fits", 1)), rng, X[va][:, ~chain.constant])
     U_va, ld_va = chain.base_forward(X[va])
     base_ll = float(ld_va.mean())

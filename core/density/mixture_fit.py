@@ -13,6 +13,7 @@ import numpy as np
 from ..progress import keep_going
 from .correlation_prior import split_groups
 from .em import HeldOut, em_from_kmeans, em_iterations, split_components
+from .mixture_average import blend_pair
 from .mixture_base import MixtureBase, background_logpdf
 from .skew_fit import SkewFit, initial_flat_background
 
@@ -44,7 +45,10 @@ class MixtureSettings:
     corr_prior: from ``SPLIT_SPLIT_FROM`` components on, pseudo-events of the
     pooled correlation of the components split from one ancestor (the last
     k-means++ start) that each component's correlation is pulled toward, in the
-    Gaussian and the skewed EM (:mod:`core.density.correlation_prior`); 0: none."""
+    Gaussian and the skewed EM (:mod:`core.density.correlation_prior`); 0: none;
+    blend_race: when two skewed fits race (from ``SPLIT_SPLIT_FROM`` components
+    on), the candidate is their blend with the held-out share's weight
+    (:func:`core.density.mixture_average.blend_pair`) when it scores better."""
     components: tuple = DEFAULT_COMPONENTS
     random_state: int | None = None
     max_em_events: int = 50_000
@@ -55,6 +59,7 @@ class MixtureSettings:
     skew: bool = True
     flat_background: bool = False
     corr_prior: float = 0.0
+    blend_race: bool = False
 
 
 def clearly_better(new, old, min_gain, strict):
@@ -254,6 +259,9 @@ def _skewed_candidate(X, Xva, best, best_scores, runner_up, reg, s, stop):
         return best
     _race(fits, lambda: stop.going(n_steps - 1, n_steps, stage))
     fits = [(f.best, f.best_scores) for f in fits if f.best is not None]
+    blend = blend_pair(*fits, s.min_gain) if len(fits) == 2 and s.blend_race else None
+    if blend is not None:
+        fits = [blend]
     if len(fits) == 2 and not clearly_better(fits[0][1], fits[1][1], s.min_gain, True):
         fits = fits[1:]   # the larger count must beat the smaller clearly
     if fits and float(fits[0][1].mean()) > float(best_scores.mean()) + s.min_gain:

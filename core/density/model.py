@@ -77,7 +77,7 @@ from .boosting import EARLY_TREES, LOOKAHEAD_PAIR_BUDGET, MAP_COST_RATIO  # noqa
 from .checks import (ATOM_SHARE, FAR_SCALES, LOG_DENSITY_FLOOR, MAX_ABS_VALUE, MAX_SAMPLE,  # noqa: F401
                      MIN_EVENTS, MIN_RELATIVE_SPREAD, check_matrix, check_value_range, chunk, largest_atom_share)
 from .estimator import Settings, fitted
-from .fitting import FittedDensity, fit_density
+from .fitting import EM_CAP_BY_CHANNELS, FittedDensity, fit_density
 from .marginals import compose_1d  # noqa: F401  (its former home)
 from .kernels.probes import probe_factors, skew_probe_logpdf
 from .mixture_base import _Z_MAX, BASE_CHOICES
@@ -175,7 +175,15 @@ class AdditiveTreeDensity(Settings):
         (50,000 events) 2 fits took the gap to the truth from 0.275 / 0.468 to
         0.238 / 0.413 nats per event, 3 fits to 0.228 / 0.376, for about that
         many times the mixture stage's time and the scoring time
-        (EXPERIMENTS.md section 27).
+        (EXPERIMENTS.md section 28).
+    max_em_events : int or "by_channels"
+        Most training events the mixture base's EM runs on (a seeded
+        subsample of the training share; the trees see all of it).  50,000
+        (default): the former fixed cap.  "by_channels": the cap grows with
+        the channels the mixture fits (:func:`core.density.fitting.em_event_cap`;
+        EXPERIMENTS.md section 30): with many channels the mixture's
+        estimation noise, not its family, is most of the gap to the truth, and
+        more events shrink it, at a cost in fit time.
 
     Attributes (after fit)
     ----------------------
@@ -220,7 +228,8 @@ class AdditiveTreeDensity(Settings):
                  alpha: float = 1000.0, rotation: str = "pca", jitter: bool = False,
                  min_gain: float = 0.0, lookahead: int = 3, lookahead_bins: int = 16,
                  marginal_alpha: float = -1.0, tol: float = 0.0, base: str = "auto",
-                 random_state: int | None = None, mixture_fits: int = 1):
+                 random_state: int | None = None, mixture_fits: int = 1,
+                 max_em_events: int | str = 50_000):
         self.n_trees = n_trees
         self.learning_rate = learning_rate
         self.max_depth = max_depth
@@ -246,6 +255,7 @@ class AdditiveTreeDensity(Settings):
         self.base = base
         self.random_state = random_state
         self.mixture_fits = mixture_fits
+        self.max_em_events = max_em_events
 
     # ------------------------------------------------------------ fitted attributes
     n_features_in_ = fitted("n_features", "Channels.")
@@ -298,6 +308,9 @@ class AdditiveTreeDensity(Settings):
             raise ValueError("n_trees must be >= 0, marginal_trees >= 0 (or -1: automatic) and patience >= 1")
         if not 1 <= int(self.mixture_fits) <= 16:
             raise ValueError("mixture_fits must be between 1 and 16")
+        if self.max_em_events != EM_CAP_BY_CHANNELS and (isinstance(self.max_em_events, (bool, str))
+                                                         or int(self.max_em_events) < 1000):
+            raise ValueError(f"max_em_events must be a whole number >= 1000 or {EM_CAP_BY_CHANNELS!r}")
 
     _validate_params = validate_params  # its former name
 
