@@ -217,32 +217,7 @@ def _search_count(cls, X, Xva, loc, scale, reg, s, rng, stop):
         best, best_scores = model, scores
         if stop.stopped:
             break
-    if s.heldout_tol is not None and best is not None and best.n_components:
-        # the counts that go on to the skewed refit are converged on the training events as
-        # before (their slow tail matters there: EXPERIMENTS.md section 29)
-        def going():
-            return stop.going(len(components) - 1, len(components),
-                              {"stage": "Fitting the Gaussian-mixture base: converging"})
-
-        best, best_scores = _converge(best, best_scores, X, bg, Xva, bg_all, reg, s, going, stop)
-        if runner_up is not None and runner_up.n_components and best.n_components >= SPLIT_SPLIT_FROM:
-            runner_up, _ = _converge(runner_up, None, X, bg, Xva, bg_all, reg, s, going, stop)
     return best, best_scores, runner_up
-
-
-def _converge(model, scores, X, bg, Xva, bg_all, reg, s, going, stop):
-    """A Gaussian ``model`` of the search whose EM the held-out rule stopped, run on
-    to the training value's ``tol`` (unchanged when fitted under the correlation
-    prior, or when stopped); returns (model, its held-out log densities on Xva)."""
-    if getattr(model, "shrink_groups", None) is not None or stop.stopped:
-        return model, scores
-    _, w, mu, cov, _ = em_iterations(X, bg, model.weights, model.means, model.covariances, reg, s.max_iter,
-                                     s.tol, going)
-    if stop.stopped:
-        return model, scores
-    out = type(model)(w, mu, cov, model.loc, model.scale, background=model.background)
-    out.shrink_groups = None
-    return out, heldout_logpdf(out, Xva, bg_all)
 
 
 def heldout_logpdf(model: MixtureBase, X, bg) -> np.ndarray:
