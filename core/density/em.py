@@ -25,13 +25,10 @@ ABANDON_GAP = 3.0
 class HeldOut(NamedTuple):
     """Held-out events followed during EM: X (m, d), their background log density
     bg (m,), and ``target``, the mean log-likelihood (nats per event) the mixture
-    must reach for its count to be kept (-inf: always run to the end); ``tol``:
-    EM also stops once their mean log-likelihood rises by less than this (nats per
-    event) in a step (None: only the training value's ``tol`` stops it)."""
+    must reach for its count to be kept (-inf: always run to the end)."""
     X: np.ndarray
     bg: np.ndarray
     target: float
-    tol: float | None = None
 
 
 def nearest(X, C):
@@ -117,10 +114,7 @@ def em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going, shrink=None, hel
     and EM is abandoned (``abandoned`` True, the mixture unusable for the
     count search) as soon as that value plus ``ABANDON_GAP`` times its latest
     rise stays below ``heldout.target``: a count that will not be kept is not
-    run to convergence.  With ``heldout.tol``, EM also ends (not abandoned) once
-    the held-out value rises by less than that in a step: the better of the last
-    two mixtures on it is returned (the training value's slow tail adds nothing on held-out
-    events; EXPERIMENTS.md section 29).  ``shrink`` (groups (K,) int, pseudo-events): each M step
+    run to convergence.  ``shrink`` (groups (K,) int, pseudo-events): each M step
     pulls the correlations toward the group's (:func:`shrink_correlations`); None:
     plain EM."""
     n = X.shape[0]
@@ -129,13 +123,10 @@ def em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going, shrink=None, hel
     X = np.ascontiguousarray(X)
     bg = np.ascontiguousarray(bg)
     hint = np.zeros(n, np.int64)
-    abandon = heldout is not None and np.isfinite(heldout.target)
-    settle = heldout is not None and heldout.tol is not None
-    follow = abandon or settle
+    follow = heldout is not None and np.isfinite(heldout.target)
     if follow:
         hint_va = np.zeros(heldout.X.shape[0], np.int64)
         prev_va = None
-        last = None
     for _ in range(max_iter):
         chol = np.ascontiguousarray(np.linalg.cholesky(cov))
         log_det = np.log(np.diagonal(chol, axis1=1, axis2=2)).sum(axis=1)
@@ -144,12 +135,9 @@ def em_iterations(X, bg, w, mu, cov, reg, max_iter, tol, going, shrink=None, hel
         if follow:
             va = kernels.em_loglik(heldout.X, heldout.bg, logw, mu, chol, log_det, hint=hint_va) \
                 / heldout.X.shape[0]
-            if abandon and prev_va is not None and va + ABANDON_GAP * max(va - prev_va, 0.0) < heldout.target:
+            if prev_va is not None and va + ABANDON_GAP * max(va - prev_va, 0.0) < heldout.target:
                 return ll, w, mu, cov, True
-            if settle and prev_va is not None and va - prev_va < heldout.tol:
-                return (ll, w, mu, cov, False) if va > prev_va else last
             prev_va = va
-            last = (ll, w, mu, cov, False)
         total, N, S, M = kernels.em_stats(X, bg, logw, mu, chol, log_det, hint=hint)
         ll = total / n
         # M step (moments were taken about the current means)

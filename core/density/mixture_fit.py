@@ -45,10 +45,7 @@ class MixtureSettings:
     corr_prior: from ``SPLIT_SPLIT_FROM`` components on, pseudo-events of the
     pooled correlation of the components split from one ancestor (the last
     k-means++ start) that each component's correlation is pulled toward, in the
-    Gaussian and the skewed EM (:mod:`core.density.correlation_prior`); 0: none;
-    heldout_tol: a count's Gaussian EM (without the prior) also stops once the
-    mean log-likelihood of the held-out events it follows rises by less than
-    this in a step (None: only ``tol`` stops it; EXPERIMENTS.md section 29)."""
+    Gaussian and the skewed EM (:mod:`core.density.correlation_prior`); 0: none."""
     components: tuple = DEFAULT_COMPONENTS
     random_state: int | None = None
     max_em_events: int = 50_000
@@ -59,7 +56,6 @@ class MixtureSettings:
     skew: bool = True
     flat_background: bool = False
     corr_prior: float = 0.0
-    heldout_tol: float | None = 1e-3
 
 
 def clearly_better(new, old, min_gain, strict):
@@ -201,8 +197,7 @@ def _search_count(cls, X, Xva, loc, scale, reg, s, rng, stop):
         target = -np.inf if best is None or shrink is not None else \
             float(best_scores[follow].mean()) + s.min_gain
         fit_k, fit_fresh = _fit_count(X, bg, k, parent, reg, rng, s, going, stop,
-                                      HeldOut(np.ascontiguousarray(Xva[follow]), bg_va, target,
-                                              s.heldout_tol if shrink is None else None), shrink)
+                                      HeldOut(np.ascontiguousarray(Xva[follow]), bg_va, target), shrink)
         if fit_k[4] or (stop.stopped and best is not None):
             break  # abandoned: it would not have reached the held-out gain it needs
         prev_fit, prev_fresh = fit_k, fit_fresh
