@@ -11,7 +11,7 @@ import numpy as np
 
 from .file_values import as_event_file, density_input
 from .populations import (PopulationDefinition, assign_populations, count_populations, find_populations,
-                          find_populations_and_score, population_changes)
+                          check_settings, find_populations_and_score, population_changes)
 from .recipe import Recipe, as_recipe, validate_recipe
 from .transforms import make_transform
 
@@ -95,7 +95,8 @@ def population_change_stage(result, event_file, recipe, res, control) -> None:
                 pass
     result.control_populations = count_populations(definition, c_events, chans, labels, transforms, settings)
     test_labels = assign_populations(definition, result.prepared.matrix)
-    result.population_changes = population_changes(result.control_populations.labels, test_labels, definition)
+    result.population_changes = population_changes(result.control_populations.labels, test_labels, definition,
+                                                   min_fold=float(check_settings(settings)["change_fold"]))
     short = {r["id"]: r["short_profile"] for r in result.control_populations.table}
     for row in result.population_changes:
         row["profile"] = definition.names[row["id"]]

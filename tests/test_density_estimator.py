@@ -111,3 +111,20 @@ def test_a_resaved_earlier_file_is_the_same_model(tmp_path):
     assert again.n_trees_ == old.n_trees_ and again.base_ == old.base_
     with pytest.raises(ModelFileError):
         AdditiveTreeDensity.load(tmp_path / "missing.npz")
+
+
+def test_tried_steps_leaves_out_the_kept_value_entries():
+    from core.density.model import tried_steps
+
+    # engine-shaped curves (the layout documented on learning_curve_): base, trees, then the
+    # kept value appended after a roll-back and after a dropped layer
+    assert list(tried_steps([2.0, 2.1, 2.3, 2.2, 2.3])) == [2.0, 2.1, 2.3, 2.2]
+    assert list(tried_steps([-1.5, -1.6, -1.5, -1.5])) == [-1.5, -1.6]
+    assert list(tried_steps([0.5])) == [0.5] and tried_steps(None).size == 0
+    # a real fit: every tried step is a curve entry, none repeats, the kept value is the last entry
+    rng = np.random.default_rng(3)
+    X = rng.normal(size=(3000, 3)) @ np.array([[1.0, 0.5, 0.0], [0.0, 1.0, 0.3], [0.0, 0.0, 1.0]])
+    m = AdditiveTreeDensity(n_trees=5, random_state=0).fit(X)
+    steps = tried_steps(m.learning_curve_)
+    assert steps.size >= 1 and np.unique(steps).size == steps.size
+    assert np.isin(steps, m.learning_curve_).all() and m.learning_curve_[-1] == m.heldout_loglik_

@@ -119,6 +119,12 @@ def test_fit_panel_ranges_stages_and_sentences(qtbot, window):
     label = p.curve_plot.getAxis("bottom").labelText
     p.show_curve([1.0, 1.2, 1.3])
     assert p.curve_plot.getAxis("bottom").labelText == label  # one x-axis label
+    # a fit whose one tree was rolled back: the engine's curve is base, tree, then the kept
+    # value twice (roll-back, dropped layer); two steps were tried and the base was kept
+    p.show_curve([15.793, 15.7895, 15.793, 15.793])
+    xs, ys = p.curve.getData()
+    assert list(xs) == [1.0, 2.0] and list(ys) == [15.793, 15.7895]
+    assert p.kept_line.value() == 15.793 and p.kept_line.isVisible()
     # fit steps are whole numbers: no tick between step 1 and 2 (pyqtgraph's own axis puts
     # ticks at 0.5 steps over a range of 3)
     ticks = [v for _, level in p.curve_plot.getAxis("bottom").tickValues(1.0, 4.0, 300.0) for v in level]

@@ -222,8 +222,22 @@ def test_grown_and_shrunk_statistics_follow_scipy():
     # Benjamini-Hochberg q-values: scipy.stats.false_discovery_control
     assert [r["q"] for r in rows] == pytest.approx(stats.false_discovery_control(ps))
     assert rows[2]["change"] == "grown" and rows[2]["fold_low"] > 5
-    assert rows[1]["change"] == "shrunk"
     assert rows[0]["change"] == ""
+    # population 1 shrank to 0.76 of its share, significantly (q < 0.05), but less than the
+    # default change fold (1 / 1.5): unlabelled; labelled "shrunk" with no fold threshold
+    assert rows[1]["q"] < 0.05 and 1 / 1.5 < rows[1]["fold"] < 1 and rows[1]["change"] == ""
+    assert population_changes(control, test, 3, min_fold=1.0)[1]["change"] == "shrunk"
+    # reading order: the labelled change first, the others by q
+    from core.populations import reading_order
+
+    assert [r["id"] for r in reading_order(rows)] == [2, 1, 0]
+    # the threshold is a recipe setting, checked where recipes are read
+    from core.errors import RecipeError
+    from core.populations import check_settings
+
+    assert check_settings({"change_fold": 2.0})["change_fold"] == 2.0
+    with pytest.raises(RecipeError, match="change_fold"):
+        check_settings({"change_fold": 0.5})
 
 
 def test_a_recipe_with_kept_populations_counts_another_file_with_them(tmp_path):

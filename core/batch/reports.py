@@ -149,7 +149,9 @@ populations.csv one row per input file and population (modes of the fitted
                 matched (counted with the recipe's stored populations).
 population_changes.csv  with a control: one row per file and population of
                 the control, counted in both: shares, fold with its 95 %
-                interval, exact test p, Benjamini-Hochberg q, grown/shrunk.
+                interval, exact test p, Benjamini-Hochberg q, grown/shrunk
+                (q at most 5 % and a fold beyond the populations setting
+                change_fold, default 1.5, or its inverse).
 <stem>/         per input file: '<stem>_rare_population_<number>.fcs' per rare
                 population (with a 'population' column), '<stem>_rare.fcs' (the rare events) and
                 '<stem>_region_<name>.fcs' per region, with the ORIGINAL raw

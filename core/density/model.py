@@ -465,3 +465,16 @@ class AdditiveTreeDensity(Settings):
         """Read a model written by :meth:`save`; raises ModelFileError for a bad file."""
         from .storage import load_model  # storage imports this module's package: import at use
         return load_model(cls, path)
+
+
+def tried_steps(curve) -> np.ndarray:
+    """The held-out scores of the steps a fit actually tried, in order (nats per event).
+
+    ``curve`` is a fitted model's ``learning_curve_``.  The engine appends the kept
+    model's value after rolling a layer back or dropping it; such an entry repeats an
+    earlier value exactly and is left out here, so each returned value is one step
+    (the base with its per-channel shaping, a rotation's marginal stage, a tree).  The
+    kept model's value is ``curve[-1]``."""
+    values = np.asarray(curve if curve is not None else [], dtype=np.float64).ravel()
+    keep = [i for i, v in enumerate(values) if not np.any(values[:i] == v)]
+    return values[keep]

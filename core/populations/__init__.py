@@ -104,7 +104,7 @@ from __future__ import annotations
 # climbing, saddles, merging), profiles (marker levels and names), table (the result and its
 # table), search (find_populations; find_populations_and_score scores and assigns in one
 # pass), changes (grown and shrunk populations).
-from .changes import population_changes
+from .changes import population_changes, reading_order
 from .definition import (PopulationDefinition, _group_matrix, _labels_from_posteriors, _mixture_dict,
                          assign_populations, component_posteriors)
 from .modes import _hill_climb, _merge, _node_of_events, _saddles, _same_place, _spread_starts
@@ -118,5 +118,5 @@ __all__ = ["BEND_STEPS", "BRIGHT_ABOVE", "CHANGE_RATE", "DEFAULT_SETTINGS", "DEF
            "MAX_STEP", "MIN_GAP", "MODES_ON", "PopulationDefinition", "Populations", "assign_populations",
            "channel_splits", "check_settings", "component_posteriors", "count_populations", "find_populations",
            "find_populations_and_score",
-           "marker_level", "population_changes", "population_stats", "population_table", "profile_text",
+           "marker_level", "population_changes", "reading_order", "population_stats", "population_table", "profile_text",
            "score_and_assign"]

@@ -7,11 +7,12 @@ import numpy as np
 from ..errors import EventDataError
 from ..fdr import bh_qvalues
 from .definition import PopulationDefinition
-from .settings import CHANGE_RATE
+from .settings import CHANGE_RATE, DEFAULT_SETTINGS
 
 
 def population_changes(control_labels, test_labels, definition: PopulationDefinition,
-                       confidence_level: float = 0.95) -> list:
+                       confidence_level: float = 0.95,
+                       min_fold: float = DEFAULT_SETTINGS["change_fold"]) -> list:
     """Each population's share in control and test, fold change and exact test.
 
     ``control_labels``, ``test_labels``: population ids (-1 none) of the
@@ -30,7 +31,13 @@ def population_changes(control_labels, test_labels, definition: PopulationDefini
     counts, close for shares well below 1); the Clopper-Pearson interval of
     theta (``scipy.stats.binomtest``) mapped to R.  ``q``: Benjamini-Hochberg
     across the populations (:func:`core.fdr.bh_qvalues`); ``change`` is
-    "grown" / "shrunk" when q <= :data:`CHANGE_RATE` (5 %), else "".
+    "grown" when q <= :data:`CHANGE_RATE` (5 %) and fold >= ``min_fold``,
+    "shrunk" when q <= CHANGE_RATE and fold <= 1 / ``min_fold``, else "".
+    The fold threshold (the recipe's populations ``change_fold``, default 1.5)
+    keeps significant but small changes unlabelled: with tens of thousands of
+    events a share that moves by 8 % is significant, and when one population
+    grows ten-fold every other share falls by that much (common practice: a
+    fold threshold beside the false discovery rate).  Rows stay in id order.
     """
     # imported here: scipy.stats adds ~1.3 s to importing core
     from scipy import stats
@@ -63,5 +70,16 @@ def population_changes(control_labels, test_labels, definition: PopulationDefini
     q = bh_qvalues(np.array(ps)) if ps else np.array([])
     for r, qq in zip(rows, q):
         r["q"] = float(qq)
-        r["change"] = ("grown" if r["fold"] > 1 else "shrunk") if r["q"] <= CHANGE_RATE else ""
+        big = r["fold"] >= min_fold or r["fold"] <= 1.0 / min_fold
+        r["change"] = ("grown" if r["fold"] > 1 else "shrunk") if r["q"] <= CHANGE_RATE and big else ""
     return rows
+
+
+def reading_order(rows: list) -> list:
+    """``rows`` of :func:`population_changes` in the order to read them: the grown and
+    shrunk first, the largest change (|log fold|) first, then the rest by q."""
+    def key(r):
+        fold = r["fold"]
+        size = abs(np.log(fold)) if np.isfinite(fold) and fold > 0 else np.inf
+        return (r["change"] == "", -size if r["change"] else r["q"], r["id"])
+    return sorted(rows, key=key)

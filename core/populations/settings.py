@@ -18,6 +18,7 @@ DEFAULT_SETTINGS = {
     "mode_events": 200_000,   # events (seeded subsample) used to start the mode search
     "segment_points": 33,     # points on each segment between two modes
     "starts_per_component": 8,  # hill climbs started from each component's events
+    "change_fold": 1.5,       # with a control: grown / shrunk needs a fold beyond this (or its inverse)
     "random_state": 0,
 }
 #: Profile positions (see the module docstring).
@@ -59,6 +60,10 @@ def check_settings(settings: Mapping | None, where: str = "") -> dict:
                           f"(0.01 = 1 %); got {out['rare_share']!r}")
     if not 0.0 < out["merge_ratio"] < 1.0:
         raise RecipeError(f"{where}populations 'merge_ratio' must lie between 0 and 1; got {out['merge_ratio']!r}")
+    if not out["change_fold"] >= 1.0:
+        raise RecipeError(f"{where}populations 'change_fold' is the smallest fold (share here / share in the "
+                          f"control) called grown, its inverse shrunk: at least 1 (default 1.5); "
+                          f"got {out['change_fold']!r}")
     for k in ("caution_events", "min_events", "mode_events", "segment_points", "random_state", "starts_per_component"):
         if int(out[k]) != out[k] or out[k] < (3 if k == "segment_points" else 0):
             raise RecipeError(f"{where}populations {k!r} must be a whole number; got {out[k]!r}")

@@ -20,6 +20,7 @@ from PySide6.QtWidgets import (QComboBox, QDoubleSpinBox, QFormLayout, QHBoxLayo
                                QPushButton, QSpinBox, QToolButton, QVBoxLayout, QWidget)
 
 from core.density import AdditiveTreeDensity, kernels
+from core.density.model import tried_steps
 from desktop import style
 
 #: Engine keywords this panel owns (the rest of a recipe's engine is kept as is).
@@ -185,7 +186,8 @@ class FitPanel(QWidget):
         self.curve_plot.setToolTip("How well the fit explains events it did not learn from (mean log-likelihood "
                                    "of held-out events, nats per event; higher is better), after each step. "
                                    "The dashed line is the kept fit: steps that did not beat it were undone.")
-        self.curve = self.curve_plot.plot([], [], pen=pg.mkPen(style.MOSS, width=2), connect="finite")
+        self.curve = self.curve_plot.plot([], [], pen=pg.mkPen(style.MOSS, width=2), connect="finite",
+                                          symbol="o", symbolSize=5, symbolBrush=style.MOSS, symbolPen=None)
         self.kept_line = pg.InfiniteLine(angle=0, movable=False, label="kept fit",
                                          labelOpts={"position": 0.12, "color": style.INK_SOFT},
                                          pen=pg.mkPen(style.INK_SOFT, width=1, style=Qt.DashLine))
@@ -290,16 +292,12 @@ class FitPanel(QWidget):
 
     def show_curve(self, curve) -> None:
         """Show a finished fit's learning curve (held-out score per fit step)."""
-        ys = np.asarray(curve if curve is not None else [], dtype=np.float64).ravel()
+        raw = np.asarray(curve if curve is not None else [], dtype=np.float64).ravel()
+        ys = tried_steps(raw)  # the kept-value entries appended after a roll-back are not steps
         xs = np.arange(1, ys.size + 1, dtype=np.float64)
-        # a return to the best value so far is a roll-back to the kept trees (the
-        # engine appends the kept value): break the line there instead of drawing a jump
-        best = np.maximum.accumulate(ys) if ys.size else ys
-        back = np.flatnonzero((ys[1:] == best[:-1]) & (ys[:-1] < ys[1:])) + 1 if ys.size > 1 else []
-        xs, ys = np.insert(xs, back, np.nan), np.insert(ys, back, np.nan)
         self.curve.setData(xs, ys)
         if ys.size:
-            self.kept_line.setValue(float(ys[-1]))  # the last entry is the kept model's value
+            self.kept_line.setValue(float(raw[-1]))  # the curve's last entry is the kept model's value
             self.kept_line.setVisible(True)
         else:
             self.kept_line.setVisible(False)

@@ -22,7 +22,7 @@ from PySide6.QtGui import QColor
 from PySide6.QtWidgets import (QAbstractItemView, QHBoxLayout, QHeaderView, QLabel, QPushButton,
                                QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget)
 
-from core.populations import check_settings
+from core.populations import check_settings, reading_order
 from desktop import style
 
 #: Rows of rare populations get this background (a pale tint of the rare colour).
@@ -46,7 +46,7 @@ class PopulationsPanel(QWidget):
     exportRequested = Signal()
 
     COLUMNS = ("#", "Markers", "Events", "% of kept (95 % interval)")
-    CHANGE_COLUMNS = ("Markers", "Control %", "This tube %", "Fold (95 %)", "q", "")
+    CHANGE_COLUMNS = ("Markers", "Change", "Fold (95 %)", "q", "Control %", "This tube %")
 
     def __init__(self, parent: QWidget | None = None) -> None:
         super().__init__(parent)
@@ -99,7 +99,9 @@ class PopulationsPanel(QWidget):
         lay.addWidget(self.changes, 2)
         self.change_note = QLabel("Populations found on the control, counted in both tubes; fold = share here / "
                                   "share in the control; q: Benjamini-Hochberg over the populations "
-                                  "(Fisher's exact test). Research use only.")
+                                  "(Fisher's exact test); grown or shrunk: q at most 5 % and a fold beyond "
+                                  "the recipe's change fold (default 1.5, or 1/1.5 for shrunk). Largest changes first. "
+                                  "Research use only.")
         self.change_note.setObjectName("Note")
         self.change_note.setWordWrap(True)
         lay.addWidget(self.change_note)
@@ -157,15 +159,15 @@ class PopulationsPanel(QWidget):
         for w in (self.change_head, self.changes, self.change_note):
             w.setVisible(shown)
         self.changes.setRowCount(0)
-        for c in changes or []:
+        for c in reading_order(changes or []):
             i = self.changes.rowCount()
             self.changes.insertRow(i)
-            cells = [c.get("short_profile", c.get("profile", "")), _pct(c["control_share"]), _pct(c["test_share"]),
+            cells = [c.get("short_profile", c.get("profile", "")), c["change"],
                      f"{_fold(c['fold'])} ({_fold(c['fold_low'])}–{_fold(c['fold_high'])})",
-                     f"{c['q']:.2g}", c["change"]]
+                     f"{c['q']:.2g}", _pct(c["control_share"]), _pct(c["test_share"])]
             for col, text in enumerate(cells):
                 item = QTableWidgetItem(text)
-                if col in (1, 2, 3, 4):
+                if col in (2, 3, 4, 5):
                     item.setTextAlignment(Qt.AlignRight | Qt.AlignVCenter)
                 if c["change"] == "grown":
                     item.setForeground(QColor(style.MOSS))
