@@ -115,6 +115,8 @@ class Analysis:
     control_populations: Any = None            # populations counted on the control's events
     contrast_p: np.ndarray | None = None       # (n_events,) conformal p-value; NaN for removed events
     contrast_q: np.ndarray | None = None       # (n_events,) Benjamini-Hochberg q-value; NaN for removed
+    contrast_local: np.ndarray | None = None   # (n_events,) local neighbour score (nats); NaN removed / off
+    contrast_local_fold: np.ndarray | None = None   # (n_events,) local log fold (nats); NaN removed / off
     info: dict = field(default_factory=dict)
     #: density channel -> share of the kept events on its most frequent value, for the
     #: channels above core.prepare.ATOM_SHARE (the atoms check before fitting)
@@ -162,8 +164,10 @@ class Analysis:
         0 and rarity percentile -1, and ``cleaning flag`` says why
         (``core.prepare.CLEANING_FLAGS``: 0 kept, 1 saturated, 2 non-finite,
         3 floor pile, 4 ceiling pile).  With a control: ``contrast score``
-        (nats; 0 for removed events), ``contrast p`` and ``contrast q``
-        (1 for removed events) and ``enriched`` (0/1).  ``population``: the
+        (nats; 0 for removed events), ``contrast local`` and ``contrast local
+        fold`` (the local neighbour score and its log fold, nats, 0 for removed
+        events; only when computed: :mod:`core.contrast_local`),
+        ``contrast p`` and ``contrast q`` (1 for removed events) and ``enriched`` (0/1).  ``population``: the
         event's population number as users see it (id + 1; 0 for none or
         removed) when populations were found.
         """
@@ -179,6 +183,9 @@ class Analysis:
             cols["population"] = self.population_labels.astype(float) + 1.0   # 1, 2, ...; 0 none
         if self.contrast_score is not None:
             cols["contrast score"] = np.where(np.isfinite(self.contrast_score), self.contrast_score, 0.0)
+            for name, v in (("contrast local", self.contrast_local), ("contrast local fold", self.contrast_local_fold)):
+                if v is not None:
+                    cols[name] = np.where(np.isfinite(v), v, 0.0)
             if self.contrast_p is not None:
                 cols["contrast p"] = np.where(np.isfinite(self.contrast_p), self.contrast_p, 1.0)
                 cols["contrast q"] = np.where(np.isfinite(self.contrast_q), self.contrast_q, 1.0)
@@ -191,7 +198,9 @@ class Analysis:
         Columns: ``event`` (0-based index in the file), every channel's
         transformed value, ``log density``, ``rarity percentile``, ``rare``,
         ``reason``, ``population`` (id, -1 none), one bool column per region (``region: NAME``) and, when
-        contrasted, ``contrast score``, ``contrast p``, ``contrast q`` and ``enriched``.
+        contrasted, ``contrast score``, ``contrast local`` and ``contrast local fold`` (when
+        computed), ``contrast p``,
+        ``contrast q`` and ``enriched``.
         """
         # imported here: pandas adds ~0.4 s to importing core.analysis; only table() needs it
         import pandas as pd
@@ -209,6 +218,9 @@ class Analysis:
             cols[f"region: {name}"] = m
         if self.contrast_score is not None:
             cols["contrast score"] = self.contrast_score
+            if self.contrast_local is not None:
+                cols["contrast local"] = self.contrast_local
+                cols["contrast local fold"] = self.contrast_local_fold
             if self.contrast_p is not None:
                 cols["contrast p"] = self.contrast_p
                 cols["contrast q"] = self.contrast_q

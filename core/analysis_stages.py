@@ -104,11 +104,12 @@ def population_change_stage(result, event_file, recipe, res, control) -> None:
 
 
 def comparison_settings(recipe: Recipe, rate: float | None = None, min_fold: float | None = None) -> dict:
-    """``{"rate", "min_fold"}`` of a contrast: the given values, else the recipe's ``comparison``
-    section (whose defaults are :class:`core.recipe.Comparison`'s)."""
+    """``{"rate", "min_fold", "smallest_population"}`` of a contrast: the given values, else the
+    recipe's ``comparison`` section (whose defaults are :class:`core.recipe.Comparison`'s)."""
     cmp = as_recipe(recipe).comparison
     return {"rate": float(cmp.rate if rate is None else rate),
-            "min_fold": float(cmp.min_fold if min_fold is None else min_fold)}
+            "min_fold": float(cmp.min_fold if min_fold is None else min_fold),
+            "smallest_population": float(cmp.smallest_population)}
 
 
 def inverse_transforms(recipe: Recipe, channels: list) -> list:
@@ -144,10 +145,13 @@ def contrast_stage(result, event_file, recipe: Recipe, control, rate, min_fold, 
     settings = comparison_settings(recipe, rate, min_fold)
     chans = list(recipe.channels)
     res = contrast(prepared.matrix, c_matrix, rate=settings["rate"], min_fold=settings["min_fold"],
-                   engine=engine, random_state=engine["random_state"], progress=progress,
+                   smallest=settings["smallest_population"], engine=engine, random_state=engine["random_state"], progress=progress,
                    prepared_control=pc, channel_names=chans, to_units=inverse_transforms(recipe, chans))
     result.contrast = res
-    for name, per_kept in (("contrast_score", res.score), ("contrast_p", res.pvalue), ("contrast_q", res.qvalue)):
+    for name, per_kept in (("contrast_score", res.score), ("contrast_p", res.pvalue), ("contrast_q", res.qvalue),
+                           ("contrast_local", res.local_score), ("contrast_local_fold", res.local_fold)):
+        if per_kept is None:
+            continue
         full = np.full(n, np.nan)
         full[prepared.kept] = per_kept
         setattr(result, name, full)

@@ -83,19 +83,37 @@ score before the population shares; with them, 10 null runs of 20,000 events:
 no event flagged, tail shares 0.0010 / 0.0104 / 0.0505, the KS test within every
 part above 0.05 / 3.)
 
+Local score (``smallest``, default 30 events: the recipe's
+``comparison.smallest_population``; 0 = off).  Beside the density score every
+event, test and control alike, gets a local neighbour score from the events
+outside its part (:mod:`core.contrast_local`: how unlikely so many test events
+are among its 5..k nearest, k = floor(smallest (K - 1) / K)), and the p-value
+becomes one conformal p-value of both (:func:`core.contrast_local.min_rank_pvalues`:
+the test event ranked with the control events by each score, the smaller rank
+first): an event first by either score gets the smallest p.  Why: a heavy-tailed
+control event whose two fitted tails differ scored 14 nats, above all 30 cells of
+a new population (generator draw 202 of the benchmark); by neighbour counts the 30
+cells rank first.  Measured (``tests/benchmarks/contrast_benchmark.py``): see
+tests/benchmarks/README.md, "Contrast benchmark".
+
 Minimum fold (``min_fold``, default 2): an enriched event must also be at
 least twice as dense in the test sample as in the control given the test's
 population shares (s >= log 2 = 0.69 nats).  With tens of thousands of events a tiny, systematic difference
 can be statistically significant; an event whose estimated density ratio is
 below 2 is not "new" in any sense a user cares about (the density estimates
-themselves are uncertain by a few tenths of a nat).
+themselves are uncertain by a few tenths of a nat).  With the local score the
+neighbour count ratio over its expectation (``local_fold``) must reach it too: an
+event is new only when both estimates of the ratio say so (events beside a new or
+grown population, and control-like events that one score ranks high by chance,
+usually fail one of them).
 
-Reported (:class:`ContrastResult`): per test event the score, p and q, the
-enriched mask; the count with its share of the test events and a 95 %
-Clopper-Pearson interval (``scipy.stats.binomtest``); the expected number of
-false discoveries (n_test x the share of control scores at or above the
-lowest enriched score: control-like events expected to pass; Benjamini-Hochberg
-bounds it by about rate x count); and the whole-sample shift check
+Reported (:class:`ContrastResult`): per test event the score, the local score
+and local fold, p and q, the enriched mask; the count with its share of the test
+events and a 95 % Clopper-Pearson interval (``scipy.stats.binomtest``); the
+expected number of false discoveries (n_test x the share of control events as
+extreme as the weakest enriched event -- by the density score alone, the control
+scores at or above the lowest enriched score -- that pass the minimum fold too:
+control-like events expected to pass; Benjamini-Hochberg bounds it by about rate x count); and the whole-sample shift check
 (:func:`shift_check`).
 
 Whole-sample shift.  When the two tubes differ as a whole (compensation,
@@ -135,6 +153,7 @@ from scipy import stats
 
 from .density import AdditiveTreeDensity
 from .errors import Cancelled, EventDataError
+from .contrast_local import DEFAULT_SMALLEST, MIN_SCAN, TIE_BREAK, as_extreme, local_scores, min_rank_pvalues, neighbours_for
 from .fdr import bh_qvalues
 from .progress import stop_relay
 from .recipe.records import Comparison
@@ -259,16 +278,18 @@ class ContrastResult:
     """Outcome of :func:`contrast` (see the module docstring).  Per-event arrays are (n_test,)."""
 
     score: np.ndarray          # log f_test - log f_control' (nats, see the module docstring); NaN for removed rows
-    pvalue: np.ndarray         # conformal p-value against the control scores; NaN for removed rows
+    pvalue: np.ndarray         # conformal p-value against the control scores (both scores' when the local
+    #                            score is on: core.contrast_local.min_rank_pvalues); NaN for removed rows
     qvalue: np.ndarray         # Benjamini-Hochberg q-value; NaN for removed rows
-    enriched: np.ndarray       # bool: q <= rate and score >= log(min_fold)
+    enriched: np.ndarray       # bool: q <= rate, score >= log(min_fold) and (local score on) local_fold too
     count: int
     share: float               # count / n_scored test events
     share_ci: tuple            # (low, high) 95 % Clopper-Pearson
     rate: float                # false discovery rate
     min_fold: float
     threshold: float           # lowest score of an enriched event (inf when none)
-    control_pass_share: float  # share of control scores >= threshold
+    control_pass_share: float  # share of control events as extreme as the weakest enriched event that
+    #                            pass the minimum fold too
     n_control: int             # control events in the reference
     expected_false: float      # control_pass_share x n_scored test events
     folds: int = DEFAULT_FOLDS
@@ -277,7 +298,12 @@ class ContrastResult:
     control_model: Any = None  # list of the K control part models
     control_scores: np.ndarray | None = None   # (n_control,) the reference scores
     info: dict = field(default_factory=dict)   # n_test, control_prepared, part (the scored test events' parts),
-    #                                            reweighted (per part: the control's shares were re-estimated)
+    #                                            reweighted (per part: the control's shares were re-estimated),
+    #                                            neighbours (k of the local score; 0: none)
+    local_score: np.ndarray | None = None      # (n_test,) local neighbour score, nats (core.contrast_local)
+    local_fold: np.ndarray | None = None       # (n_test,) local log fold (neighbour count ratio / expected)
+    local_control_scores: np.ndarray | None = None   # (n_control,) the local score's reference
+    local_control_fold: np.ndarray | None = None     # (n_control,) the control events' local log fold
 
     def summary(self) -> dict:
         """JSON-able numbers for tables and reports."""
@@ -291,12 +317,16 @@ class ContrastResult:
 
 def contrast_keywords(res: ContrastResult, control: str | None) -> dict:
     """FCS TEXT keywords recording a contrast in an export: ``BOSCAGE_CONTROL`` (the control's
-    file name), ``BOSCAGE_FDR``, ``BOSCAGE_MIN_FOLD``, ``BOSCAGE_ENRICHED`` and, when raised,
-    ``BOSCAGE_SHIFT_WARNING``."""
+    file name), ``BOSCAGE_FDR``, ``BOSCAGE_MIN_FOLD``, ``BOSCAGE_ENRICHED``,
+    ``BOSCAGE_CONTRAST_SCORES`` (the scores behind p: the density ratio, and the local
+    neighbour counts with their k when used) and, when raised, ``BOSCAGE_SHIFT_WARNING``."""
     kw = {"BOSCAGE_CONTROL": os.path.basename(str(control or "")) or "unknown",
           "BOSCAGE_FDR": repr(float(res.rate)), "BOSCAGE_MIN_FOLD": repr(float(res.min_fold)),
           "BOSCAGE_ENRICHED": f"{res.count} of {res.info.get('n_test', '')} kept events; about "
                               f"{res.expected_false:.1f} expected false discoveries"}
+    k = int(res.info.get("neighbours", 0) or 0)
+    kw["BOSCAGE_CONTRAST_SCORES"] = (f"density ratio and local neighbour counts (k = {k}), one conformal p-value"
+                                     if k else "density ratio")
     if res.shift is not None and res.shift.warn:
         kw["BOSCAGE_SHIFT_WARNING"] = res.shift.text
     return kw
@@ -512,11 +542,18 @@ def reweighted_log_density(model, X: np.ndarray, ratio: np.ndarray | None) -> np
     the posteriors come from the same compiled pass as the log density
     (``score_samples(posteriors=...)``); otherwise, and for chunks holding a value
     beyond the far-value clip, from a second pass (:func:`mixture_posteriors`)."""
+    log_f, factor = reweighted_terms(model, X, ratio)
+    return log_f + factor
+
+
+def reweighted_terms(model, X: np.ndarray, ratio: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
+    """(log f_c(x), log factor(x)), both (n,), of events X (n, d): the two terms of
+    :func:`reweighted_log_density` (the factor is 0 when ``ratio`` is None)."""
     X = np.asarray(X, dtype=np.float64)
     if ratio is None:
-        return np.asarray(model.score_samples(X), dtype=np.float64)
+        return np.asarray(model.score_samples(X), dtype=np.float64), np.zeros(X.shape[0])
     if not getattr(model, "scores_with_posteriors", False):
-        return np.asarray(model.score_samples(X), dtype=np.float64) + _log_factor(model, X, ratio)
+        return np.asarray(model.score_samples(X), dtype=np.float64), _log_factor(model, X, ratio)
     factor = np.empty(X.shape[0])
 
     def take(a, b, R):
@@ -524,15 +561,19 @@ def reweighted_log_density(model, X: np.ndarray, ratio: np.ndarray | None) -> np
             factor[a:b] = _log_factor(model, X[a:b], ratio)
         else:
             factor[a:b] = np.log(np.maximum(R @ ratio, 1e-300))
-    return np.asarray(model.score_samples(X, posteriors=take), dtype=np.float64) + factor
+    return np.asarray(model.score_samples(X, posteriors=take), dtype=np.float64), factor
 
 
-def check_settings(rate: float, min_fold: float) -> None:
-    """Raise :class:`EventDataError` unless 0 < ``rate`` < 1 and ``min_fold`` is a finite number >= 1."""
+def check_settings(rate: float, min_fold: float, smallest: float = 0.0) -> None:
+    """Raise :class:`EventDataError` unless 0 < ``rate`` < 1, ``min_fold`` is a finite number >= 1
+    and ``smallest`` (the local score's smallest population, events) is 0 (off) or >= MIN_SCAN."""
     if not 0.0 < rate < 1.0:
         raise EventDataError(f"the false discovery rate must be between 0 and 1 (0.05 = 5 %); got {rate}")
     if not (math.isfinite(min_fold) and min_fold >= 1.0):
         raise EventDataError(f"the minimum fold (density ratio) must be a number of at least 1; got {min_fold}")
+    if not (math.isfinite(smallest) and (smallest == 0 or smallest >= MIN_SCAN)):
+        raise EventDataError(f"the smallest population to look for must be 0 (no local score) or at least "
+                             f"{MIN_SCAN} events; got {smallest}")
 
 
 def contrast(test_values: np.ndarray, control_values: np.ndarray | None, rate: float = DEFAULT_RATE,
@@ -540,7 +581,7 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray | None, rate: f
              random_state: int = 0, progress=None, model_factory: Callable | None = None,
              confidence_level: float = 0.95, prepared_control: PreparedControl | None = None,
              channel_names: Sequence[str] | None = None, to_units: Sequence[Callable | None] | None = None,
-             reweight: bool = True) -> ContrastResult:
+             reweight: bool = True, smallest: float = DEFAULT_SMALLEST) -> ContrastResult:
     """Score test events by log f_test - log f_control; flag the enriched ones at false discovery rate ``rate``.
 
     ``rate``: Benjamini-Hochberg false discovery rate (0 < rate < 1);
@@ -557,8 +598,11 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray | None, rate: f
     ``reweight``: give each control part model the test's population shares first
     (:func:`reweighted_control`; see the module docstring); False scores against the
     control's density as fitted (the former score).
+    ``smallest``: the smallest new population (events) the local neighbour score is
+    sized for (:mod:`core.contrast_local`, k = floor(smallest (folds - 1) / folds));
+    0 scores by the density alone (the score before the local score).
     """
-    check_settings(rate, min_fold)
+    check_settings(rate, min_fold, smallest)
     folds = int(folds)
     T = _check_values(test_values, "test")
     pc = prepared_control
@@ -590,6 +634,9 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray | None, rate: f
     test_models, reweighted = [], []
     s_test = np.empty(Tk.shape[0])
     s_control = np.empty(pc.n_events)
+    k_local = neighbours_for(smallest, folds) if smallest else 0
+    l_test, f_test = np.empty(Tk.shape[0]), np.empty(Tk.shape[0])
+    l_control, f_control = np.empty(pc.n_events), np.empty(pc.n_events)
     for k in range(folds):
         model = fit(Tk[part_t != k], progress=_staged(relay, f"Test model, part {k + 1} of {folds}"))
         if stopped:
@@ -599,28 +646,65 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray | None, rate: f
         csel = pc.part == k
         ratio = share_ratio(pc.models[k], Tk[part_t != k]) if reweight else None
         reweighted.append(ratio is not None)
-        s_test[sel] = (np.asarray(model.score_samples(Tk[sel]), dtype=np.float64)
-                       - reweighted_log_density(pc.models[k], Tk[sel], ratio))
+        log_c, factor_t = reweighted_terms(pc.models[k], Tk[sel], ratio)
+        s_test[sel] = np.asarray(model.score_samples(Tk[sel]), dtype=np.float64) - log_c - factor_t
         s_control[csel] = np.asarray(model.score_samples(pc.events[csel]), dtype=np.float64) - pc.log_control[csel]
+        factor_c = np.zeros(int(csel.sum()))
         if ratio is not None:
-            s_control[csel] -= _log_factor(pc.models[k], pc.events[csel], ratio)
+            factor_c = _log_factor(pc.models[k], pc.events[csel], ratio)
+            s_control[csel] -= factor_c
+        if k_local:
+            if not relay(k, folds, {"stage": f"Neighbour counts, part {k + 1} of {folds}", "heldout_loglik": None}):
+                raise Cancelled("contrast with the control was cancelled while counting neighbours")
+            train_t, train_c = Tk[part_t != k], pc.events[pc.part != k]
+            l_test[sel], f_test[sel] = local_scores(train_t, train_c, Tk[sel], factor_t, k_local)
+            l_control[csel], f_control[csel] = local_scores(train_t, train_c, pc.events[csel], factor_c, k_local)
 
     score = np.full(T.shape[0], np.nan)
     score[t_ok] = s_test
-    pvalue = conformal_pvalues(score, s_control)
+    log_fold = score
+    if k_local:
+        # the local score takes few distinct values (neighbour counts): break its ties at random, the
+        # same way for test and control events (seeded), so its conformal p-values are uniform, not
+        # merely valid (TIE_BREAK nats is far below any difference between distinct counts)
+        jitter = np.random.default_rng([int(random_state), 3])
+        l_test = l_test + TIE_BREAK * jitter.random(l_test.size)
+        l_control = l_control + TIE_BREAK * jitter.random(l_control.size)
+        local = np.full(T.shape[0], np.nan)
+        local[t_ok] = l_test
+        local_fold = np.full(T.shape[0], np.nan)
+        local_fold[t_ok] = f_test
+        pvalue = min_rank_pvalues(score, s_control, local, l_control)
+        log_fold = np.minimum(score, local_fold)   # both estimates of the ratio must reach the minimum fold
+    else:
+        local = local_fold = l_control = f_control = None
+        pvalue = conformal_pvalues(score, s_control)
     qvalue = bh_qvalues(pvalue)
     with np.errstate(invalid="ignore"):
-        enriched = (qvalue <= rate) & (score >= math.log(min_fold))
+        enriched = (qvalue <= rate) & (log_fold >= math.log(min_fold))
     n = int(t_ok.sum())
     count = int(enriched.sum())
     ci = stats.binomtest(count, n).proportion_ci(confidence_level=confidence_level, method="exact")
     threshold = float(np.min(score[enriched])) if count else float("inf")
-    pass_share = float(np.mean(s_control >= threshold))
+    # control events as extreme as the weakest enriched event (those its p counts) that also pass
+    # the minimum fold: the control-like events expected to pass
+    pass_share = 0.0
+    if count:
+        fold_ok = s_control >= math.log(min_fold)
+        if k_local:
+            weakest = int(np.flatnonzero(enriched)[np.argmax(pvalue[enriched])])
+            extreme = as_extreme(score[weakest], s_control, local[weakest], l_control)
+            fold_ok &= f_control >= math.log(min_fold)
+        else:
+            extreme = s_control >= threshold
+        pass_share = float(np.mean(extreme & fold_ok))
     shift = shift_check(Tk, pc.events, channel_names, enriched_share=count / n, to_units=to_units)
     return ContrastResult(score=score, pvalue=pvalue, qvalue=qvalue, enriched=enriched, count=count,
                           share=count / n, share_ci=(float(ci.low), float(ci.high)), rate=float(rate),
                           min_fold=float(min_fold), threshold=threshold, control_pass_share=pass_share,
                           n_control=int(pc.n_events), expected_false=pass_share * n, folds=folds, shift=shift,
                           test_model=test_models, control_model=list(pc.models), control_scores=s_control,
+                          local_score=local, local_fold=local_fold, local_control_scores=l_control,
+                          local_control_fold=f_control,
                           info={"n_test": n, "control_prepared": shared, "part": part_t,
-                                "reweighted": reweighted})
+                                "reweighted": reweighted, "neighbours": k_local})

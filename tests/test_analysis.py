@@ -167,7 +167,8 @@ def test_contrast_with_a_control_finds_the_spike(tmp_path):
     kept = an.reason == ""
     assert np.isfinite(an.contrast_p[kept]).all() and np.isnan(an.contrast_q[~kept]).all()
     cols = an.export_columns()
-    assert {"contrast score", "contrast p", "contrast q", "enriched"} <= set(cols)
+    assert {"contrast score", "contrast local", "contrast local fold", "contrast p", "contrast q",
+            "enriched"} <= set(cols)
     assert (cols["contrast q"][~kept] == 1.0).all()
     assert {"contrast p", "contrast q", "enriched"} <= set(an.table().columns)
 

@@ -483,9 +483,12 @@ def test_batch_writes_the_enriched_events_with_p_and_q_and_the_shift_warning(con
         folder = file_out_dir(str(out), name)
         meta, df = fcsparser.parse(os.path.join(folder, f"{stem}_enriched.fcs"), reformat_meta=True)
         assert len(df) == int(row["enriched"])
-        assert {"contrast score", "contrast p", "contrast q"} <= set(df.columns)
+        assert {"contrast score", "contrast local", "contrast local fold", "contrast p", "contrast q"} <= set(df.columns)
         assert (df["contrast q"] <= 0.05).all() and (df["contrast p"] <= df["contrast q"] + 1e-12).all()
-        assert (df["contrast score"] >= np.log(2.0) - 1e-6).all() and (df["enriched"] == 1).all()
+        # the minimum fold: both estimates of the density ratio are >= 2
+        fold = np.minimum(df["contrast score"], df["contrast local fold"])
+        assert (fold >= np.log(2.0) - 1e-6).all() and (df["enriched"] == 1).all()
+        assert "local neighbour counts (k = 20)" in meta["BOSCAGE_CONTRAST_SCORES"]
         assert meta["BOSCAGE_CONTROL"] == "control hot.fcs" and float(meta["BOSCAGE_FDR"]) == 0.05
         assert "CD4" in meta["BOSCAGE_SHIFT_WARNING"]
         # the CSV copy holds the same events (transformed values) after the caution line

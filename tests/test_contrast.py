@@ -14,6 +14,7 @@ from scipy import stats
 
 from core.analysis import density_input
 from core.contrast import (assign_parts, conformal_pvalues, contrast, prepare_control, shift_check)
+from core.density import AdditiveTreeDensity
 from core.errors import Cancelled, EventDataError
 from core.fcs import read_fcs
 from core.recipe import default_recipe
@@ -30,14 +31,34 @@ def background(n, rng):
     return rng.multivariate_normal(MEAN, COV, size=n)
 
 
-@pytest.fixture(scope="module")
-def spiked():
+def spiked_values():
+    """(test, control) (12,000 x 3 each): the test holds 120 spiked events at its end."""
     rng = np.random.default_rng(20261201)
     control = background(12_000, rng)
     n_spike = 120
     test = np.vstack([background(12_000 - n_spike, rng), rng.normal(SPIKE_MEAN, 0.08, size=(n_spike, 3))])
-    labels = np.r_[np.zeros(12_000 - n_spike, bool), np.ones(n_spike, bool)]
-    res = contrast(test, control, engine=ENGINE, random_state=0, channel_names=["a", "b", "c"])
+    return test, control
+
+
+def remembering_factory():
+    """Fit each distinct event matrix once (a second contrast of the same files reuses the fits)."""
+    fitted = {}
+
+    def fit(X, progress=None):
+        key = (X.shape, X.tobytes())
+        if key not in fitted:
+            fitted[key] = AdditiveTreeDensity(**ENGINE).fit(X, progress=progress)
+        return fitted[key]
+    return fit
+
+
+@pytest.fixture(scope="module")
+def spiked():
+    test, control = spiked_values()
+    labels = np.r_[np.zeros(12_000 - 120, bool), np.ones(120, bool)]
+    fit = remembering_factory()
+    res = contrast(test, control, model_factory=fit, random_state=0, channel_names=["a", "b", "c"])
+    res.info["density alone"] = contrast(test, control, model_factory=fit, random_state=0, smallest=0)
     return res, labels
 
 
@@ -65,8 +86,10 @@ def test_conformal_pvalue_is_the_rank_formula():
 
 
 def test_pvalues_are_uniform_under_the_null(null_run):
-    p = null_run.pvalue
-    assert np.isfinite(p).all()
+    assert np.isfinite(null_run.pvalue).all()
+    # the density score's own conformal p-values (the combined p-value of both scores is
+    # checked over independent replicates in tests/test_contrast_local.py)
+    p = conformal_pvalues(null_run.score, null_run.control_scores)
     # reference: scipy.stats.kstest against scipy.stats.uniform -- conformal p-values
     # of events exchangeable with the control events are uniform on (0, 1].  All p share
     # one reference of 3,000 control scores, so a one-sample test of all 3,000 would
@@ -94,7 +117,8 @@ def test_qvalues_are_benjamini_hochberg_of_the_pvalues(spiked):
     # reference: scipy.stats.false_discovery_control (Benjamini-Hochberg adjusted p-values)
     np.testing.assert_allclose(res.qvalue[ok], stats.false_discovery_control(res.pvalue[ok], method="bh"),
                                rtol=1e-12)
-    expected = (res.qvalue <= res.rate) & (res.score >= np.log(res.min_fold))
+    # enriched: q <= rate and both estimates of the log density ratio >= log(min fold)
+    expected = (res.qvalue <= res.rate) & (np.minimum(res.score, res.local_fold) >= np.log(res.min_fold))
     np.testing.assert_array_equal(res.enriched, expected)
     assert res.rate == 0.05 and res.min_fold == 2.0
 
@@ -107,11 +131,25 @@ def test_spiked_population_is_found_at_the_false_discovery_rate(spiked):
     # BH at 5 %: the false share of the enriched events is near 5 % or below (one run: allow 10 %)
     assert precision >= 0.9, precision
     assert res.count == res.enriched.sum() and res.share == pytest.approx(res.count / labels.size)
-    # every finite control event is in the reference; the expected false discoveries are
-    # the control share at or above the lowest enriched score, times the test events
+    # every finite control event is in the reference; the expected false discoveries are the
+    # control share as extreme as the weakest enriched event (the events its p counts) and
+    # passing the minimum fold by both estimates, times the test events.  Brute force: rank the
+    # weakest event among the control events by each score (reference: scipy.stats.rankdata,
+    # "max" = how many score at least as high)
     assert res.n_control == 12_000
-    assert res.expected_false == pytest.approx(np.mean(res.control_scores >= res.threshold) * labels.size)
+    t = np.flatnonzero(res.enriched)[np.argmax(res.pvalue[res.enriched])]
+    r1 = stats.rankdata(-np.r_[res.control_scores, res.score[t]], method="max")
+    r2 = stats.rankdata(-np.r_[res.local_control_scores, res.local_score[t]], method="max")
+    lo, hi = np.minimum(r1, r2), np.maximum(r1, r2)
+    counted = ((lo < lo[-1]) | ((lo == lo[-1]) & (hi <= hi[-1])))[:-1]
+    assert (1 + counted.sum()) / 12_001 == pytest.approx(res.pvalue[t], rel=1e-12)
+    fold_ok = np.minimum(res.control_scores, res.local_control_fold) >= np.log(2.0)
+    assert res.expected_false == pytest.approx(np.mean(counted & fold_ok) * labels.size)
     assert res.threshold == pytest.approx(res.score[res.enriched].min())
+    # by the density score alone, that share is the control scores at or above the lowest enriched score
+    alone = res.info["density alone"]
+    assert alone.local_score is None and alone.info["neighbours"] == 0
+    assert alone.expected_false == pytest.approx(np.mean(alone.control_scores >= alone.threshold) * labels.size)
 
 
 def test_minimum_fold_removes_small_ratios(spiked):

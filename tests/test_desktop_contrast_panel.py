@@ -59,11 +59,13 @@ def test_panel_settings_reach_the_contrast_recipe(qtbot, window, tmp_path):
     recipe = window.fitting.recipe_for_fit(tube)
     validate_recipe(recipe, tube.event_file)
     # what analyse() will use for the contrast (core.analysis.comparison_settings)
-    assert comparison_settings(recipe) == pytest.approx({"rate": 0.01, "min_fold": 3.0})
-    # a tube whose recipe says otherwise shows its own values when shown again
-    tube.recipe.comparison = {"rate": 0.1, "min_fold": 1.5}
+    assert comparison_settings(recipe) == pytest.approx({"rate": 0.01, "min_fold": 3.0, "smallest_population": 30})
+    # a tube whose recipe says otherwise shows its own values when shown again (the smallest
+    # population has no control in the panel: the recipe's value is kept)
+    tube.recipe.comparison = {"rate": 0.1, "min_fold": 1.5, "smallest_population": 50}
     window.show_tube_by_path(path)
-    assert panel.comparison_settings() == pytest.approx({"rate": 0.1, "min_fold": 1.5})
+    assert panel.comparison_settings() == pytest.approx({"rate": 0.1, "min_fold": 1.5, "smallest_population": 50})
+    assert comparison_settings(window.fitting.recipe_for_fit(tube))["smallest_population"] == 50
     # the recipe check refuses a rate the controls cannot reach
     with pytest.raises(RecipeError):
         r = Recipe(channels=["FL1-A"])

@@ -24,7 +24,7 @@ LAYERS = {
                "scenario"],
     "density": ["density/"],
     "science": ["recipe/", "regions", "region_geometry", "region_rules", "region_set", "rare",
-                "contrast", "populations/", "contours", "file_values"],
+                "contrast", "contrast_local", "populations/", "contours", "file_values"],
     "pipeline": ["analysis", "analysis_stages"],
     "front": ["batch/", "session", "tube"],
 }

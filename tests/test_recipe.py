@@ -336,7 +336,12 @@ def test_comparison_section_is_checked():
     base = {"schema_version": 1, "channels": ["A"]}
     r = Recipe.from_dict({**base, "comparison": {"rate": 0.01}})
     assert r.comparison.to_dict() == {"rate": 0.01, "min_fold": 2.0}
+    # the smallest population (core.contrast_local) is stored only when not its default (30)
+    r50 = Recipe.from_dict({**base, "comparison": {"smallest_population": 50}})
+    assert r50.comparison.to_dict() == {"rate": 0.05, "min_fold": 2.0, "smallest_population": 50.0}
+    assert recipe_digest(r50) != recipe_digest(Recipe.from_dict(base))
     for bad, words in [({"rate": 0}, "false discovery rate"), ({"rate": 1.5}, "false discovery rate"),
+                       ({"smallest_population": 5}, "smallest_population"),
                        ({"min_fold": 0.5}, "min_fold"), ({"rate": "5 %"}, "must be a number"),
                        ({"alpha": 0.001}, "alpha"), ([], "comparison")]:
         with pytest.raises(RecipeError, match=words):

@@ -15,7 +15,8 @@ colleague.  Stored form (schema version 1)::
       "rare": {"rule": "share", "share": 0.005},       # or {"rule": "mass", "mass": 0.995}
       "regions": [ ...region dicts, see core.regions... ],
       "populations": {"rare_share": 0.01, "definition": {...}},   # optional, see core.populations
-      "comparison": {"rate": 0.05, "min_fold": 2.0},    # contrast with a control (core.contrast)
+      "comparison": {"rate": 0.05, "min_fold": 2.0,     # contrast with a control (core.contrast)
+                     "smallest_population": 30},
       "software": "Boscage 0.1.0"                      # written on save, informational
     }
 
@@ -49,7 +50,11 @@ Meaning of the entries:
 * ``comparison``: how a file is contrasted with a control (:mod:`core.contrast`):
   ``rate`` is the false discovery rate of the enriched events (0.05 = 5 %,
   strictly between 0 and 1), ``min_fold`` the smallest density ratio
-  test / control of an enriched event (at least 1; default 2).
+  test / control of an enriched event (at least 1; default 2),
+  ``smallest_population`` the smallest new population (events) the local
+  neighbour score is sized for (10-1000, default 30; 0 turns it off:
+  :mod:`core.contrast_local`; stored only when not 30, so older recipes keep
+  their digest).
 
 In code the sections are typed records (:mod:`core.recipe.records`:
 ``Compensation``, ``TransformSpec`` per channel, ``Cleaning``, ``Engine``,

@@ -202,10 +202,13 @@ class Comparison:
     """How a file is contrasted with a control (:mod:`core.contrast`): ``rate`` the false
     discovery rate of the enriched events (0.05 = 5 %), ``min_fold`` the smallest density
     ratio test / control of an enriched event (2: a ratio below 2 is within the
-    uncertainty of the density estimates)."""
+    uncertainty of the density estimates), ``smallest_population`` the size (events)
+    of the smallest new population the local score is sized for
+    (:mod:`core.contrast_local`; 0 turns the local score off)."""
 
     rate: float = 0.05
     min_fold: float = 2.0
+    smallest_population: float = 30.0
 
     def __post_init__(self):
         for f in fields(self):
@@ -219,9 +222,18 @@ class Comparison:
         if self.min_fold < 1.0:
             raise _Bad(f"comparison 'min_fold' is the smallest density ratio test / control of an enriched "
                        f"event, at least 1 (default 2); got {self.min_fold}")
+        if self.smallest_population != 0 and not 10 <= self.smallest_population <= 1000:
+            raise _Bad(f"comparison 'smallest_population' is the size in events of the smallest new population "
+                       f"to look for, 10 to 1000 (default 30; 0 turns the local score off); got "
+                       f"{self.smallest_population}")
 
     def to_dict(self) -> dict:
-        return {f.name: getattr(self, f.name) for f in fields(self)}
+        """The stored form; ``smallest_population`` only when not its default, so recipes stored
+        before the setting existed keep their form and digest."""
+        d = {f.name: getattr(self, f.name) for f in fields(self)}
+        if d["smallest_population"] == Comparison.__dataclass_fields__["smallest_population"].default:
+            del d["smallest_population"]
+        return d
 
     @classmethod
     def from_dict(cls, d: Any, where: str = NOWHERE) -> "Comparison":

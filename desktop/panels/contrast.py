@@ -110,13 +110,16 @@ class ContrastPanel(QWidget):
 
     # -- settings ----------------------------------------------------------
     def comparison_settings(self) -> dict:
-        """``{"rate": fraction, "min_fold": ratio}`` as set here (the recipe's ``comparison`` section)."""
-        return {"rate": round(self.rate.value() / 100.0, 6), "min_fold": float(self.min_fold.value())}
+        """``{"rate": fraction, "min_fold": ratio, "smallest_population": events}`` as set here (the
+        recipe's ``comparison`` section; the smallest population is the recipe's, kept as shown)."""
+        return {"rate": round(self.rate.value() / 100.0, 6), "min_fold": float(self.min_fold.value()),
+                "smallest_population": self._smallest}
 
     def set_comparison(self, settings: dict) -> None:
-        """Show a recipe's ``comparison`` settings (``{"rate", "min_fold"}``)."""
+        """Show a recipe's ``comparison`` settings (``{"rate", "min_fold"[, "smallest_population"]}``)."""
         self.rate.setValue(100.0 * float(settings["rate"]))
         self.min_fold.setValue(float(settings["min_fold"]))
+        self._smallest = float(settings.get("smallest_population", recipe_defaults()["smallest_population"]))
 
     def show_recipe(self, recipe) -> None:
         """Show ``recipe``'s comparison settings (its defaults where it has none)."""
