@@ -69,6 +69,9 @@ def test_pruned_e_step_matches_scipy_responsibilities(monkeypatch, vector_max):
         # the E step alone (held-out events during EM) gives the same total
         assert kernels.em_loglik(X, bg, logw, means, np.ascontiguousarray(chol), log_det) == \
             pytest.approx(ll_ref.sum(), rel=1e-12)
+        # and each event's log density (the count search's held-out scores)
+        np.testing.assert_allclose(kernels.em_logpdf(X, bg, logw, means, np.ascontiguousarray(chol), log_det),
+                                   ll_ref, rtol=1e-12, atol=1e-11)
         np.testing.assert_allclose(N, R.sum(axis=0), rtol=1e-10, atol=1e-9)
         for c in range(k):
             D = X - means[c]
@@ -77,6 +80,21 @@ def test_pruned_e_step_matches_scipy_responsibilities(monkeypatch, vector_max):
     # the hints are the most probable Gaussian components (the pruned layout uses them)
     if vector_max < d:
         assert np.mean(hint == R[:, 1:].argmax(axis=1)) > 0.999
+
+
+def test_count_search_scores_held_out_events_as_the_mixture_density_does():
+    # the search's held-out scores (pruned E step, 14 channels > VECTOR_MAX_CHANNELS) against the
+    # mixture's own density with a flat-top background, itself checked against scipy.stats elsewhere
+    from core.density.mixture_base import MixtureBase, background_logpdf
+    from core.density.mixture_fit import heldout_logpdf
+    from core.density.skew_fit import initial_flat_background
+    d, k = 14, 4
+    w, means, covs = _separated_mixture(d, k, 5, gap=3.0)
+    X = _draw(3000, (w, means, covs), 6)
+    loc, scale, flat = np.median(X, axis=0), X.std(axis=0), initial_flat_background(X)
+    model = MixtureBase(np.concatenate([[0.01], 0.99 * w]), means, covs, loc, scale, background=flat)
+    np.testing.assert_allclose(heldout_logpdf(model, X, background_logpdf(X, loc, scale, flat)),
+                               model.logpdf(X), rtol=1e-13, atol=1e-12)
 
 
 def test_count_search_abandons_a_losing_count_and_keeps_the_same_mixture(monkeypatch):
@@ -184,21 +202,24 @@ def test_probe_tree_ends_the_tree_stage_only_when_trees_cannot_pay(monkeypatch):
     # a mixture that is the truth: the probe (on 1,000 of the 4,800 training events) ends the stage
     params = _separated_mixture(3, 2, 8, gap=4.0)
     X = _draw(6000, params, 9)
+    assert boosting_module.probe_events(4800) is None  # below PROBE_MIN_TRAIN: no probe
     without = AdditiveTreeDensity(base="gmm", random_state=0).fit(X)
     assert called and without.n_trees_ == 0
     called.clear()
     monkeypatch.setattr(boosting_module, "PROBE_EVENTS", 1000)
+    monkeypatch.setattr(boosting_module, "PROBE_MIN_TRAIN", 2000)
     probed = AdditiveTreeDensity(base="gmm", random_state=0).fit(X)
     assert not called and probed.n_trees_ == 0 and probed.stopped_by_ == "early stopping"
     Xt = _draw(3000, params, 10)
     np.testing.assert_array_equal(probed.score_samples(Xt), without.score_samples(Xt))
     # trees that pay (the L of two bars, layer_tol lowered so the first layer is kept): the probe
-    # lets the tree stage run, and the model is the one fitted without a probe
+    # lets the tree stage run, the training share's map reuses the probe's, and the model is the
+    # one fitted without a probe
     X = _l_bars(6000, 1)
     called.clear()
     probed = AdditiveTreeDensity(base="gmm", random_state=0, layer_tol=1e-4).fit(X)
     assert called and probed.n_trees_ > 0
-    monkeypatch.setattr(boosting_module, "PROBE_EVENTS", 10 ** 9)
+    monkeypatch.setattr(boosting_module, "PROBE_MIN_TRAIN", 10 ** 9)
     plain = AdditiveTreeDensity(base="gmm", random_state=0, layer_tol=1e-4).fit(X)
     assert plain.n_trees_ == probed.n_trees_
     Xt = _l_bars(2000, 2)

@@ -476,10 +476,18 @@ def test_wide_skewed_map_matches_conditional_cdfs_from_scipy():
     np.testing.assert_allclose(U, np.clip(ref, 1e-15, 1 - 1e-15), rtol=0, atol=1e-9)
     # the log density is the mixture's (change of variables), as the density-only path gives it
     np.testing.assert_allclose(logd, model.logpdf(X), rtol=0, atol=1e-10)
-    dens = w[0] * np.exp(L.logpdf(X).sum(axis=1))
+    parts = [w[0] * np.exp(L.logpdf(X).sum(axis=1))]
     for k in range(K):
-        dens += w[k + 1] * np.exp(stats.multivariate_normal(mu[k], cov[k]).logpdf(ys[k]) + logjac[k].sum(axis=1))
+        parts.append(w[k + 1] * np.exp(stats.multivariate_normal(mu[k], cov[k]).logpdf(ys[k])
+                                       + logjac[k].sum(axis=1)))
+    dens = np.sum(parts, axis=0)
     np.testing.assert_allclose(logd, np.log(dens), rtol=0, atol=1e-8)
+    # beyond 12 channels the density-only pass is pruned component by component: the same
+    # posteriors (the skewed E step) as the scipy terms above, and the same density
+    assert d > kernels.mixture.SKEW_VECTOR_MAX_CHANNELS
+    ll, R = model.logpdf_and_posteriors(X)
+    np.testing.assert_allclose(ll, np.log(dens), rtol=0, atol=1e-8)
+    np.testing.assert_allclose(R, np.array(parts).T / dens[:, None], rtol=0, atol=1e-10)
 
 
 def test_flat_background_bins_are_numpys_histogram():

@@ -221,20 +221,24 @@ def _fit_trees(p, shares, budget, allowed, look, start_ll, needed, mixture, rng,
     return forest, stop.best_k, stop.best_ll, None
 
 
-#: Above this many training events, the first tree after a mixture base is first
-#: fitted on an evenly spread probe of this many (its Rosenblatt map is the cost:
-#: 27 % of a 200,000 x 8 fit); a probe tree that does not raise the held-out
-#: log-likelihood ends the tree stage before the whole training share is mapped
-#: (:func:`probe_gain`; EXPERIMENTS.md section 26).
+#: The first tree after a mixture base is first fitted on an evenly spread probe
+#: of at most this many training events, half of them when fewer than twice as
+#: many (the Rosenblatt map of the training share is the cost: 27 % of a
+#: 200,000 x 8 fit, 10-15 % of a 50,000-event fit); a probe tree that does not
+#: raise the held-out log-likelihood enough ends the tree stage before the rest
+#: of the training share is mapped (:func:`probe_gain`; EXPERIMENTS.md sections 26, 29).
 PROBE_EVENTS = 50_000
+#: With fewer training events than this there is no probe (the tree stage runs as it is).
+PROBE_MIN_TRAIN = 30_000
 
 
 def probe_events(n_train: int) -> np.ndarray | None:
-    """Indices (evenly spread) of the training events the probe tree is fitted on,
-    or None when ``n_train`` <= ``PROBE_EVENTS`` (the tree stage runs as it is)."""
-    if n_train <= PROBE_EVENTS:
+    """Indices (evenly spread, increasing) of the training events the probe tree is
+    fitted on (``min(PROBE_EVENTS, n_train // 2)`` of them), or None when ``n_train``
+    < ``PROBE_MIN_TRAIN`` (the tree stage runs as it is)."""
+    if n_train < PROBE_MIN_TRAIN:
         return None
-    return np.linspace(0, n_train - 1, PROBE_EVENTS).astype(np.int64)
+    return np.linspace(0, n_train - 1, min(PROBE_EVENTS, n_train // 2)).astype(np.int64)
 
 
 def probe_gain(p, chain: Chain, U_probe, U_va, ld_va, rng) -> float:

@@ -23,8 +23,10 @@ from .mixture_fit import MixtureSettings, fit_mixture
 
 _LOGISTIC_IQR = 2.0 * math.log(3.0)
 #: The probe tree's gain, scaled to the whole training share, is taken this many
-#: times over before it may end the tree stage (the scaling is a measurement).
-PROBE_SAFETY = 2.0
+#: times over before it may end the tree stage (the scaling is a measurement: a
+#: tree on 3.2x the events gained 3.6x at 200,000 x 8 and 2.6x at 200,000 x 30;
+#: 1.25 covers the larger; EXPERIMENTS.md sections 26, 27 and 29).
+PROBE_SAFETY = 1.25
 
 
 @dataclass
@@ -131,26 +133,42 @@ def fit_with_base(p, X, base: str, progress) -> FittedDensity:
                                      int(getattr(p, "mixture_fits", 1)), rng, X[va][:, ~chain.constant])
     U_va, ld_va = chain.base_forward(X[va])
     base_ll = float(ld_va.mean())
-    stage = _probe_says_no_trees(p, chain, base, X[tr], U_va, ld_va, rng)
+    stage, rows, U_probe = _probe_says_no_trees(p, chain, base, X[tr], U_va, ld_va, rng)
     if stage is None:
-        U_tr, _ = chain.base_forward(X[tr])
+        U_tr = _training_map(chain, X[tr], rows, U_probe)
         stage = fit_layers(p, chain, base, Shares(U_tr, U_va, ld_va), rng, progress)
     return FittedDensity(chain, base, bounds, X.shape[0], stage.n_marginal_trees, np.array(stage.curve),
                          float(stage.curve[-1]), base_ll, stage.stopped_by)
 
 
-def _probe_says_no_trees(p, chain: Chain, base: str, X_tr, U_va, ld_va, rng) -> TreeStage | None:
+def _training_map(chain: Chain, X_tr, rows, U_rows) -> np.ndarray:
+    """The base map of the training events X_tr (n, d) -> U (n, d); the events
+    ``rows`` were mapped already (``U_rows``; the map is event by event, so the
+    result is the same as mapping all of them at once)."""
+    if rows is None:
+        return chain.base_forward(X_tr)[0]
+    rest = np.ones(X_tr.shape[0], bool)
+    rest[rows] = False
+    U = np.empty(X_tr.shape)
+    U[rows] = U_rows
+    if rest.any():
+        U[rest] = chain.base_forward(X_tr[rest])[0]
+    return U
+
+
+def _probe_says_no_trees(p, chain: Chain, base: str, X_tr, U_va, ld_va, rng):
     """After a mixture base with many training events: the first tree fitted on an
     evenly spread probe of them (:func:`core.density.boosting.probe_gain`).  When
     even ``PROBE_SAFETY`` times its gain scaled up to the whole training share would
     end the first layer after one tree (:data:`core.density.boosting.TREE_ABANDON_GAP`),
     the base is the whole model and the tree stage's record is returned (curve:
     base, probe, base); else None (the tree stage runs on the whole training share,
-    as without the probe)."""
+    as without the probe).  Returns (that record or None, the probe's event indices
+    or None, their map (m, d) or None)."""
     rows = probe_events(X_tr.shape[0])
     if (rows is None or chain.mixture is None or chain.mixture.cancelled or int(p.n_trees) <= 0
             or (~chain.constant).sum() < 2 or marginal_tree_count(p, base) != 0):
-        return None
+        return None, None, None
     U_probe, _ = chain.base_forward(X_tr[rows])
     gain = probe_gain(p, chain, U_probe, U_va, ld_va, rng)
     # a tree on n events gains about n / m times what one on m of them gains (measured: 3.6x
@@ -158,11 +176,11 @@ def _probe_says_no_trees(p, chain: Chain, base: str, X_tr, U_va, ld_va, rng) -> 
     # (1 + TREE_ABANDON_GAP) falls short of the layer's required gain
     expected = gain * X_tr.shape[0] / rows.size * PROBE_SAFETY
     if expected * (1.0 + TREE_ABANDON_GAP) >= float(p.layer_tol) * MAP_COST_RATIO:
-        return None
+        return None, rows, U_probe
     base_ll = float(ld_va.mean())
     chain.keep_base_only()
     return TreeStage(curve=[base_ll, base_ll + gain, base_ll], stopped_by="early stopping",
-                     n_marginal_trees=np.zeros(X_tr.shape[1], np.int64))
+                     n_marginal_trees=np.zeros(X_tr.shape[1], np.int64)), None, None
 
 
 def fit_auto(p, X, progress) -> FittedDensity:

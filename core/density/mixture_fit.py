@@ -11,6 +11,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..progress import keep_going
+from . import kernels
 from .correlation_prior import split_groups
 from .em import HeldOut, em_from_kmeans, em_iterations, split_components
 from .mixture_average import blend_pair
@@ -174,7 +175,8 @@ def _search_count(cls, X, Xva, loc, scale, reg, s, rng, stop):
     bg = background_logpdf(X, loc, scale, bgr)
     # the held-out events an EM run follows (every other count's target is taken on the same ones)
     follow = np.linspace(0, Xva.shape[0] - 1, min(Xva.shape[0], FOLLOW_EVENTS)).astype(np.int64)
-    bg_va = background_logpdf(Xva[follow], loc, scale, bgr)
+    bg_all = background_logpdf(Xva, loc, scale, bgr)
+    bg_va = np.ascontiguousarray(bg_all[follow])
     best, best_scores, runner_up = None, None, None
     prev_fit, prev_fresh, groups = None, False, None
     for step, k in enumerate(components):
@@ -208,7 +210,7 @@ def _search_count(cls, X, Xva, loc, scale, reg, s, rng, stop):
         _, w, mu, cov, _ = fit_k
         model = cls(w, mu, cov, loc, scale, background=bgr)
         model.shrink_groups = groups if shrink is not None else None
-        scores = model.logpdf(Xva)
+        scores = heldout_logpdf(model, Xva, bg_all)
         if best is not None and not clearly_better(scores, best_scores, s.min_gain, k >= SPLIT_SPLIT_FROM):
             break
         runner_up = best
@@ -216,6 +218,15 @@ def _search_count(cls, X, Xva, loc, scale, reg, s, rng, stop):
         if stop.stopped:
             break
     return best, best_scores, runner_up
+
+
+def heldout_logpdf(model: MixtureBase, X, bg) -> np.ndarray:
+    """Log density (n,) of events X (n, d) under a Gaussian ``model`` whose background
+    log density on them is ``bg`` (n,), by the EM's pruned E step
+    (:func:`core.density.kernels.em_logpdf`): :meth:`MixtureBase.logpdf` to ~1e-13
+    nats, 3-6x faster from 16 channels on (EXPERIMENTS.md section 29)."""
+    log_det = np.log(np.diagonal(model.chol, axis1=1, axis2=2)).sum(axis=1)
+    return kernels.em_logpdf(np.ascontiguousarray(X), bg, model.log_weights, model.means, model.chol, log_det)
 
 
 def _fit_count(X, bg, k, parent, reg, rng, s, going, stop, heldout=None, shrink=None):

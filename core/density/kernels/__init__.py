@@ -36,10 +36,10 @@ kept beside each module in ``__pycache__``).
 """
 
 from .common import BLOCK, MAX_PATH, PARALLEL_MIN_WORK, U_EPS, ndtr, ndtri, parallel
-from .em import EM_PRUNE, em_loglik, em_stats
+from .em import EM_PRUNE, em_loglik, em_logpdf, em_stats
 from .maps import base_forward, base_inverse, probit_matrix, pwl_forward, pwl_inverse, rotate
-from .mixture import (NO_SKEW, Background, Components, ComponentsInner, gmm_forward, gmm_logpdf, skew_forward,
-                      skew_logpdf)
+from .mixture import (NO_SKEW, Background, Components, ComponentsInner, ComponentsOuter, gmm_forward, gmm_logpdf,
+                      skew_forward, skew_logpdf, skew_logpdf_pruned)
 from .mixture_inverse import gmm_inverse
 from .skew import component_shapes, skew_residual_variance
 from .tree_fit import (SplitRule, best_splits, level_histogram, lookahead_split, node_theta, pair_histogram,
@@ -47,9 +47,9 @@ from .tree_fit import (SplitRule, best_splits, level_histogram, lookahead_split,
 from .trees import ForestArrays, forest_forward, forest_inverse
 
 __all__ = ["BLOCK", "MAX_PATH", "PARALLEL_MIN_WORK", "U_EPS", "ndtr", "ndtri", "parallel", "EM_PRUNE",
-           "em_loglik", "em_stats",
+           "em_loglik", "em_logpdf", "em_stats",
            "base_forward", "base_inverse", "probit_matrix", "pwl_forward", "pwl_inverse", "rotate",
-           "NO_SKEW", "Background", "Components", "ComponentsInner", "gmm_forward", "gmm_logpdf",
-           "skew_forward", "skew_logpdf", "gmm_inverse", "skew_residual_variance", "component_shapes", "SplitRule", "best_splits",
+           "NO_SKEW", "Background", "Components", "ComponentsInner", "ComponentsOuter", "gmm_forward",
+           "gmm_logpdf", "skew_forward", "skew_logpdf", "skew_logpdf_pruned", "gmm_inverse", "skew_residual_variance", "component_shapes", "SplitRule", "best_splits",
            "level_histogram", "lookahead_split", "node_theta", "pair_histogram", "route_events",
            "ForestArrays", "forest_forward", "forest_inverse"]

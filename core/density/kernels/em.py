@@ -19,7 +19,8 @@ EM_PRUNE = 40.0
 
 
 @njit(cache=True, error_model="numpy")
-def _em_stats_rows(start, stop, X, bg, logw, means, chol, log_det, acc_n, acc_s, acc_m, ll_out, hint, moments):
+def _em_stats_rows(start, stop, X, bg, logw, means, chol, log_det, acc_n, acc_s, acc_m, ll_out, hint, moments,
+                   rows):
     """E step for rows start:stop and their responsibility-weighted sums.
 
     X (n, d) events; bg (n,) log density of each event under the background
@@ -39,6 +40,8 @@ def _em_stats_rows(start, stop, X, bg, logw, means, chol, log_det, acc_n, acc_s,
 
     Without ``moments`` only ll_out (and ``hint``) are updated: the log-likelihood
     of held-out events under the current mixture, at a fraction of the cost.
+    ``rows`` (n,) or (0,): when it has n entries, each event's log density is
+    written to it too.
     """
     K, d = means.shape
     lp = np.empty(K + 1)
@@ -89,7 +92,10 @@ def _em_stats_rows(start, stop, X, bg, logw, means, chol, log_det, acc_n, acc_s,
                 lp[k + 1] = math.exp(lp[k + 1] - mx)
                 s += lp[k + 1]
         hint[i] = best
-        ll += mx + math.log(s)
+        li = mx + math.log(s)
+        ll += li
+        if rows.shape[0]:
+            rows[i] = li
         if not moments:
             continue
         inv = 1.0 / s
@@ -110,13 +116,13 @@ def _em_stats_rows(start, stop, X, bg, logw, means, chol, log_det, acc_n, acc_s,
 
 
 @njit(cache=True, parallel=True, error_model="numpy")
-def _em_stats_par(X, bg, logw, means, chol, log_det, acc_n, acc_s, acc_m, ll_out, hint, moments):
+def _em_stats_par(X, bg, logw, means, chol, log_det, acc_n, acc_s, acc_m, ll_out, hint, moments, rows):
     n = X.shape[0]
     nb = acc_n.shape[0]
     step = (n + nb - 1) // nb
     for b in prange(nb):
         _em_stats_rows(b * step, min(n, (b + 1) * step), X, bg, logw, means, chol, log_det,
-                       acc_n[b], acc_s[b], acc_m[b], ll_out[b], hint, moments)
+                       acc_n[b], acc_s[b], acc_m[b], ll_out[b], hint, moments, rows)
 
 
 def em_stats(X, bg, logw, means, chol, log_det, n_parts=16, hint=None):
@@ -145,7 +151,7 @@ def em_stats(X, bg, logw, means, chol, log_det, n_parts=16, hint=None):
 
 @njit(cache=True, error_model="numpy")
 def _em_stats_rows_vec(start, stop, X, bg, logw0, c0, means_t, chol_t, inv_diag_t, acc_n, acc_s, acc_m, ll_out,
-                       moments):
+                       moments, rows):
     """:func:`_em_stats_rows` laid out with the component index innermost (the
     compiler vectorises over components) and without pruning: every component's
     term is computed, those more than ``EM_PRUNE`` nats below the event's best are
@@ -189,7 +195,10 @@ def _em_stats_rows_vec(start, stop, X, bg, logw0, c0, means_t, chol_t, inv_diag_
             else:
                 lp[k] = math.exp(g)
                 s += lp[k]
-        ll += mx + math.log(s)
+        li = mx + math.log(s)
+        ll += li
+        if rows.shape[0]:
+            rows[i] = li
         if not moments:
             continue
         inv = 1.0 / s
@@ -208,13 +217,13 @@ def _em_stats_rows_vec(start, stop, X, bg, logw0, c0, means_t, chol_t, inv_diag_
 
 
 @njit(cache=True, parallel=True, error_model="numpy")
-def _em_stats_vec_par(X, bg, logw0, c0, means_t, chol_t, inv_diag_t, acc_n, acc_s, acc_m, ll_out, moments):
+def _em_stats_vec_par(X, bg, logw0, c0, means_t, chol_t, inv_diag_t, acc_n, acc_s, acc_m, ll_out, moments, rows):
     n = X.shape[0]
     nb = acc_n.shape[0]
     step = (n + nb - 1) // nb
     for b in prange(nb):
         _em_stats_rows_vec(b * step, min(n, (b + 1) * step), X, bg, logw0, c0, means_t, chol_t, inv_diag_t,
-                            acc_n[b], acc_s[b], acc_m[b], ll_out[b], moments)
+                            acc_n[b], acc_s[b], acc_m[b], ll_out[b], moments, rows)
 
 
 def em_loglik(X, bg, logw, means, chol, log_det, n_parts=16, hint=None):
@@ -224,15 +233,25 @@ def em_loglik(X, bg, logw, means, chol, log_det, n_parts=16, hint=None):
     return _pass(X, bg, logw, means, chol, log_det, n_parts, hint, False)[0]
 
 
+def em_logpdf(X, bg, logw, means, chol, log_det, n_parts=16, hint=None):
+    """Per-event log density (n,) of events X (n, d) under the mixture, by the E
+    step of :func:`em_stats` alone: the terms of :func:`em_loglik`, one per event.
+    Equal to the mixture's log density (:meth:`core.density.mixture_base.MixtureBase.logpdf`)
+    to ~1e-13 nats, at a fraction of its cost beyond 12 channels (pruned)."""
+    rows = np.empty(X.shape[0])
+    _pass(X, bg, logw, means, chol, log_det, n_parts, hint, False, rows)
+    return rows
+
+
 #: Up to this many channels the EM pass is laid out with the component index
 #: innermost and unpruned (faster at 8 channels, equal at 16, slower at 30: the
 #: pruning saves more as channels grow; EXPERIMENTS.md section 26).
 VECTOR_MAX_CHANNELS = 12
 
 
-def _pass(X, bg, logw, means, chol, log_det, n_parts, hint, moments):
-    """The EM pass (moments or log-likelihood only); returns (total, per-part
-    acc_n, acc_s, acc_m)."""
+def _pass(X, bg, logw, means, chol, log_det, n_parts, hint, moments, rows=None):
+    """The EM pass (moments or log-likelihood only; each event's log density
+    written to ``rows`` (n,) when given); returns (total, per-part acc_n, acc_s, acc_m)."""
     K, d = means.shape
     n = X.shape[0]
     parts = max(1, min(int(n_parts), n // 256)) if parallel(n, K * d * d) else 1
@@ -241,21 +260,23 @@ def _pass(X, bg, logw, means, chol, log_det, n_parts, hint, moments):
     acc_s = np.zeros((parts, mk, d))
     acc_m = np.zeros((parts, mk, d, d))
     ll = np.zeros((parts, 1))
+    if rows is None:
+        rows = np.empty(0)
     if d <= VECTOR_MAX_CHANNELS and K > 0:
         inv_diag = 1.0 / np.diagonal(chol, axis1=1, axis2=2)
         args = (X, bg, float(logw[0]), logw[1:] - log_det - d * _LOG_SQRT_2PI, np.ascontiguousarray(means.T),
                 np.ascontiguousarray(np.transpose(chol, (1, 2, 0))), np.ascontiguousarray(inv_diag.T))
         if parts > 1:
-            _em_stats_vec_par(*args, acc_n, acc_s, acc_m, ll, moments)
+            _em_stats_vec_par(*args, acc_n, acc_s, acc_m, ll, moments, rows)
         else:
-            _em_stats_rows_vec(0, n, *args, acc_n[0], acc_s[0], acc_m[0], ll[0], moments)
+            _em_stats_rows_vec(0, n, *args, acc_n[0], acc_s[0], acc_m[0], ll[0], moments, rows)
         return float(ll.sum()), acc_n, acc_s, acc_m
     if hint is None or hint.shape[0] != n:
         hint = np.zeros(n, np.int64)
     np.minimum(hint, max(K - 1, 0), out=hint)
     if parts > 1:
-        _em_stats_par(X, bg, logw, means, chol, log_det, acc_n, acc_s, acc_m, ll, hint, moments)
+        _em_stats_par(X, bg, logw, means, chol, log_det, acc_n, acc_s, acc_m, ll, hint, moments, rows)
     else:
         _em_stats_rows(0, n, X, bg, logw, means, chol, log_det, acc_n[0], acc_s[0], acc_m[0], ll[0], hint,
-                       moments)
+                       moments, rows)
     return float(ll.sum()), acc_n, acc_s, acc_m

@@ -297,15 +297,153 @@ def _skew_logpdf_par(X, logd, comp, bg, z_max, R):
 
 def skew_logpdf(X, logd, comp, bg, z_max, R=None):
     """Log density of the skewed-component mixture added to logd; with R (n, K + 1)
-    also the posterior component probabilities; see :func:`_skew_logpdf_rows`."""
+    also the posterior component probabilities; see :func:`_skew_logpdf_rows`.
+    Beyond ``SKEW_VECTOR_MAX_CHANNELS`` channels by the pruned pass
+    (:func:`skew_logpdf_pruned`, the same values to ~1e-14)."""
+    d, K = comp.means_t.shape
+    if d > SKEW_VECTOR_MAX_CHANNELS and K > 0:
+        skew_logpdf_pruned(X, logd, outer_layout(comp), bg, z_max, R)
+        return
     if R is None:
         R = np.empty((0, comp.means_t.shape[1] + 1))
     args = (X, logd, comp, bg, float(z_max), R)
-    d, K = comp.means_t.shape
     if parallel(X.shape[0], (K + 1) * d * (d + 10)):
         _skew_logpdf_par(*args)
     else:
         _skew_logpdf_rows(0, X.shape[0], *args)
+
+
+#: Up to this many channels the skewed density pass runs component-innermost and
+#: unpruned (:func:`_skew_logpdf_rows`); beyond, pruned component by component
+#: (EXPERIMENTS.md section 29).
+SKEW_VECTOR_MAX_CHANNELS = 12
+
+
+def outer_layout(comp: "ComponentsInner") -> "ComponentsOuter":
+    """The :class:`ComponentsOuter` of a :class:`ComponentsInner` (same mixture)."""
+    d, K = comp.means_t.shape
+    c0 = comp.logw[1:] - d * _LOG_SQRT_2PI - comp.log_sd.sum(axis=0)
+    jac_max = np.abs(np.arcsinh(comp.skew[3])).sum(axis=0)
+    return ComponentsOuter(np.ascontiguousarray(comp.logw), np.ascontiguousarray(c0),
+                           np.ascontiguousarray(comp.means_t.T), np.ascontiguousarray(np.transpose(comp.chol_t, (2, 0, 1))),
+                           np.ascontiguousarray(comp.inv_sd.T), np.ascontiguousarray(np.transpose(comp.skew, (2, 1, 0))),
+                           np.ascontiguousarray(jac_max))
+
+
+class ComponentsOuter(NamedTuple):
+    """A skewed mixture laid out component by component for the pruned density
+    pass (:func:`skew_logpdf_pruned`): logw (K + 1,) log weights, background first;
+    c0 (K,) log weight minus d log sqrt(2 pi) minus the log sds of all channels;
+    means (K, d), chol (K, d, d) lower Cholesky factors (transformed units),
+    inv_sd (K, d) their inverse diagonals; skew (K, d, 4) per component and channel
+    the transform's centre, 1/scale, cosh(eps), sinh(eps); jac_max (K,) the sum over
+    channels of |eps| (the log Jacobian of a component never exceeds it)."""
+    logw: np.ndarray
+    c0: np.ndarray
+    means: np.ndarray
+    chol: np.ndarray
+    inv_sd: np.ndarray
+    skew: np.ndarray
+    jac_max: np.ndarray
+
+
+#: A component whose partial log term (its squared whitened distance so far, plus
+#: the largest log Jacobian it could still have) lies this far below the best one
+#: seen for the event is left out of the pruned density pass (its share is below
+#: exp(-40) ~ 4e-18; as :data:`core.density.kernels.em.EM_PRUNE`).
+SKEW_PRUNE = 40.0
+
+
+@njit(cache=True, error_model="numpy")
+def _skew_logpdf_pruned_rows(start, stop, X, logd, comp, bg, z_max, R, hint):
+    """:func:`_skew_logpdf_rows` component by component with pruning: components
+    are visited from ``hint[i]`` (updated to the event's most probable one), and a
+    component is abandoned as soon as c0 - q / 2 + jac_max (q the squared whitened
+    distance over the channels so far, which only grows) lies ``SKEW_PRUNE`` nats
+    below the best term so far.  The same density to ~1e-14; the posteriors of
+    abandoned components (below 4e-18) are written as 0."""
+    logw, c0, means, chol, inv_sd, sk, jac_max = (comp.logw, comp.c0, comp.means, comp.chol, comp.inv_sd,
+                                                   comp.skew, comp.jac_max)
+    K, d = means.shape
+    want_r = R.shape[0] > 0
+    lp = np.empty(K)
+    live = np.zeros(K, np.bool_)
+    z = np.empty(d)
+    for i in range(start, stop):
+        lw0 = logw[0]
+        for j in range(d):
+            lw0 += bg_logpdf(X[i, j], j, bg, z_max)
+        mx = lw0
+        k0 = hint[i]
+        best = k0
+        for t in range(K):
+            k = k0 + t
+            if k >= K:
+                k -= K
+            top = c0[k] + jac_max[k]
+            floor = mx - SKEW_PRUNE
+            q = 0.0
+            jp = 1.0
+            ok = True
+            for j in range(d):
+                tt = (X[i, j] - sk[k, j, 0]) * sk[k, j, 1]
+                tt = min(max(tt, -_SKEW_XT_MAX), _SKEW_XT_MAX)
+                r = math.sqrt(1.0 + tt * tt)
+                y = tt * sk[k, j, 2] - r * sk[k, j, 3]
+                jp *= sk[k, j, 2] - tt * sk[k, j, 3] / r
+                m = means[k, j]
+                for a in range(j):
+                    m += chol[k, j, a] * z[a]
+                zz = min(max((y - m) * inv_sd[k, j], -z_max), z_max)
+                z[j] = zz
+                q += zz * zz
+                if top - 0.5 * q < floor:
+                    ok = False
+                    break
+            live[k] = ok
+            if ok:
+                lp[k] = c0[k] - 0.5 * q + math.log(jp)
+                if lp[k] > mx:
+                    mx = lp[k]
+                    best = k
+        e0 = math.exp(lw0 - mx)
+        acc = e0
+        for k in range(K):
+            if live[k]:
+                lp[k] = math.exp(lp[k] - mx)
+                acc += lp[k]
+        hint[i] = best
+        logd[i] += mx + math.log(acc)
+        if want_r:
+            inv = 1.0 / acc
+            R[i, 0] = e0 * inv
+            for k in range(K):
+                R[i, k + 1] = lp[k] * inv if live[k] else 0.0
+
+
+@njit(cache=True, parallel=True, error_model="numpy")
+def _skew_logpdf_pruned_par(X, logd, comp, bg, z_max, R, hint):
+    n = X.shape[0]
+    nb = (n + BLOCK - 1) // BLOCK
+    for b in prange(nb):
+        _skew_logpdf_pruned_rows(b * BLOCK, min(n, (b + 1) * BLOCK), X, logd, comp, bg, z_max, R, hint)
+
+
+def skew_logpdf_pruned(X, logd, comp, bg, z_max, R=None, hint=None):
+    """:func:`skew_logpdf` by the pruned pass (:func:`_skew_logpdf_pruned_rows`);
+    ``comp`` a :class:`ComponentsOuter`; ``hint`` (n,) int64 each event's most
+    probable component from an earlier call (updated in place; None: start at 0)."""
+    K, d = comp.means.shape
+    if R is None:
+        R = np.empty((0, K + 1))
+    if hint is None or hint.shape[0] != X.shape[0]:
+        hint = np.zeros(X.shape[0], np.int64)
+    np.minimum(hint, max(K - 1, 0), out=hint)
+    args = (X, logd, comp, bg, float(z_max), R, hint)
+    if parallel(X.shape[0], (K + 1) * d * (d + 10)):
+        _skew_logpdf_pruned_par(*args)
+    else:
+        _skew_logpdf_pruned_rows(0, X.shape[0], *args)
 
 
 #: The skewed map folds its running Jacobian products into log space every this many channels
