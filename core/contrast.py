@@ -656,9 +656,12 @@ def contrast(test_values: np.ndarray, control_values: np.ndarray | None, rate: f
         if k_local:
             if not relay(k, folds, {"stage": f"Neighbour counts, part {k + 1} of {folds}", "heldout_loglik": None}):
                 raise Cancelled("contrast with the control was cancelled while counting neighbours")
-            train_t, train_c = Tk[part_t != k], pc.events[pc.part != k]
-            l_test[sel], f_test[sel] = local_scores(train_t, train_c, Tk[sel], factor_t, k_local)
-            l_control[csel], f_control[csel] = local_scores(train_t, train_c, pc.events[csel], factor_c, k_local)
+            # the part's test and control events in one call: one tree, and on large files one
+            # choice of the events searched exactly for both (core.contrast_local, "Large files")
+            m = int(sel.sum())
+            ls, lf = local_scores(Tk[part_t != k], pc.events[pc.part != k], np.vstack([Tk[sel], pc.events[csel]]),
+                                  np.concatenate([factor_t, factor_c]), k_local, eps=None)
+            l_test[sel], f_test[sel], l_control[csel], f_control[csel] = ls[:m], lf[:m], ls[m:], lf[m:]
 
     score = np.full(T.shape[0], np.nan)
     score[t_ok] = s_test
