@@ -166,7 +166,7 @@ def local_scores(train_test: np.ndarray, train_control: np.ndarray, X: np.ndarra
         score[a:b], fold[a:b] = _scan(idx, nt, pi0[a:b], odds0[a:b], k)
     if eps > 0:
         m = min(n, max(EXACT_MIN, int(math.ceil(exact_share * n))))
-        cut = np.partition(score, n - m)[n - m] if m < n else -np.inf
+        cut = np.partition(score, n - m)[n - m] if 0 < m < n else (-np.inf if m else np.inf)
         redo = np.flatnonzero(score >= cut)
         redo = redo[np.argsort(far[redo], kind="stable")]
         for a in range(0, redo.size, BOUND_BATCH):

@@ -13,6 +13,7 @@ import pytest
 from scipy import stats
 
 from core.contrast import conformal_pvalues, contrast
+import core.contrast_local as contrast_local
 from core.contrast_local import (MIN_SCAN, dominance_counts, local_scores, min_rank_pvalues, neighbours_for)
 from core.errors import EventDataError
 from core.fdr import bh_qvalues
@@ -122,6 +123,48 @@ def test_local_score_is_the_binomial_scan_of_the_nearest_neighbours():
     assert np.all(score[:5] > score[5:].max())
 
 
+def _brute_local(train_t, train_c, X, k):
+    """Local scores by brute force (numpy distances, stable sort; scipy.stats.binom), phi = 0."""
+    pool = np.vstack([train_t, train_c])
+    med = np.median(pool, axis=0)
+    scale = 1.4826 * np.median(np.abs(pool - med), axis=0)
+    pi0 = len(train_t) / len(pool)
+    out = []
+    for x in X:
+        d = np.sqrt((((pool - x) / scale) ** 2).sum(axis=1))
+        a = np.cumsum(np.argsort(d, kind="stable")[:k] < len(train_t))
+        out.append((-stats.binom.logsf(a - 1, np.arange(1, k + 1), pi0))[MIN_SCAN - 1:].max())
+    return np.array(out)
+
+
+def test_large_file_search_is_exact_for_the_top_share(monkeypatch):
+    # two stages (core/contrast_local.py, "Large files"): approximate search for every event, then
+    # the top share by approximate score searched exactly.  Reference: brute-force neighbours.
+    monkeypatch.setattr(contrast_local, "EXACT_MIN", 0)
+    rng = np.random.default_rng(8)
+    d, k = 6, 12
+    train_t, train_c = rng.normal(size=(1500, d)), rng.normal(size=(1500, d))
+    train_t[:20] = rng.normal(2.5, 0.1, size=(20, d))                 # a test-only cluster
+    X = np.vstack([rng.normal(2.5, 0.1, size=(6, d)), rng.normal(size=(394, d))])
+    phi = np.zeros(len(X))
+    exact, _ = local_scores(train_t, train_c, X, phi, k)
+    brute = _brute_local(train_t, train_c, X, k)
+    np.testing.assert_allclose(exact, brute, rtol=1e-9, atol=1e-12)
+    approx, _ = local_scores(train_t, train_c, X, phi, k, eps=3.0, exact_share=0.0)
+    assert np.mean(approx != exact) > 0.2                 # a loose search changes many scores
+    two, _ = local_scores(train_t, train_c, X, phi, k, eps=3.0, exact_share=0.1)
+    top = approx >= np.sort(approx)[-40]                  # the top 10 % of 400 by approximate score (ties in)
+    assert top.sum() >= 40
+    np.testing.assert_allclose(two[top], brute[top], rtol=1e-9, atol=1e-12)
+    np.testing.assert_array_equal(two[~top], approx[~top])
+    assert np.all(two[:6] > np.quantile(two[6:], 0.99))   # the cluster's events still rank first
+    # eps=None: exact while the pool holds at most EXACT_POOL events, the two stages beyond
+    np.testing.assert_array_equal(local_scores(train_t, train_c, X, phi, k, eps=None)[0], exact)
+    monkeypatch.setattr(contrast_local, "EXACT_POOL", 1000)
+    monkeypatch.setattr(contrast_local, "APPROX_EPS", 3.0)
+    np.testing.assert_array_equal(local_scores(train_t, train_c, X, phi, k, eps=None, exact_share=0.1)[0], two)
+
+
 class _Normal:
     """A Gaussian density (scipy.stats.multivariate_normal): a cheap stand-in model, no mixture."""
 
@@ -132,9 +175,16 @@ class _Normal:
         return self.dist.logpdf(X)
 
 
-def test_contrast_pvalues_are_uniform_under_the_null():
+@pytest.mark.parametrize("search", ["exact", "large-file"])
+def test_contrast_pvalues_are_uniform_under_the_null(search, monkeypatch):
     # control and test drawn alike; each replicate's first test event: its combined p-value,
-    # and the local score's own conformal p-value (the cross-fitting keeps both exchangeable)
+    # and the local score's own conformal p-value (the cross-fitting keeps both exchangeable).
+    # "large-file": the two-stage search at every size (approximate with a loose eps, exact for
+    # the top 5 % of each part's test and control events together): still exchangeable
+    if search == "large-file":
+        monkeypatch.setattr(contrast_local, "EXACT_POOL", 0)
+        monkeypatch.setattr(contrast_local, "EXACT_MIN", 0)
+        monkeypatch.setattr(contrast_local, "APPROX_EPS", 3.0)
     rng = np.random.default_rng(4)
     mean, cov = np.zeros(3), np.array([[1.0, 0.4, 0.0], [0.4, 1.0, 0.2], [0.0, 0.2, 1.0]])
     both, local = [], []
