@@ -38,13 +38,15 @@ The local fold (for the minimum fold) is the neighbour count ratio over its
 expectation at k: ln((a_k + 0.5) / (k - a_k + 0.5)) - ln(pi0 / (1 - pi0)).
 
 Large files.  An exact search for the k nearest of 12-30 robust-scaled channels
-costs about 0.2 ms per event on this data (kd-trees prune poorly in that many
+costs 0.2-0.9 ms per event on 2 cores at 200,000-1,000,000 events (kd-trees prune poorly in that many
 dimensions), and every event, test and control, is searched once: minutes for
-a million events.  When a part's pool holds more than EXACT_POOL training events,
+a million events.  When a part's pool holds more than EXACT_POOL training events
+(100,000: two tubes of more than about 75,000 events each in 3 parts; the demo tubes
+and the contrast benchmark's 60,000-event tubes stay below it, searched exactly),
 :func:`local_scores` therefore searches in two stages, scoring the part's test and
 control events in one call: first every event approximately
 (``cKDTree.query(eps=APPROX_EPS)``, each returned neighbour within 1 + eps times
-the true k-th distance, several times faster), then the EXACT_SHARE (5 %, at least
+the true k-th distance: 6 times faster per event at 1,000,000 events), then the EXACT_SHARE (5 %, at least
 EXACT_MIN) of the events with the highest approximate score exactly, within
 their approximate k-th distance (an upper bound of the exact one).  The events
 whose local score can make their p-value small -- the top of the test events and
@@ -83,7 +85,7 @@ MIN_SCAN = 5
 CHUNK = 50_000
 #: Large files: neighbour searches beyond this many pooled training events start approximate
 #: (see "Large files" in the module docstring); at or below it every search is exact.
-EXACT_POOL = 300_000
+EXACT_POOL = 100_000
 #: Large files: the approximate search's eps (each neighbour within (1 + eps) x the k-th distance).
 APPROX_EPS = 0.5
 #: Large files: share of a part's events (highest approximate local score) searched again exactly.
