@@ -159,8 +159,8 @@ def run(n: int, d: int, threads: int, exact: bool = False, log=print) -> dict | 
             subprocess.run([sys.executable, os.path.abspath(__file__), "--write", f"{n},{d},{seed},{path}"],
                            check=True, cwd=ROOT, env=env)
         out = subprocess.run([sys.executable, os.path.abspath(__file__), "--child",
-                              f"{paths[1]},{paths[0]},{threads},{int(exact)}"], capture_output=True, text=True, cwd=ROOT,
-                             env=env)
+                              f"{paths[1]},{paths[0]},{threads},{int(exact)}"],
+                             capture_output=True, text=True, cwd=ROOT, env=env)
     if out.returncode != 0:
         log(out.stderr[-3000:])
         return None
@@ -171,7 +171,8 @@ def run(n: int, d: int, threads: int, exact: bool = False, log=print) -> dict | 
 
 
 def format_rows(rows, markdown=False) -> str:
-    head = ["events x channels", "search", "threads"] + [f"{s} s" for s in STAGES] + ["peak MB", "enriched", "load (1 min)"]
+    head = ["events x channels", "search", "threads"] + [f"{s} s" for s in STAGES] \
+        + ["peak MB", "enriched", "load (1 min)"]
     sep = " | " if markdown else "  "
     lines = ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)] if markdown else [sep.join(head)]
     for r in rows:
