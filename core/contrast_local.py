@@ -37,23 +37,25 @@ under the null: a run of 17 test neighbours at pi0 = 1/2 has probability
 The local fold (for the minimum fold) is the neighbour count ratio over its
 expectation at k: ln((a_k + 0.5) / (k - a_k + 0.5)) - ln(pi0 / (1 - pi0)).
 
-Large files.  An exact search for the k nearest of 12-30 robust-scaled channels
-costs 0.2-0.9 ms per event on 2 cores at 200,000-1,000,000 events (kd-trees prune poorly in that many
-dimensions), and every event, test and control, is searched once: minutes for
-a million events.  When a part's pool holds more than EXACT_POOL training events
-(100,000: two tubes of more than about 75,000 events each in 3 parts; the demo tubes
-and the contrast benchmark's 60,000-event tubes stay below it, searched exactly),
-:func:`local_scores` therefore searches in two stages, scoring the part's test and
-control events in one call: first every event approximately
-(``cKDTree.query(eps=APPROX_EPS)``, each returned neighbour within 1 + eps times
-the true k-th distance: 6 times faster per event at 1,000,000 events), then the EXACT_SHARE (5 %, at least
-EXACT_MIN) of the events with the highest approximate score exactly, within
-their approximate k-th distance (an upper bound of the exact one).  The events
-whose local score can make their p-value small -- the top of the test events and
-the control events they are ranked against -- so get the exact score; the others
-keep an approximate one (measured: see tests/benchmarks/README.md, "Contrast
-benchmark", scale).  Validity is kept: the score is one function for every event
-of the part, test or control (the choice of the exact 5 % is a symmetric function
+Large files.  An exact search for the k nearest of 12-30 robust-scaled
+channels costs 0.2-0.9 ms per event on 2 cores at 200,000-1,000,000 events
+(kd-trees prune poorly in that many dimensions), and every event, test and
+control, is searched once: minutes for a million events.  When a part's pool
+holds more than EXACT_POOL training events (100,000: two tubes of more than
+about 75,000 events each in 3 parts; the demo tubes and the contrast benchmark's
+60,000-event tubes stay below it, searched exactly), :func:`local_scores`
+searches in two stages, scoring the part's test and control events in one call:
+first every event approximately (``cKDTree.query(eps=APPROX_EPS)``, each
+returned neighbour within 1 + eps times the true k-th distance: 3-6 times faster
+per event at 1,000,000 events), then the EXACT_SHARE (5 %, at least EXACT_MIN)
+of the events with the highest approximate score exactly, within their
+approximate k-th distance (an upper bound of the exact one).  The events whose
+local score can make their p-value small -- the top of the test events and the
+control events they are ranked against -- so get the exact score; the others
+keep an approximate one (measured: identical for every event at or above the
+control's 99 % point; see tests/benchmarks/README.md, "Contrast benchmark",
+large files).  Validity is kept: the score is one function for every event of
+the part, test or control (the choice of the exact 5 % is a symmetric function
 of the part's test and control events), fitted without them.
 
 Combining the two scores: :func:`min_rank_pvalues` (one conformal p-value of
