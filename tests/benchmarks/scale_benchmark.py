@@ -6,7 +6,8 @@ stages of ``core.analysis.analyse`` on a generated FCS file.
 Run from the repository root (prefix with ``nice`` on a shared machine)::
 
     python tests/benchmarks/scale_benchmark.py [--sizes 50000,200000] [--channels 8,16,30]
-        [--repeats 3] [--analyse 12,30] [--analyse-events 1000000] [--markdown PATH]
+        [--repeats 3] [--analyse 12,30] [--analyse-events 1000000] [--analyse-repeats 3]
+        [--count-reference] [--markdown PATH]
 
 Data: a synthetic panel of 16 populations that are log-normal in raw
 intensity (correlated, per-channel log-spread 0.15-0.45 decades) plus 2 %
@@ -30,6 +31,21 @@ read and analysed with the default recipe in a fresh subprocess: the stages of
 (``resource.getrusage``; the file's generation is not in it), the resident
 memory after the imports ("base MB") and the highest resident memory seen
 during each stage (sampled every 20 ms; "peak MB by stage").
+
+With ``--analyse-repeats R`` the file is written once and analysed in R fresh
+processes: the table holds the median of each stage and of the memory columns,
+with each run's read + total seconds and the load average at its start and end.
+
+Count reference (``--count-reference``, replaces the fit table; one run per
+cell): our fit searches the component count and adds skew, GaussianMixture(16)
+is one fit at a fixed count.  So on the same events (training and held-out as
+in the fit table) the table also times scikit-learn's usual way to choose the
+count -- GaussianMixture(full covariance) at K = 1, 2, 4, 8, 16, 32, 64, the
+lowest BIC on the training events kept ("GMM-BIC"; its time is the whole
+sweep's) -- and the smallest K of that grid whose held-out mean
+log-likelihood reaches ours ("GMM at equal accuracy"; the time of that one
+fit), if any.  Fits that stop at scikit-learn's max_iter (100) unconverged
+are listed.
 
 ``core`` is imported from PYTHONPATH when it is set (else from this checkout),
 so the same script measures an older checkout in the same run.
@@ -180,22 +196,121 @@ def _analyse_child(path: str) -> dict:
             "stage_mb": by_stage, "dtype": str(ef.data.dtype)}
 
 
-def analyse_rows(channels, n, log=print):
+def _load() -> str:
+    """The 1-minute load average (Linux; '?' elsewhere): the machine is shared."""
+    try:
+        return f"{os.getloadavg()[0]:.1f}"
+    except OSError:
+        return "?"
+
+
+def _median_row(runs: list) -> dict:
+    """One row from repeated analyse() runs of one file: the median of each stage and of the peak."""
+    row = dict(runs[0])
+    row["timing"] = {k: float(np.median([r["timing"][k] for r in runs])) for k in runs[0]["timing"]}
+    for key in ("peak_mb", "base_mb"):
+        row[key] = float(np.median([r[key] for r in runs]))
+    row["stage_mb"] = {k: float(np.median([r["stage_mb"][k] for r in runs])) for k in runs[0]["stage_mb"]}
+    row["totals"] = [r["timing"].get("total", float("nan")) + r["timing"]["read"] for r in runs]
+    row["loads"] = [r["load"] for r in runs]
+    return row
+
+
+def analyse_rows(channels, n, repeats=1, log=print):
+    """analyse() of one generated file per channel count, ``repeats`` fresh processes each (medians)."""
     rows = []
     for d in channels:
+        runs = []
         with tempfile.TemporaryDirectory() as tmp:
             path = os.path.join(tmp, f"panel_{n}x{d}.fcs")
             subprocess.run([sys.executable, os.path.abspath(__file__), "--write", f"{n},{d},{path}"],
                            check=True, cwd=ROOT)
-            out = subprocess.run([sys.executable, os.path.abspath(__file__), "--child", path],
-                                 capture_output=True, text=True, cwd=ROOT)
-        if out.returncode != 0:
-            log(out.stderr[-2000:])
-            continue
-        row = json.loads(out.stdout.strip().splitlines()[-1])
-        log(f"  analyse {n} x {d}: {row}")
-        rows.append(row)
+            for r in range(repeats):
+                load = _load()
+                out = subprocess.run([sys.executable, os.path.abspath(__file__), "--child", path],
+                                     capture_output=True, text=True, cwd=ROOT)
+                if out.returncode != 0:
+                    log(out.stderr[-2000:])
+                    continue
+                run = json.loads(out.stdout.strip().splitlines()[-1])
+                run["load"] = f"{load}-{_load()}"
+                log(f"  analyse {n} x {d} run {r} (load {run['load']}): {run}")
+                runs.append(run)
+        if runs:
+            rows.append(_median_row(runs))
     return rows
+
+
+COUNT_GRID = (1, 2, 4, 8, 16, 32, 64)
+
+
+def count_rows(sizes, channels, log=print):
+    """Ours against scikit-learn's usual count choice, on the fit table's events (one run per cell).
+
+    For each (n, d): ``AdditiveTreeDensity(random_state=0)``; GaussianMixture(16);
+    GaussianMixture(full covariance, random_state=0) at every K of ``COUNT_GRID`` fitted
+    on the training events, the one of lowest BIC (on the training events) kept
+    ("GMM-BIC": its time is the whole sweep's); and the smallest K of the grid whose
+    held-out mean log-likelihood reaches ours ("GMM at equal accuracy": the time of
+    that one fit), if any.  Held-out: the same n held-out events for every model."""
+    from sklearn.mixture import GaussianMixture
+
+    from core.density import AdditiveTreeDensity
+    rows = []
+    for d in channels:
+        for n in sizes:
+            X = panel(2 * n, d, seed=n + d)
+            Xtr, Xte = X[:n], X[n:]
+            load0 = _load()
+            t = time.perf_counter()
+            m = AdditiveTreeDensity(random_state=0).fit(Xtr)
+            ours_s = time.perf_counter() - t
+            ours_ll = float(m.score(Xte))
+            k = m._gmm.n_components if getattr(m, "_gmm", None) is not None else 0
+            log(f"  n={n} d={d}: ours {ours_s:.1f} s ({m.base_} K={k} trees={m.n_trees_}) ll {ours_ll:.3f} "
+                f"(load {load0}-{_load()})")
+            sweep = []
+            for K in COUNT_GRID:
+                t = time.perf_counter()
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore")
+                    g = GaussianMixture(n_components=K, covariance_type="full", random_state=0).fit(Xtr)
+                sec = time.perf_counter() - t
+                sweep.append(dict(K=K, s=sec, bic=float(g.bic(Xtr)), ll=float(g.score(Xte)),
+                                  converged=bool(g.converged_), n_iter=int(g.n_iter_)))
+                log(f"    GMM K={K}: {sec:.1f} s, BIC {sweep[-1]['bic']:.0f}, held-out {sweep[-1]['ll']:.3f}, "
+                    f"{'converged' if g.converged_ else 'NOT converged'} in {g.n_iter_} iterations (load {_load()})")
+            best = min(sweep, key=lambda r: r["bic"])
+            g16 = next(r for r in sweep if r["K"] == REFERENCE_K)
+            equal = next((r for r in sweep if r["ll"] >= ours_ll), None)
+            rows.append(dict(n=n, d=d, ours_s=ours_s, ours_ll=ours_ll, ours_model=f"{m.base_} K={k} trees={m.n_trees_}",
+                             g16_s=g16["s"], g16_ll=g16["ll"], bic_s=sum(r["s"] for r in sweep), bic_K=best["K"],
+                             bic_ll=best["ll"], eq_K=equal["K"] if equal else None,
+                             eq_s=equal["s"] if equal else None, eq_ll=equal["ll"] if equal else None,
+                             best_ll=max(r["ll"] for r in sweep), best_K=max(sweep, key=lambda r: r["ll"])["K"],
+                             unconverged=[r["K"] for r in sweep if not r["converged"]],
+                             load=f"{load0}-{_load()}", sweep=sweep))
+    return rows
+
+
+def format_count(rows, markdown=False) -> str:
+    head = ["n", "d", "ours s", "ours held-out", "GMM(16) s", "GMM(16) held-out", "GMM-BIC s (sweep)",
+            "GMM-BIC K", "GMM-BIC held-out", "ours / GMM-BIC time", "GMM at equal accuracy: K", "its s",
+            "its held-out", "best GMM held-out (K)", "not converged K", "load"]
+    lines = []
+    if markdown:
+        lines += ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
+    else:
+        lines.append("  ".join(head))
+    for r in rows:
+        eq = r["eq_K"] is not None
+        vals = [f"{r['n']:,}", str(r["d"]), f"{r['ours_s']:.1f}", f"{r['ours_ll']:.3f}", f"{r['g16_s']:.1f}",
+                f"{r['g16_ll']:.3f}", f"{r['bic_s']:.1f}", str(r["bic_K"]), f"{r['bic_ll']:.3f}",
+                f"{r['ours_s'] / r['bic_s']:.2f}", str(r["eq_K"]) if eq else "none <= 64",
+                f"{r['eq_s']:.1f}" if eq else "-", f"{r['eq_ll']:.3f}" if eq else "-",
+                f"{r['best_ll']:.3f} ({r['best_K']})", ",".join(map(str, r["unconverged"])) or "-", r["load"]]
+        lines.append(("| " + " | ".join(vals) + " |") if markdown else "  ".join(vals))
+    return "\n".join(lines)
 
 
 def format_fit(rows, markdown=False) -> str:
@@ -219,7 +334,8 @@ def format_analyse(rows, markdown=False) -> str:
         for k in r["timing"]:
             if k not in stages:
                 stages.append(k)
-    head = ["events x channels"] + [f"{s} s" for s in stages] + ["peak MB", "base MB", "peak MB by stage"]
+    head = ["events x channels"] + [f"{s} s" for s in stages] + ["peak MB", "base MB", "peak MB by stage",
+                                                               "read + total s, each run", "load each run"]
     lines = []
     if markdown:
         lines += ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
@@ -228,7 +344,8 @@ def format_analyse(rows, markdown=False) -> str:
     for r in rows:
         vals = [f"{r['n']:,} x {r['d']}"] + [f"{r['timing'].get(s, float('nan')):.1f}" for s in stages] \
             + [f"{r['peak_mb']:.0f}", f"{r.get('base_mb', float('nan')):.0f}",
-               ", ".join(f"{k} {v:.0f}" for k, v in r.get("stage_mb", {}).items())]
+               ", ".join(f"{k} {v:.0f}" for k, v in r.get("stage_mb", {}).items()),
+               ", ".join(f"{v:.1f}" for v in r.get("totals", [])), ", ".join(r.get("loads", []))]
         lines.append(("| " + " | ".join(vals) + " |") if markdown else "  ".join(vals))
     return "\n".join(lines)
 
@@ -240,6 +357,9 @@ def main(argv=None):
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--analyse", default="", help="channel counts for analyse(), e.g. 12,30")
     ap.add_argument("--analyse-events", type=int, default=1_000_000)
+    ap.add_argument("--analyse-repeats", type=int, default=1, help="fresh analyse() processes per file (medians)")
+    ap.add_argument("--count-reference", action="store_true",
+                    help="instead of the fit table: ours, GMM(16), GMM-BIC over K in 1..64, GMM at equal accuracy")
     ap.add_argument("--markdown", default="")
     ap.add_argument("--child", default="", help=argparse.SUPPRESS)
     ap.add_argument("--write", default="", help=argparse.SUPPRESS)
@@ -254,12 +374,16 @@ def main(argv=None):
     out = []
     sizes = [int(v) for v in a.sizes.split(",") if v]
     channels = [int(v) for v in a.channels.split(",") if v]
-    if sizes and channels:
+    if sizes and channels and a.count_reference:
+        rows = count_rows(sizes, channels)
+        print(format_count(rows))
+        out.append(format_count(rows, markdown=True))
+    elif sizes and channels:
         rows = fit_rows(sizes, channels, a.repeats)
         print(format_fit(rows))
         out.append(format_fit(rows, markdown=True))
     if a.analyse:
-        rows = analyse_rows([int(v) for v in a.analyse.split(",")], a.analyse_events)
+        rows = analyse_rows([int(v) for v in a.analyse.split(",")], a.analyse_events, a.analyse_repeats)
         print(format_analyse(rows))
         out.append(format_analyse(rows, markdown=True))
     if a.markdown:
