@@ -192,7 +192,9 @@ def _analyse_child(path: str) -> dict:
             at += float(v)
     by_stage = {k: max([m for s, m in samples if lo <= s <= hi] or [float("nan")]) for k, lo, hi in bounds}
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # kB -> MB (Linux)
-    return {"n": ef.n_events, "d": ef.n_channels, "timing": timing, "peak_mb": peak, "base_mb": base,
+    gmm = getattr(a.model, "_gmm", None)
+    model = f"{a.model.base_} K={gmm.n_components if gmm is not None else 0} trees={a.model.n_trees_}"
+    return {"n": ef.n_events, "d": ef.n_channels, "timing": timing, "peak_mb": peak, "base_mb": base, "model": model,
             "stage_mb": by_stage, "dtype": str(ef.data.dtype)}
 
 
@@ -213,6 +215,7 @@ def _median_row(runs: list) -> dict:
     row["stage_mb"] = {k: float(np.median([r["stage_mb"][k] for r in runs])) for k in runs[0]["stage_mb"]}
     row["totals"] = [r["timing"].get("total", float("nan")) + r["timing"]["read"] for r in runs]
     row["loads"] = [r["load"] for r in runs]
+    row["models"] = sorted({r.get("model", "?") for r in runs})
     return row
 
 
@@ -335,7 +338,7 @@ def format_analyse(rows, markdown=False) -> str:
             if k not in stages:
                 stages.append(k)
     head = ["events x channels"] + [f"{s} s" for s in stages] + ["peak MB", "base MB", "peak MB by stage",
-                                                               "read + total s, each run", "load each run"]
+                                                               "read + total s, each run", "load each run", "model"]
     lines = []
     if markdown:
         lines += ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
@@ -345,7 +348,7 @@ def format_analyse(rows, markdown=False) -> str:
         vals = [f"{r['n']:,} x {r['d']}"] + [f"{r['timing'].get(s, float('nan')):.1f}" for s in stages] \
             + [f"{r['peak_mb']:.0f}", f"{r.get('base_mb', float('nan')):.0f}",
                ", ".join(f"{k} {v:.0f}" for k, v in r.get("stage_mb", {}).items()),
-               ", ".join(f"{v:.1f}" for v in r.get("totals", [])), ", ".join(r.get("loads", []))]
+               ", ".join(f"{v:.1f}" for v in r.get("totals", [])), ", ".join(r.get("loads", [])), "; ".join(r.get("models", []))]
         lines.append(("| " + " | ".join(vals) + " |") if markdown else "  ".join(vals))
     return "\n".join(lines)
 
