@@ -7,7 +7,7 @@ Run from the repository root (prefix with ``nice`` on a shared machine)::
 
     python tests/benchmarks/scale_benchmark.py [--sizes 50000,200000] [--channels 8,16,30]
         [--repeats 3] [--analyse 12,30] [--analyse-events 1000000] [--analyse-repeats 3]
-        [--count-reference] [--markdown PATH]
+        [--count-reference [--count-seed 0]] [--markdown PATH]
 
 Data: a synthetic panel of 16 populations that are log-normal in raw
 intensity (correlated, per-channel log-spread 0.15-0.45 decades) plus 2 %
@@ -247,11 +247,11 @@ def analyse_rows(channels, n, repeats=1, log=print):
 COUNT_GRID = (1, 2, 4, 8, 16, 32, 64)
 
 
-def count_rows(sizes, channels, log=print):
+def count_rows(sizes, channels, seed=0, log=print):
     """Ours against scikit-learn's usual count choice, on the fit table's events (one run per cell).
 
-    For each (n, d): ``AdditiveTreeDensity(random_state=0)``; GaussianMixture(16);
-    GaussianMixture(full covariance, random_state=0) at every K of ``COUNT_GRID`` fitted
+    For each (n, d): ``AdditiveTreeDensity(random_state=seed)``; GaussianMixture(16);
+    GaussianMixture(full covariance, random_state=seed) at every K of ``COUNT_GRID`` fitted
     on the training events, the one of lowest BIC (on the training events) kept
     ("GMM-BIC": its time is the whole sweep's); and the smallest K of the grid whose
     held-out mean log-likelihood reaches ours ("GMM at equal accuracy": the time of
@@ -266,7 +266,7 @@ def count_rows(sizes, channels, log=print):
             Xtr, Xte = X[:n], X[n:]
             load0 = _load()
             t = time.perf_counter()
-            m = AdditiveTreeDensity(random_state=0).fit(Xtr)
+            m = AdditiveTreeDensity(random_state=seed).fit(Xtr)
             ours_s = time.perf_counter() - t
             ours_ll = float(m.score(Xte))
             k = m._gmm.n_components if getattr(m, "_gmm", None) is not None else 0
@@ -277,7 +277,7 @@ def count_rows(sizes, channels, log=print):
                 t = time.perf_counter()
                 with warnings.catch_warnings():
                     warnings.simplefilter("ignore")
-                    g = GaussianMixture(n_components=K, covariance_type="full", random_state=0).fit(Xtr)
+                    g = GaussianMixture(n_components=K, covariance_type="full", random_state=seed).fit(Xtr)
                 sec = time.perf_counter() - t
                 sweep.append(dict(K=K, s=sec, bic=float(g.bic(Xtr)), ll=float(g.score(Xte)),
                                   converged=bool(g.converged_), n_iter=int(g.n_iter_)))
@@ -363,6 +363,7 @@ def main(argv=None):
     ap.add_argument("--analyse-repeats", type=int, default=1, help="fresh analyse() processes per file (medians)")
     ap.add_argument("--count-reference", action="store_true",
                     help="instead of the fit table: ours, GMM(16), GMM-BIC over K in 1..64, GMM at equal accuracy")
+    ap.add_argument("--count-seed", type=int, default=0, help="random_state of every fit in --count-reference")
     ap.add_argument("--markdown", default="")
     ap.add_argument("--child", default="", help=argparse.SUPPRESS)
     ap.add_argument("--write", default="", help=argparse.SUPPRESS)
@@ -378,7 +379,7 @@ def main(argv=None):
     sizes = [int(v) for v in a.sizes.split(",") if v]
     channels = [int(v) for v in a.channels.split(",") if v]
     if sizes and channels and a.count_reference:
-        rows = count_rows(sizes, channels)
+        rows = count_rows(sizes, channels, a.count_seed)
         print(format_count(rows))
         out.append(format_count(rows, markdown=True))
     elif sizes and channels:
