@@ -19,7 +19,9 @@ as many held-out events come from one seeded draw.
 Fit table: for each (n, d) the median over ``--repeats`` runs of the fit
 seconds of ``AdditiveTreeDensity(random_state=r)`` and of
 ``GaussianMixture(n_components=16, covariance_type="full", random_state=r)``,
-their ratio (ours / GaussianMixture; <= 1 meets the issue's target) and the
+their ratio (ours / GaussianMixture; <= 1 meets the issue's target; each run's
+ratio and the median ratio of process CPU seconds, less sensitive to the other
+jobs on the machine, beside it) and the
 held-out mean log-likelihood of each (nats per event, natural log; higher is
 better).  The machine is shared: compare the ratios measured in the same run.
 
@@ -122,24 +124,29 @@ def fit_rows(sizes, channels, repeats, log=print):
         for n in sizes:
             X = panel(2 * n, d, seed=n + d)
             Xtr, Xte = X[:n], X[n:]
-            ours_t, ref_t, ours_ll, ref_ll, info = [], [], [], [], []
+            ours_t, ref_t, ours_ll, ref_ll, info, ours_cpu, ref_cpu = [], [], [], [], [], [], []
             for r in range(repeats):
-                t = time.perf_counter()
+                t, c = time.perf_counter(), time.process_time()
                 m = AdditiveTreeDensity(random_state=r).fit(Xtr)
                 ours_t.append(time.perf_counter() - t)
+                ours_cpu.append(time.process_time() - c)
                 ours_ll.append(m.score(Xte))
                 k = m._gmm.n_components if getattr(m, "_gmm", None) is not None else 0
                 info.append(f"{m.base_} K={k} trees={m.n_trees_}")
-                t = time.perf_counter()
+                t, c = time.perf_counter(), time.process_time()
                 g = _gmm16(Xtr, r)
                 ref_t.append(time.perf_counter() - t)
+                ref_cpu.append(time.process_time() - c)
                 ref_ll.append(float(g.score(Xte)))
                 log(f"  n={n} d={d} run {r}: ours {ours_t[-1]:.1f} s ({info[-1]}) ll {ours_ll[-1]:.3f} | "
-                    f"GMM16 {ref_t[-1]:.1f} s ll {ref_ll[-1]:.3f}")
+                    f"GMM16 {ref_t[-1]:.1f} s ll {ref_ll[-1]:.3f} | CPU s ours {ours_cpu[-1]:.1f} GMM16 {ref_cpu[-1]:.1f} "
+                    f"(load {_load()})")
             ratio = float(np.median(np.array(ours_t) / np.array(ref_t)))
             rows.append(dict(n=n, d=d, ours_s=float(np.median(ours_t)), ref_s=float(np.median(ref_t)),
                              ratio=ratio, ours_ll=float(np.median(ours_ll)), ref_ll=float(np.median(ref_ll)),
-                             info=info[int(np.argsort(ours_t)[len(ours_t) // 2])]))
+                             info=info[int(np.argsort(ours_t)[len(ours_t) // 2])],
+                             cpu_ratio=float(np.median(np.array(ours_cpu) / np.array(ref_cpu))),
+                             ratios=[a / b for a, b in zip(ours_t, ref_t)]))
     return rows
 
 
@@ -317,7 +324,8 @@ def format_count(rows, markdown=False) -> str:
 
 
 def format_fit(rows, markdown=False) -> str:
-    head = ["n", "d", "ours s", "GMM(16) s", "ours / GMM(16)", "ours held-out", "GMM(16) held-out", "ours: model"]
+    head = ["n", "d", "ours s", "GMM(16) s", "ours / GMM(16)", "per-run ratios", "CPU s ratio", "ours held-out",
+            "GMM(16) held-out", "ours: model"]
     lines = []
     sep = " | " if markdown else "  "
     if markdown:
@@ -326,7 +334,7 @@ def format_fit(rows, markdown=False) -> str:
         lines.append(sep.join(head))
     for r in rows:
         vals = [f"{r['n']:,}", str(r["d"]), f"{r['ours_s']:.1f}", f"{r['ref_s']:.1f}", f"{r['ratio']:.2f}",
-                f"{r['ours_ll']:.3f}", f"{r['ref_ll']:.3f}", r["info"]]
+                ", ".join(f"{v:.2f}" for v in r["ratios"]), f"{r['cpu_ratio']:.2f}", f"{r['ours_ll']:.3f}", f"{r['ref_ll']:.3f}", r["info"]]
         lines.append(("| " + " | ".join(vals) + " |") if markdown else sep.join(vals))
     return "\n".join(lines)
 
