@@ -263,9 +263,10 @@ def count_rows(sizes, channels, seed=0, log=print):
     ("GMM-BIC": its time is the whole sweep's); and the smallest K of the grid whose
     held-out mean log-likelihood reaches ours ("GMM at equal accuracy": the time of
     that one fit), if any.  Held-out: the same n held-out events for every model."""
+    # imported here: only this mode needs scikit-learn, and core is found on the path set above
     from sklearn.mixture import GaussianMixture
 
-    from core.density import AdditiveTreeDensity
+    from core.density import AdditiveTreeDensity  # imported here: after ROOT is on sys.path
     rows = []
     for d in channels:
         for n in sizes:
