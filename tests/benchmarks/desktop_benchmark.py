@@ -183,7 +183,8 @@ def main(argv: list[str]) -> int:
               f"{n * 8 * 4 / 2**20:>9.0f}")
     print("core open = read_fcs + default_recipe + compensated_and_transformed (all in core); "
           "the rest of open->first plot is the window's binning and drawing")
-    print("targets: first plot < 2 s at 1,000,000 events; redraws < 100 ms. A drag step re-counts the "
+    print("targets: first plot < 2 s at 1,000,000 events, < 4 s and peak < 2.5 GB at 5,000,000; redraws "
+          "< 100 ms. A drag step re-counts the "
           "dragged rectangle; the drag end re-counts every region (here also a polygon)")
     print("memory above the process before opening (resident, MB): open = the window with one tube after "
           "the timed opens; held = after the redraws (with a log density per event); peak = the process's "

@@ -6,7 +6,8 @@ stages of ``core.analysis.analyse`` on a generated FCS file.
 Run from the repository root (prefix with ``nice`` on a shared machine)::
 
     python tests/benchmarks/scale_benchmark.py [--sizes 50000,200000] [--channels 8,16,30]
-        [--repeats 3] [--analyse 12,30] [--analyse-events 1000000] [--markdown PATH]
+        [--repeats 3] [--analyse 12,30] [--analyse-events 1000000] [--analyse-repeats 3]
+        [--count-reference [--count-seed 0]] [--markdown PATH]
 
 Data: a synthetic panel of 16 populations that are log-normal in raw
 intensity (correlated, per-channel log-spread 0.15-0.45 decades) plus 2 %
@@ -18,7 +19,9 @@ as many held-out events come from one seeded draw.
 Fit table: for each (n, d) the median over ``--repeats`` runs of the fit
 seconds of ``AdditiveTreeDensity(random_state=r)`` and of
 ``GaussianMixture(n_components=16, covariance_type="full", random_state=r)``,
-their ratio (ours / GaussianMixture; <= 1 meets the issue's target) and the
+their ratio (ours / GaussianMixture; <= 1 meets the issue's target; each run's
+ratio and the median ratio of process CPU seconds, less sensitive to the other
+jobs on the machine, beside it) and the
 held-out mean log-likelihood of each (nats per event, natural log; higher is
 better).  The machine is shared: compare the ratios measured in the same run.
 
@@ -30,6 +33,21 @@ read and analysed with the default recipe in a fresh subprocess: the stages of
 (``resource.getrusage``; the file's generation is not in it), the resident
 memory after the imports ("base MB") and the highest resident memory seen
 during each stage (sampled every 20 ms; "peak MB by stage").
+
+With ``--analyse-repeats R`` the file is written once and analysed in R fresh
+processes: the table holds the median of each stage and of the memory columns,
+with each run's read + total seconds and the load average at its start and end.
+
+Count reference (``--count-reference``, replaces the fit table; one run per
+cell): our fit searches the component count and adds skew, GaussianMixture(16)
+is one fit at a fixed count.  So on the same events (training and held-out as
+in the fit table) the table also times scikit-learn's usual way to choose the
+count -- GaussianMixture(full covariance) at K = 1, 2, 4, 8, 16, 32, 64, the
+lowest BIC on the training events kept ("GMM-BIC"; its time is the whole
+sweep's) -- and the smallest K of that grid whose held-out mean
+log-likelihood reaches ours ("GMM at equal accuracy"; the time of that one
+fit), if any.  Fits that stop at scikit-learn's max_iter (100) unconverged
+are listed.
 
 ``core`` is imported from PYTHONPATH when it is set (else from this checkout),
 so the same script measures an older checkout in the same run.
@@ -106,24 +124,29 @@ def fit_rows(sizes, channels, repeats, log=print):
         for n in sizes:
             X = panel(2 * n, d, seed=n + d)
             Xtr, Xte = X[:n], X[n:]
-            ours_t, ref_t, ours_ll, ref_ll, info = [], [], [], [], []
+            ours_t, ref_t, ours_ll, ref_ll, info, ours_cpu, ref_cpu = [], [], [], [], [], [], []
             for r in range(repeats):
-                t = time.perf_counter()
+                t, c = time.perf_counter(), time.process_time()
                 m = AdditiveTreeDensity(random_state=r).fit(Xtr)
                 ours_t.append(time.perf_counter() - t)
+                ours_cpu.append(time.process_time() - c)
                 ours_ll.append(m.score(Xte))
                 k = m._gmm.n_components if getattr(m, "_gmm", None) is not None else 0
                 info.append(f"{m.base_} K={k} trees={m.n_trees_}")
-                t = time.perf_counter()
+                t, c = time.perf_counter(), time.process_time()
                 g = _gmm16(Xtr, r)
                 ref_t.append(time.perf_counter() - t)
+                ref_cpu.append(time.process_time() - c)
                 ref_ll.append(float(g.score(Xte)))
                 log(f"  n={n} d={d} run {r}: ours {ours_t[-1]:.1f} s ({info[-1]}) ll {ours_ll[-1]:.3f} | "
-                    f"GMM16 {ref_t[-1]:.1f} s ll {ref_ll[-1]:.3f}")
+                    f"GMM16 {ref_t[-1]:.1f} s ll {ref_ll[-1]:.3f} | CPU s ours {ours_cpu[-1]:.1f} GMM16 {ref_cpu[-1]:.1f} "
+                    f"(load {_load()})")
             ratio = float(np.median(np.array(ours_t) / np.array(ref_t)))
             rows.append(dict(n=n, d=d, ours_s=float(np.median(ours_t)), ref_s=float(np.median(ref_t)),
                              ratio=ratio, ours_ll=float(np.median(ours_ll)), ref_ll=float(np.median(ref_ll)),
-                             info=info[int(np.argsort(ours_t)[len(ours_t) // 2])]))
+                             info=info[int(np.argsort(ours_t)[len(ours_t) // 2])],
+                             cpu_ratio=float(np.median(np.array(ours_cpu) / np.array(ref_cpu))),
+                             ratios=[a / b for a, b in zip(ours_t, ref_t)]))
     return rows
 
 
@@ -176,30 +199,134 @@ def _analyse_child(path: str) -> dict:
             at += float(v)
     by_stage = {k: max([m for s, m in samples if lo <= s <= hi] or [float("nan")]) for k, lo, hi in bounds}
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # kB -> MB (Linux)
-    return {"n": ef.n_events, "d": ef.n_channels, "timing": timing, "peak_mb": peak, "base_mb": base,
+    gmm = getattr(a.model, "_gmm", None)
+    model = f"{a.model.base_} K={gmm.n_components if gmm is not None else 0} trees={a.model.n_trees_}"
+    return {"n": ef.n_events, "d": ef.n_channels, "timing": timing, "peak_mb": peak, "base_mb": base, "model": model,
             "stage_mb": by_stage, "dtype": str(ef.data.dtype)}
 
 
-def analyse_rows(channels, n, log=print):
+def _load() -> str:
+    """The 1-minute load average (Linux; '?' elsewhere): the machine is shared."""
+    try:
+        return f"{os.getloadavg()[0]:.1f}"
+    except OSError:
+        return "?"
+
+
+def _median_row(runs: list) -> dict:
+    """One row from repeated analyse() runs of one file: the median of each stage and of the peak."""
+    row = dict(runs[0])
+    row["timing"] = {k: float(np.median([r["timing"][k] for r in runs])) for k in runs[0]["timing"]}
+    for key in ("peak_mb", "base_mb"):
+        row[key] = float(np.median([r[key] for r in runs]))
+    row["stage_mb"] = {k: float(np.median([r["stage_mb"][k] for r in runs])) for k in runs[0]["stage_mb"]}
+    row["totals"] = [r["timing"].get("total", float("nan")) + r["timing"]["read"] for r in runs]
+    row["loads"] = [r["load"] for r in runs]
+    row["models"] = sorted({r.get("model", "?") for r in runs})
+    return row
+
+
+def analyse_rows(channels, n, repeats=1, log=print):
+    """analyse() of one generated file per channel count, ``repeats`` fresh processes each (medians)."""
     rows = []
     for d in channels:
+        runs = []
         with tempfile.TemporaryDirectory() as tmp:
             path = os.path.join(tmp, f"panel_{n}x{d}.fcs")
             subprocess.run([sys.executable, os.path.abspath(__file__), "--write", f"{n},{d},{path}"],
                            check=True, cwd=ROOT)
-            out = subprocess.run([sys.executable, os.path.abspath(__file__), "--child", path],
-                                 capture_output=True, text=True, cwd=ROOT)
-        if out.returncode != 0:
-            log(out.stderr[-2000:])
-            continue
-        row = json.loads(out.stdout.strip().splitlines()[-1])
-        log(f"  analyse {n} x {d}: {row}")
-        rows.append(row)
+            for r in range(repeats):
+                load = _load()
+                out = subprocess.run([sys.executable, os.path.abspath(__file__), "--child", path],
+                                     capture_output=True, text=True, cwd=ROOT)
+                if out.returncode != 0:
+                    log(out.stderr[-2000:])
+                    continue
+                run = json.loads(out.stdout.strip().splitlines()[-1])
+                run["load"] = f"{load}-{_load()}"
+                log(f"  analyse {n} x {d} run {r} (load {run['load']}): {run}")
+                runs.append(run)
+        if runs:
+            rows.append(_median_row(runs))
     return rows
 
 
+COUNT_GRID = (1, 2, 4, 8, 16, 32, 64)
+
+
+def count_rows(sizes, channels, seed=0, log=print):
+    """Ours against scikit-learn's usual count choice, on the fit table's events (one run per cell).
+
+    For each (n, d): ``AdditiveTreeDensity(random_state=seed)``; GaussianMixture(16);
+    GaussianMixture(full covariance, random_state=seed) at every K of ``COUNT_GRID`` fitted
+    on the training events, the one of lowest BIC (on the training events) kept
+    ("GMM-BIC": its time is the whole sweep's); and the smallest K of the grid whose
+    held-out mean log-likelihood reaches ours ("GMM at equal accuracy": the time of
+    that one fit), if any.  Held-out: the same n held-out events for every model."""
+    # imported here: only this mode needs scikit-learn, and core is found on the path set above
+    from sklearn.mixture import GaussianMixture
+
+    from core.density import AdditiveTreeDensity  # imported here: after ROOT is on sys.path
+    rows = []
+    for d in channels:
+        for n in sizes:
+            X = panel(2 * n, d, seed=n + d)
+            Xtr, Xte = X[:n], X[n:]
+            load0 = _load()
+            t = time.perf_counter()
+            m = AdditiveTreeDensity(random_state=seed).fit(Xtr)
+            ours_s = time.perf_counter() - t
+            ours_ll = float(m.score(Xte))
+            k = m._gmm.n_components if getattr(m, "_gmm", None) is not None else 0
+            log(f"  n={n} d={d}: ours {ours_s:.1f} s ({m.base_} K={k} trees={m.n_trees_}) ll {ours_ll:.3f} "
+                f"(load {load0}-{_load()})")
+            sweep = []
+            for K in COUNT_GRID:
+                t = time.perf_counter()
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore")
+                    g = GaussianMixture(n_components=K, covariance_type="full", random_state=seed).fit(Xtr)
+                sec = time.perf_counter() - t
+                sweep.append(dict(K=K, s=sec, bic=float(g.bic(Xtr)), ll=float(g.score(Xte)),
+                                  converged=bool(g.converged_), n_iter=int(g.n_iter_)))
+                log(f"    GMM K={K}: {sec:.1f} s, BIC {sweep[-1]['bic']:.0f}, held-out {sweep[-1]['ll']:.3f}, "
+                    f"{'converged' if g.converged_ else 'NOT converged'} in {g.n_iter_} iterations (load {_load()})")
+            best = min(sweep, key=lambda r: r["bic"])
+            g16 = next(r for r in sweep if r["K"] == REFERENCE_K)
+            equal = next((r for r in sweep if r["ll"] >= ours_ll), None)
+            rows.append(dict(n=n, d=d, ours_s=ours_s, ours_ll=ours_ll, ours_model=f"{m.base_} K={k} trees={m.n_trees_}",
+                             g16_s=g16["s"], g16_ll=g16["ll"], bic_s=sum(r["s"] for r in sweep), bic_K=best["K"],
+                             bic_ll=best["ll"], eq_K=equal["K"] if equal else None,
+                             eq_s=equal["s"] if equal else None, eq_ll=equal["ll"] if equal else None,
+                             best_ll=max(r["ll"] for r in sweep), best_K=max(sweep, key=lambda r: r["ll"])["K"],
+                             unconverged=[r["K"] for r in sweep if not r["converged"]],
+                             load=f"{load0}-{_load()}", sweep=sweep))
+    return rows
+
+
+def format_count(rows, markdown=False) -> str:
+    head = ["n", "d", "ours s", "ours held-out", "GMM(16) s", "GMM(16) held-out", "GMM-BIC s (sweep)",
+            "GMM-BIC K", "GMM-BIC held-out", "ours / GMM-BIC time", "GMM at equal accuracy: K", "its s",
+            "its held-out", "best GMM held-out (K)", "not converged K", "load"]
+    lines = []
+    if markdown:
+        lines += ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
+    else:
+        lines.append("  ".join(head))
+    for r in rows:
+        eq = r["eq_K"] is not None
+        vals = [f"{r['n']:,}", str(r["d"]), f"{r['ours_s']:.1f}", f"{r['ours_ll']:.3f}", f"{r['g16_s']:.1f}",
+                f"{r['g16_ll']:.3f}", f"{r['bic_s']:.1f}", str(r["bic_K"]), f"{r['bic_ll']:.3f}",
+                f"{r['ours_s'] / r['bic_s']:.2f}", str(r["eq_K"]) if eq else "none <= 64",
+                f"{r['eq_s']:.1f}" if eq else "-", f"{r['eq_ll']:.3f}" if eq else "-",
+                f"{r['best_ll']:.3f} ({r['best_K']})", ",".join(map(str, r["unconverged"])) or "-", r["load"]]
+        lines.append(("| " + " | ".join(vals) + " |") if markdown else "  ".join(vals))
+    return "\n".join(lines)
+
+
 def format_fit(rows, markdown=False) -> str:
-    head = ["n", "d", "ours s", "GMM(16) s", "ours / GMM(16)", "ours held-out", "GMM(16) held-out", "ours: model"]
+    head = ["n", "d", "ours s", "GMM(16) s", "ours / GMM(16)", "per-run ratios", "CPU s ratio", "ours held-out",
+            "GMM(16) held-out", "ours: model"]
     lines = []
     sep = " | " if markdown else "  "
     if markdown:
@@ -208,7 +335,7 @@ def format_fit(rows, markdown=False) -> str:
         lines.append(sep.join(head))
     for r in rows:
         vals = [f"{r['n']:,}", str(r["d"]), f"{r['ours_s']:.1f}", f"{r['ref_s']:.1f}", f"{r['ratio']:.2f}",
-                f"{r['ours_ll']:.3f}", f"{r['ref_ll']:.3f}", r["info"]]
+                ", ".join(f"{v:.2f}" for v in r["ratios"]), f"{r['cpu_ratio']:.2f}", f"{r['ours_ll']:.3f}", f"{r['ref_ll']:.3f}", r["info"]]
         lines.append(("| " + " | ".join(vals) + " |") if markdown else sep.join(vals))
     return "\n".join(lines)
 
@@ -219,7 +346,8 @@ def format_analyse(rows, markdown=False) -> str:
         for k in r["timing"]:
             if k not in stages:
                 stages.append(k)
-    head = ["events x channels"] + [f"{s} s" for s in stages] + ["peak MB", "base MB", "peak MB by stage"]
+    head = ["events x channels"] + [f"{s} s" for s in stages] + ["peak MB", "base MB", "peak MB by stage",
+                                                               "read + total s, each run", "load each run", "model"]
     lines = []
     if markdown:
         lines += ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
@@ -228,7 +356,8 @@ def format_analyse(rows, markdown=False) -> str:
     for r in rows:
         vals = [f"{r['n']:,} x {r['d']}"] + [f"{r['timing'].get(s, float('nan')):.1f}" for s in stages] \
             + [f"{r['peak_mb']:.0f}", f"{r.get('base_mb', float('nan')):.0f}",
-               ", ".join(f"{k} {v:.0f}" for k, v in r.get("stage_mb", {}).items())]
+               ", ".join(f"{k} {v:.0f}" for k, v in r.get("stage_mb", {}).items()),
+               ", ".join(f"{v:.1f}" for v in r.get("totals", [])), ", ".join(r.get("loads", [])), "; ".join(r.get("models", []))]
         lines.append(("| " + " | ".join(vals) + " |") if markdown else "  ".join(vals))
     return "\n".join(lines)
 
@@ -240,6 +369,10 @@ def main(argv=None):
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--analyse", default="", help="channel counts for analyse(), e.g. 12,30")
     ap.add_argument("--analyse-events", type=int, default=1_000_000)
+    ap.add_argument("--analyse-repeats", type=int, default=1, help="fresh analyse() processes per file (medians)")
+    ap.add_argument("--count-reference", action="store_true",
+                    help="instead of the fit table: ours, GMM(16), GMM-BIC over K in 1..64, GMM at equal accuracy")
+    ap.add_argument("--count-seed", type=int, default=0, help="random_state of every fit in --count-reference")
     ap.add_argument("--markdown", default="")
     ap.add_argument("--child", default="", help=argparse.SUPPRESS)
     ap.add_argument("--write", default="", help=argparse.SUPPRESS)
@@ -254,12 +387,16 @@ def main(argv=None):
     out = []
     sizes = [int(v) for v in a.sizes.split(",") if v]
     channels = [int(v) for v in a.channels.split(",") if v]
-    if sizes and channels:
+    if sizes and channels and a.count_reference:
+        rows = count_rows(sizes, channels, a.count_seed)
+        print(format_count(rows))
+        out.append(format_count(rows, markdown=True))
+    elif sizes and channels:
         rows = fit_rows(sizes, channels, a.repeats)
         print(format_fit(rows))
         out.append(format_fit(rows, markdown=True))
     if a.analyse:
-        rows = analyse_rows([int(v) for v in a.analyse.split(",")], a.analyse_events)
+        rows = analyse_rows([int(v) for v in a.analyse.split(",")], a.analyse_events, a.analyse_repeats)
         print(format_analyse(rows))
         out.append(format_analyse(rows, markdown=True))
     if a.markdown:
