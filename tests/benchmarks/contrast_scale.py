@@ -176,7 +176,7 @@ def format_rows(rows, markdown=False) -> str:
     sep = " | " if markdown else "  "
     lines = ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)] if markdown else [sep.join(head)]
     for r in rows:
-        vals = [f"{r['n']:,} x {r['d']}", "exact" if r.get("exact") else "large-file", str(r["threads"])] \
+        vals = [f"{r['n']:,} x {r['d']}", "exact" if r.get("exact") else "default", str(r["threads"])] \
             + [f"{r['timing'].get(s, 0.0):.1f}" for s in STAGES] \
             + [f"{r['peak_mb']:.0f}", str(r["enriched"]), f"{r['load'][0]:.1f}"]
         lines.append(("| " + " | ".join(vals) + " |") if markdown else sep.join(vals))
