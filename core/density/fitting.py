@@ -88,7 +88,7 @@ def heldout_split(n: int, fraction: float, rng):
 #: events per channel above (16 channels: 100,000; 24 and more: 200,000, i.e. the
 #: whole training share of a 200,000-event fit; EXPERIMENTS.md section 30).
 EM_CAP_BY_CHANNELS = "by_channels"
-EM_CAP_BASE = 50_000
+EM_CAP_BASE = MixtureSettings.max_em_events   # the former fixed cap
 EM_CAP_CHANNELS = 12
 EM_CAP_PER_CHANNEL = 12_500
 
@@ -128,9 +128,9 @@ def fit_with_base(p, X, base: str, progress) -> FittedDensity:
     chain = Chain(*logistic_map(X, bounds))
     va, tr = heldout_split(X.shape[0], p.validation_fraction, rng)
     if base in MIXTURE_BASES and (~chain.constant).any():
-        cap = getattr(p, "max_em_events", EM_CAP_BASE)
-        chain.mixture = fit_averaged(lambda r: fit_mixture_base(chain, base, X[tr], X[va], r, progress, int(p.n_trees), cap),
-                                     int(getattr(p, "mixture_fits", 1)), rng, X[va][:, ~chain.constant])
+        chain.mixture = fit_averaged(lambda r: fit_mixture_base(chain, base, X[tr], X[va], r, progress, int(p.n_trees),
+                                                                p.max_em_events),
+                                     int(p.mixture_fits), rng, X[va][:, ~chain.constant])
     U_va, ld_va = chain.base_forward(X[va])
     base_ll = float(ld_va.mean())
     stage, rows, U_probe = _probe_says_no_trees(p, chain, base, X[tr], U_va, ld_va, rng)
