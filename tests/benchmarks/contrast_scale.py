@@ -88,7 +88,6 @@ def _analyse_child(test_path: str, control_path: str, threads: int, exact: bool 
 
     import numba
 
-    import core.analysis_stages as stages
     import core.contrast as contrast
     from core.analysis import analyse
     from core.density import AdditiveTreeDensity
@@ -173,14 +172,11 @@ def run(n: int, d: int, threads: int, exact: bool = False, log=print) -> dict | 
 def format_rows(rows, markdown=False) -> str:
     head = ["events x channels", "search", "threads"] + [f"{s} s" for s in STAGES] \
         + ["peak MB", "enriched", "load (1 min)"]
-    sep = " | " if markdown else "  "
-    lines = ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)] if markdown else [sep.join(head)]
-    for r in rows:
-        vals = [f"{r['n']:,} x {r['d']}", "exact" if r.get("exact") else "default", str(r["threads"])] \
-            + [f"{r['timing'].get(s, 0.0):.1f}" for s in STAGES] \
-            + [f"{r['peak_mb']:.0f}", str(r["enriched"]), f"{r['load'][0]:.1f}"]
-        lines.append(("| " + " | ".join(vals) + " |") if markdown else sep.join(vals))
-    return "\n".join(lines)
+    from scale_benchmark import table_lines  # imported here, as raw_panel above: a sibling script (its folder is on sys.path)
+    cells = [[f"{r['n']:,} x {r['d']}", "exact" if r.get("exact") else "default", str(r["threads"])]
+             + [f"{r['timing'].get(s, 0.0):.1f}" for s in STAGES]
+             + [f"{r['peak_mb']:.0f}", str(r["enriched"]), f"{r['load'][0]:.1f}"] for r in rows]
+    return table_lines(head, cells, markdown)
 
 
 def main(argv=None):

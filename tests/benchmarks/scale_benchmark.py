@@ -304,40 +304,38 @@ def count_rows(sizes, channels, seed=0, log=print):
     return rows
 
 
+def table_lines(head, rows, markdown=False) -> str:
+    """Rows of cell strings under ``head``: markdown (with its rule line) or joined by two spaces."""
+    if markdown:
+        lines = ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
+        lines += ["| " + " | ".join(vals) + " |" for vals in rows]
+    else:
+        lines = ["  ".join(head)] + ["  ".join(vals) for vals in rows]
+    return "\n".join(lines)
+
+
 def format_count(rows, markdown=False) -> str:
     head = ["n", "d", "ours s", "ours held-out", "GMM(16) s", "GMM(16) held-out", "GMM-BIC s (sweep)",
             "GMM-BIC K", "GMM-BIC held-out", "ours / GMM-BIC time", "GMM at equal accuracy: K", "its s",
             "its held-out", "best GMM held-out (K)", "not converged K", "load"]
-    lines = []
-    if markdown:
-        lines += ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
-    else:
-        lines.append("  ".join(head))
+    cells = []
     for r in rows:
         eq = r["eq_K"] is not None
-        vals = [f"{r['n']:,}", str(r["d"]), f"{r['ours_s']:.1f}", f"{r['ours_ll']:.3f}", f"{r['g16_s']:.1f}",
+        cells.append([f"{r['n']:,}", str(r["d"]), f"{r['ours_s']:.1f}", f"{r['ours_ll']:.3f}", f"{r['g16_s']:.1f}",
                 f"{r['g16_ll']:.3f}", f"{r['bic_s']:.1f}", str(r["bic_K"]), f"{r['bic_ll']:.3f}",
                 f"{r['ours_s'] / r['bic_s']:.2f}", str(r["eq_K"]) if eq else "none <= 64",
                 f"{r['eq_s']:.1f}" if eq else "-", f"{r['eq_ll']:.3f}" if eq else "-",
-                f"{r['best_ll']:.3f} ({r['best_K']})", ",".join(map(str, r["unconverged"])) or "-", r["load"]]
-        lines.append(("| " + " | ".join(vals) + " |") if markdown else "  ".join(vals))
-    return "\n".join(lines)
+                f"{r['best_ll']:.3f} ({r['best_K']})", ",".join(map(str, r["unconverged"])) or "-", r["load"]])
+    return table_lines(head, cells, markdown)
 
 
 def format_fit(rows, markdown=False) -> str:
     head = ["n", "d", "ours s", "GMM(16) s", "ours / GMM(16)", "per-run ratios", "CPU s ratio", "ours held-out",
             "GMM(16) held-out", "ours: model"]
-    lines = []
-    sep = " | " if markdown else "  "
-    if markdown:
-        lines += ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
-    else:
-        lines.append(sep.join(head))
-    for r in rows:
-        vals = [f"{r['n']:,}", str(r["d"]), f"{r['ours_s']:.1f}", f"{r['ref_s']:.1f}", f"{r['ratio']:.2f}",
-                ", ".join(f"{v:.2f}" for v in r["ratios"]), f"{r['cpu_ratio']:.2f}", f"{r['ours_ll']:.3f}", f"{r['ref_ll']:.3f}", r["info"]]
-        lines.append(("| " + " | ".join(vals) + " |") if markdown else sep.join(vals))
-    return "\n".join(lines)
+    cells = [[f"{r['n']:,}", str(r["d"]), f"{r['ours_s']:.1f}", f"{r['ref_s']:.1f}", f"{r['ratio']:.2f}",
+              ", ".join(f"{v:.2f}" for v in r["ratios"]), f"{r['cpu_ratio']:.2f}", f"{r['ours_ll']:.3f}",
+              f"{r['ref_ll']:.3f}", r["info"]] for r in rows]
+    return table_lines(head, cells, markdown)
 
 
 def format_analyse(rows, markdown=False) -> str:
@@ -348,18 +346,14 @@ def format_analyse(rows, markdown=False) -> str:
                 stages.append(k)
     head = ["events x channels"] + [f"{s} s" for s in stages] + ["peak MB", "base MB", "peak MB by stage",
                                                                "read + total s, each run", "load each run", "model"]
-    lines = []
-    if markdown:
-        lines += ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
-    else:
-        lines.append("  ".join(head))
+    cells = []
     for r in rows:
-        vals = [f"{r['n']:,} x {r['d']}"] + [f"{r['timing'].get(s, float('nan')):.1f}" for s in stages] \
+        cells.append([f"{r['n']:,} x {r['d']}"] + [f"{r['timing'].get(s, float('nan')):.1f}" for s in stages] \
             + [f"{r['peak_mb']:.0f}", f"{r.get('base_mb', float('nan')):.0f}",
                ", ".join(f"{k} {v:.0f}" for k, v in r.get("stage_mb", {}).items()),
-               ", ".join(f"{v:.1f}" for v in r.get("totals", [])), ", ".join(r.get("loads", [])), "; ".join(r.get("models", []))]
-        lines.append(("| " + " | ".join(vals) + " |") if markdown else "  ".join(vals))
-    return "\n".join(lines)
+               ", ".join(f"{v:.1f}" for v in r.get("totals", [])), ", ".join(r.get("loads", [])),
+               "; ".join(r.get("models", []))])
+    return table_lines(head, cells, markdown)
 
 
 def main(argv=None):
