@@ -60,6 +60,7 @@ sys.path.insert(0, os.path.dirname(os.path.dirname(HERE)))
 
 from core.contrast import conformal_pvalues  # noqa: E402
 from core.fdr import bh_qvalues  # noqa: E402
+from contrast_benchmark import markdown, table  # noqa: E402  (the sibling script's tables)
 
 D = 6
 #: (name, control events, test events, new events)
@@ -176,17 +177,6 @@ def observed_rows(results, observed):
 
 
 OBS_HEADER = ["ours", "oracle case", "false / enriched", "precision", "share of oracle draws (perfect ranking, BH) with >= as many false"]
-
-
-def table(header, rows):
-    w = [max(len(str(h)), *(len(str(r[i])) for r in rows)) for i, h in enumerate(header)]
-    line = "  ".join(str(h).rjust(x) for h, x in zip(header, w))
-    return "\n".join([line, "-" * len(line)] + ["  ".join(str(v).rjust(x) for v, x in zip(r, w)) for r in rows])
-
-
-def markdown(header, rows):
-    return "\n".join(["| " + " | ".join(map(str, header)) + " |", "|" + "---|" * len(header)]
-                     + ["| " + " | ".join(map(str, r)) + " |" for r in rows])
 
 
 def main(argv=None):

@@ -58,21 +58,10 @@ from core.fcs import read_fcs  # noqa: E402
 from core.populations import assign_populations, find_populations, population_changes  # noqa: E402
 from core.recipe import default_recipe  # noqa: E402
 from core.scenario import RARE_POPULATION  # noqa: E402
+from contrast_benchmark import markdown, table  # noqa: E402  (the sibling script's tables)
 
 ACTIVATED = "T CD8 activated"
 IGNORED = ("debris", "aggregates")
-
-
-def table(header, rows):
-    widths = [max(len(str(h)), *(len(str(r[i])) for r in rows)) for i, h in enumerate(header)]
-    line = "  ".join(str(h).rjust(w) for h, w in zip(header, widths))
-    return "\n".join([line, "-" * len(line)] + ["  ".join(str(v).rjust(w) for v, w in zip(r, widths))
-                                                for r in rows])
-
-
-def markdown(header, rows):
-    out = ["| " + " | ".join(map(str, header)) + " |", "|" + "---|" * len(header)]
-    return "\n".join(out + ["| " + " | ".join(map(str, r)) + " |" for r in rows])
 
 
 def best_match(found, truth_mask):
