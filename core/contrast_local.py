@@ -218,6 +218,18 @@ def _ranks(ref_sorted: np.ndarray, s: np.ndarray) -> np.ndarray:
     return ref_sorted.size - np.searchsorted(ref_sorted, s, side="left")
 
 
+def _at_most(k1, v1, k2, v2, t1, t2, R1, R2) -> np.ndarray:
+    """Which reference events, of ranks ``k1``, ``k2`` among the reference and scores ``v1``,
+    ``v2`` (m,), have a statistic at most a test event's among the n + 1 (the test event
+    scoring ``t1``, ``t2`` with ranks ``R1``, ``R2`` there; see :func:`min_rank_pvalues`):
+    bool (m,).  A reference event's rank gains 1 where the test event scores at least as high."""
+    q1 = k1 + (v1 <= t1)
+    q2 = k2 + (v2 <= t2)
+    lo, hi = np.minimum(q1, q2), np.maximum(q1, q2)
+    R = min(R1, R2)
+    return (lo < R) | ((lo == R) & (hi <= max(R1, R2)))
+
+
 def min_rank_pvalues(s1: np.ndarray, ref1: np.ndarray, s2: np.ndarray, ref2: np.ndarray,
                      exact_top: int = EXACT_TOP) -> np.ndarray:
     """Conformal p-value of each test event under two scores at once (NaN stays NaN).
@@ -272,10 +284,7 @@ def min_rank_pvalues(s1: np.ndarray, ref1: np.ndarray, s2: np.ndarray, ref2: np.
         v1, v2, k1, k2 = r1v[cand], r2v[cand], c1[cand], c2[cand]
         for t in top:
             m = np.searchsorted(cmin, R[t], side="right")  # only these can reach a smaller rank <= R
-            q1 = k1[:m] + (v1[:m] <= T1[t])
-            q2 = k2[:m] + (v2[:m] <= T2[t])
-            lo_r, hi_r = np.minimum(q1, q2), np.maximum(q1, q2)
-            count[t] = np.sum((lo_r < R[t]) | ((lo_r == R[t]) & (hi_r <= max(R1[t], R2[t]))))
+            count[t] = np.sum(_at_most(k1[:m], v1[:m], k2[:m], v2[:m], T1[t], T2[t], R1[t], R2[t]))
     p[ok] = (1.0 + count) / (n + 1.0)
     return p
 
@@ -288,10 +297,6 @@ def as_extreme(s1: float, ref1: np.ndarray, s2: float, ref2: np.ndarray) -> np.n
     ok = np.isfinite(r1v) & np.isfinite(r2v)
     a1, a2 = np.sort(r1v[ok]), np.sort(r2v[ok])
     R1, R2 = 1 + _ranks(a1, np.array([s1]))[0], 1 + _ranks(a2, np.array([s2]))[0]
-    q1 = _ranks(a1, r1v[ok]) + (r1v[ok] <= s1)
-    q2 = _ranks(a2, r2v[ok]) + (r2v[ok] <= s2)
-    lo, hi = np.minimum(q1, q2), np.maximum(q1, q2)
-    R = min(R1, R2)
     out = np.zeros(r1v.shape, dtype=bool)
-    out[ok] = (lo < R) | ((lo == R) & (hi <= max(R1, R2)))
+    out[ok] = _at_most(_ranks(a1, r1v[ok]), r1v[ok], _ranks(a2, r2v[ok]), r2v[ok], s1, s2, R1, R2)
     return out

@@ -50,6 +50,11 @@ def test_min_rank_pvalue_is_the_rank_definition():
     np.testing.assert_allclose(bulk, brute_min_rank(s1, ref1, s2, ref2, tie_break=False), rtol=0, atol=1e-15)
     assert np.all(bulk >= exact - 1e-15)
     assert np.isnan(min_rank_pvalues(np.array([np.nan]), ref1, np.array([1.0]), ref2)).all()
+    # the reference events as_extreme names are the ones each exact p counts
+    from core.contrast_local import as_extreme
+
+    counted = np.array([(1 + as_extreme(a, ref1, b, ref2).sum()) / (ref1.size + 1) for a, b in zip(s1, s2)])
+    np.testing.assert_allclose(counted, exact, rtol=0, atol=1e-15)
 
 
 def test_dominance_counts_by_brute_force():
