@@ -22,11 +22,14 @@ from PySide6.QtGui import QColor
 from PySide6.QtWidgets import (QAbstractItemView, QHBoxLayout, QHeaderView, QLabel, QPushButton,
                                QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget)
 
-from core.populations import check_settings, reading_order
+from core.populations import CHANGE_RATE, DEFAULT_SETTINGS, check_settings, reading_order
 from desktop import style
 
 #: Rows of rare populations get this background (a pale tint of the rare colour).
 RARE_TINT = "#ffe3da"
+
+#: The default fold a grown / shrunk label needs (core.populations DEFAULT_SETTINGS["change_fold"]).
+CHANGE_FOLD = DEFAULT_SETTINGS["change_fold"]
 
 
 def _pct(share: float) -> str:
@@ -99,8 +102,9 @@ class PopulationsPanel(QWidget):
         lay.addWidget(self.changes, 2)
         self.change_note = QLabel("Populations found on the control, counted in both tubes; fold = share here / "
                                   "share in the control; q: Benjamini-Hochberg over the populations "
-                                  "(Fisher's exact test); grown or shrunk: q at most 5 % and a fold beyond "
-                                  "the recipe's change fold (default 1.5, or 1/1.5 for shrunk). Largest changes first. "
+                                  "(Fisher's exact test); grown or shrunk: q at most "
+                                  f"{100 * CHANGE_RATE:g} % and a fold beyond the recipe's change fold (default "
+                                  f"{CHANGE_FOLD:g}, or 1/{CHANGE_FOLD:g} for shrunk). Largest changes first. "
                                   "Research use only.")
         self.change_note.setObjectName("Note")
         self.change_note.setWordWrap(True)
