@@ -11,6 +11,7 @@ import pytest
 from sklearn.mixture import GaussianMixture
 
 from core.density import fitting
+from core.density.mixture_fit import MixtureSettings, fit_mixture
 from core.density.model import AdditiveTreeDensity
 from core.errors import ParameterError
 from core.recipe import Recipe
@@ -60,3 +61,51 @@ def test_the_cap_limits_the_events_em_sees():
     assert small_ref < full_ref
     assert default.score(T) > full_ref - 0.02
     assert capped.score(T) < default.score(T)
+
+
+def test_refit_rule_caps():
+    # the count search keeps the former cap; the skewed refit takes the by-channels cap
+    assert fitting.em_event_caps(50_000, 30) == (50_000, 50_000)
+    assert fitting.em_event_caps("by_channels", 16) == (100_000, 100_000)
+    assert fitting.em_event_caps("refit_by_channels", 12) == (50_000, 50_000)
+    assert fitting.em_event_caps("refit_by_channels", 16) == (50_000, 100_000)
+    assert fitting.em_event_caps("refit_by_channels", 24) == (50_000, 200_000)
+
+
+def _skewed_events(n, seed):
+    """Three correlated clusters in 3 channels (n, 3), each channel sinh-arcsinh skewed."""
+    rng = np.random.default_rng(seed)
+    centres = np.array([[0.0, 0.0, 0.0], [5.0, 1.0, -3.0], [-4.0, 4.0, 3.0]])
+    Z = np.sinh(np.arcsinh(rng.normal(size=(n, 3))) + 0.8)
+    A = np.array([[1.0, 0.5, 0.0], [0.0, 0.8, 0.3], [0.0, 0.0, 0.6]])
+    return centres[rng.integers(3, size=n)] + Z @ A
+
+
+def test_refit_on_more_events_than_the_search():
+    X, V, T = _skewed_events(8000, 1), _skewed_events(2000, 2), _skewed_events(20000, 3)
+    loc, scale = X.mean(axis=0), X.std(axis=0)
+
+    def fit(cap, refit):
+        s = MixtureSettings(random_state=0, max_em_events=cap, final_em_events=refit, components=(1, 2, 4, 8))
+        return fit_mixture(X, loc, scale, s, validation=V).logpdf(T).mean()
+
+    capped, refit, full = fit(1000, 0), fit(1000, 8000), fit(8000, 0)
+    # the skewed refit on all 8,000 events recovers (within 0.01 nats) what EM on all of
+    # them gives, and beats the search's 1,000 events
+    assert refit > capped + 0.02
+    assert abs(refit - full) < 0.01
+    # reference: scikit-learn's GaussianMixture with the same largest count on all events
+    # (skewed clusters: the skewed refit must be ahead of it)
+    assert refit > GaussianMixture(8, random_state=0).fit(X).score(T)
+
+
+def test_refit_rule_is_the_former_cap_up_to_12_channels(monkeypatch):
+    # a base cap below the events, so that a refit on more events would show
+    monkeypatch.setattr(fitting, "EM_CAP_BASE", 1000)
+    X, T = _events(2500, 1), _events(1000, 2)
+    kw = dict(n_trees=0, random_state=0)
+    capped = AdditiveTreeDensity(max_em_events=1000, **kw).fit(X)
+    rule = AdditiveTreeDensity(max_em_events="refit_by_channels", **kw).fit(X)
+    np.testing.assert_array_equal(capped.score_samples(T), rule.score_samples(T))
+    wider = AdditiveTreeDensity(max_em_events=2000, **kw).fit(X)
+    assert not np.array_equal(capped.score_samples(T), wider.score_samples(T))

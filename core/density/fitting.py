@@ -93,6 +93,25 @@ EM_CAP_CHANNELS = 12
 EM_CAP_PER_CHANNEL = 12_500
 
 
+#: ``max_em_events="refit_by_channels"``: the count search's EM on ``EM_CAP_BASE``
+#: events (the expensive part), the skewed refit of the chosen count(s) on the
+#: by-channels cap (EXPERIMENTS.md section 32).
+EM_CAP_REFIT = "refit_by_channels"
+#: The settings ``max_em_events`` takes besides a whole number.
+EM_CAP_RULES = (EM_CAP_BY_CHANNELS, EM_CAP_REFIT)
+
+
+def em_event_caps(setting, channels: int) -> tuple[int, int]:
+    """(count search's cap, skewed refit's cap), events the mixture EM runs on,
+    for ``channels`` the channels the mixture fits: :func:`em_event_cap` for
+    both, except ``EM_CAP_REFIT``: ``EM_CAP_BASE`` for the search and the
+    by-channels cap for the refit."""
+    if setting == EM_CAP_REFIT:
+        return EM_CAP_BASE, em_event_cap(EM_CAP_BY_CHANNELS, channels)
+    cap = em_event_cap(setting, channels)
+    return cap, cap
+
+
 def em_event_cap(setting, channels: int) -> int:
     """Most training events the mixture EM runs on: ``setting`` itself when a
     number, else (``EM_CAP_BY_CHANNELS``) ``EM_CAP_BASE`` + ``EM_CAP_PER_CHANNEL`` x
@@ -110,10 +129,11 @@ def fit_mixture_base(chain: Chain, base: str, X_tr, X_va, rng, progress, n_trees
     EXPERIMENTS.md section 30); the EM on at most :func:`em_event_cap`
     (``max_em_events``) training events."""
     free = ~chain.constant
+    search_cap, refit_cap = em_event_caps(max_em_events, int(free.sum()))
     settings = MixtureSettings(random_state=int(rng.integers(2 ** 31)), skew=base == "skewed",
                                flat_background=base == "skewed", components=PRIOR_COMPONENTS,
-                               corr_prior=CORR_PRIOR, max_em_events=em_event_cap(max_em_events, int(free.sum())),
-                               blend_race=True)
+                               corr_prior=CORR_PRIOR, max_em_events=search_cap,
+                               final_em_events=refit_cap, blend_race=True)
     return fit_mixture(X_tr[:, free], chain.loc[free], chain.scale[free], settings,
                        validation=X_va[:, free],
                        progress=lambda step, total, info: keep_going(progress, 0, n_trees, info))

@@ -49,7 +49,10 @@ class MixtureSettings:
     Gaussian and the skewed EM (:mod:`core.density.correlation_prior`); 0: none;
     blend_race: when two skewed fits race (from ``SPLIT_SPLIT_FROM`` components
     on), the candidate is their blend with the held-out share's weight
-    (:func:`core.density.mixture_average.blend_pair`) when it scores better."""
+    (:func:`core.density.mixture_average.blend_pair`) when it scores better;
+    final_em_events: when larger than max_em_events, the count search runs on
+    max_em_events events and the skewed refit of the chosen count(s) on up to
+    this many (EXPERIMENTS.md section 32); 0: max_em_events for both."""
     components: tuple = DEFAULT_COMPONENTS
     random_state: int | None = None
     max_em_events: int = 50_000
@@ -61,6 +64,7 @@ class MixtureSettings:
     flat_background: bool = False
     corr_prior: float = 0.0
     blend_race: bool = False
+    final_em_events: int = 0
 
 
 def clearly_better(new, old, min_gain, strict):
@@ -148,14 +152,17 @@ def fit_mixture(X, loc, scale, settings: MixtureSettings | None = None, validati
     """
     s = settings or MixtureSettings()
     rng = np.random.default_rng(s.random_state)
-    X, Xva = _em_sample(X, validation, s.max_em_events, rng)
+    X, Xva = _em_sample(X, validation, max(s.max_em_events, s.final_em_events), rng)
+    X_final = X
+    if s.final_em_events > s.max_em_events:  # the search on a subsample, the skewed refit on all
+        X, Xva = _em_sample(X, Xva, s.max_em_events, rng)
     loc = np.asarray(loc, np.float64)
     scale = np.asarray(scale, np.float64)
     stop = _Stop(progress)
     reg = _regularisation(X, scale)
     best, best_scores, runner_up = _search_count(cls, X, Xva, loc, scale, reg, s, rng, stop)
     if s.skew and not stop.stopped and best.n_components:
-        best = _skewed_candidate(X, Xva, best, best_scores, runner_up, reg, s, stop)
+        best = _skewed_candidate(X_final, Xva, best, best_scores, runner_up, reg, s, stop)
     best.cancelled = stop.stopped
     return best
 

@@ -77,7 +77,7 @@ from .boosting import EARLY_TREES, LOOKAHEAD_PAIR_BUDGET, MAP_COST_RATIO  # noqa
 from .checks import (ATOM_SHARE, FAR_SCALES, LOG_DENSITY_FLOOR, MAX_ABS_VALUE, MAX_SAMPLE,  # noqa: F401
                      MIN_EVENTS, MIN_RELATIVE_SPREAD, check_matrix, check_value_range, chunk, largest_atom_share)
 from .estimator import Settings, fitted
-from .fitting import EM_CAP_BASE, EM_CAP_BY_CHANNELS, FittedDensity, fit_density
+from .fitting import EM_CAP_BASE, EM_CAP_RULES, FittedDensity, fit_density
 from .marginals import compose_1d  # noqa: F401  (its former home)
 from .kernels.probes import probe_factors, skew_probe_logpdf
 from .mixture_base import _Z_MAX, BASE_CHOICES
@@ -308,9 +308,10 @@ class AdditiveTreeDensity(Settings):
             raise ValueError("n_trees must be >= 0, marginal_trees >= 0 (or -1: automatic) and patience >= 1")
         if not 1 <= int(self.mixture_fits) <= 16:
             raise ValueError("mixture_fits must be between 1 and 16")
-        if self.max_em_events != EM_CAP_BY_CHANNELS and (isinstance(self.max_em_events, (bool, str))
-                                                         or int(self.max_em_events) < 1000):
-            raise ValueError(f"max_em_events must be a whole number >= 1000 or {EM_CAP_BY_CHANNELS!r}")
+        if self.max_em_events not in EM_CAP_RULES and (isinstance(self.max_em_events, (bool, str))
+                                                       or int(self.max_em_events) < 1000):
+            raise ValueError("max_em_events must be a whole number >= 1000 or one of "
+                             + ", ".join(repr(r) for r in EM_CAP_RULES))
 
     _validate_params = validate_params  # its former name
 
