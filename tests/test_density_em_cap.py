@@ -1,6 +1,7 @@
 """The mixture EM's event cap (``AdditiveTreeDensity(max_em_events=...)``,
 :func:`core.density.fitting.em_event_cap`): the default keeps the former fixed
-cap, the by-channels rule grows it above 12 channels, and a capped fit's EM
+cap up to 12 channels and above refits the chosen count(s) on the by-channels
+cap (the count search keeps 50,000), the by-channels rule grows it above 12 channels, and a capped fit's EM
 sees only a subsample (checked against scikit-learn's GaussianMixture fitted to
 the same events: more events to EM, a held-out value at least as close)."""
 
@@ -65,11 +66,11 @@ def test_the_cap_limits_the_events_em_sees():
 
 def test_refit_rule_caps():
     # the count search keeps the former cap; the skewed refit takes the by-channels cap
-    assert fitting.em_event_caps(50_000, 30) == (50_000, 50_000)
-    assert fitting.em_event_caps("by_channels", 16) == (100_000, 100_000)
-    assert fitting.em_event_caps("refit_by_channels", 12) == (50_000, 50_000)
-    assert fitting.em_event_caps("refit_by_channels", 16) == (50_000, 100_000)
-    assert fitting.em_event_caps("refit_by_channels", 24) == (50_000, 200_000)
+    assert fitting.em_event_caps(50_000, 30) == (50_000, 50_000, 0)
+    assert fitting.em_event_caps("by_channels", 16) == (100_000, 100_000, 0)
+    assert fitting.em_event_caps("refit_by_channels", 12) == (50_000, 50_000, 1250)
+    assert fitting.em_event_caps("refit_by_channels", 16) == (50_000, 100_000, 1250)
+    assert fitting.em_event_caps("refit_by_channels", 24) == (50_000, 200_000, 1250)
 
 
 def _skewed_events(n, seed):
@@ -85,11 +86,16 @@ def test_refit_on_more_events_than_the_search():
     X, V, T = _skewed_events(8000, 1), _skewed_events(2000, 2), _skewed_events(20000, 3)
     loc, scale = X.mean(axis=0), X.std(axis=0)
 
-    def fit(cap, refit):
-        s = MixtureSettings(random_state=0, max_em_events=cap, final_em_events=refit, components=(1, 2, 4, 8))
-        return fit_mixture(X, loc, scale, s, validation=V).logpdf(T).mean()
+    def fit(cap, refit, per_component=0):
+        s = MixtureSettings(random_state=0, max_em_events=cap, final_em_events=refit, components=(1, 2, 4, 8),
+                            final_per_component=per_component)
+        m = fit_mixture(X, loc, scale, s, validation=V)
+        return m.logpdf(T).mean(), m.n_components
 
-    capped, refit, full = fit(1000, 0), fit(1000, 8000), fit(8000, 0)
+    (capped, k), (refit, _), (full, _) = fit(1000, 0), fit(1000, 8000), fit(8000, 0)
+    # per component of the chosen count: no more events than the search's -> the capped fit
+    assert fit(1000, 8000, per_component=1000 // k)[0] == capped
+    assert fit(1000, 8000, per_component=8000 // k)[0] == refit
     # the skewed refit on all 8,000 events recovers (within 0.01 nats) what EM on all of
     # them gives, and beats the search's 1,000 events
     assert refit > capped + 0.02
@@ -105,7 +111,8 @@ def test_refit_rule_is_the_former_cap_up_to_12_channels(monkeypatch):
     X, T = _events(2500, 1), _events(1000, 2)
     kw = dict(n_trees=0, random_state=0)
     capped = AdditiveTreeDensity(max_em_events=1000, **kw).fit(X)
-    rule = AdditiveTreeDensity(max_em_events="refit_by_channels", **kw).fit(X)
+    rule = AdditiveTreeDensity(**kw).fit(X)   # the default: the refit rule
+    assert rule.max_em_events == "refit_by_channels"
     np.testing.assert_array_equal(capped.score_samples(T), rule.score_samples(T))
     wider = AdditiveTreeDensity(max_em_events=2000, **kw).fit(X)
     assert not np.array_equal(capped.score_samples(T), wider.score_samples(T))

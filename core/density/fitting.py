@@ -95,21 +95,28 @@ EM_CAP_PER_CHANNEL = 12_500
 
 #: ``max_em_events="refit_by_channels"``: the count search's EM on ``EM_CAP_BASE``
 #: events (the expensive part), the skewed refit of the chosen count(s) on the
-#: by-channels cap (EXPERIMENTS.md section 32).
+#: by-channels cap but at most ``EM_REFIT_PER_COMPONENT`` events per component of
+#: the chosen Gaussian count (128 components: 160,000 events, the whole training
+#: share of a 200,000-event fit; 32: none beyond the search's; EXPERIMENTS.md section 32).
 EM_CAP_REFIT = "refit_by_channels"
+EM_REFIT_PER_COMPONENT = 1250
 #: The settings ``max_em_events`` takes besides a whole number.
 EM_CAP_RULES = (EM_CAP_BY_CHANNELS, EM_CAP_REFIT)
+#: The estimator's default ``max_em_events``: up to 12 fitted channels the former
+#: fixed cap; above, the refit on more events (EXPERIMENTS.md section 32).
+EM_CAP_DEFAULT = EM_CAP_REFIT
 
 
-def em_event_caps(setting, channels: int) -> tuple[int, int]:
-    """(count search's cap, skewed refit's cap), events the mixture EM runs on,
-    for ``channels`` the channels the mixture fits: :func:`em_event_cap` for
-    both, except ``EM_CAP_REFIT``: ``EM_CAP_BASE`` for the search and the
-    by-channels cap for the refit."""
+def em_event_caps(setting, channels: int) -> tuple[int, int, int]:
+    """(count search's cap, skewed refit's cap, refit's events per component or 0),
+    events the mixture EM runs on, for ``channels`` the channels the mixture fits:
+    :func:`em_event_cap` for both caps and no per-component limit, except
+    ``EM_CAP_REFIT``: ``EM_CAP_BASE`` for the search, the by-channels cap and
+    ``EM_REFIT_PER_COMPONENT`` for the refit."""
     if setting == EM_CAP_REFIT:
-        return EM_CAP_BASE, em_event_cap(EM_CAP_BY_CHANNELS, channels)
+        return EM_CAP_BASE, em_event_cap(EM_CAP_BY_CHANNELS, channels), EM_REFIT_PER_COMPONENT
     cap = em_event_cap(setting, channels)
-    return cap, cap
+    return cap, cap, 0
 
 
 def em_event_cap(setting, channels: int) -> int:
@@ -129,11 +136,12 @@ def fit_mixture_base(chain: Chain, base: str, X_tr, X_va, rng, progress, n_trees
     EXPERIMENTS.md section 30); the EM on at most :func:`em_event_cap`
     (``max_em_events``) training events."""
     free = ~chain.constant
-    search_cap, refit_cap = em_event_caps(max_em_events, int(free.sum()))
+    search_cap, refit_cap, per_component = em_event_caps(max_em_events, int(free.sum()))
     settings = MixtureSettings(random_state=int(rng.integers(2 ** 31)), skew=base == "skewed",
                                flat_background=base == "skewed", components=PRIOR_COMPONENTS,
                                corr_prior=CORR_PRIOR, max_em_events=search_cap,
-                               final_em_events=refit_cap, blend_race=True)
+                               final_em_events=refit_cap, final_per_component=per_component,
+                               blend_race=True)
     return fit_mixture(X_tr[:, free], chain.loc[free], chain.scale[free], settings,
                        validation=X_va[:, free],
                        progress=lambda step, total, info: keep_going(progress, 0, n_trees, info))

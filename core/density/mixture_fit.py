@@ -52,7 +52,10 @@ class MixtureSettings:
     (:func:`core.density.mixture_average.blend_pair`) when it scores better;
     final_em_events: when larger than max_em_events, the count search runs on
     max_em_events events and the skewed refit of the chosen count(s) on up to
-    this many (EXPERIMENTS.md section 32); 0: max_em_events for both."""
+    this many (EXPERIMENTS.md section 32); 0: max_em_events for both;
+    final_per_component: with final_em_events, the refit's events are at most this
+    many per component of the chosen Gaussian count (never fewer than the
+    search's); 0: no such limit."""
     components: tuple = DEFAULT_COMPONENTS
     random_state: int | None = None
     max_em_events: int = 50_000
@@ -65,6 +68,7 @@ class MixtureSettings:
     corr_prior: float = 0.0
     blend_race: bool = False
     final_em_events: int = 0
+    final_per_component: int = 0
 
 
 def clearly_better(new, old, min_gain, strict):
@@ -162,9 +166,25 @@ def fit_mixture(X, loc, scale, settings: MixtureSettings | None = None, validati
     reg = _regularisation(X, scale)
     best, best_scores, runner_up = _search_count(cls, X, Xva, loc, scale, reg, s, rng, stop)
     if s.skew and not stop.stopped and best.n_components:
+        X_final = _refit_events(X_final, X, best.n_components, s, rng)
         best = _skewed_candidate(X_final, Xva, best, best_scores, runner_up, reg, s, stop)
     best.cancelled = stop.stopped
     return best
+
+
+def _refit_events(X_final, X, k, s, rng):
+    """The events (m, d) the skewed refit of a ``k``-component choice runs on: the
+    search's X when ``X_final`` is X, else a seeded subsample of ``X_final`` of at most
+    ``s.final_per_component`` x k events (all of them without that limit), and X
+    when that would be no more events than the search's."""
+    if X_final is X or not s.final_per_component:
+        return X_final
+    m = min(X_final.shape[0], int(s.final_per_component) * int(k))
+    if m <= X.shape[0]:
+        return X
+    if m < X_final.shape[0]:
+        X_final = X_final[np.sort(rng.choice(X_final.shape[0], m, replace=False))]
+    return X_final
 
 
 def _regularisation(X, scale):

@@ -77,7 +77,7 @@ from .boosting import EARLY_TREES, LOOKAHEAD_PAIR_BUDGET, MAP_COST_RATIO  # noqa
 from .checks import (ATOM_SHARE, FAR_SCALES, LOG_DENSITY_FLOOR, MAX_ABS_VALUE, MAX_SAMPLE,  # noqa: F401
                      MIN_EVENTS, MIN_RELATIVE_SPREAD, check_matrix, check_value_range, chunk, largest_atom_share)
 from .estimator import Settings, fitted
-from .fitting import EM_CAP_BASE, EM_CAP_RULES, FittedDensity, fit_density
+from .fitting import EM_CAP_DEFAULT, EM_CAP_RULES, FittedDensity, fit_density
 from .marginals import compose_1d  # noqa: F401  (its former home)
 from .kernels.probes import probe_factors, skew_probe_logpdf
 from .mixture_base import _Z_MAX, BASE_CHOICES
@@ -229,7 +229,7 @@ class AdditiveTreeDensity(Settings):
                  min_gain: float = 0.0, lookahead: int = 3, lookahead_bins: int = 16,
                  marginal_alpha: float = -1.0, tol: float = 0.0, base: str = "auto",
                  random_state: int | None = None, mixture_fits: int = 1,
-                 max_em_events: int | str = EM_CAP_BASE):
+                 max_em_events: int | str = EM_CAP_DEFAULT):
         self.n_trees = n_trees
         self.learning_rate = learning_rate
         self.max_depth = max_depth
