@@ -176,14 +176,21 @@ class AdditiveTreeDensity(Settings):
         0.238 / 0.413 nats per event, 3 fits to 0.228 / 0.376, for about that
         many times the mixture stage's time and the scoring time
         (EXPERIMENTS.md section 28).
-    max_em_events : int or "by_channels"
+    max_em_events : int, "refit_by_channels" or "by_channels"
         Most training events the mixture base's EM runs on (a seeded
-        subsample of the training share; the trees see all of it).  50,000
-        (default): the former fixed cap.  "by_channels": the cap grows with
-        the channels the mixture fits (:func:`core.density.fitting.em_event_cap`;
-        EXPERIMENTS.md section 30): with many channels the mixture's
-        estimation noise, not its family, is most of the gap to the truth, and
-        more events shrink it, at a cost in fit time.
+        subsample of the training share; the trees see all of it).  A number:
+        that fixed cap (50,000: the former default).  "refit_by_channels"
+        (default): 50,000 up to 12 fitted channels; above, the component-count
+        search still runs on 50,000 events and the skewed refit of the chosen
+        count(s) on up to 50,000 + 12,500 per channel above 12 events (16
+        channels: 100,000; 24 and more: the whole training share of a
+        200,000-event fit), at most 1,250 per component of the chosen count (32
+        components: no more than the search's).  "by_channels": that larger cap
+        for the search too.  With many channels the mixture's estimation noise,
+        not its family, is most of the gap to the truth, and more events shrink
+        it (:func:`core.density.fitting.em_event_caps`; EXPERIMENTS.md sections
+        30 and 32: on cyto-16d / 24d / 32d / 40d fitted on 200,000 events the
+        default's gap to the truth is 0.19 / 0.24 / 0.36 / 0.44 nats per event).
 
     Attributes (after fit)
     ----------------------

@@ -37,7 +37,11 @@ Meaning of the entries:
   before $PnE/$PnG decoding; float grids by half their step).
 * ``engine``: keyword arguments of the additive tree density; ``{}`` means the
   engine's defaults, with ``random_state`` 0 unless given (see
-  :meth:`Recipe.engine_arguments`).
+  :meth:`Recipe.engine_arguments`).  For example ``max_em_events``: most
+  events the mixture's EM runs on; default ``"refit_by_channels"`` (50,000 up
+  to 12 density channels, above that the chosen mixture refitted on more
+  events); ``50000`` pins the fixed cap of earlier versions (see
+  :class:`core.density.AdditiveTreeDensity`).
 * ``rare``: ``share`` is a fraction (0.005 = the lowest 0.5 % of events by
   density); ``mass`` is the probability mass of the highest-density region
   whose outside counts as rare (0.995 = 99.5 %).
