@@ -1,9 +1,10 @@
 """The mixture EM's event cap (``AdditiveTreeDensity(max_em_events=...)``,
-:func:`core.density.fitting.em_event_cap`): the default keeps the former fixed
-cap up to 12 channels and above refits the chosen count(s) on the by-channels
-cap (the count search keeps 50,000), the by-channels rule grows it above 12 channels, and a capped fit's EM
-sees only a subsample (checked against scikit-learn's GaussianMixture fitted to
-the same events: more events to EM, a held-out value at least as close)."""
+:func:`core.density.fitting.em_event_caps`): the default ("refit_by_channels")
+keeps the former fixed cap up to 12 channels and above refits the chosen
+count(s) on more events (the count search keeps 50,000); the by-channels rule
+grows the cap above 12 channels; a capped fit's EM sees only a subsample
+(checked against scikit-learn's GaussianMixture fitted to the same events: more
+events to EM, a held-out value at least as close)."""
 
 from __future__ import annotations
 
@@ -116,3 +117,8 @@ def test_refit_rule_is_the_former_cap_up_to_12_channels(monkeypatch):
     np.testing.assert_array_equal(capped.score_samples(T), rule.score_samples(T))
     wider = AdditiveTreeDensity(max_em_events=2000, **kw).fit(X)
     assert not np.array_equal(capped.score_samples(T), wider.score_samples(T))
+    # the same events counted as a wide panel (the rule's channel threshold lowered to 2):
+    # the chosen count is refitted on all 2,000 training events, so the model changes
+    monkeypatch.setattr(fitting, "EM_CAP_CHANNELS", 2)
+    wide = AdditiveTreeDensity(**kw).fit(X)
+    assert not np.array_equal(capped.score_samples(T), wide.score_samples(T))
