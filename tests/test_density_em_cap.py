@@ -69,9 +69,9 @@ def test_refit_rule_caps():
     # the count search keeps the former cap; the skewed refit takes the by-channels cap
     assert fitting.em_event_caps(50_000, 30) == (50_000, 50_000, 0)
     assert fitting.em_event_caps("by_channels", 16) == (100_000, 100_000, 0)
-    assert fitting.em_event_caps("refit_by_channels", 12) == (50_000, 50_000, 0)
-    assert fitting.em_event_caps("refit_by_channels", 13) == (50_000, 200_000, 1250)
-    assert fitting.em_event_caps("refit_by_channels", 40) == (50_000, 200_000, 1250)
+    assert fitting.em_event_caps("refit_by_channels", 12) == (50_000, 50_000, 1250)
+    assert fitting.em_event_caps("refit_by_channels", 16) == (50_000, 100_000, 1250)
+    assert fitting.em_event_caps("refit_by_channels", 24) == (50_000, 200_000, 1250)
 
 
 def _skewed_events(n, seed):

@@ -94,14 +94,12 @@ EM_CAP_PER_CHANNEL = 12_500
 
 
 #: ``max_em_events="refit_by_channels"``: the count search's EM on ``EM_CAP_BASE``
-#: events (the expensive part); above ``EM_CAP_CHANNELS`` fitted channels the skewed
-#: refit of the chosen count(s) on up to ``EM_REFIT_PER_COMPONENT`` events per
-#: component of the chosen Gaussian count, at most ``EM_REFIT_MAX`` (128 components:
-#: 160,000 events, the whole training share of a 200,000-event fit; 32: none beyond
-#: the search's; EXPERIMENTS.md section 32).
+#: events (the expensive part), the skewed refit of the chosen count(s) on the
+#: by-channels cap but at most ``EM_REFIT_PER_COMPONENT`` events per component of
+#: the chosen Gaussian count (128 components: 160,000 events, the whole training
+#: share of a 200,000-event fit; 32: none beyond the search's; EXPERIMENTS.md section 32).
 EM_CAP_REFIT = "refit_by_channels"
 EM_REFIT_PER_COMPONENT = 1250
-EM_REFIT_MAX = 200_000
 #: The settings ``max_em_events`` takes besides a whole number.
 EM_CAP_RULES = (EM_CAP_BY_CHANNELS, EM_CAP_REFIT)
 #: The estimator's default ``max_em_events``: up to 12 fitted channels the former
@@ -113,12 +111,10 @@ def em_event_caps(setting, channels: int) -> tuple[int, int, int]:
     """(count search's cap, skewed refit's cap, refit's events per component or 0),
     events the mixture EM runs on, for ``channels`` the channels the mixture fits:
     :func:`em_event_cap` for both caps and no per-component limit, except
-    ``EM_CAP_REFIT``: ``EM_CAP_BASE`` for the search and, above ``EM_CAP_CHANNELS``
-    channels, ``EM_REFIT_MAX`` and ``EM_REFIT_PER_COMPONENT`` for the refit."""
+    ``EM_CAP_REFIT``: ``EM_CAP_BASE`` for the search, the by-channels cap and
+    ``EM_REFIT_PER_COMPONENT`` for the refit."""
     if setting == EM_CAP_REFIT:
-        if int(channels) <= EM_CAP_CHANNELS:
-            return EM_CAP_BASE, EM_CAP_BASE, 0
-        return EM_CAP_BASE, EM_REFIT_MAX, EM_REFIT_PER_COMPONENT
+        return EM_CAP_BASE, em_event_cap(EM_CAP_BY_CHANNELS, channels), EM_REFIT_PER_COMPONENT
     cap = em_event_cap(setting, channels)
     return cap, cap, 0
 
