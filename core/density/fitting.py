@@ -133,8 +133,8 @@ def fit_mixture_base(chain: Chain, base: str, X_tr, X_va, rng, progress, n_trees
     """The mixture base on the channels that vary ("skewed": skewed components and
     a flat-top background), component count chosen on the held-out events, the
     two raced skewed fits blended when that scores better (``blend_race``;
-    EXPERIMENTS.md section 30); the EM on at most :func:`em_event_cap`
-    (``max_em_events``) training events."""
+    EXPERIMENTS.md section 30); the count search's EM and the skewed refit on at
+    most the events :func:`em_event_caps` gives for ``max_em_events`` (section 32)."""
     free = ~chain.constant
     search_cap, refit_cap, per_component = em_event_caps(max_em_events, int(free.sum()))
     settings = MixtureSettings(random_state=int(rng.integers(2 ** 31)), skew=base == "skewed",
