@@ -15,7 +15,7 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
-from .cleaning import REASON_KEPT, REASON_NON_FINITE, _as_events, _per_channel, clean_events
+from .cleaning import CODE_KEPT, CODE_NON_FINITE, _as_events, _per_channel, clean_events, non_finite_rows
 from .compensation import checked_detectors, compensate_columns
 from .errors import ChannelError, EventDataError
 from .grids import MAX_UNIQUE_FRACTION, jittered_column, plan_jitter
@@ -90,9 +90,9 @@ def prepare_file_events(event_file, idx: Sequence[int], S, transforms: Mapping, 
     # raw channels that feed the density: a compensated density channel mixes every detector
     mixes = S is not None and any(j in detectors for j in idx)
     feeders = sorted(set(idx) | (set(detectors) if mixes else set()))
-    reason, saturated, sat_cells, floor_cells, ceiling_cells = clean_events(
+    code, saturated, sat_cells, floor_cells, ceiling_cells = clean_events(
         raw, feeders, event_file.channel_ranges, drop_saturated=drop_saturated, drop_piles=drop_piles)
-    kept = reason == REASON_KEPT
+    kept = code == CODE_KEPT
     all_kept = bool(kept.all())
     decoding = getattr(event_file, "decoding", None)
     plans = {}
@@ -103,8 +103,8 @@ def prepare_file_events(event_file, idx: Sequence[int], S, transforms: Mapping, 
                                rows=kept_rows)
             if plan is not None:
                 plans[j] = plan
-    spread = set() if drop_piles else {j for j in feeders
-                                       if floor_cells[j][kept].any() or ceiling_cells[j][kept].any()}
+    spread = set() if drop_piles else {j for j in feeders if any(
+        j in cells and cells[j][kept].any() for cells in (floor_cells, ceiling_cells))}
     changed = set(plans) | spread
 
     def column(j: int) -> np.ndarray:
@@ -147,20 +147,17 @@ def prepare_file_events(event_file, idx: Sequence[int], S, transforms: Mapping, 
         col = compensated[:, detectors.index(j)] if (compensated is not None and j in detectors) else column(j)
         spec = transforms.get(names[j])
         matrix[:, c] = _forward(spec, col) if spec is not None else col
-    bad = ~np.isfinite(matrix).all(axis=1)
+    bad = non_finite_rows(matrix)   # in blocks: no full-size bool matrix
     if bad.any():
-        rows = np.flatnonzero(kept)[bad]
-        reason = reason.astype(object)
-        reason[rows] = REASON_NON_FINITE
-        reason = reason.astype(str)
-        kept = reason == REASON_KEPT
+        code[np.flatnonzero(kept)[bad]] = CODE_NON_FINITE
+        kept = code == CODE_KEPT
         matrix = matrix[~bad]
     steps = np.zeros(k)
     grids = [""] * k
     for j, plan in plans.items():
         steps[j], grids[j] = plan.step, plan.grid
-    finite_rows = reason != REASON_NON_FINITE
-    return PreparedEvents(matrix=matrix, kept=kept, reason=reason, steps=steps,
+    finite_rows = code != CODE_NON_FINITE
+    return PreparedEvents(matrix=matrix, kept=kept, reason_code=code, steps=steps,
                           saturated=saturated & finite_rows,
                           saturated_per_channel=_per_channel(sat_cells, k, finite_rows), grids=grids,
                           floor_per_channel=_per_channel(floor_cells, k),

@@ -372,7 +372,8 @@ def test_analysis_counts_reasons_for_the_app_and_exports():
     an = Analysis(path="x.fcs", channel_names=["A"], values=np.zeros((n, 1)), density_channels=["A"],
                   prepared=None, model=None, log_density=np.where(reason == "", -1.0, np.nan),
                   rarity=np.where(reason == "", 50.0, np.nan), rare=np.zeros(n, bool), rare_level=0.0,
-                  reason=reason, region_masks={}, heldout_loglik=0.0, timing={}, atoms={"A": 0.004})
+                  reason_code=reason, region_masks={}, heldout_loglik=0.0, timing={}, atoms={"A": 0.004})
+    assert an.reason_code.dtype == np.int8 and list(an.reason) == list(reason)   # texts in, codes held
     assert an.set_aside == {"saturated": 1, "ceiling pile": 1, "floor pile": 2, "non-finite": 1}
     text = an.cleaning_text()
     assert text.startswith("2 of 7 events kept") and "2 floor pile" in text and "1 ceiling pile" in text
