@@ -11,6 +11,8 @@ column, or one block of events, at a time).  Shapes are events x channels.
 
 from __future__ import annotations
 
+import ctypes
+import sys
 from typing import Mapping, Sequence
 
 import numpy as np
@@ -189,8 +191,14 @@ class ValuesAside:
         self.removed = values[self.removed_rows][:, self.value_cols]   # (n removed, copied)
 
     def restore(self, matrix: np.ndarray) -> np.ndarray:
-        """The values (n_events, n_channels) again, from ``matrix`` (PreparedEvents.matrix)."""
+        """The values (n_events, n_channels) again, from ``matrix`` (PreparedEvents.matrix).
+
+        The allocator's freed pages go back to the system first
+        (:func:`return_freed_memory`), so the new full-size array does not sit
+        beside the fit's and the populations' freed temporaries.
+        """
         n, k = self.shape
+        return_freed_memory()
         values = np.empty((n, k), order="F" if self.fortran else "C")
         values[:, self.other_cols] = self.other
         if not self.value_cols:
@@ -219,3 +227,34 @@ def _as_slice(cols: list):
     if cols and cols == list(range(cols[0], cols[0] + len(cols))):
         return slice(cols[0], cols[0] + len(cols))
     return cols
+
+
+def _malloc_trim():
+    """glibc's ``malloc_trim`` (None on other systems or C libraries)."""
+    if not sys.platform.startswith("linux"):
+        return None
+    try:
+        trim = ctypes.CDLL(None).malloc_trim
+    except (OSError, AttributeError):   # not glibc (e.g. musl has no malloc_trim)
+        return None
+    trim.argtypes, trim.restype = [ctypes.c_size_t], ctypes.c_int
+    return trim
+
+
+_TRIM = _malloc_trim()
+
+
+def return_freed_memory() -> bool:
+    """Hand the C allocator's freed memory back to the system; False where that is not possible.
+
+    numpy arrays up to tens of MB are carved from the allocator's heaps, and
+    numba's worker threads each keep their own; memory freed there stays
+    resident until the heap is trimmed (glibc ``malloc_trim(0)``, which returns
+    free pages of every heap).  At 1M events x 30 channels about 90 MB of the
+    fit's and the populations' temporaries are returned this way before the
+    values are rebuilt.  Takes well under a millisecond; changes no value.
+    """
+    if _TRIM is None:
+        return False
+    _TRIM(0)
+    return True
