@@ -81,8 +81,11 @@ def test_freed_heap_memory_goes_back_to_the_system():
         pytest.skip("the C library has no malloc_trim")
     blocks = [np.ones(8192) for _ in range(1600)]   # 1,600 x 64 KiB = 100 MiB, pages touched
     pin = np.ones(8192)
+    held = _resident_mb()
     del blocks
     before = _resident_mb()
+    if held - before > 50:
+        pytest.skip("this allocator returned the freed blocks by itself (e.g. a lowered mmap threshold)")
     assert return_freed_memory()
     after = _resident_mb()
     assert before - after > 50, (before, after)
