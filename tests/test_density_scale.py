@@ -15,6 +15,7 @@ from core.density import boosting as boosting_module
 from core.density import em as em_module
 from core.density import fitting as fitting_module
 from core.density import model as model_module
+from core.density.kernels import common as kernels_common
 from core.density.kernels import em as em_kernels
 from core.density.gaussian_base import GaussianMixtureBase
 
@@ -94,7 +95,7 @@ def test_pruning_bound_never_exceeds_the_mahalanobis_distance():
         A = rng.normal(size=(d, d)) * 0.4 + np.eye(d)
         covs.append(scales[:, None] * (A @ A.T) * scales[None, :])
     chol = np.linalg.cholesky(np.array(covs))
-    inv_sd, inv_top = em_kernels.correlation_bound(chol)
+    inv_sd, inv_top = kernels_common.correlation_bound(chol)
     np.testing.assert_allclose(inv_sd, 1.0 / np.sqrt(np.einsum("kjj->kj", np.array(covs))), rtol=1e-12)
     ratios = []
     for c in range(k):
@@ -124,7 +125,7 @@ def test_pruned_e_step_with_the_bound_matches_scipy_at_twenty_channels():
                                          for c in range(k)])
     ll_ref = special.logsumexp(L, axis=1)
     R = np.exp(L - ll_ref[:, None])
-    inv_sd, inv_top = em_kernels.correlation_bound(chol)
+    inv_sd, inv_top = kernels_common.correlation_bound(chol)
     e2 = np.einsum("nkd,kd->nk", (X[:, None, :] - means[None]) ** 2, inv_sd ** 2) * inv_top
     c = logw[1:] - log_det - d * 0.5 * np.log(2 * np.pi)
     assert np.mean(c[None, :] - 0.5 * e2 < ll_ref[:, None] - em_kernels.EM_PRUNE) > 0.5

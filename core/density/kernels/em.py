@@ -9,7 +9,7 @@ import math
 import numpy as np
 from numba import njit, prange
 
-from .common import _LOG_SQRT_2PI, parallel
+from .common import _LOG_SQRT_2PI, correlation_bound, parallel
 
 #: A component whose log weight x density falls this far below the best one
 #: seen for an event is left out of that event's E step: its responsibility
@@ -305,15 +305,3 @@ def _pass(X, bg, logw, means, chol, log_det, n_parts, hint, moments, rows=None):
     return float(ll.sum()), acc_n, acc_s, acc_m
 
 
-
-def correlation_bound(chol):
-    """For lower Cholesky factors chol (K, d, d) of covariances Sigma_k: (inv_sd
-    (K, d) the inverse standard deviations, inv_top (K,) a lower bound of
-    1 / lambda_max(C_k), C_k = S_k^-1 Sigma_k S_k^-1 the correlation matrix), so that
-    (x - m)^T Sigma_k^-1 (x - m) >= inv_top[k] |inv_sd[k] (x - m)|^2 for every x, m.
-    lambda_max(C_k) is the squared largest singular value of S_k^-1 L_k (LAPACK's
-    SVD), widened by 1e-9 relative so that rounding never makes the bound too high."""
-    sd = np.sqrt(np.einsum("kja,kja->kj", chol, chol))
-    inv_sd = 1.0 / sd
-    top = np.linalg.svd(chol * inv_sd[:, :, None], compute_uv=False)[:, 0]
-    return inv_sd, 1.0 / (top * top * (1.0 + 1e-9))
