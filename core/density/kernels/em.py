@@ -303,5 +303,3 @@ def _pass(X, bg, logw, means, chol, log_det, n_parts, hint, moments, rows=None):
         _em_stats_rows(0, n, X, bg, logw, means, chol, log_det, acc_n[0], acc_s[0], acc_m[0], ll[0], hint,
                        moments, rows, *bound)
     return float(ll.sum()), acc_n, acc_s, acc_m
-
-

@@ -352,7 +352,7 @@ class ComponentsOuter(NamedTuple):
     (bound_slope[j, k] (x_j - bound_centre[j, k]))^2: bound_centre (d, K) the event
     values whose transforms are the means, bound_slope (d, K) exp(-|eps|) / scale over
     the marginal standard deviation (transformed units), bound_top (K,) a lower bound of
-    1 / lambda_max of the correlation matrix (:func:`core.density.kernels.em.correlation_bound`;
+    1 / lambda_max of the correlation matrix (:func:`core.density.kernels.common.correlation_bound`;
     valid while |x - centre| / scale stays below the transform's clip, 1e150)."""
     logw: np.ndarray
     c0: np.ndarray
