@@ -35,9 +35,10 @@ stages after the fit live in :mod:`core.analysis_stages`.  ``analyse`` takes a
    contrasts many files with one control without refitting it (the batch
    does so), with the same result as passing the control file.
 
-Removed events stay in every per-event array with their ``reason``
-("saturated", "ceiling pile", "floor pile", "non-finite"; "" for kept
-events), NaN log density and NaN rarity; they are never rare and never
+Removed events stay in every per-event array with their reason
+(``reason_code``: int8 codes of :data:`core.prepare.REASON_TEXTS`, one byte per
+event; ``reason`` the same as text: "saturated", "ceiling pile", "floor pile",
+"non-finite"; "" for kept events), NaN log density and NaN rarity; they are never rare and never
 enriched.  ``Analysis.atoms`` names the density channels where one value
 still holds more than 0.1 % of the kept events (the atoms check before
 fitting; the fit goes on, and the app and the batch say so).
@@ -63,7 +64,7 @@ from .density import AdditiveTreeDensity
 from .errors import Cancelled, EventDataError
 from .file_values import (CompensateTransform, compensate_transform, compensated_and_transformed,
                           as_event_file, density_channel_indices, density_input)
-from .prepare import CLEANING_FLAGS, REASONS, atoms as find_atoms
+from .prepare import CODE_KEPT, atoms as find_atoms, reason_codes, reason_counts, reason_texts
 from .prepare_file import ValuesAside
 from .progress import stop_relay
 from .rare import rare_events, rarity_percentile, share_order
@@ -100,7 +101,7 @@ class Analysis:
     rarity: np.ndarray            # (n_events,) 0-100; NaN for removed events
     rare: np.ndarray              # (n_events,) bool
     rare_level: float             # log-density threshold of the rare rule
-    reason: np.ndarray            # (n_events,) "" or a core.prepare.REASONS entry
+    reason_code: np.ndarray       # (n_events,) int8 code of core.prepare.REASON_TEXTS (0 kept); see reason
     region_masks: dict            # name -> bool (n_events,)
     heldout_loglik: float         # held-out mean log-likelihood of the fit (nats per event)
     timing: dict                  # stage -> seconds
@@ -125,13 +126,22 @@ class Analysis:
     #: (core.rare.share_order of log_density; None when not computed)
     density_order: np.ndarray | None = None
 
+    def __post_init__(self):
+        self.reason_code = reason_codes(self.reason_code)   # texts are accepted too; codes are checked
+
     @property
     def n_events(self) -> int:
         return int(self.log_density.shape[0])
 
     @property
+    def reason(self) -> np.ndarray:
+        """(n_events,) str: "" for kept events, else a ``core.prepare.REASONS`` entry (built from
+        ``reason_code`` on each call)."""
+        return reason_texts(self.reason_code)
+
+    @property
     def kept(self) -> np.ndarray:
-        return self.reason == ""
+        return self.reason_code == CODE_KEPT
 
     @property
     def n_kept(self) -> int:
@@ -144,7 +154,7 @@ class Analysis:
     @property
     def set_aside(self) -> dict:
         """Events set aside per reason, every reason of ``core.prepare.REASONS`` (zeros included)."""
-        return {r: int(np.count_nonzero(self.reason == r)) for r in REASONS}
+        return reason_counts(self.reason_code)
 
     def cleaning_text(self) -> str:
         """One line for people: kept events, events set aside by reason, atoms left in the density."""
@@ -172,10 +182,7 @@ class Analysis:
         removed) when populations were found.
         """
         kept = self.kept
-        flag = np.zeros(self.n_events)
-        for r, f in CLEANING_FLAGS.items():
-            if f:
-                flag[self.reason == r] = float(f)
+        flag = self.reason_code.astype(np.float64)   # the reason codes are the cleaning flags
         cols = {"log density": np.where(kept, self.log_density, 0.0),
                 "rarity percentile": np.where(kept, self.rarity, -1.0),
                 "cleaning flag": flag}
@@ -347,7 +354,7 @@ def analyse(event_file: Any, recipe: Recipe, progress=None, control: Any = None,
     result = Analysis(path=os.fspath(event_file.path), channel_names=list(event_file.channel_names),
                       values=values, density_channels=list(recipe.channels), prepared=prepared,
                       model=model, log_density=log_density, rarity=rarity, rare=rare_res.mask,
-                      rare_level=rare_res.log_level, reason=np.asarray(prepared.reason).astype(str, copy=False),
+                      rare_level=rare_res.log_level, reason_code=prepared.reason_code,
                       region_masks=masks, heldout_loglik=float(getattr(model, "heldout_loglik_", np.nan)),
                       timing=timing, recipe=recipe, cancelled=bool(stopped), atoms=atoms,
                       populations=populations, population_labels=population_labels, density_order=order)

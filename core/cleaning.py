@@ -22,9 +22,45 @@ REASON_FLOOR_PILE = "floor pile"
 REASON_CEILING_PILE = "ceiling pile"
 #: Every reason an event can be set aside for, in the order they are shown.
 REASONS = (REASON_SATURATED, REASON_CEILING_PILE, REASON_FLOOR_PILE, REASON_NON_FINITE)
-#: The per-event ``cleaning flag`` exports carry: 0 kept, then one number per reason.
-CLEANING_FLAGS = {REASON_KEPT: 0, REASON_SATURATED: 1, REASON_NON_FINITE: 2,
-                  REASON_FLOOR_PILE: 3, REASON_CEILING_PILE: 4}
+#: The ONE table of reason codes: code -> text.  Per-event reasons are held as
+#: these small codes (int8, one byte per event; ``PreparedEvents.reason_code``,
+#: ``Analysis.reason_code``) and turned into text only where shown; the code is
+#: also the ``cleaning flag`` exports carry (0 kept, 1 saturated, 2 non-finite,
+#: 3 floor pile, 4 ceiling pile).
+REASON_TEXTS = (REASON_KEPT, REASON_SATURATED, REASON_NON_FINITE, REASON_FLOOR_PILE, REASON_CEILING_PILE)
+CODE_KEPT, CODE_SATURATED, CODE_NON_FINITE, CODE_FLOOR_PILE, CODE_CEILING_PILE = range(len(REASON_TEXTS))
+#: The per-event ``cleaning flag`` exports carry: text -> its code in :data:`REASON_TEXTS`.
+CLEANING_FLAGS = {text: code for code, text in enumerate(REASON_TEXTS)}
+
+
+def reason_texts(codes) -> np.ndarray:
+    """(n_events,) str array ("" kept, else a :data:`REASONS` entry) from reason codes (n_events,)."""
+    return np.array(REASON_TEXTS)[np.asarray(codes, dtype=np.intp)]
+
+
+def reason_codes(reasons) -> np.ndarray:
+    """(n_events,) int8 reason codes of :data:`REASON_TEXTS` from texts or codes (codes are checked, not copied).
+
+    EventDataError for a text or code that is not a reason."""
+    a = np.asarray(reasons)
+    if a.dtype.kind in "iu":
+        if a.size and (a.min() < 0 or a.max() >= len(REASON_TEXTS)):
+            raise EventDataError(f"reason codes must lie in 0-{len(REASON_TEXTS) - 1}; got {a.min()}-{a.max()}")
+        return a.astype(np.int8, copy=False)
+    out = np.full(a.shape, -1, dtype=np.int8)
+    for code, text in enumerate(REASON_TEXTS):
+        out[a == text] = code
+    if (out < 0).any():
+        bad = sorted({str(v) for v in a[out < 0]})
+        raise EventDataError(f"unknown reason(s) {', '.join(map(repr, bad))}; the reasons are "
+                             f"{', '.join(map(repr, REASON_TEXTS))}")
+    return out
+
+
+def reason_counts(codes) -> dict[str, int]:
+    """Events set aside per reason, ``{reason: count}`` over :data:`REASONS` (zeros included)."""
+    counts = np.bincount(np.asarray(codes, dtype=np.intp).ravel(), minlength=len(REASON_TEXTS))
+    return {r: int(counts[CLEANING_FLAGS[r]]) for r in REASONS}
 
 #: A channel's lowest/highest value holding at least this share of the events is a pile.
 PILE_SHARE = 0.005
@@ -144,8 +180,10 @@ def clean_events(raw, judged: Sequence[int], channel_ranges=None, *, drop_satura
 
     ``judged``: the channels whose saturation and piles count (others are
     only checked for non-finite values, which always set an event aside).
-    Returns ``(reason (n,) str, saturated (n,) bool, sat_cells, floor_cells,
-    ceiling_cells)``; the cell arrays are dicts channel -> (n,) bool masks.
+    Returns ``(reason code (n,) int8 of :data:`REASON_TEXTS`, saturated (n,) bool,
+    sat_cells, floor_cells, ceiling_cells)``; the cell arrays are dicts channel ->
+    (n,) bool masks holding only the channels with at least one flagged event
+    (a missing channel flags none: a mask per channel would be n bytes each).
     """
     x = _as_events(raw, "event values")
     n, k = x.shape
@@ -161,27 +199,31 @@ def clean_events(raw, judged: Sequence[int], channel_ranges=None, *, drop_satura
         col = np.asarray(x[:, j], dtype=np.float64)   # one column at a time (float32 files)
         if r is not None and np.isfinite(r[j]) and r[j] > 0:
             s = _saturated_column(col, r[j])
-            sat_cells[j] = s
-            saturated |= s
+            if not s.any():
+                s = None
         else:
             s = None
         fl, ce = pile_masks(col, pile_share)
         if s is not None:
+            sat_cells[j] = s
+            saturated |= s
             fl, ce = fl & ~s, ce & ~s
-        floor_cells[j], ceiling_cells[j] = fl, ce
-        floor_any |= fl
-        ceiling_any |= ce
+        if fl.any():
+            floor_cells[j] = fl
+            floor_any |= fl
+        if ce.any():
+            ceiling_cells[j] = ce
+            ceiling_any |= ce
     saturated &= ~non_finite
-    # small codes first, strings once at the end (a million-entry object array is slow)
-    names = np.array([REASON_KEPT, REASON_FLOOR_PILE, REASON_CEILING_PILE, REASON_SATURATED, REASON_NON_FINITE])
+    # later rules win: ceiling over floor pile, saturated over piles, non-finite over all
     code = np.zeros(n, dtype=np.int8)
     if drop_piles:
-        code[floor_any] = 1
-        code[ceiling_any] = 2
+        code[floor_any] = CODE_FLOOR_PILE
+        code[ceiling_any] = CODE_CEILING_PILE
     if drop_saturated:
-        code[saturated] = 3
-    code[non_finite] = 4
-    return names[code], saturated, sat_cells, floor_cells, ceiling_cells
+        code[saturated] = CODE_SATURATED
+    code[non_finite] = CODE_NON_FINITE
+    return code, saturated, sat_cells, floor_cells, ceiling_cells
 
 
 def largest_tie_share(col, limit_events: int = 400_000, random_state=0, rows=None) -> float:

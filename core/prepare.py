@@ -42,8 +42,10 @@ explicitly and seeded (all randomness comes from ``random_state``):
    seeded by ``(random_state, channel)``, one per event of the file, so the
    jitter of an event does not depend on the other channels or events.
 
-Nothing is dropped silently: ``reason`` has one entry per event of the file
-("" for kept events), ``kept`` is the mask of events in ``matrix``.
+Nothing is dropped silently: ``reason_code`` has one entry per event of the
+file (0 for kept events; a small code of :data:`REASON_TEXTS`, the one table of
+code -> text, one byte per event), ``reason`` gives the same as text, and
+``kept`` is the mask of events in ``matrix``.
 Shapes are events x channels; values are float64.
 """
 
@@ -55,9 +57,11 @@ from typing import Callable, Sequence
 import numpy as np
 
 from .cleaning import (  # noqa: F401  (re-exported: the old import path)
-    ATOM_SHARE, CLEANING_FLAGS, PILE_FRACTION, PILE_MIN_EVENTS, PILE_SHARE, REASON_CEILING_PILE,
-    REASON_FLOOR_PILE, REASON_KEPT, REASON_NON_FINITE, REASON_SATURATED, REASONS, _as_matrix, _per_channel,
-    _saturated_column, atoms, clean_events, largest_tie_share, pile_masks, saturation_mask)
+    ATOM_SHARE, CLEANING_FLAGS, CODE_CEILING_PILE, CODE_FLOOR_PILE, CODE_KEPT, CODE_NON_FINITE, CODE_SATURATED,
+    PILE_FRACTION, PILE_MIN_EVENTS, PILE_SHARE, REASON_CEILING_PILE, REASON_FLOOR_PILE, REASON_KEPT,
+    REASON_NON_FINITE, REASON_SATURATED, REASON_TEXTS, REASONS, _as_matrix, _per_channel, _saturated_column,
+    atoms, clean_events, largest_tie_share, pile_masks, reason_codes, reason_counts, reason_texts,
+    saturation_mask)
 from .errors import EventDataError
 from .grids import (  # noqa: F401  (re-exported: the old import path)
     CELL_NEIGHBOURS, GRID_CELLS, GRID_LINEAR, GRID_LOG, GRID_SAMPLE, GRID_STORED, MAX_UNIQUE_FRACTION,
@@ -71,7 +75,9 @@ class PreparedEvents:
 
     ``matrix``: (n_kept, n_columns) float64, kept events in file order.
     ``kept``: (n_events,) bool, True for events in ``matrix``.
-    ``reason``: (n_events,) str, "" kept or one of :data:`REASONS`.
+    ``reason_code``: (n_events,) int8, the code of each event's reason in
+    :data:`REASON_TEXTS` (0 kept); ``reason`` the same as (n_events,) str ("" kept
+    or one of :data:`REASONS`), built on each call.
     ``steps``: (n_channels,) float64, jitter step per raw channel in the units
     named by ``grids`` (stored units, value units or log10 units); 0 when the
     channel was not jittered.
@@ -88,7 +94,7 @@ class PreparedEvents:
 
     matrix: np.ndarray
     kept: np.ndarray
-    reason: np.ndarray
+    reason_code: np.ndarray
     steps: np.ndarray
     saturated: np.ndarray
     saturated_per_channel: np.ndarray = field(default=None)
@@ -96,6 +102,14 @@ class PreparedEvents:
     floor_per_channel: np.ndarray = field(default=None)
     ceiling_per_channel: np.ndarray = field(default=None)
     from_values: tuple = ()
+
+    def __post_init__(self):
+        self.reason_code = reason_codes(self.reason_code)   # texts are accepted too; codes are checked
+
+    @property
+    def reason(self) -> np.ndarray:
+        """(n_events,) str: "" for kept events, else the reason (built from ``reason_code``)."""
+        return reason_texts(self.reason_code)
 
     @property
     def n_events(self) -> int:
@@ -107,7 +121,7 @@ class PreparedEvents:
 
     @property
     def n_non_finite(self) -> int:
-        return int(np.count_nonzero(self.reason == REASON_NON_FINITE))
+        return int(np.count_nonzero(self.reason_code == CODE_NON_FINITE))
 
     @property
     def n_saturated(self) -> int:
@@ -120,7 +134,7 @@ class PreparedEvents:
 
     def set_aside(self) -> dict[str, int]:
         """Events set aside per reason (every reason of :data:`REASONS`, zeros included)."""
-        return {r: int(np.count_nonzero(self.reason == r)) for r in REASONS}
+        return reason_counts(self.reason_code)
 
     @property
     def counts(self) -> dict[str, int]:
@@ -169,7 +183,7 @@ def prepare_events(data, channel_ranges=None, drop_saturated: bool = True, dequa
                 "de-quantisation adds jitter to the raw values, so it needs the pipeline that turns raw "
                 "values into the values the density sees: pass pipeline=..., or call dequantise() on the "
                 "raw values yourself, transform them, and pass dequantise=False")
-    reason, saturated, sat_cells, floor_cells, ceiling_cells = clean_events(
+    code, saturated, sat_cells, floor_cells, ceiling_cells = clean_events(
         raw, range(k), channel_ranges, drop_saturated=drop_saturated, drop_piles=drop_piles,
         pile_share=pile_share)
     plans = _plans(raw, range(k), decoding, steps, MAX_UNIQUE_FRACTION) if dequantise else {}
@@ -188,16 +202,13 @@ def prepare_events(data, channel_ranges=None, drop_saturated: bool = True, dequa
         seen = jittered
     if seen.shape[0] != n:
         raise EventDataError(f"the values for the density have {seen.shape[0]} events but the raw values have {n}")
-    bad = ~np.isfinite(seen).all(axis=1) & (reason == REASON_KEPT)
-    if bad.any():
-        reason = reason.astype(object)
-        reason[bad] = REASON_NON_FINITE
-        reason = reason.astype(str)
-    kept = reason == REASON_KEPT
-    return PreparedEvents(matrix=np.ascontiguousarray(seen[kept], dtype=np.float64), kept=kept, reason=reason,
+    code[~np.isfinite(seen).all(axis=1) & (code == CODE_KEPT)] = CODE_NON_FINITE
+    kept = code == CODE_KEPT
+    finite_rows = code != CODE_NON_FINITE
+    return PreparedEvents(matrix=np.ascontiguousarray(seen[kept], dtype=np.float64), kept=kept, reason_code=code,
                           steps=np.array([plans[j].step if j in plans else 0.0 for j in range(k)]),
-                          saturated=saturated & (reason != REASON_NON_FINITE),
-                          saturated_per_channel=_per_channel(sat_cells, k, reason != REASON_NON_FINITE),
+                          saturated=saturated & finite_rows,
+                          saturated_per_channel=_per_channel(sat_cells, k, finite_rows),
                           grids=[plans[j].grid if j in plans else "" for j in range(k)],
                           floor_per_channel=_per_channel(floor_cells, k),
                           ceiling_per_channel=_per_channel(ceiling_cells, k))

@@ -50,7 +50,7 @@ def compute_contours(analysis, pairs, extents, progress=None) -> list:
     Each pair gets a small 2-D additive tree density fitted by
     :func:`core.contours.pair_density` to at most ``CONTOUR_EVENTS`` kept
     events (fixed seed).  Returns [((ix, iy), lines)]."""
-    kept = np.flatnonzero(analysis.reason == "")
+    kept = np.flatnonzero(analysis.kept)
     if kept.size > CONTOUR_EVENTS:
         kept = np.sort(np.random.default_rng(0).choice(kept, CONTOUR_EVENTS, replace=False))
     out = []

@@ -15,6 +15,7 @@ from core.density import boosting as boosting_module
 from core.density import em as em_module
 from core.density import fitting as fitting_module
 from core.density import model as model_module
+from core.density.kernels import common as kernels_common
 from core.density.kernels import em as em_kernels
 from core.density.gaussian_base import GaussianMixtureBase
 
@@ -80,6 +81,64 @@ def test_pruned_e_step_matches_scipy_responsibilities(monkeypatch, vector_max):
     # the hints are the most probable Gaussian components (the pruned layout uses them)
     if vector_max < d:
         assert np.mean(hint == R[:, 1:].argmax(axis=1)) > 0.999
+
+
+def test_pruning_bound_never_exceeds_the_mahalanobis_distance():
+    # q = (x - m)^T Sigma^-1 (x - m) >= inv_top |inv_sd (x - m)|^2 (Rayleigh quotient of the correlation
+    # matrix; reference distances: scipy.spatial.distance.mahalanobis); channels of very different spreads
+    from scipy.spatial import distance  # test-only reference
+    rng = np.random.default_rng(5)
+    d, k = 20, 4
+    scales = np.exp(rng.normal(0.0, 1.5, d))
+    covs = []
+    for _ in range(k):
+        A = rng.normal(size=(d, d)) * 0.4 + np.eye(d)
+        covs.append(scales[:, None] * (A @ A.T) * scales[None, :])
+    chol = np.linalg.cholesky(np.array(covs))
+    inv_sd, inv_top = kernels_common.correlation_bound(chol)
+    np.testing.assert_allclose(inv_sd, 1.0 / np.sqrt(np.einsum("kjj->kj", np.array(covs))), rtol=1e-12)
+    ratios = []
+    for c in range(k):
+        VI = np.linalg.inv(covs[c])
+        for _ in range(200):
+            x = rng.normal(size=d) * scales * rng.uniform(0.1, 5.0)
+            q = distance.mahalanobis(x, np.zeros(d), VI) ** 2
+            ratios.append(inv_top[c] * np.sum((inv_sd[c] * x) ** 2) / q)
+    assert max(ratios) <= 1.0 + 1e-9
+    assert min(ratios) < 0.9  # a bound, not the distance itself
+
+
+def test_pruned_e_step_with_the_bound_matches_scipy_at_twenty_channels():
+    # far-apart components in 20 channels of unequal spreads (most event-component pairs are left out
+    # by the bound before any triangular solve); reference: scipy.stats.multivariate_normal
+    d, k = 20, 6
+    w, means, covs = _separated_mixture(d, k, 8, gap=4.0)
+    spread = np.exp(np.linspace(-1.0, 1.0, d))
+    means = means * spread
+    covs = covs * spread[None, :, None] * spread[None, None, :]
+    X = _draw(3000, (w, means, covs), 9)
+    bg = stats.logistic(np.median(X, axis=0), 5.0 * spread).logpdf(X).sum(axis=1)
+    logw = np.log(np.concatenate([[1e-3], (1 - 1e-3) * w]))
+    chol = np.ascontiguousarray(np.linalg.cholesky(covs))
+    log_det = np.log(np.diagonal(chol, axis1=1, axis2=2)).sum(axis=1)
+    L = np.column_stack([logw[0] + bg] + [logw[c + 1] + stats.multivariate_normal(means[c], covs[c]).logpdf(X)
+                                         for c in range(k)])
+    ll_ref = special.logsumexp(L, axis=1)
+    R = np.exp(L - ll_ref[:, None])
+    inv_sd, inv_top = kernels_common.correlation_bound(chol)
+    e2 = np.einsum("nkd,kd->nk", (X[:, None, :] - means[None]) ** 2, inv_sd ** 2) * inv_top
+    c = logw[1:] - log_det - d * 0.5 * np.log(2 * np.pi)
+    assert np.mean(c[None, :] - 0.5 * e2 < ll_ref[:, None] - em_kernels.EM_PRUNE) > 0.5
+    hint = np.zeros(X.shape[0], np.int64)
+    for _ in range(2):
+        total, N, S, M = kernels.em_stats(X, bg, logw, means, chol, log_det, hint=hint)
+        assert total == pytest.approx(ll_ref.sum(), rel=1e-12)
+        np.testing.assert_allclose(kernels.em_logpdf(X, bg, logw, means, chol, log_det), ll_ref,
+                                   rtol=1e-12, atol=1e-11)
+        np.testing.assert_allclose(N, R.sum(axis=0), rtol=1e-10, atol=1e-9)
+        for c in range(k):
+            D = X - means[c]
+            np.testing.assert_allclose(M[c], (D * R[:, c + 1, None]).T @ D, rtol=1e-9, atol=1e-7)
 
 
 def test_count_search_scores_held_out_events_as_the_mixture_density_does():

@@ -488,6 +488,16 @@ def test_wide_skewed_map_matches_conditional_cdfs_from_scipy():
     ll, R = model.logpdf_and_posteriors(X)
     np.testing.assert_allclose(ll, np.log(dens), rtol=0, atol=1e-8)
     np.testing.assert_allclose(R, np.array(parts).T / dens[:, None], rtol=0, atol=1e-10)
+    # the pruned pass first tests each component against a lower bound of its whitened squared
+    # distance (transform slopes >= exp(-|eps|), correlation's top eigenvalue): never above the
+    # distance (x - mu)^T cov^-1 (x - mu) of the transformed events, computed here with numpy's solve
+    outer = kernels.mixture.outer_layout(model._inner)
+    for k in range(K):
+        D = ys[k] - mu[k]
+        q = np.einsum("ij,ij->i", D, np.linalg.solve(cov[k], D.T).T)
+        bound = outer.bound_top[k] * (((X - outer.bound_centre[:, k]) * outer.bound_slope[:, k]) ** 2).sum(axis=1)
+        assert np.all(bound <= q * (1.0 + 1e-9))
+        assert np.median(bound / q) > 1e-3  # and not a trivial bound
 
 
 def test_flat_background_bins_are_numpys_histogram():

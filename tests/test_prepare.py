@@ -372,12 +372,78 @@ def test_analysis_counts_reasons_for_the_app_and_exports():
     an = Analysis(path="x.fcs", channel_names=["A"], values=np.zeros((n, 1)), density_channels=["A"],
                   prepared=None, model=None, log_density=np.where(reason == "", -1.0, np.nan),
                   rarity=np.where(reason == "", 50.0, np.nan), rare=np.zeros(n, bool), rare_level=0.0,
-                  reason=reason, region_masks={}, heldout_loglik=0.0, timing={}, atoms={"A": 0.004})
+                  reason_code=reason, region_masks={}, heldout_loglik=0.0, timing={}, atoms={"A": 0.004})
+    assert an.reason_code.dtype == np.int8 and list(an.reason) == list(reason)   # texts in, codes held
     assert an.set_aside == {"saturated": 1, "ceiling pile": 1, "floor pile": 2, "non-finite": 1}
     text = an.cleaning_text()
     assert text.startswith("2 of 7 events kept") and "2 floor pile" in text and "1 ceiling pile" in text
     assert "A (0.4 % of the kept events on one value)" in text
     np.testing.assert_array_equal(an.export_columns()["cleaning flag"], [0, 3, 4, 1, 2, 0, 3])
+    # the per-event table (pandas) shows the reason as text, as before the codes
+    assert an.table()["reason"].tolist() == list(reason)
+    assert Analysis(**{**an.__dict__, "reason_code": an.reason_code}).set_aside == an.set_aside   # codes in
+
+
+def test_reason_codes_round_trip_to_the_same_texts():
+    # one table of code -> text; the codes are the exports' documented cleaning flags
+    # (0 kept, 1 saturated, 2 non-finite, 3 floor pile, 4 ceiling pile: core/batch/reports.py's notes)
+    from core.prepare import CLEANING_FLAGS, REASON_TEXTS, REASONS, reason_codes, reason_counts, reason_texts
+
+    assert CLEANING_FLAGS == {"": 0, "saturated": 1, "non-finite": 2, "floor pile": 3, "ceiling pile": 4}
+    assert set(REASON_TEXTS) == set(REASONS) | {""}
+    texts = np.array(["ceiling pile", "", "non-finite", "floor pile", "saturated", "", "saturated"])
+    codes = reason_codes(texts)
+    assert codes.dtype == np.int8 and codes.nbytes == texts.size               # one byte per event
+    assert codes.tolist() == [CLEANING_FLAGS[t] for t in texts]
+    back = reason_texts(codes)
+    assert back.dtype == texts.dtype and back.tolist() == texts.tolist()      # same texts, same str type
+    assert reason_codes(codes) is codes                                        # codes pass unchanged
+    assert reason_counts(codes) == {"saturated": 2, "ceiling pile": 1, "floor pile": 1, "non-finite": 1}
+    with pytest.raises(EventDataError, match="unknown reason"):
+        reason_codes(np.array(["", "clipped"]))
+    with pytest.raises(EventDataError, match="reason codes"):
+        reason_codes(np.array([0, 5], dtype=np.int8))
+
+
+def test_cleaning_codes_equal_the_rules_applied_one_channel_at_a_time():
+    # reference: each channel's saturation and pile masks (saturation_mask, pile_masks)
+    # combined by the stated precedence (non-finite over saturated over ceiling over floor
+    # pile), written as text with plain loops
+    from core.prepare import pile_masks, reason_texts, saturation_mask
+
+    rng = np.random.default_rng(11)
+    n, k = 5000, 4
+    raw = rng.normal(500.0, 100.0, size=(n, k))
+    raw[:60, 0] = raw[:, 0].min() - 1.0                     # floor pile in channel 0
+    raw[40:120, 1] = raw[:, 1].max() + 1.0                  # ceiling pile in channel 1
+    raw[100:110, 2] = 1e4                                   # saturated in channel 2
+    raw[5, 3], raw[105, 0] = np.nan, np.inf                 # non-finite
+    ranges = np.array([1e6, 1e6, 1e4, 1e6])
+    code, saturated, sat_cells, floor_cells, ceiling_cells = cleaning.clean_events(raw, range(k), ranges)
+    sat = saturation_mask(raw, ranges)
+    expected = np.full(n, "", dtype=object)
+    for j in range(k):
+        fl, ce = pile_masks(raw[:, j])
+        for i in range(n):
+            if fl[i] and not sat[i, j] and expected[i] == "":
+                expected[i] = "floor pile"
+    for j in range(k):
+        fl, ce = pile_masks(raw[:, j])
+        for i in np.flatnonzero(ce & ~sat[:, j]):
+            expected[i] = "ceiling pile"
+    expected[sat.any(axis=1)] = "saturated"
+    expected[~np.isfinite(raw).all(axis=1)] = "non-finite"
+    assert code.dtype == np.int8
+    assert reason_texts(code).tolist() == expected.tolist()
+    # masks are kept only for channels that flag events, and count what the rules flag
+    assert sorted(sat_cells) == [2] and sorted(floor_cells) == [0] and sorted(ceiling_cells) == [1]
+    assert floor_cells[0].sum() == 60 and ceiling_cells[1].sum() == 80 and sat_cells[2].sum() == 10
+    # through prepare_events: the same reasons, and the per-channel counts
+    out = prepare_events(raw, ranges, dequantise=False)
+    assert out.reason.tolist() == expected.tolist() and out.reason_code.dtype == np.int8
+    assert list(out.floor_per_channel) == [60, 0, 0, 0] and list(out.ceiling_per_channel) == [0, 80, 0, 0]
+    assert list(out.saturated_per_channel) == [0, 0, 9, 0]      # among finite events: event 105 holds an inf
+    np.testing.assert_array_equal(out.kept, expected == "")
 
 
 def test_float32_event_file_prepares_like_its_float64_values():

@@ -63,3 +63,30 @@ def test_analyse_values_are_the_compensated_and_transformed_values(tmp_path):
     a = analyse(ef, r)
     assert (~a.kept).any() and len(a.prepared.from_values) < a.prepared.matrix.shape[1]
     assert np.array_equal(a.values, compensated_and_transformed(ef, r)[1], equal_nan=True)
+
+
+def _resident_mb() -> float:
+    with open("/proc/self/statm") as fh:
+        return int(fh.read().split()[1]) * os.sysconf("SC_PAGE_SIZE") / 2 ** 20
+
+
+@pytest.mark.skipif(not os.path.exists("/proc/self/statm"), reason="reads /proc")
+def test_freed_heap_memory_goes_back_to_the_system():
+    # glibc keeps freed heap blocks resident until the heap is trimmed (malloc_trim(3),
+    # from memory); blocks of 64 KiB come from the heap, and one block allocated after
+    # them keeps the heap's top in use, so freeing the others returns nothing by itself
+    from core.prepare_file import return_freed_memory
+
+    if not return_freed_memory():
+        pytest.skip("the C library has no malloc_trim")
+    blocks = [np.ones(8192) for _ in range(1600)]   # 1,600 x 64 KiB = 100 MiB, pages touched
+    pin = np.ones(8192)
+    held = _resident_mb()
+    del blocks
+    before = _resident_mb()
+    if held - before > 50:
+        pytest.skip("this allocator returned the freed blocks by itself (e.g. a lowered mmap threshold)")
+    assert return_freed_memory()
+    after = _resident_mb()
+    assert before - after > 50, (before, after)
+    del pin

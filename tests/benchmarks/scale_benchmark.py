@@ -30,13 +30,14 @@ Analyse table (``--analyse``): ``core.analysis.analyse`` on an FCS file of
 (two scatter channels, the rest fluorescence; float32) in one subprocess, then
 read and analysed with the default recipe in a fresh subprocess: the stages of
 ``Analysis.timing`` plus the read, the peak resident memory of that process
-(``resource.getrusage``; the file's generation is not in it), the resident
-memory after the imports ("base MB") and the highest resident memory seen
-during each stage (sampled every 20 ms; "peak MB by stage").
+(``resource.getrusage``; the file's generation is not in it) in MiB (2^20 bytes)
+and in MB (10^6 bytes, the unit of the issue's "under 1 GB"), the resident
+memory after the imports ("base MiB") and the highest resident memory seen
+during each stage (sampled every 20 ms; "peak MiB by stage").
 
 With ``--analyse-repeats R`` the file is written once and analysed in R fresh
 processes: the table holds the median of each stage and of the memory columns,
-with each run's read + total seconds and the load average at its start and end.
+with each run's peak, read + total seconds and the load average at its start and end.
 
 Count reference (``--count-reference``, replaces the fit table; one run per
 cell): our fit searches the component count and adds skew, GaussianMixture(16)
@@ -221,6 +222,7 @@ def _median_row(runs: list) -> dict:
         row[key] = float(np.median([r[key] for r in runs]))
     row["stage_mb"] = {k: float(np.median([r["stage_mb"][k] for r in runs])) for k in runs[0]["stage_mb"]}
     row["totals"] = [r["timing"].get("total", float("nan")) + r["timing"]["read"] for r in runs]
+    row["peaks"] = [r["peak_mb"] for r in runs]
     row["loads"] = [r["load"] for r in runs]
     row["models"] = sorted({r.get("model", "?") for r in runs})
     return row
@@ -344,12 +346,14 @@ def format_analyse(rows, markdown=False) -> str:
         for k in r["timing"]:
             if k not in stages:
                 stages.append(k)
-    head = ["events x channels"] + [f"{s} s" for s in stages] + ["peak MB", "base MB", "peak MB by stage",
+    head = ["events x channels"] + [f"{s} s" for s in stages] + ["peak MiB", "peak MB (10^6 B)", "peak MiB, each run",
+                                                               "base MiB", "peak MiB by stage",
                                                                "read + total s, each run", "load each run", "model"]
     cells = []
     for r in rows:
         cells.append([f"{r['n']:,} x {r['d']}"] + [f"{r['timing'].get(s, float('nan')):.1f}" for s in stages] \
-            + [f"{r['peak_mb']:.0f}", f"{r.get('base_mb', float('nan')):.0f}",
+            + [f"{r['peak_mb']:.0f}", f"{r['peak_mb'] * 2 ** 20 / 1e6:.0f}",
+               ", ".join(f"{v:.0f}" for v in r.get("peaks", [r["peak_mb"]])), f"{r.get('base_mb', float('nan')):.0f}",
                ", ".join(f"{k} {v:.0f}" for k, v in r.get("stage_mb", {}).items()),
                ", ".join(f"{v:.1f}" for v in r.get("totals", [])), ", ".join(r.get("loads", [])),
                "; ".join(r.get("models", []))])

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
 from numba import njit
 
 #: Events per parallel work block in the per-event kernels.
@@ -78,3 +79,16 @@ def softplus(u):
     if u > 0.0:
         return u + math.log1p(math.exp(-u))
     return math.log1p(math.exp(u))
+
+
+def correlation_bound(chol):
+    """For lower Cholesky factors chol (K, d, d) of covariances Sigma_k: (inv_sd
+    (K, d) the inverse standard deviations, inv_top (K,) a lower bound of
+    1 / lambda_max(C_k), C_k = S_k^-1 Sigma_k S_k^-1 the correlation matrix), so that
+    (x - m)^T Sigma_k^-1 (x - m) >= inv_top[k] |inv_sd[k] (x - m)|^2 for every x, m.
+    lambda_max(C_k) is the squared largest singular value of S_k^-1 L_k (LAPACK's
+    SVD), widened by 1e-9 relative so that rounding never makes the bound too high."""
+    sd = np.sqrt(np.einsum("kja,kja->kj", chol, chol))
+    inv_sd = 1.0 / sd
+    top = np.linalg.svd(chol * inv_sd[:, :, None], compute_uv=False)[:, 0]
+    return inv_sd, 1.0 / (top * top * (1.0 + 1e-9))

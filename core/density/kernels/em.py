@@ -9,7 +9,7 @@ import math
 import numpy as np
 from numba import njit, prange
 
-from .common import _LOG_SQRT_2PI, parallel
+from .common import _LOG_SQRT_2PI, correlation_bound, parallel
 
 #: A component whose log weight x density falls this far below the best one
 #: seen for an event is left out of that event's E step: its responsibility
@@ -20,7 +20,7 @@ EM_PRUNE = 40.0
 
 @njit(cache=True, error_model="numpy")
 def _em_stats_rows(start, stop, X, bg, logw, means, chol, log_det, acc_n, acc_s, acc_m, ll_out, hint, moments,
-                   rows):
+                   rows, means_t, inv_sd_t, inv_top):
     """E step for rows start:stop and their responsibility-weighted sums.
 
     X (n, d) events; bg (n,) log density of each event under the background
@@ -42,12 +42,22 @@ def _em_stats_rows(start, stop, X, bg, logw, means, chol, log_det, acc_n, acc_s,
     of held-out events under the current mixture, at a fraction of the cost.
     ``rows`` (n,) or (0,): when it has n entries, each event's log density is
     written to it too.
+
+    Before its triangular solve, a component is also tested against a cheaper
+    bound: q >= |S_k^-1 (x - mean_k)|^2 / lambda_max(C_k), S_k the diagonal of the
+    component's standard deviations and C_k its correlation matrix; ``means_t``
+    (d, K) the means and ``inv_sd_t`` (d, K) the inverse standard deviations
+    transposed (the scaled squared distances to every component are summed with
+    the component index innermost, which the compiler vectorises), ``inv_top``
+    (K,) a lower bound of 1 / lambda_max(C_k).  A component the bound leaves out is
+    one the solve would have left out too (or kept at a share below exp(-40)).
     """
     K, d = means.shape
     lp = np.empty(K + 1)
     live = np.zeros(K, np.bool_)
     D = np.empty((K, d))
     z = np.empty(d)
+    e2 = np.empty(K)
     inv_diag = np.empty((K, d))
     for k in range(K):
         for j in range(d):
@@ -55,6 +65,13 @@ def _em_stats_rows(start, stop, X, bg, logw, means, chol, log_det, acc_n, acc_s,
     ll = 0.0
     half_d_log2pi = d * _LOG_SQRT_2PI
     for i in range(start, stop):
+        for k in range(K):
+            e2[k] = 0.0
+        for j in range(d):
+            x = X[i, j]
+            for k in range(K):
+                t = (x - means_t[j, k]) * inv_sd_t[j, k]
+                e2[k] += t * t
         lp[0] = logw[0] + bg[i]
         mx = lp[0]
         k0 = hint[i]
@@ -65,6 +82,9 @@ def _em_stats_rows(start, stop, X, bg, logw, means, chol, log_det, acc_n, acc_s,
                 k -= K
             c = logw[k + 1] - log_det[k] - half_d_log2pi
             floor = mx - EM_PRUNE
+            if c - 0.5 * e2[k] * inv_top[k] < floor:
+                live[k] = False
+                continue
             q = 0.0
             ok = True
             for j in range(d):
@@ -116,13 +136,14 @@ def _em_stats_rows(start, stop, X, bg, logw, means, chol, log_det, acc_n, acc_s,
 
 
 @njit(cache=True, parallel=True, error_model="numpy")
-def _em_stats_par(X, bg, logw, means, chol, log_det, acc_n, acc_s, acc_m, ll_out, hint, moments, rows):
+def _em_stats_par(X, bg, logw, means, chol, log_det, acc_n, acc_s, acc_m, ll_out, hint, moments, rows, means_t,
+                  inv_sd_t, inv_top):
     n = X.shape[0]
     nb = acc_n.shape[0]
     step = (n + nb - 1) // nb
     for b in prange(nb):
         _em_stats_rows(b * step, min(n, (b + 1) * step), X, bg, logw, means, chol, log_det,
-                       acc_n[b], acc_s[b], acc_m[b], ll_out[b], hint, moments, rows)
+                       acc_n[b], acc_s[b], acc_m[b], ll_out[b], hint, moments, rows, means_t, inv_sd_t, inv_top)
 
 
 def em_stats(X, bg, logw, means, chol, log_det, n_parts=16, hint=None):
@@ -274,9 +295,11 @@ def _pass(X, bg, logw, means, chol, log_det, n_parts, hint, moments, rows=None):
     if hint is None or hint.shape[0] != n:
         hint = np.zeros(n, np.int64)
     np.minimum(hint, max(K - 1, 0), out=hint)
+    inv_sd, inv_top = correlation_bound(chol)
+    bound = (np.ascontiguousarray(means.T), np.ascontiguousarray(inv_sd.T), inv_top)
     if parts > 1:
-        _em_stats_par(X, bg, logw, means, chol, log_det, acc_n, acc_s, acc_m, ll, hint, moments, rows)
+        _em_stats_par(X, bg, logw, means, chol, log_det, acc_n, acc_s, acc_m, ll, hint, moments, rows, *bound)
     else:
         _em_stats_rows(0, n, X, bg, logw, means, chol, log_det, acc_n[0], acc_s[0], acc_m[0], ll[0], hint,
-                       moments, rows)
+                       moments, rows, *bound)
     return float(ll.sum()), acc_n, acc_s, acc_m

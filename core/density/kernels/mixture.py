@@ -21,7 +21,7 @@ from typing import NamedTuple
 import numpy as np
 from numba import njit, prange
 
-from .common import BLOCK, _LOG_SQRT_2PI, log_sigmoid_pair, logistic_cdf, ndtr, parallel, softplus
+from .common import BLOCK, _LOG_SQRT_2PI, correlation_bound, log_sigmoid_pair, logistic_cdf, ndtr, parallel, softplus
 
 
 class Background(NamedTuple):
@@ -323,11 +323,21 @@ def outer_layout(comp: "ComponentsInner") -> "ComponentsOuter":
     """The :class:`ComponentsOuter` of a :class:`ComponentsInner` (same mixture)."""
     d, K = comp.means_t.shape
     c0 = comp.logw[1:] - d * _LOG_SQRT_2PI - comp.log_sd.sum(axis=0)
-    jac_max = np.abs(np.arcsinh(comp.skew[3])).sum(axis=0)
+    eps = np.arcsinh(comp.skew[3])  # (d, K)
+    jac_max = np.abs(eps).sum(axis=0)
+    chol = np.ascontiguousarray(np.transpose(comp.chol_t, (2, 0, 1)))
+    # the bound of the pruned pass (see ComponentsOuter): each channel's transform has slope
+    # >= exp(-|eps|) in (x - centre) / scale, so |y - mean| >= exp(-|eps|) / scale |x - x*|, x* its preimage
+    full = np.tril(chol, -1) + np.einsum("kj,jl->kjl", 1.0 / comp.inv_sd.T, np.eye(d))
+    inv_marg_sd, inv_top = correlation_bound(full)
+    centre, inv_scale = comp.skew[0], comp.skew[1]
+    x_star = centre + np.sinh(np.arcsinh(comp.means_t) + eps) / inv_scale
+    slope = np.exp(-np.abs(eps)) * inv_scale * inv_marg_sd.T
     return ComponentsOuter(np.ascontiguousarray(comp.logw), np.ascontiguousarray(c0),
-                           np.ascontiguousarray(comp.means_t.T), np.ascontiguousarray(np.transpose(comp.chol_t, (2, 0, 1))),
+                           np.ascontiguousarray(comp.means_t.T), chol,
                            np.ascontiguousarray(comp.inv_sd.T), np.ascontiguousarray(np.transpose(comp.skew, (2, 1, 0))),
-                           np.ascontiguousarray(jac_max))
+                           np.ascontiguousarray(jac_max), np.ascontiguousarray(x_star), np.ascontiguousarray(slope),
+                           np.ascontiguousarray(inv_top))
 
 
 class ComponentsOuter(NamedTuple):
@@ -337,7 +347,13 @@ class ComponentsOuter(NamedTuple):
     means (K, d), chol (K, d, d) lower Cholesky factors (transformed units),
     inv_sd (K, d) their inverse diagonals; skew (K, d, 4) per component and channel
     the transform's centre, 1/scale, cosh(eps), sinh(eps); jac_max (K,) the sum over
-    channels of |eps| (the log Jacobian of a component never exceeds it)."""
+    channels of |eps| (the log Jacobian of a component never exceeds it); and a lower
+    bound of each component's squared whitened distance q >= bound_top[k] sum_j
+    (bound_slope[j, k] (x_j - bound_centre[j, k]))^2: bound_centre (d, K) the event
+    values whose transforms are the means, bound_slope (d, K) exp(-|eps|) / scale over
+    the marginal standard deviation (transformed units), bound_top (K,) a lower bound of
+    1 / lambda_max of the correlation matrix (:func:`core.density.kernels.common.correlation_bound`;
+    valid while |x - centre| / scale stays below the transform's clip, 1e150)."""
     logw: np.ndarray
     c0: np.ndarray
     means: np.ndarray
@@ -345,6 +361,9 @@ class ComponentsOuter(NamedTuple):
     inv_sd: np.ndarray
     skew: np.ndarray
     jac_max: np.ndarray
+    bound_centre: np.ndarray
+    bound_slope: np.ndarray
+    bound_top: np.ndarray
 
 
 #: A component whose partial log term (its squared whitened distance so far, plus
@@ -361,20 +380,39 @@ def _skew_logpdf_pruned_rows(start, stop, X, logd, comp, bg, z_max, R, hint):
     component is abandoned as soon as c0 - q / 2 + jac_max (q the squared whitened
     distance over the channels so far, which only grows) lies ``SKEW_PRUNE`` nats
     below the best term so far.  The same density to ~1e-14; the posteriors of
-    abandoned components (below 4e-18) are written as 0."""
+    abandoned components (below 4e-18) are written as 0.  Before its channels, each
+    component is tested against the cheaper bound of :class:`ComponentsOuter` (summed
+    for all components at once, component index innermost); an event whose ``hint``
+    is negative starts at the component that bound ranks first."""
     logw, c0, means, chol, inv_sd, sk, jac_max = (comp.logw, comp.c0, comp.means, comp.chol, comp.inv_sd,
                                                    comp.skew, comp.jac_max)
+    b_centre, b_slope, b_top = comp.bound_centre, comp.bound_slope, comp.bound_top
     K, d = means.shape
     want_r = R.shape[0] > 0
     lp = np.empty(K)
     live = np.zeros(K, np.bool_)
     z = np.empty(d)
+    e2 = np.empty(K)
     for i in range(start, stop):
+        for k in range(K):
+            e2[k] = 0.0
+        for j in range(d):
+            x = X[i, j]
+            for k in range(K):
+                tb = (x - b_centre[j, k]) * b_slope[j, k]
+                e2[k] += tb * tb
+        for k in range(K):
+            e2[k] = c0[k] + jac_max[k] - 0.5 * e2[k] * b_top[k]  # upper bound of the component's term
         lw0 = logw[0]
         for j in range(d):
             lw0 += bg_logpdf(X[i, j], j, bg, z_max)
         mx = lw0
         k0 = hint[i]
+        if k0 < 0:
+            k0 = 0
+            for k in range(1, K):
+                if e2[k] > e2[k0]:
+                    k0 = k
         best = k0
         for t in range(K):
             k = k0 + t
@@ -382,6 +420,9 @@ def _skew_logpdf_pruned_rows(start, stop, X, logd, comp, bg, z_max, R, hint):
                 k -= K
             top = c0[k] + jac_max[k]
             floor = mx - SKEW_PRUNE
+            if e2[k] < floor:
+                live[k] = False
+                continue
             q = 0.0
             jp = 1.0
             ok = True
@@ -432,12 +473,13 @@ def _skew_logpdf_pruned_par(X, logd, comp, bg, z_max, R, hint):
 def skew_logpdf_pruned(X, logd, comp, bg, z_max, R=None, hint=None):
     """:func:`skew_logpdf` by the pruned pass (:func:`_skew_logpdf_pruned_rows`);
     ``comp`` a :class:`ComponentsOuter`; ``hint`` (n,) int64 each event's most
-    probable component from an earlier call (updated in place; None: start at 0)."""
+    probable component from an earlier call (updated in place; None: start at the
+    component the bound ranks first)."""
     K, d = comp.means.shape
     if R is None:
         R = np.empty((0, K + 1))
     if hint is None or hint.shape[0] != X.shape[0]:
-        hint = np.zeros(X.shape[0], np.int64)
+        hint = np.full(X.shape[0], -1, np.int64)
     np.minimum(hint, max(K - 1, 0), out=hint)
     args = (X, logd, comp, bg, float(z_max), R, hint)
     if parallel(X.shape[0], (K + 1) * d * (d + 10)):
