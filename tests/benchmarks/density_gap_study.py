@@ -11,8 +11,8 @@ Run from the repository root (heavy: run under ``nice``)::
 For each training size n it draws n events of the "cyto" scenario (seed 0) and
 ``--test`` held-out events (seed 1, the density benchmark's held-out draw), fits
 ``AdditiveTreeDensity(random_state=0, max_fit_events=n)`` with the mixture
-stage's EM allowed all n training events (``MixtureSettings.max_em_events``;
-the default 50,000 would cap it), and prints per event (nats): the model's mean
+stage's EM allowed all n training events (the estimator's ``max_em_events``;
+the default rule would cap it), and prints per event (nats): the model's mean
 log-likelihood on its fitting share, on its internal held-out share and on the
 test events, the truth's on the same events, and the gaps (truth minus model).
 Fitted models are saved in ``--cache`` (the project's model files) and reused.
@@ -21,7 +21,6 @@ Fitted models are saved in ``--cache`` (the project's model files) and reused.
 from __future__ import annotations
 
 import argparse
-import dataclasses
 import json
 import os
 import sys
@@ -41,22 +40,6 @@ from core.density.model import AdditiveTreeDensity  # noqa: E402
 from core.density.storage import load_model, save_model  # noqa: E402
 
 
-def _all_events_em(max_em_events: int):
-    """fitting.fit_mixture_base with the mixture EM allowed ``max_em_events``."""
-    original = fitting.fit_mixture_base
-    real_fit = fitting.fit_mixture
-
-    def patched(chain, base, X_tr, X_va, rng, progress, n_trees):
-        def fit(X, loc, scale, settings, **kw):
-            return real_fit(X, loc, scale, dataclasses.replace(settings, max_em_events=max_em_events), **kw)
-        fitting.fit_mixture = fit
-        try:
-            return original(chain, base, X_tr, X_va, rng, progress, n_trees)
-        finally:
-            fitting.fit_mixture = real_fit
-    return patched
-
-
 def study(d: int, n: int, n_test: int, cache: str, log=print) -> dict:
     mix = S.build_cyto(d)
     X, _ = mix.sample(n, np.random.default_rng(0))
@@ -66,15 +49,11 @@ def study(d: int, n: int, n_test: int, cache: str, log=print) -> dict:
     if os.path.exists(path):
         model = load_model(AdditiveTreeDensity, path)
     else:
-        model = AdditiveTreeDensity(random_state=0, max_fit_events=max(n, 200_000))
-        saved = fitting.fit_mixture_base
-        fitting.fit_mixture_base = _all_events_em(n)
-        try:
-            t0 = time.perf_counter()
-            model.fit(X)
-            secs = time.perf_counter() - t0
-        finally:
-            fitting.fit_mixture_base = saved
+        model = AdditiveTreeDensity(random_state=0, max_fit_events=max(n, 200_000),
+                                    max_em_events=max(n, 1000))
+        t0 = time.perf_counter()
+        model.fit(X)
+        secs = time.perf_counter() - t0
         save_model(model, path)
     # the fit's own split (no subsample below max_fit_events): same generator as fit_with_base
     va, tr = fitting.heldout_split(n, model.validation_fraction, np.random.default_rng(0))
