@@ -35,6 +35,8 @@ def build_actions(win) -> None:
     win.act_open = A(win, "Open tubes...", win.open_dialog, "Ctrl+O", "open", "Open FCS files")
     win.act_open_folder = A(win, "Open folder...", win.open_folder_dialog, "Ctrl+Shift+O", "open",
                             "Open every FCS file of a folder")
+    win.act_close_tube = A(win, "Close tube", win.close_tube, "Ctrl+W", None,
+                           "Close the current tube and free its events (the file is not touched)")
     win.act_fit = A(win, "Fit density", win.start_fit, "Ctrl+F", "fit", "Learn the density of the current tube")
     win.act_cancel = A(win, "Stop", win.cancel_job, "Esc", "stop", "Stop the running fit or drawing tool")
     win.act_cancel.setEnabled(False)
@@ -83,7 +85,7 @@ def build_actions(win) -> None:
 
     mb = win.menuBar()
     m = mb.addMenu("&Tubes")
-    for a in (win.act_open, win.act_open_folder):
+    for a in (win.act_open, win.act_open_folder, win.act_close_tube):
         m.addAction(a)
     win.recent_menu = m.addMenu("Recent")
     m.addSeparator()

@@ -76,6 +76,7 @@ class FitController(QObject):
         super().__init__(window)
         self.win = window
         self.job: Job | None = None
+        self.job_path: str | None = None  # the tube the running job works on
         self.kind = ""
         self.last_problem = ""
 
@@ -104,6 +105,7 @@ class FitController(QObject):
         def work(progress):
             return analyse(ef, recipe, progress=progress, control=control)
 
+        self.job_path = tube.path
         self._start("contrast" if control else "fit", work,
                     lambda result: self._fit_done(tube, recipe, result, control), self._fit_stopped)
         self.win.fit_panel.started()
@@ -135,6 +137,7 @@ class FitController(QObject):
             self.win.fit_panel.ended(fit_text(analysis))
             self.contoursEnded.emit(False)
 
+        self.job_path = tube.path
         self._start("contours", lambda progress: compute_contours(analysis, pairs, extents, progress), done, stopped)
         self.win.fit_panel.status.setText("Drawing contours...")
         return True
@@ -168,6 +171,7 @@ class FitController(QObject):
         self.win.act_cancel.setEnabled(False)
         self.win.act_fit.setEnabled(True)
         self.job = None
+        self.job_path = None
 
     def _fit_done(self, tube, recipe, result, control) -> None:
         self._ended()

@@ -103,6 +103,7 @@ class MainWindow(QMainWindow):
         self.fitting.fitEnded.connect(self.fitEnded)
         self.fitting.contoursEnded.connect(self.contoursEnded)
         self.tubes_list.tubeChosen.connect(self.show_tube_by_path)
+        self.tubes_list.closeRequested.connect(self.close_tube)
         self.rarity_bar.shareChanged.connect(self.set_share)
         self.rarity_bar.colourChanged.connect(self.map_view.set_colour_mode)
         self.fit_panel.fitRequested.connect(self.start_fit)
@@ -331,17 +332,66 @@ class MainWindow(QMainWindow):
                           "with a control, batches over folders.</p>"
                           f"<p><b>{RESEARCH_USE_NOTE}</b></p>")
 
+    def _may_lose_regions(self, tubes) -> bool:
+        """True when none of ``tubes`` has regions not saved in a recipe, or the
+        analyst agrees to lose them."""
+        dirty = [t for t in tubes if t.dirty and len(t.regions)]
+        if not dirty or self.discard_changes:
+            return True
+        names = ", ".join(os.path.basename(t.path) for t in dirty)
+        answer = QMessageBox.question(
+            self, f"{SOFTWARE_NAME}: unsaved regions",
+            f"Regions drawn on {names} are not saved in a recipe. Close anyway and lose them?",
+            QMessageBox.Discard | QMessageBox.Cancel, QMessageBox.Cancel)
+        return answer == QMessageBox.Discard
+
+    @guarded("close tube")
+    def close_tube(self, path: str | None = None) -> bool:
+        """Close one tube (the current one by default) and free its events; the
+        file is not touched.  Returns whether it was closed."""
+        tube = self.session.require() if path is None else self.session.tubes.get(path)
+        if tube is None:
+            return False
+        if self.fitting.running() and self.fitting.job_path == tube.path:
+            self.statusBar().showMessage(f"{os.path.basename(tube.path)} is being fitted: press Stop (Esc) "
+                                         "before closing it", 6000)
+            return False
+        if not self._may_lose_regions([tube]):
+            return False
+        was_current = tube is self.session.current
+        order = list(self.session.tubes)
+        self.session.close(tube.path)
+        self.tubes_list.remove(tube.path)
+        if was_current:
+            rest = list(self.session.tubes)
+            if rest:  # the neighbour below it, else the one above
+                i = min(order.index(tube.path), len(rest) - 1)
+                self.show_tube(self.session.tubes[rest[i]])
+            else:
+                self.show_no_tube()
+        self.statusBar().showMessage(f"Closed {os.path.basename(tube.path)}", 4000)
+        return True
+
+    def show_no_tube(self) -> None:
+        """The window with no tube open: empty panels, no per-event array held."""
+        self.regions.only = ""
+        self.density_map.clear("Open an FCS file or a folder (Ctrl+O), or drop one here")
+        self.channels_panel.ranges = {}
+        self.channels_panel.show_channels([], [], {}, [], None)
+        self.card.clear()
+        self.comp_panel.show_matrix("none", None)
+        self.fit_panel.show_curve(None)
+        self.fit_panel.ended("No tube open.")
+        self.contrast_panel.show_result(None, None)
+        self.selections.show_regions([], [])
+        self.rarity_bar.show_count("", False)
+        self.populations_panel.refresh()
+        self.setWindowTitle(f"{SOFTWARE_NAME} — research use only")
+
     def closeEvent(self, event) -> None:
-        dirty = [t for t in self.session.tubes.values() if t.dirty and len(t.regions)]
-        if dirty and not self.discard_changes:
-            names = ", ".join(os.path.basename(t.path) for t in dirty)
-            answer = QMessageBox.question(
-                self, f"{SOFTWARE_NAME}: unsaved regions",
-                f"Regions drawn on {names} are not saved in a recipe. Close anyway and lose them?",
-                QMessageBox.Discard | QMessageBox.Cancel, QMessageBox.Cancel)
-            if answer != QMessageBox.Discard:
-                event.ignore()
-                return
+        if not self._may_lose_regions(self.session.tubes.values()):
+            event.ignore()
+            return
         if self.job is not None:
             self.job.cancel()
             self.job.wait(20000)
@@ -352,5 +402,5 @@ class MainWindow(QMainWindow):
         # lives on (signal connections) must not keep every tube's arrays
         for path in list(self.session.tubes):
             self.session.close(path)
-        self.density_map.release()
+        self.show_no_tube()
         event.accept()

@@ -176,6 +176,25 @@ class DensityMap(QWidget):
         self.values = self.colour_values = self.highlight_mask = self.only = None
         self.cells = []  # each held a bin number and an inside flag per event
 
+    def clear(self, title: str) -> None:
+        """Show no events (the last tube was closed): plots hidden, regions and
+        contours removed, every per-event array dropped."""
+        self._cancel_polygon()
+        for cell in self.cells:
+            for roi in cell.rois.values():
+                cell.plot.removeItem(roi.label)
+                cell.plot.removeItem(roi)
+            for item in cell.contours:
+                cell.plot.removeItem(item)
+        self.release()
+        for plot, img, hl in self._plots:
+            img.clear()
+            plot.hide()
+        if self.colourbar is not None:
+            self.colourbar.hide()
+        self.set_legend("")
+        self.set_title(title)
+
     def _build_grid(self, n: int, columns: int) -> None:
         """Lay out ``n`` plots in ``columns``; plots made before are reused
         (making one is the slow part), new ones are added to the pool."""
@@ -288,6 +307,7 @@ class DensityMap(QWidget):
             self.colourbar.setColorMap(cmap)
             self.colourbar.setLevels(self.levels)
             self.colourbar.axis.setLabel(self.colour_label)
+            self.colourbar.show()
 
     def _redraw_highlight(self) -> None:
         mask = self.highlight_mask

@@ -81,7 +81,8 @@ class _Runner(QObject):
 
 
 class Job(QObject):
-    """Run ``fn(progress)`` in a QThread.  Keep a reference until it ends."""
+    """Run ``fn(progress)`` in a QThread.  Keep a reference until it ends; it
+    deletes itself after its end signals (hold none after ``ended``)."""
 
     progressed = Signal(int, object, object)  # step, total, info
     finished = Signal(object)
@@ -128,16 +129,26 @@ class Job(QObject):
         self._finish()
         self.finished.emit(result)
         self.ended.emit()
+        self._release()
 
     def _on_error(self, exc, tb) -> None:
         self._finish()
         self.failed.emit(exc, tb)
         self.ended.emit()
+        self._release()
 
     def _on_stopped(self) -> None:
         self._finish()
         self.cancelled.emit()
         self.ended.emit()
+        self._release()
+
+    def _release(self) -> None:
+        """After the end: drop the work (its closure holds a tube's events) and
+        delete this job with its connections (their slots hold the tube too)
+        once control is back in the event loop; the owner has let go of it."""
+        self._runner._fn = None
+        self.deleteLater()
 
     def wait(self, ms: int = 30000) -> bool:
         """Block until the thread ends (used when closing the window)."""

@@ -601,3 +601,78 @@ def test_populations_list_highlight_keep_as_region_and_export(qtbot, window, tmp
     window.populations_panel.store_button.click()
     saved = window.fitting.recipe_for_fit(tube)
     assert saved.populations["definition"] == a.populations.definition.to_dict()
+
+
+def test_close_tube_frees_its_events_and_leaves_the_file(qtbot, window, tmp_path, monkeypatch):
+    import gc
+    import hashlib
+    import weakref
+
+    from PySide6.QtCore import QCoreApplication, QEvent
+
+    a_path, b_path = make_fcs(tmp_path / "a.fcs", seed=1), make_fcs(tmp_path / "b.fcs", seed=2)
+    before = hashlib.sha256(open(a_path, "rb").read()).hexdigest()
+    window.open_paths([a_path, b_path])
+    window.show_tube_by_path(os.path.abspath(a_path))
+    a = window.current
+    assert a.path == os.path.abspath(a_path)
+    spec = a.recipe.transforms
+    window.add_region({"name": "box", "kind": "rectangle", "channels": ["FSC-A", "SSC-A"],
+                       "x": [0.1, 0.3], "y": [0.05, 0.2],
+                       "transforms": {"FSC-A": spec["FSC-A"], "SSC-A": spec["SSC-A"]}})
+    del spec
+    # unsaved regions: "Cancel" keeps the tube open, "Discard" closes it
+    monkeypatch.setattr(QMessageBox, "question", staticmethod(lambda *a, **k: QMessageBox.Cancel))
+    assert window.close_tube() is False
+    assert a.path in window.tubes and window.current is a
+    monkeypatch.setattr(QMessageBox, "question", staticmethod(lambda *a, **k: QMessageBox.Discard))
+    held = [weakref.ref(a), weakref.ref(a.values), weakref.ref(a.event_file.data)]
+    del a
+    assert window.close_tube() is True
+    assert list(window.tubes) == [os.path.abspath(b_path)]
+    assert window.current.path == os.path.abspath(b_path)           # the other tube is shown
+    assert window.tubes_list.paths() == [os.path.abspath(b_path)]
+    assert window.density_map.values is window.current.values
+    gc.collect()
+    assert [r() for r in held] == [None, None, None], "a closed tube's events are still held"
+    assert hashlib.sha256(open(a_path, "rb").read()).hexdigest() == before  # the file is not touched
+    # while a tube is being fitted it is not closed (Stop first)
+    b = window.current
+    window.fit_panel.set_engine_settings({"n_trees": 200, "max_fit_events": 3000})
+    window.start_fit()
+    assert window.fit_running()  # ends only when its result reaches the GUI thread
+    assert window.close_tube() is False and b.path in window.tubes
+    window.cancel_job()
+    qtbot.waitUntil(lambda: not window.fit_running(), timeout=60_000)
+    # the last tube closed: an empty window holding no per-event array
+    held = [weakref.ref(b.values)]
+    del b
+    assert window.close_tube() is True
+    QCoreApplication.sendPostedEvents(None, QEvent.DeferredDelete)  # the ended job deletes itself
+    gc.collect()
+    assert window.current is None and window.tubes == {} and window.tubes_list.paths() == []
+    assert window.density_map.values is None and window.density_map.cells == []
+    assert held[0]() is None
+    assert window.card.summary.text() == "No tube open"
+    # and a file opens again after that
+    window.open_paths([a_path])
+    assert window.current.n_events == 3000 and len(window.density_map.cells) > 0
+
+
+def test_a_closed_window_frees_every_tube(qtbot, tmp_path, monkeypatch, messages):
+    import gc
+    import weakref
+
+    monkeypatch.setenv("BOSCAGE_SETTINGS", str(tmp_path / "settings.ini"))
+    from desktop.app import make_app
+    from desktop.main_window import MainWindow
+
+    make_app()
+    win = MainWindow(interactive=False)
+    qtbot.addWidget(win)
+    win.show()
+    win.open_paths([make_fcs(tmp_path / "a.fcs")])
+    held = [weakref.ref(win.current.values), weakref.ref(win.current.event_file.data)]
+    win.close()  # the Python wrapper of a closed window can live on (signal connections)
+    gc.collect()
+    assert [r() for r in held] == [None, None]

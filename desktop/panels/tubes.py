@@ -7,7 +7,7 @@ import desktop.qtfix  # noqa: F401  (before any Qt call; see desktop/qtfix.py)
 import os
 
 from PySide6.QtCore import Qt, Signal
-from PySide6.QtWidgets import (QAbstractItemView, QHeaderView, QLabel, QListWidget, QListWidgetItem,
+from PySide6.QtWidgets import (QAbstractItemView, QHeaderView, QLabel, QListWidget, QListWidgetItem, QMenu,
                                QTableWidget, QTableWidgetItem, QTabWidget, QVBoxLayout, QWidget)
 
 
@@ -36,6 +36,18 @@ class TubesList(QWidget):
         hint.setWordWrap(True)
         lay.addWidget(hint)
         self.list.currentItemChanged.connect(self._changed)
+        self.list.setContextMenuPolicy(Qt.CustomContextMenu)
+        self.list.customContextMenuRequested.connect(self._menu)
+
+    def _menu(self, pos) -> None:
+        item = self.list.itemAt(pos)
+        if item is None:
+            return
+        menu = QMenu(self)
+        close = menu.addAction("Close tube")
+        close.setToolTip("Close this file and free its events (the file itself is not touched)")
+        if menu.exec(self.list.viewport().mapToGlobal(pos)) is close:
+            self.closeRequested.emit(item.data(Qt.UserRole))
 
     def _changed(self, current, _previous) -> None:
         if current is not None:
@@ -67,6 +79,14 @@ class TubesList(QWidget):
                 rest = item.text().split("\n", 1)[1] if "\n" in item.text() else ""
                 item.setText((f"{suffix} " if suffix else "") + first + ("\n" + rest if rest else ""))
 
+    def remove(self, path: str) -> None:
+        for i in range(self.list.count()):
+            if self.list.item(i).data(Qt.UserRole) == path:
+                self.list.blockSignals(True)
+                self.list.takeItem(i)
+                self.list.blockSignals(False)
+                return
+
     def paths(self) -> list[str]:
         return [self.list.item(i).data(Qt.UserRole) for i in range(self.list.count())]
 
@@ -94,6 +114,11 @@ class TubeCard(QWidget):
         tabs.addTab(self.channels, "Channels")
         tabs.addTab(self.keywords, "Keywords")
         lay.addWidget(tabs, 1)
+
+    def clear(self) -> None:
+        self.summary.setText("No tube open")
+        self.channels.setRowCount(0)
+        self.keywords.setRowCount(0)
 
     def show_file(self, ef) -> None:
         self.summary.setText(f"{os.path.basename(ef.path)} — {ef.n_events:,} events, "
