@@ -676,3 +676,24 @@ def test_a_closed_window_frees_every_tube(qtbot, tmp_path, monkeypatch, messages
     win.close()  # the Python wrapper of a closed window can live on (signal connections)
     gc.collect()
     assert [r() for r in held] == [None, None]
+
+
+def test_a_refit_frees_the_previous_fit_and_its_contours_job(qtbot, window, tmp_path):
+    # an ended job kept its closures (the fit's events, the contours' analysis) alive
+    # as long as the window lived: every refit held on to the previous analysis
+    import gc
+    import weakref
+
+    from PySide6.QtCore import QCoreApplication, QEvent
+
+    window.open_paths([make_fcs(tmp_path / "tube.fcs")])
+    window.act_contours.setChecked(True)
+    with qtbot.waitSignal(window.contoursEnded, timeout=120_000):
+        fit(qtbot, window)
+    first = weakref.ref(window.current.analysis)
+    fit(qtbot, window)
+    qtbot.waitUntil(lambda: not window.fit_running(), timeout=120_000)
+    QCoreApplication.sendPostedEvents(None, QEvent.DeferredDelete)
+    gc.collect()
+    assert window.current.analysis is not None
+    assert first() is None, "the previous fit is still held"
