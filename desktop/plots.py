@@ -129,12 +129,7 @@ class DensityMap(QWidget):
         self.names = list(names)
         labels = list(labels) if labels else [""] * len(self.names)
         self._cancel_polygon()
-        for cell in self.cells:
-            for roi in cell.rois.values():
-                cell.plot.removeItem(roi.label)
-                cell.plot.removeItem(roi)
-            for item in cell.contours:
-                cell.plot.removeItem(item)
+        self._remove_overlays()
         n = len(pairs)
         if columns is None:
             columns = 1 if n <= 1 else 2 if n <= 4 else 3
@@ -176,16 +171,20 @@ class DensityMap(QWidget):
         self.values = self.colour_values = self.highlight_mask = self.only = None
         self.cells = []  # each held a bin number and an inside flag per event
 
-    def clear(self, title: str) -> None:
-        """Show no events (the last tube was closed): plots hidden, regions and
-        contours removed, every per-event array dropped."""
-        self._cancel_polygon()
+    def _remove_overlays(self) -> None:
+        """Take every region item and contour line off the plots shown now."""
         for cell in self.cells:
             for roi in cell.rois.values():
                 cell.plot.removeItem(roi.label)
                 cell.plot.removeItem(roi)
             for item in cell.contours:
                 cell.plot.removeItem(item)
+
+    def clear(self, title: str) -> None:
+        """Show no events (the last tube was closed): plots hidden, regions and
+        contours removed, every per-event array dropped."""
+        self._cancel_polygon()
+        self._remove_overlays()
         self.release()
         for plot, img, hl in self._plots:
             img.clear()

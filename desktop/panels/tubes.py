@@ -53,39 +53,40 @@ class TubesList(QWidget):
         if current is not None:
             self.tubeChosen.emit(current.data(Qt.UserRole))
 
+    def _row(self, path: str) -> int:
+        """The list row of ``path`` (-1: not listed)."""
+        return next((i for i in range(self.list.count()) if self.list.item(i).data(Qt.UserRole) == path), -1)
+
     def add(self, path: str, n_events: int, n_channels: int) -> None:
-        for i in range(self.list.count()):
-            if self.list.item(i).data(Qt.UserRole) == path:
-                return
+        if self._row(path) >= 0:
+            return
         item = QListWidgetItem(f"{os.path.basename(path)}\n{n_events:,} events · {n_channels} channels")
         item.setData(Qt.UserRole, path)
         item.setToolTip(path)
         self.list.addItem(item)
 
     def choose(self, path: str) -> None:
-        for i in range(self.list.count()):
-            if self.list.item(i).data(Qt.UserRole) == path:
-                self.list.blockSignals(True)
-                self.list.setCurrentRow(i)
-                self.list.blockSignals(False)
-                return
+        i = self._row(path)
+        if i >= 0:
+            self.list.blockSignals(True)
+            self.list.setCurrentRow(i)
+            self.list.blockSignals(False)
 
     def mark(self, path: str, suffix: str) -> None:
-        for i in range(self.list.count()):
+        i = self._row(path)
+        if i >= 0:
             item = self.list.item(i)
-            if item.data(Qt.UserRole) == path:
-                # the mark goes before the name, so a wrapped long name never hides it
-                first = item.text().split("\n")[0].lstrip("• ").rstrip(" •")
-                rest = item.text().split("\n", 1)[1] if "\n" in item.text() else ""
-                item.setText((f"{suffix} " if suffix else "") + first + ("\n" + rest if rest else ""))
+            # the mark goes before the name, so a wrapped long name never hides it
+            first = item.text().split("\n")[0].lstrip("• ").rstrip(" •")
+            rest = item.text().split("\n", 1)[1] if "\n" in item.text() else ""
+            item.setText((f"{suffix} " if suffix else "") + first + ("\n" + rest if rest else ""))
 
     def remove(self, path: str) -> None:
-        for i in range(self.list.count()):
-            if self.list.item(i).data(Qt.UserRole) == path:
-                self.list.blockSignals(True)
-                self.list.takeItem(i)
-                self.list.blockSignals(False)
-                return
+        i = self._row(path)
+        if i >= 0:
+            self.list.blockSignals(True)
+            self.list.takeItem(i)
+            self.list.blockSignals(False)
 
     def paths(self) -> list[str]:
         return [self.list.item(i).data(Qt.UserRole) for i in range(self.list.count())]
