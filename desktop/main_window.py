@@ -353,8 +353,8 @@ class MainWindow(QMainWindow):
         if tube is None:
             return False
         if self.fitting.running() and self.fitting.job_path == tube.path:
-            self.statusBar().showMessage(f"{os.path.basename(tube.path)} is being fitted: press Stop (Esc) "
-                                         "before closing it", 6000)
+            self.statusBar().showMessage(f"A fit or contour drawing is running on {os.path.basename(tube.path)}: "
+                                         "press Stop (Esc) before closing it", 6000)
             return False
         if not self._may_lose_regions([tube]):
             return False
