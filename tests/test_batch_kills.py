@@ -209,6 +209,21 @@ def _session_processes(sid):
     return pids
 
 
+def _workers(sid):
+    """PIDs of the batch's worker processes: live processes of session ``sid`` whose
+    parent is not the batch's own process ``sid`` (children of the fork server)."""
+    workers = []
+    for pid in _session_processes(sid):
+        try:
+            with open(f"/proc/{pid}/stat", encoding="ascii", errors="replace") as fh:
+                ppid = int(fh.read().rsplit(")", 1)[1].split()[1])
+        except (OSError, ValueError, IndexError):
+            continue
+        if pid != sid and ppid != sid:
+            workers.append(pid)
+    return workers
+
+
 def _snapshot(folder):
     out = {}
     for root, _dirs, files in os.walk(folder):
@@ -239,10 +254,13 @@ def test_kill_9_of_the_batch_leaves_no_process_and_no_later_write(tmp_path):
                              str(recipe), "--workers", "2"], cwd=REPO, env=env, start_new_session=True,
                             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     try:
-        deadline = time.time() + 60
-        while time.time() < deadline and len(_session_processes(proc.pid)) < 4:  # parent, server, 2 workers
-            time.sleep(0.1)
-        assert len(_session_processes(proc.pid)) >= 4, "the workers did not start"
+        # the two workers are up (children of the fork server, seen twice 0.2 s apart: a
+        # bare count of the session's processes also counts short-lived helpers)
+        deadline, seen = time.time() + 60, []
+        while time.time() < deadline and not (len(seen) >= 2 and len(seen[-1]) >= 2 and len(seen[-2]) >= 2):
+            seen.append(_workers(proc.pid))
+            time.sleep(0.2)
+        assert len(_workers(proc.pid)) >= 2, f"the workers did not start: {_session_processes(proc.pid)}"
         time.sleep(1.0)
         os.kill(proc.pid, signal.SIGKILL)
         proc.wait()
