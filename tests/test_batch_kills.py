@@ -210,16 +210,21 @@ def _session_processes(sid):
 
 
 def _workers(sid):
-    """PIDs of the batch's worker processes: live processes of session ``sid`` whose
-    parent is not the batch's own process ``sid`` (children of the fork server)."""
+    """PIDs of the batch's worker processes: live processes of session ``sid`` forked
+    from the fork server (its command line, a parent other than the batch's process).
+    A count of the session's processes is not enough: importing numpy's testing
+    module (numpy 1.26) runs ``lscpu``, a short-lived process in the session, in
+    the batch's process and in the fork server."""
     workers = []
     for pid in _session_processes(sid):
         try:
             with open(f"/proc/{pid}/stat", encoding="ascii", errors="replace") as fh:
                 ppid = int(fh.read().rsplit(")", 1)[1].split()[1])
+            with open(f"/proc/{pid}/cmdline", "rb") as fh:
+                forked_from_server = b"multiprocessing.forkserver" in fh.read()
         except (OSError, ValueError, IndexError):
             continue
-        if pid != sid and ppid != sid:
+        if ppid != sid and forked_from_server:
             workers.append(pid)
     return workers
 
@@ -254,8 +259,7 @@ def test_kill_9_of_the_batch_leaves_no_process_and_no_later_write(tmp_path):
                              str(recipe), "--workers", "2"], cwd=REPO, env=env, start_new_session=True,
                             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     try:
-        # the two workers are up (children of the fork server, seen twice 0.2 s apart: a
-        # bare count of the session's processes also counts short-lived helpers)
+        # the two workers are up (forked from the fork server, seen twice 0.2 s apart)
         deadline, seen = time.time() + 60, []
         while time.time() < deadline and not (len(seen) >= 2 and len(seen[-1]) >= 2 and len(seen[-2]) >= 2):
             seen.append(_workers(proc.pid))
