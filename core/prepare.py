@@ -60,7 +60,7 @@ from .cleaning import (  # noqa: F401  (re-exported: the old import path)
     ATOM_SHARE, CLEANING_FLAGS, CODE_CEILING_PILE, CODE_FLOOR_PILE, CODE_KEPT, CODE_NON_FINITE, CODE_SATURATED,
     PILE_FRACTION, PILE_MIN_EVENTS, PILE_SHARE, REASON_CEILING_PILE, REASON_FLOOR_PILE, REASON_KEPT,
     REASON_NON_FINITE, REASON_SATURATED, REASON_TEXTS, REASONS, _as_matrix, _per_channel, _saturated_column,
-    atoms, clean_events, largest_tie_share, pile_masks, reason_codes, reason_counts, reason_texts,
+    atoms, clean_events, largest_tie_share, non_finite_rows, pile_masks, reason_codes, reason_counts, reason_texts,
     saturation_mask)
 from .errors import EventDataError
 from .grids import (  # noqa: F401  (re-exported: the old import path)
@@ -202,7 +202,7 @@ def prepare_events(data, channel_ranges=None, drop_saturated: bool = True, dequa
         seen = jittered
     if seen.shape[0] != n:
         raise EventDataError(f"the values for the density have {seen.shape[0]} events but the raw values have {n}")
-    code[~np.isfinite(seen).all(axis=1) & (code == CODE_KEPT)] = CODE_NON_FINITE
+    code[non_finite_rows(seen) & (code == CODE_KEPT)] = CODE_NON_FINITE
     kept = code == CODE_KEPT
     finite_rows = code != CODE_NON_FINITE
     return PreparedEvents(matrix=np.ascontiguousarray(seen[kept], dtype=np.float64), kept=kept, reason_code=code,
