@@ -344,7 +344,15 @@ class Session:
         name = region_name("", [f"new vs {stem}"], tube.regions.names)
         return self.add_region({"name": name, "kind": "enriched", "control": control})
 
-    def close(self, path: str) -> None:
+    def close(self, path: str) -> Tube | None:
+        """Forget the tube at ``path`` (its events and fit go with it; the file is not
+        touched).  Returns the tube to show instead when it was the current one: the
+        one opened after it, else the one before (None: no tube left or it was not
+        current); ``current`` is None until that tube is switched to."""
+        order = list(self.tubes)
         tube = self.tubes.pop(path)
-        if tube is self.current:
-            self.current = None
+        if tube is not self.current:
+            return None
+        self.current = None
+        rest = list(self.tubes)
+        return self.tubes[rest[min(order.index(path), len(rest) - 1)]] if rest else None

@@ -105,8 +105,7 @@ class FitController(QObject):
         def work(progress):
             return analyse(ef, recipe, progress=progress, control=control)
 
-        self.job_path = tube.path
-        self._start("contrast" if control else "fit", work,
+        self._start("contrast" if control else "fit", tube.path, work,
                     lambda result: self._fit_done(tube, recipe, result, control), self._fit_stopped)
         self.win.fit_panel.started()
         if control:  # a contrast shows its progress where the analyst is looking: the Contrast panel
@@ -137,8 +136,8 @@ class FitController(QObject):
             self.win.fit_panel.ended(fit_text(analysis))
             self.contoursEnded.emit(False)
 
-        self.job_path = tube.path
-        self._start("contours", lambda progress: compute_contours(analysis, pairs, extents, progress), done, stopped)
+        self._start("contours", tube.path, lambda progress: compute_contours(analysis, pairs, extents, progress),
+                    done, stopped)
         self.win.fit_panel.status.setText("Drawing contours...")
         return True
 
@@ -148,13 +147,13 @@ class FitController(QObject):
             self.win.statusBar().showMessage("Stopping...", 3000)
 
     # -- internals ---------------------------------------------------------------
-    def _start(self, kind, work, on_done, on_stop) -> None:
+    def _start(self, kind, path, work, on_done, on_stop) -> None:
         job = Job(work, kind, self)
         job.progressed.connect(self._progress)
         job.finished.connect(on_done)
         job.cancelled.connect(on_stop)
         job.failed.connect(self._failed)
-        self.job, self.kind = job, kind
+        self.job, self.kind, self.job_path = job, kind, path
         self.win.act_cancel.setEnabled(True)
         self.win.act_fit.setEnabled(False)
         job.start()

@@ -44,6 +44,10 @@ from desktop.regions_view import RegionsController
 from desktop.settings import Settings
 
 
+#: What the window shows with no tube open (at start and after the last tube is closed).
+EMPTY_WINDOW_TITLE = f"{SOFTWARE_NAME} — research use only"
+EMPTY_MAP_TITLE = "Open an FCS file or a folder (Ctrl+O), or drop one here"
+
 class MainWindow(QMainWindow):
     """One window, many tubes.  ``fitEnded(ok)`` after every fit (screenshots and tests wait on it)."""
 
@@ -57,7 +61,7 @@ class MainWindow(QMainWindow):
         self.settings = Settings()
         self.session = Session()
         self.discard_changes = False
-        self.setWindowTitle(f"{SOFTWARE_NAME} — research use only")
+        self.setWindowTitle(EMPTY_WINDOW_TITLE)
         self.setWindowIcon(icon("boscage"))
         self.setAcceptDrops(True)
         self.setMinimumSize(1024, 640)
@@ -113,7 +117,7 @@ class MainWindow(QMainWindow):
         self.contrast_panel.keepRequested.connect(self.regions.keep_enriched)
         self.populations_panel = attach_populations(self)
         self.rarity_bar.set_share(RareRule().share, emit=False)   # the recipe's default rare share
-        self.density_map.set_title("Open an FCS file or a folder (Ctrl+O), or drop one here")
+        self.density_map.set_title(EMPTY_MAP_TITLE)
         geometry = self.settings.value("window/geometry")
         if geometry is not None and interactive:
             self.restoreGeometry(geometry)
@@ -359,23 +363,19 @@ class MainWindow(QMainWindow):
         if not self._may_lose_regions([tube]):
             return False
         was_current = tube is self.session.current
-        order = list(self.session.tubes)
-        self.session.close(tube.path)
+        after = self.session.close(tube.path)
         self.tubes_list.remove(tube.path)
-        if was_current:
-            rest = list(self.session.tubes)
-            if rest:  # the neighbour below it, else the one above
-                i = min(order.index(tube.path), len(rest) - 1)
-                self.show_tube(self.session.tubes[rest[i]])
-            else:
-                self.show_no_tube()
+        if after is not None:
+            self.show_tube(after)
+        elif was_current:
+            self.show_no_tube()
         self.statusBar().showMessage(f"Closed {os.path.basename(tube.path)}", 4000)
         return True
 
     def show_no_tube(self) -> None:
         """The window with no tube open: empty panels, no per-event array held."""
         self.regions.only = ""
-        self.density_map.clear("Open an FCS file or a folder (Ctrl+O), or drop one here")
+        self.density_map.clear(EMPTY_MAP_TITLE)
         self.channels_panel.ranges = {}
         self.channels_panel.show_channels([], [], {}, [], None)
         self.card.clear()
@@ -386,7 +386,7 @@ class MainWindow(QMainWindow):
         self.selections.show_regions([], [])
         self.rarity_bar.show_count("", False)
         self.populations_panel.refresh()
-        self.setWindowTitle(f"{SOFTWARE_NAME} — research use only")
+        self.setWindowTitle(EMPTY_WINDOW_TITLE)
 
     def closeEvent(self, event) -> None:
         if not self._may_lose_regions(self.session.tubes.values()):

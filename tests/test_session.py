@@ -56,6 +56,22 @@ def test_switching_tubes_keeps_each_tubes_state(tmp_path):
     assert s.switch(a).highlight() is ta.analysis.enriched  # A keeps its own highlight
 
 
+def test_closing_a_tube_names_the_one_to_show_next(tmp_path):
+    from core.session import Session
+
+    paths = [make_fcs(tmp_path / f"{c}.fcs", 400, k) for k, c in enumerate("abc")]
+    s = Session()
+    s.open([tmp_path])
+    s.switch(paths[1])
+    assert s.close(paths[0]) is None and s.current.path == paths[1]   # not current: nothing to show instead
+    assert s.close(paths[1]).path == paths[2] and s.current is None  # the one opened after it
+    s.switch(paths[2])
+    assert s.close(paths[2]) is None and s.tubes == {} and s.current is None
+    s.open(paths)
+    s.switch(paths[2])
+    assert s.close(paths[2]).path == paths[1]                         # the last: the one before it
+
+
 def test_rescale_region_goes_through_instrument_units():
     from core.regions import region_from_dict
     from core.session import rescale_region
