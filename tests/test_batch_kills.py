@@ -193,18 +193,22 @@ def test_deeply_nested_recipe_gives_exit_2_and_a_sentence(tmp_path, capsys):
 
 # ----------------------------------------------------------------------------- kill -9
 
+def _stat(pid):
+    """The fields of /proc/PID/stat after the command name (state, ppid, pgrp, session, ...);
+    None when the process is gone."""
+    try:
+        with open(f"/proc/{pid}/stat", encoding="ascii", errors="replace") as fh:
+            return fh.read().rsplit(")", 1)[1].split()
+    except OSError:
+        return None
+
+
 def _session_processes(sid):
     """PIDs of live (not zombie) processes in session ``sid`` (Linux /proc)."""
     pids = []
     for entry in os.listdir("/proc"):
-        if not entry.isdigit():
-            continue
-        try:
-            with open(f"/proc/{entry}/stat", encoding="ascii", errors="replace") as fh:
-                fields = fh.read().rsplit(")", 1)[1].split()
-        except OSError:
-            continue
-        if int(fields[3]) == sid and fields[0] not in ("Z", "X"):
+        fields = _stat(entry) if entry.isdigit() else None
+        if fields is not None and int(fields[3]) == sid and fields[0] not in ("Z", "X"):
             pids.append(int(entry))
     return pids
 
@@ -217,14 +221,13 @@ def _workers(sid):
     the batch's process and in the fork server."""
     workers = []
     for pid in _session_processes(sid):
+        fields = _stat(pid)
         try:
-            with open(f"/proc/{pid}/stat", encoding="ascii", errors="replace") as fh:
-                ppid = int(fh.read().rsplit(")", 1)[1].split()[1])
             with open(f"/proc/{pid}/cmdline", "rb") as fh:
                 forked_from_server = b"multiprocessing.forkserver" in fh.read()
-        except (OSError, ValueError, IndexError):
+        except OSError:
             continue
-        if ppid != sid and forked_from_server:
+        if fields is not None and int(fields[1]) != sid and forked_from_server:
             workers.append(pid)
     return workers
 
