@@ -9,7 +9,7 @@ import math
 import numpy as np
 from numba import njit, prange
 
-from .common import _LOG_SQRT_2PI, correlation_bound, parallel
+from .common import _LOG_SQRT_2PI, correlation_bound, parallel, scaled_sq_distances
 
 #: A component whose log weight x density falls this far below the best one
 #: seen for an event is left out of that event's E step: its responsibility
@@ -65,13 +65,7 @@ def _em_stats_rows(start, stop, X, bg, logw, means, chol, log_det, acc_n, acc_s,
     ll = 0.0
     half_d_log2pi = d * _LOG_SQRT_2PI
     for i in range(start, stop):
-        for k in range(K):
-            e2[k] = 0.0
-        for j in range(d):
-            x = X[i, j]
-            for k in range(K):
-                t = (x - means_t[j, k]) * inv_sd_t[j, k]
-                e2[k] += t * t
+        scaled_sq_distances(X, i, means_t, inv_sd_t, e2)
         lp[0] = logw[0] + bg[i]
         mx = lp[0]
         k0 = hint[i]

@@ -21,7 +21,8 @@ from typing import NamedTuple
 import numpy as np
 from numba import njit, prange
 
-from .common import BLOCK, _LOG_SQRT_2PI, correlation_bound, log_sigmoid_pair, logistic_cdf, ndtr, parallel, softplus
+from .common import (BLOCK, _LOG_SQRT_2PI, correlation_bound, log_sigmoid_pair, logistic_cdf, ndtr, parallel,
+                     scaled_sq_distances, softplus)
 
 
 class Background(NamedTuple):
@@ -394,13 +395,7 @@ def _skew_logpdf_pruned_rows(start, stop, X, logd, comp, bg, z_max, R, hint):
     z = np.empty(d)
     e2 = np.empty(K)
     for i in range(start, stop):
-        for k in range(K):
-            e2[k] = 0.0
-        for j in range(d):
-            x = X[i, j]
-            for k in range(K):
-                tb = (x - b_centre[j, k]) * b_slope[j, k]
-                e2[k] += tb * tb
+        scaled_sq_distances(X, i, b_centre, b_slope, e2)
         for k in range(K):
             e2[k] = c0[k] + jac_max[k] - 0.5 * e2[k] * b_top[k]  # upper bound of the component's term
         lw0 = logw[0]
